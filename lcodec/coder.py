@@ -1,0 +1,109 @@
+"""Entropy coding of one frame: lanes, integer tables, constriction.
+
+A frame of n symbols is split into `lanes` contiguous segments (lane b gets n // lanes
+symbols, plus one for the first n % lanes lanes), coded in lockstep: step t codes
+symbol t of every lane still active. Lanes are what lets one coder call serve many
+symbols, in the decoder too, where the tables of step t depend on the symbols of
+steps < t.
+
+The model hands over tables as float64 arrays holding positive integers (exact below
+2**53); constriction rescales and quantises them itself with plain IEEE float64
+arithmetic, identically in encoder and decoder (constriction is pinned in
+pyproject.toml; the golden containers in tests/golden prove it in every CI run).
+
+Two coders:
+  queue  constriction's range coder: encodes in decode order, so the encoder streams
+         tables chunk by chunk and keeps none; the choice for adaptive models.
+  stack  constriction's ANS coder: decodes in reverse of encoding, so the encoder must
+         hold every table of the frame first; the choice for models whose tables come
+         from one parallel pass.
+Both produce a sequence of 32-bit words, stored little-endian.
+"""
+from __future__ import annotations
+
+import numpy as np
+import constriction
+
+CODERS = {"queue": 1, "stack": 2}
+_FAMILY = constriction.stream.model.Categorical(perfect=False)
+
+
+def lane_layout(n: int, lanes: int) -> tuple[np.ndarray, np.ndarray]:
+    """Start offsets and lengths of each lane (lengths are non-increasing)."""
+    lanes = max(1, min(lanes, n)) if n else 1
+    base, extra = divmod(n, lanes)
+    lengths = np.full(lanes, base, np.int64)
+    lengths[:extra] += 1
+    starts = np.zeros(lanes, np.int64)
+    starts[1:] = np.cumsum(lengths)[:-1]
+    return starts, lengths
+
+
+def _nll_bits(syms: np.ndarray, tab: np.ndarray) -> float:
+    """Model NLL of the coded symbols under the integer tables (reporting only)."""
+    if len(syms) == 0:
+        return 0.0
+    chosen = tab[np.arange(len(syms)), syms]
+    return float(-np.log2(chosen / tab.sum(axis=1)).sum())
+
+
+def encode_frame(model, data: bytes, lanes: int, coder: str = "queue") -> tuple[bytes, float]:
+    """Code `data` with `model`; returns (payload, model NLL in bits)."""
+    arr = np.frombuffer(data, np.uint8)
+    starts, lengths = lane_layout(len(arr), lanes)
+    nll = 0.0
+    if coder == "queue":
+        enc = constriction.stream.queue.RangeEncoder()
+        for syms, tab in model.teacher_chunks(arr, starts, lengths):
+            if len(syms):
+                enc.encode(syms, _FAMILY, tab)
+                nll += _nll_bits(syms, tab)
+        words = enc.get_compressed()
+    elif coder == "stack":
+        all_syms, all_tabs = [], []
+        for syms, tab in model.teacher_chunks(arr, starts, lengths):
+            all_syms.append(syms.copy())
+            all_tabs.append(tab.copy())
+            nll += _nll_bits(syms, tab)
+        enc = constriction.stream.stack.AnsCoder()
+        for syms, tab in zip(reversed(all_syms), reversed(all_tabs)):
+            if len(syms):
+                enc.encode_reverse(syms, _FAMILY, tab)
+        words = enc.get_compressed()
+    else:
+        raise ValueError(f"unknown coder {coder!r}")
+    return np.asarray(words, "<u4").tobytes(), nll
+
+
+def decode_frame(model, payload: bytes, n: int, lanes: int, coder: str = "queue") -> bytes:
+    """Inverse of encode_frame. Raises ValueError when the payload cannot be decoded."""
+    if len(payload) % 4:
+        raise ValueError("coded payload is not a whole number of 32-bit words")
+    words = np.frombuffer(payload, "<u4").astype(np.uint32)
+    starts, lengths = lane_layout(n, lanes)
+    if coder == "queue":
+        dec = constriction.stream.queue.RangeDecoder(words)
+    elif coder == "stack":
+        dec = constriction.stream.stack.AnsCoder(words)
+    else:
+        raise ValueError(f"unknown coder {coder!r}")
+    out = np.empty(n, np.uint8)
+    n_steps = int(lengths[0]) if n else 0
+    active = active_lanes(lengths, n_steps)
+    step = model.stepper(lengths)
+    prev = np.zeros(len(lengths), np.int32)
+    m_prev = 0
+    for t in range(n_steps):
+        m = int(active[t])
+        tab = step(prev, m_prev, m)
+        syms = dec.decode(_FAMILY, tab)
+        out[starts[:m] + t] = syms
+        prev[:m] = syms
+        m_prev = m
+    return out.tobytes()
+
+
+def active_lanes(lengths: np.ndarray, n_steps: int) -> np.ndarray:
+    """Number of lanes still active (length > t) at each step t."""
+    asc = np.sort(lengths)
+    return len(lengths) - np.searchsorted(asc, np.arange(n_steps), side="right")

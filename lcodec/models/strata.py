@@ -1,0 +1,236 @@
+"""`strata`: the built-in adaptive model. Needs no training; integer-only.
+
+It blends byte statistics of context orders 0..K (K = `max_order`) by interpolated
+absolute discounting: starting from the uniform distribution, each order's counts
+n(s) in the current context are discounted by d and the freed mass is given to the
+blend of the lower orders:
+
+    P_k(s) = ( max(n(s) - d, 0) + d * D * P_{k-1}(s) ) / T
+
+with T = sum n(s) and D = number of distinct symbols seen in the context (a context
+never seen leaves P_{k-1} unchanged). Counts are updated with update exclusion: the
+symbol is counted at the highest order and at lower orders only while it was new
+there, which approximates continuation counts. Every number is an integer; P is kept
+in fixed point with total 2**P_BITS, and the table handed to the coder is P_K(s) + 1.
+
+State is shared by all lanes of a frame: at each step every active lane is predicted
+from the same state, then the lanes' symbols are counted in lane order. Encoder and
+decoder run the same two kernels (`_predict`, `_update`), so their tables agree by
+construction; a fresh state is allocated per frame, so frames are independent.
+
+Contexts of order 1 and 2 index their rows directly; orders >= 3 are hashed into
+2**hash_log2 rows each, with a 32-bit check tag per row (a row whose tag differs is
+treated as empty and taken over on update).
+"""
+from __future__ import annotations
+
+import numpy as np
+from numba import njit
+
+P_BITS = 20  # fixed-point total of the blended distribution
+F = 16  # discount is expressed in sixteenths of a count
+COUNT_LIMIT = 255  # uint8 counts: a row is halved when a count would pass this
+
+_M1 = np.uint64(0x9E3779B97F4A7C15)  # odd multipliers for context hashing
+_M2 = np.uint64(0xD6E8FEB86659FD93)
+
+
+@njit(cache=True, nogil=True)
+def _row_slots(hist, max_order, hash_log2, bases, slots, checks):
+    """Row index and check tag of each order's context (orders 0..max_order)."""
+    slots[0] = bases[0]
+    checks[0] = 0
+    for k in range(1, max_order + 1):
+        if k <= 2:
+            ctx = hist & np.uint64((1 << (8 * k)) - 1)
+            slots[k] = bases[k] + np.int64(ctx)
+            checks[k] = 0
+        else:
+            if k >= 8:
+                ctx = hist
+            else:
+                ctx = hist & np.uint64((1 << (8 * k)) - 1)
+            x = (ctx + np.uint64(k)) * _M1
+            x = x ^ (x >> np.uint64(31))
+            x = x * _M2
+            slots[k] = bases[k] + np.int64(x >> np.uint64(64 - hash_log2))
+            checks[k] = np.uint32((x >> np.uint64(8)) & np.uint64(0xFFFFFFFF)) | np.uint32(1)
+
+
+@njit(cache=True, nogil=True)
+def _predict(counts, tot, dist, tags, slots, checks, max_order, disc, p, out):
+    """Blend orders 0..max_order into `out` (float64 holding integers >= 1)."""
+    one = np.int64(1) << P_BITS
+    for s in range(256):
+        p[s] = one >> 8
+    for k in range(max_order + 1):
+        r = slots[k]
+        if tags[r] != checks[k]:
+            continue
+        t = np.int64(tot[r])
+        if t == 0:
+            continue
+        d = np.int64(disc[k])
+        esc = d * np.int64(dist[r])
+        # bound: n*F <= 4080, esc <= 15*256, p[s] <= 2**20, so num < 2**33;
+        # inv <= 2**32 / 16, so num * inv < 2**61 fits int64.
+        inv = (np.int64(1) << 32) // (t * F)
+        row = counts[r]
+        for s in range(256):
+            n = np.int64(row[s]) * F - d
+            if n < 0:
+                n = 0
+            num = n * one + esc * p[s]
+            p[s] = (num * inv) >> 32
+    for s in range(256):
+        out[s] = np.float64(p[s] + 1)
+
+
+@njit(cache=True, nogil=True)
+def _update(counts, tot, dist, tags, slots, checks, max_order, sym):
+    """Count `sym` from the highest order down, stopping below the first order that knew it."""
+    for k in range(max_order, -1, -1):
+        r = slots[k]
+        row = counts[r]
+        if tags[r] != checks[k]:
+            row[:] = 0
+            tags[r] = checks[k]
+            tot[r] = 0
+            dist[r] = 0
+        c = row[sym]
+        if c >= COUNT_LIMIT:
+            t = 0
+            dd = 0
+            for s in range(256):
+                v = (row[s] + 1) >> 1 if row[s] > 1 else row[s]
+                row[s] = v
+                t += v
+                dd += 1 if v > 0 else 0
+            tot[r] = t
+            dist[r] = dd
+            c = row[sym]
+        row[sym] = c + 1
+        tot[r] += 1
+        if c == 0:
+            dist[r] += 1
+        else:
+            break
+
+
+@njit(cache=True, nogil=True)
+def _teacher(state, data, starts, lengths, t0, t1, max_order, hash_log2, disc, out_syms, out_tab):
+    """Tables of steps t0..t1 for all active lanes, in coding order, updating state."""
+    counts, tot, dist, tags, bases, hist = state
+    slots = np.empty(max_order + 1, np.int64)
+    checks = np.empty(max_order + 1, np.uint32)
+    p = np.empty(256, np.int64)
+    nl = lengths.shape[0]
+    i = 0
+    for t in range(t0, t1):
+        m = 0
+        while m < nl and lengths[m] > t:
+            m += 1
+        for b in range(m):
+            _row_slots(hist[b], max_order, hash_log2, bases, slots, checks)
+            _predict(counts, tot, dist, tags, slots, checks, max_order, disc, p, out_tab[i + b])
+            out_syms[i + b] = data[starts[b] + t]
+        for b in range(m):
+            sym = data[starts[b] + t]
+            _row_slots(hist[b], max_order, hash_log2, bases, slots, checks)
+            _update(counts, tot, dist, tags, slots, checks, max_order, sym)
+            hist[b] = (hist[b] << np.uint64(8)) | np.uint64(sym)
+        i += m
+    return i
+
+
+@njit(cache=True, nogil=True)
+def _step(state, syms, m_prev, m, max_order, hash_log2, disc, out_tab):
+    """Decoder step: count the previous step's symbols of m_prev lanes, then predict m lanes."""
+    counts, tot, dist, tags, bases, hist = state
+    slots = np.empty(max_order + 1, np.int64)
+    checks = np.empty(max_order + 1, np.uint32)
+    p = np.empty(256, np.int64)
+    for b in range(m_prev):
+        sym = syms[b]
+        _row_slots(hist[b], max_order, hash_log2, bases, slots, checks)
+        _update(counts, tot, dist, tags, slots, checks, max_order, sym)
+        hist[b] = (hist[b] << np.uint64(8)) | np.uint64(sym)
+    for b in range(m):
+        _row_slots(hist[b], max_order, hash_log2, bases, slots, checks)
+        _predict(counts, tot, dist, tags, slots, checks, max_order, disc, p, out_tab[b])
+
+
+class Strata:
+    """The adaptive model. Parameters are part of the container's model identity."""
+
+    name = "strata"
+    kind = "adaptive"
+
+    def __init__(self, max_order: int = 6, hash_log2: int = 18, discount=None):
+        if not 1 <= max_order <= 8:
+            raise ValueError("max_order must be 1..8")
+        if not 10 <= hash_log2 <= 22:
+            raise ValueError("hash_log2 must be 10..22")
+        if discount is None:
+            discount = [13] * (max_order + 1)
+        discount = [int(x) for x in discount]
+        if len(discount) != max_order + 1 or not all(1 <= x < F for x in discount):
+            raise ValueError(f"discount needs {max_order + 1} values in 1..{F - 1} (sixteenths of a count)")
+        self.max_order = max_order
+        self.hash_log2 = hash_log2
+        self.discount = discount
+        self._disc = np.array(discount, np.int64)
+
+    @property
+    def params(self) -> dict:
+        return {"max_order": self.max_order, "hash_log2": self.hash_log2, "discount": list(self.discount)}
+
+    @classmethod
+    def from_params(cls, params: dict) -> "Strata":
+        return cls(int(params["max_order"]), int(params["hash_log2"]), list(params["discount"]))
+
+    # -- state ---------------------------------------------------------------------------
+    def hash_bits(self, n_bytes: int) -> int:
+        """log2 of the rows per hashed order: sized to the frame (fewer for short frames)."""
+        return max(10, min(self.hash_log2, int(max(n_bytes, 1) - 1).bit_length() + 1))
+
+    def new_state(self, n_bytes: int, n_lanes: int):
+        hashed = 1 << self.hash_bits(n_bytes)
+        rows = [1, 256, 65536][: self.max_order + 1] + [hashed] * max(0, self.max_order - 2)
+        bases = np.zeros(len(rows), np.int64)
+        bases[1:] = np.cumsum(rows)[:-1]
+        total = int(sum(rows))
+        # np.zeros maps zero pages lazily: a short frame touches only the rows it uses.
+        counts = np.zeros((total, 256), np.uint8)
+        tot = np.zeros(total, np.int32)
+        dist = np.zeros(total, np.int32)
+        tags = np.zeros(total, np.uint32)
+        hist = np.zeros(n_lanes, np.uint64)
+        return (counts, tot, dist, tags, bases, hist)
+
+    # -- the two passes ------------------------------------------------------------------
+    def teacher_chunks(self, data: np.ndarray, starts: np.ndarray, lengths: np.ndarray, chunk_steps: int = 256):
+        """Yield (symbols, tables) for consecutive step ranges, in coding order."""
+        n = int(lengths.sum())
+        state, hb = self.new_state(n, len(lengths)), self.hash_bits(n)
+        n_steps = int(lengths[0]) if len(lengths) else 0
+        nl = len(lengths)
+        syms = np.empty(chunk_steps * nl, np.int32)
+        tab = np.empty((chunk_steps * nl, 256), np.float64)
+        for t0 in range(0, n_steps, chunk_steps):
+            t1 = min(n_steps, t0 + chunk_steps)
+            k = _teacher(state, data, starts, lengths, t0, t1, self.max_order, hb, self._disc, syms, tab)
+            yield syms[:k], tab[:k]
+
+    def stepper(self, lengths: np.ndarray):
+        """Decoder side: returns step(prev_syms, m_prev, m) -> tables (m, 256)."""
+        n = int(lengths.sum())
+        state, hl = self.new_state(n, len(lengths)), self.hash_bits(n)
+        tab = np.empty((max(len(lengths), 1), 256), np.float64)
+        mo, disc = self.max_order, self._disc
+
+        def step(prev_syms, m_prev, m):
+            _step(state, prev_syms, m_prev, m, mo, hl, disc, tab)
+            return tab[:m]
+
+        return step
