@@ -165,12 +165,13 @@ class Strata:
 
     name = "strata"
     kind = "adaptive"
+    coder = "queue"  # tables come one step at a time: the range coder needs none stored
 
     def __init__(self, max_order: int = 6, hash_log2: int = 18, discount=None):
         if not 1 <= max_order <= 8:
             raise ValueError("max_order must be 1..8")
-        if not 10 <= hash_log2 <= 22:
-            raise ValueError("hash_log2 must be 10..22")
+        if not 10 <= hash_log2 <= 20:
+            raise ValueError("hash_log2 must be 10..20")
         if discount is None:
             discount = [13] * (max_order + 1)
         discount = [int(x) for x in discount]
@@ -185,9 +186,28 @@ class Strata:
     def params(self) -> dict:
         return {"max_order": self.max_order, "hash_log2": self.hash_log2, "discount": list(self.discount)}
 
+    @property
+    def identity(self) -> dict:
+        return {"model": self.name, "params": self.params}
+
+    @property
+    def label(self) -> str:
+        return f"strata (built-in, orders 0-{self.max_order})"
+
     @classmethod
     def from_params(cls, params: dict) -> "Strata":
-        return cls(int(params["max_order"]), int(params["hash_log2"]), list(params["discount"]))
+        """Build from recorded parameters; anything but exact ints is refused (ValueError)."""
+        def as_int(v):
+            if type(v) is not int:
+                raise ValueError(f"expected an integer, got {v!r}")
+            return v
+
+        if not isinstance(params, dict) or set(params) != {"max_order", "hash_log2", "discount"}:
+            raise ValueError("strata needs exactly max_order, hash_log2 and discount")
+        disc = params["discount"]
+        if not isinstance(disc, list):
+            raise ValueError("discount must be a list")
+        return cls(as_int(params["max_order"]), as_int(params["hash_log2"]), [as_int(x) for x in disc])
 
     # -- state ---------------------------------------------------------------------------
     def hash_bits(self, n_bytes: int) -> int:

@@ -1,0 +1,314 @@
+"""Python API; the CLI is a thin layer over these functions.
+
+    blob = lcodec.pack(data)                 # bytes -> archive bytes (built-in adaptive model)
+    data = lcodec.unpack(blob)               # and back, every checksum verified
+    blob, stats = lcodec.pack_stats(data)    # plus model NLL, sizes, frame counts
+    blob = lcodec.pack_paths(["logs/"])      # files and folders -> one multi-member archive
+    lcodec.unpack_to_dir(blob, "restored/")  # members -> files under a folder
+    report = lcodec.verify(blob, against="logs/")
+    lcodec.info(blob)                        # header, members, frames, model identity (a dict)
+
+`model` is None (the built-in adaptive model), a model file's path, or a model object.
+Errors: lcodec.errors.DataError (damaged/mismatching data), ModelError (wrong or missing
+model), UsageError (a bad request).
+"""
+from __future__ import annotations
+
+import os
+import time
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from . import container as C
+from .coder import encode_frame, decode_frame
+from .errors import DataError, UsageError
+from .fsio import atomic_write, collect_inputs, safe_member_path, _remove_quietly, read_input
+from .models import for_identity, identity_text, resolve
+
+DEFAULT_FRAME_SIZE = 1 << 20
+MAX_LANES = 64
+LANE_BYTES = 4096  # a lane per 4 KiB of frame, at most MAX_LANES
+
+
+def choose_lanes(n: int) -> int:
+    return max(1, min(MAX_LANES, n // LANE_BYTES))
+
+
+@dataclass
+class PackStats:
+    raw_bytes: int = 0
+    coded_bytes: int = 0
+    nll_bits: float = 0.0  # model NLL of the modelled frames, plus 8 bits per stored byte
+    frames: int = 0
+    stored_frames: int = 0
+    encode_s: float = 0.0
+
+    @property
+    def bits_per_byte(self) -> float:
+        return 8.0 * self.coded_bytes / self.raw_bytes if self.raw_bytes else 0.0
+
+
+def _encode_pieces(pieces, model, frame_size: int, stats: PackStats, progress=None) -> list[bytes]:
+    records, done = [], 0
+    coder = model.coder
+    method = C.METHOD_QUEUE if coder == "queue" else C.METHOD_STACK
+    for piece in pieces:
+        for off in range(0, len(piece), frame_size):
+            raw = bytes(piece[off:off + frame_size])
+            lanes = choose_lanes(len(raw))
+            coded, nll = encode_frame(model, raw, lanes, coder)
+            if len(coded) >= len(raw):  # incompressible: store (growth is the record only)
+                records.append(C.frame_record(len(raw), raw, C.METHOD_STORED, 1, C.crc32c(raw)))
+                stats.stored_frames += 1
+                stats.nll_bits += 8.0 * len(raw)
+            else:
+                records.append(C.frame_record(len(raw), coded, method, lanes, C.crc32c(raw)))
+                stats.nll_bits += nll
+            stats.frames += 1
+            done += len(raw)
+            if progress:
+                progress(len(raw))
+    return records
+
+
+def _pack(pieces: list[bytes], members, model, frame_size: int, progress) -> tuple[bytes, PackStats]:
+    if not 1 <= frame_size <= C.MAX_FRAME_RAW:
+        raise UsageError(f"frame size must be 1..{C.MAX_FRAME_RAW} bytes")
+    t0 = time.perf_counter()
+    m = resolve(model)
+    stats = PackStats(raw_bytes=sum(len(p) for p in pieces))
+    records = _encode_pieces(pieces, m, frame_size, stats, progress)
+    h = C.sha256(b"".join(pieces)) if len(pieces) != 1 else C.sha256(pieces[0])
+    head = C.header_bytes(stats.raw_bytes, h, len(records), frame_size, m.identity, members)
+    blob = head + b"".join(records)
+    stats.coded_bytes = len(blob)
+    stats.encode_s = time.perf_counter() - t0
+    return blob, stats
+
+
+def pack_stats(data: bytes, model=None, frame_size: int = DEFAULT_FRAME_SIZE, progress=None) -> tuple[bytes, PackStats]:
+    """Pack one byte string; returns (archive bytes, PackStats)."""
+    return _pack([bytes(data)], None, model, frame_size, progress)
+
+
+def pack(data: bytes, model=None, frame_size: int = DEFAULT_FRAME_SIZE, progress=None) -> bytes:
+    """Pack one byte string into an archive (bytes)."""
+    return pack_stats(data, model, frame_size, progress)[0]
+
+
+def pack_paths(paths: list[str], model=None, frame_size: int = DEFAULT_FRAME_SIZE, progress=None,
+               on_skip=None) -> tuple[bytes, PackStats]:
+    """Pack files and folders into one multi-member archive; returns (blob, stats)."""
+    items, skipped = collect_inputs(list(paths))
+    for s in skipped:
+        if on_skip:
+            on_skip(s)
+    members, pieces = [], []
+    for rel, full, st in items:
+        if os.path.isdir(full):
+            members.append(C.Member(rel, st.st_mode, 0, C.sha256(b""), st.st_mtime_ns))
+            continue
+        data = read_input(full)
+        members.append(C.Member(rel, st.st_mode, len(data), C.sha256(data), st.st_mtime_ns))
+        pieces.append(data)
+    return _pack(pieces, members, model, frame_size, progress)
+
+
+# -- decoding -----------------------------------------------------------------------------
+@dataclass
+class Decoded:
+    container: C.Container
+    frames: list  # bytes per frame, or None where the frame is damaged
+    problems: list = field(default_factory=list)
+
+    def member_ranges(self):
+        """(member, first frame index, frame count) for each member."""
+        out, i = [], 0
+        fs = self.container.frame_size
+        for m in self.container.members or []:
+            n = 0 if m.is_dir else -(-m.size // fs)
+            out.append((m, i, n))
+            i += n
+        return out
+
+
+def _decode_frame(model, fr: C.Frame) -> bytes:
+    if fr.method == C.METHOD_STORED:
+        raw = bytes(fr.payload)
+    else:
+        coder = "queue" if fr.method == C.METHOD_QUEUE else "stack"
+        try:
+            raw = decode_frame(model, bytes(fr.payload), fr.raw_len, fr.lanes, coder)
+        except (KeyboardInterrupt, SystemExit):
+            raise
+        except BaseException:  # constriction may refuse a damaged payload (a panic is a BaseException)
+            raise DataError(f"frame {fr.index} damaged (its coded words cannot be decoded)") from None
+    if C.crc32c(raw) != fr.raw_crc:
+        raise DataError(f"frame {fr.index} damaged (CRC-32C of its decoded bytes does not match)")
+    return raw
+
+
+def decode(blob, model=None, progress=None, keep_going: bool = False) -> Decoded:
+    """Decode every frame and check every checksum. With keep_going, damaged frames are
+    recorded in `problems` (and left as None) instead of raising at the first one."""
+    cont = C.read_container(blob)
+    m = for_identity(cont.identity, model)
+    if cont.members is not None:
+        for mem in cont.members:
+            safe_member_path(mem.path)
+    out = Decoded(cont, [])
+    for fr in cont.frames:
+        try:
+            out.frames.append(_decode_frame(m, fr))
+        except DataError as e:
+            if not keep_going:
+                raise
+            out.frames.append(None)
+            out.problems.append(str(e))
+        if progress:
+            progress(fr.raw_len)
+    if cont.members is not None:
+        for mem, first, n in out.member_ranges():
+            parts = out.frames[first:first + n]
+            if any(p is None for p in parts):
+                out.problems.append(f"member {mem.path}: damaged (frames {first}..{first + n - 1})")
+            elif C.sha256(b"".join(parts)) != mem.sha256:
+                msg = f"member {mem.path}: SHA-256 of the decoded content does not match"
+                if not keep_going:
+                    raise DataError(msg)
+                out.problems.append(msg)
+    if not out.problems and C.sha256(b"".join(out.frames)) != cont.content_sha256:
+        msg = "SHA-256 of the whole decoded content does not match the header"
+        if not keep_going:
+            raise DataError(msg)
+        out.problems.append(msg)
+    return out
+
+
+def unpack(blob, model=None, progress=None) -> bytes:
+    """Archive bytes -> the original bytes (single-content archives)."""
+    d = decode(blob, model, progress)
+    if d.container.members is not None:
+        raise UsageError(f"this archive holds {len(d.container.members)} members; unpack it into a folder")
+    return b"".join(d.frames)
+
+
+def is_multi(blob) -> bool:
+    return bool(C.read_header(blob)[0]["flags"] & C.FLAG_MEMBERS)
+
+
+def unpack_to_dir(blob, out_dir: str, model=None, force: bool = False, progress=None) -> list[str]:
+    """Decode a multi-member archive into `out_dir` (created; must not exist unless force).
+    Everything is decoded and verified first, then written under a temporary folder that
+    is renamed into place; returns the member paths written."""
+    d = decode(blob, model, progress)
+    if d.container.members is None:
+        raise UsageError("this archive holds a single file; unpack it to a file name")
+    exists = os.path.lexists(out_dir)
+    if exists and not force:
+        raise UsageError(f"{out_dir} exists; pass --force to write into it")
+    if exists and not os.path.isdir(out_dir):
+        raise UsageError(f"{out_dir} exists and is not a folder")
+    parent = os.path.dirname(os.path.abspath(out_dir))
+    tmp = os.path.join(parent, f".{os.path.basename(os.path.abspath(out_dir))}.part-{os.getpid()}")
+    written = []
+    try:
+        os.makedirs(tmp)
+        for mem, first, n in d.member_ranges():
+            rel = safe_member_path(mem.path)
+            target = os.path.join(tmp, rel)
+            if mem.is_dir:
+                os.makedirs(target, exist_ok=True)
+                continue
+            os.makedirs(os.path.dirname(target), exist_ok=True)
+            with open(target, "wb") as f:
+                f.write(b"".join(d.frames[first:first + n]))
+                f.flush()
+                os.fsync(f.fileno())
+            os.chmod(target, mem.mode & 0o7777)
+            if mem.mtime_ns:
+                os.utime(target, ns=(mem.mtime_ns, mem.mtime_ns))
+            written.append(mem.path)
+        if not exists:
+            os.rename(tmp, out_dir)
+        else:  # --force into an existing folder: move each file into place
+            for rel_path in written:
+                rel = safe_member_path(rel_path)
+                dst = os.path.join(out_dir, rel)
+                os.makedirs(os.path.dirname(dst), exist_ok=True)
+                os.replace(os.path.join(tmp, rel), dst)
+            _remove_quietly(tmp)
+    except OSError as e:
+        _remove_quietly(tmp)
+        raise UsageError(f"cannot write into {out_dir}: {e.strerror or e}") from None
+    return written
+
+
+@dataclass
+class VerifyReport:
+    ok: bool
+    problems: list
+    content_bytes: int
+    frames: int
+    members: int
+
+
+def verify(blob, model=None, against: str | None = None, progress=None) -> VerifyReport:
+    """Decode everything, check every checksum (and the original, if given); never raises
+    DataError for damage: it is reported in `problems`."""
+    try:
+        d = decode(blob, model, progress, keep_going=True)
+    except DataError as e:
+        return VerifyReport(False, [str(e)], 0, 0, 0)
+    problems = list(d.problems)
+    cont = d.container
+    if against is not None and not problems:
+        problems += _compare_against(d, against)
+    return VerifyReport(not problems, problems, cont.content_size, len(cont.frames), len(cont.members or []))
+
+
+def _compare_against(d: Decoded, against: str) -> list:
+    cont = d.container
+    if cont.members is None:
+        if not os.path.isfile(against):
+            raise UsageError(f"{against}: not a file (this archive holds a single file)")
+        return [] if read_input(against) == b"".join(d.frames) else [f"decoded content differs from {against}"]
+    probs = []
+    root = against
+    single_top = {m.path.split("/")[0] for m in cont.members}
+    if len(single_top) == 1 and os.path.basename(os.path.normpath(against)) == next(iter(single_top)):
+        root = os.path.dirname(os.path.normpath(against)) or "."
+    for mem, first, n in d.member_ranges():
+        p = os.path.join(root, safe_member_path(mem.path))
+        if mem.is_dir:
+            if not os.path.isdir(p):
+                probs.append(f"member {mem.path}: no such folder under {against}")
+            continue
+        if not os.path.isfile(p):
+            probs.append(f"member {mem.path}: no such file under {against}")
+        elif read_input(p) != b"".join(d.frames[first:first + n]):
+            probs.append(f"member {mem.path}: differs from {p}")
+    return probs
+
+
+def info(blob) -> dict:
+    """Header, members, frames and model identity, without decoding anything."""
+    cont = C.read_container(blob)
+    frames = [{"index": f.index, "raw_bytes": f.raw_len, "coded_bytes": f.coded_len,
+               "method": C.METHOD_NAMES[f.method], "lanes": f.lanes, "crc32c": f"{f.raw_crc:08x}"}
+              for f in cont.frames]
+    return {
+        "format_version": cont.version,
+        "archive_bytes": cont.file_size,
+        "content_bytes": cont.content_size,
+        "bits_per_byte": 8.0 * cont.file_size / cont.content_size if cont.content_size else 0.0,
+        "content_sha256": cont.content_sha256.hex(),
+        "model": cont.identity,
+        "model_text": identity_text(cont.identity),
+        "frame_size": cont.frame_size,
+        "frames": frames,
+        "members": None if cont.members is None else [
+            {"path": m.path, "bytes": m.size, "mode": f"{m.mode:o}", "sha256": m.sha256.hex(), "folder": m.is_dir}
+            for m in cont.members],
+    }

@@ -1,0 +1,334 @@
+"""Command line: `lcodec pack | unpack | verify | info | bench | demo`.
+
+Exit codes: 0 ok; 1 a data problem (damaged archive, mismatch, wrong or missing model);
+2 a usage error (bad option, missing input, refused overwrite). No traceback for bad
+input: set LCODEC_DEBUG=1 to see one for an internal error.
+"""
+from __future__ import annotations
+
+import functools
+import json
+import os
+import sys
+
+import click
+
+from . import __version__
+from .errors import LcodecError, UsageError
+from .fsio import ARCHIVE_EXT, atomic_write, read_input
+
+EXAMPLES = {
+    "pack": "lcodec pack station-logs/ -o station-logs" + ARCHIVE_EXT,
+    "unpack": "lcodec unpack station-logs" + ARCHIVE_EXT + " -o restored/",
+    "verify": "lcodec verify station-logs" + ARCHIVE_EXT + " --against station-logs/",
+    "info": "lcodec info station-logs" + ARCHIVE_EXT + " --json",
+    "bench": "lcodec bench my-corpus/ --json bench.json --csv bench.csv",
+    "demo": "lcodec demo",
+}
+
+
+def _example(name):
+    return f"\b\nExample:\n  {EXAMPLES[name]}"
+
+
+def guarded(fn):
+    """Turn lcodec errors into a one-line message and their exit code."""
+    @functools.wraps(fn)
+    def wrapper(*a, **k):
+        try:
+            return fn(*a, **k)
+        except LcodecError as e:
+            click.echo(f"lcodec: {e}", err=True)
+            sys.exit(e.exit_code)
+        except KeyboardInterrupt:
+            click.echo("lcodec: interrupted; nothing was written under the final name", err=True)
+            sys.exit(130)
+        except BrokenPipeError:
+            sys.exit(1)
+        except MemoryError:
+            click.echo("lcodec: out of memory", err=True)
+            sys.exit(1)
+        except Exception as e:  # an internal error, not the user's input
+            if os.environ.get("LCODEC_DEBUG"):
+                raise
+            click.echo(f"lcodec: internal error: {type(e).__name__}: {e} (LCODEC_DEBUG=1 shows details)", err=True)
+            sys.exit(3)
+    return wrapper
+
+
+class Progress:
+    """A progress bar on stderr for long work when stderr is a terminal; silent otherwise."""
+
+    def __init__(self, total: int, label: str, quiet: bool = False):
+        show = not quiet and sys.stderr.isatty() and total >= (1 << 20)
+        self.bar = click.progressbar(length=total, label=label, file=sys.stderr) if show else None
+        if self.bar:
+            self.bar.__enter__()
+
+    def __call__(self, n: int):
+        if self.bar:
+            self.bar.update(n)
+
+    def close(self):
+        if self.bar:
+            self.bar.__exit__(None, None, None)
+            self.bar = None
+
+
+model_option = click.option("-m", "--model", "model", type=click.Path(dir_okay=False), default=None,
+                            help="Model file to use (default: the built-in adaptive model).")
+force_option = click.option("--force", is_flag=True, help="Overwrite an existing output.")
+quiet_option = click.option("-q", "--quiet", is_flag=True, help="No progress or summary on stderr.")
+
+
+@click.group(context_settings={"help_option_names": ["-h", "--help"]})
+@click.version_option(__version__, prog_name="lcodec")
+def main():
+    """lcodec: lossless compression with learned and adaptive density models.
+
+    \b
+    Examples:
+      lcodec pack notes.txt -o notes.txt.lcodec
+      lcodec unpack notes.txt.lcodec -o notes.txt
+      lcodec demo
+    """
+
+
+def _read_archive(path: str) -> bytes:
+    if path == "-":
+        return sys.stdin.buffer.read()
+    return read_input(path)
+
+
+@main.command(epilog=_example("pack"))
+@click.argument("inputs", nargs=-1, required=True)
+@click.option("-o", "--output", "output", default=None,
+              help=f"Archive to write ('-' for stdout). Default: the single input's name + {ARCHIVE_EXT}.")
+@model_option
+@click.option("--frame-size", type=click.IntRange(1, 1 << 26), default=1 << 20, show_default=True,
+              help="Raw bytes per independently decodable frame.")
+@force_option
+@quiet_option
+@guarded
+def pack(inputs, output, model, frame_size, force, quiet):
+    """Pack files, folders, or '-' (stdin) into one archive.
+
+    One file or stdin makes a single-file archive; several inputs or a folder make a
+    multi-member archive (paths, sizes, modes and SHA-256 of each member are kept).
+    """
+    from . import api
+
+    if "-" in inputs and len(inputs) > 1:
+        raise UsageError("'-' (stdin) cannot be packed together with other inputs")
+    if output is None:
+        if inputs[0] == "-" or len(inputs) > 1:
+            raise UsageError("give -o/--output when packing stdin or several inputs")
+        output = os.path.normpath(inputs[0]) + ARCHIVE_EXT
+    if output != "-" and os.path.lexists(output) and not force:
+        raise UsageError(f"{output} exists; pass --force to overwrite it")
+    if output != "-" and any(os.path.abspath(output) == os.path.abspath(i) for i in inputs if i != "-"):
+        raise UsageError("the output would overwrite an input")
+    if inputs == ("-",):
+        data = sys.stdin.buffer.read()
+        bar = Progress(len(data), "packing", quiet)
+        blob, stats = api.pack_stats(data, model, frame_size, bar)
+    elif len(inputs) == 1 and os.path.isfile(inputs[0]):
+        data = read_input(inputs[0])
+        bar = Progress(len(data), "packing", quiet)
+        blob, stats = api.pack_stats(data, model, frame_size, bar)
+    else:
+        total = _tree_bytes(inputs)
+        bar = Progress(total, "packing", quiet)
+        blob, stats = api.pack_paths(list(inputs), model, frame_size, bar,
+                                     on_skip=lambda p: click.echo(f"lcodec: skipped {p} (not a regular file)", err=True))
+    bar.close()
+    if output == "-":
+        sys.stdout.buffer.write(blob)
+        sys.stdout.buffer.flush()
+    else:
+        atomic_write(output, blob, force=force)
+    if not quiet:
+        click.echo(f"{stats.raw_bytes} -> {stats.coded_bytes} bytes, {stats.bits_per_byte:.3f} bits per byte "
+                   f"(model NLL {stats.nll_bits / max(stats.raw_bytes, 1):.3f}), {stats.frames} frames, "
+                   f"{stats.encode_s:.2f} s", err=True)
+
+
+def _tree_bytes(inputs) -> int:
+    total = 0
+    for p in inputs:
+        if os.path.isdir(p):
+            for dp, _, names in os.walk(p):
+                for n in names:
+                    try:
+                        total += os.lstat(os.path.join(dp, n)).st_size
+                    except OSError:
+                        pass
+        elif os.path.isfile(p):
+            total += os.path.getsize(p)
+    return total
+
+
+@main.command(epilog=_example("unpack"))
+@click.argument("archive")
+@click.option("-o", "--output", "output", default=None,
+              help=f"File or folder to write ('-' for stdout). Default: the archive name without {ARCHIVE_EXT}.")
+@model_option
+@force_option
+@quiet_option
+@guarded
+def unpack(archive, output, model, force, quiet):
+    """Restore an archive: a file, a folder for multi-member archives, or '-' for stdout.
+
+    Every frame checksum and the SHA-256 of the content are checked before anything is
+    written under the final name.
+    """
+    from . import api
+
+    blob = _read_archive(archive)
+    if output is None:
+        if archive == "-" or not archive.endswith(ARCHIVE_EXT):
+            raise UsageError(f"give -o/--output (the archive name does not end in {ARCHIVE_EXT})")
+        output = archive[: -len(ARCHIVE_EXT)]
+    if output != "-" and os.path.lexists(output) and not force:
+        raise UsageError(f"{output} exists; pass --force to overwrite it")
+    multi = api.is_multi(blob)
+    bar = Progress(api.info(blob)["content_bytes"], "unpacking", quiet)
+    if multi:
+        if output == "-":
+            raise UsageError("this archive holds several members; unpack it into a folder, not stdout")
+        api.unpack_to_dir(blob, output, model, force, bar)
+    else:
+        data = api.unpack(blob, model, bar)
+        if output == "-":
+            sys.stdout.buffer.write(data)
+            sys.stdout.buffer.flush()
+        else:
+            atomic_write(output, data, force=force)
+    bar.close()
+
+
+@main.command(epilog=_example("verify"))
+@click.argument("archive")
+@click.option("--against", type=click.Path(exists=True), default=None,
+              help="Also compare the decoded content with this original file or folder.")
+@model_option
+@quiet_option
+@guarded
+def verify(archive, against, model, quiet):
+    """Decode an archive and check every checksum; exit 0 when exact, 1 when not."""
+    from . import api
+
+    blob = _read_archive(archive)
+    try:
+        total = api.info(blob)["content_bytes"]
+    except LcodecError:
+        total = 0
+    bar = Progress(total, "verifying", quiet)
+    rep = api.verify(blob, model, against, bar)
+    bar.close()
+    if rep.ok:
+        what = f"{rep.members} members, " if rep.members else ""
+        extra = f", identical to {against}" if against else ""
+        click.echo(f"ok: {what}{rep.content_bytes} bytes in {rep.frames} frames, all checksums match{extra}")
+        return
+    for p in rep.problems:
+        click.echo(f"FAILED: {p}", err=True)
+    sys.exit(1)
+
+
+@main.command(epilog=_example("info"))
+@click.argument("path")
+@click.option("--json", "as_json", is_flag=True, help="Print JSON instead of text.")
+@click.option("--frames/--no-frames", default=False, help="List every frame (text output).")
+@guarded
+def info(path, as_json, frames):
+    """Describe an archive (header, members, frames, model identity) or a model file."""
+    from . import api, modelfile
+
+    blob = _read_archive(path)
+    if blob[:8] == modelfile.MAGIC:
+        meta, arrays, sha = modelfile.parse(blob, where=path)
+        d = {"model_file": path, "sha256": sha, "bytes": len(blob), **meta}
+        if as_json:
+            click.echo(json.dumps(d, indent=2))
+        else:
+            click.echo(f"model file {path}: {meta['architecture']['name']}, {len(blob)} bytes, sha256 {sha}")
+            for k, v in sorted(meta.items()):
+                if k != "arrays":
+                    click.echo(f"  {k}: {json.dumps(v)}")
+            for a in meta["arrays"]:
+                click.echo(f"  array {a['name']}: {a['dtype']} {a['shape']}")
+        return
+    d = api.info(blob)
+    if as_json:
+        click.echo(json.dumps(d, indent=2))
+        return
+    click.echo(f"lcodec archive, format version {d['format_version']}")
+    click.echo(f"  content   {d['content_bytes']} bytes, sha256 {d['content_sha256']}")
+    click.echo(f"  archive   {d['archive_bytes']} bytes, {d['bits_per_byte']:.3f} bits per byte")
+    click.echo(f"  model     {d['model_text']}")
+    methods = {}
+    for f in d["frames"]:
+        methods[f["method"]] = methods.get(f["method"], 0) + 1
+    click.echo(f"  frames    {len(d['frames'])} of up to {d['frame_size']} bytes ("
+               + ", ".join(f"{n} {m}" for m, n in sorted(methods.items())) + ")")
+    if frames:
+        for f in d["frames"]:
+            click.echo(f"    #{f['index']}: {f['raw_bytes']} -> {f['coded_bytes']} bytes, {f['method']}, "
+                       f"{f['lanes']} lanes, crc32c {f['crc32c']}")
+    if d["members"] is not None:
+        click.echo(f"  members   {len(d['members'])}")
+        for m in d["members"]:
+            click.echo(f"    {m['path']}{'/' if m['folder'] else ''}  {m['bytes']} bytes  mode {m['mode']}")
+
+
+@main.command(epilog=_example("bench"))
+@click.argument("corpus_dir", type=click.Path(exists=True, file_okay=False))
+@model_option
+@click.option("--json", "json_out", type=click.Path(dir_okay=False), default=None, help="Write the rows as JSON.")
+@click.option("--csv", "csv_out", type=click.Path(dir_okay=False), default=None, help="Write the rows as CSV.")
+@click.option("--split", "split", type=click.FloatRange(0.01, 0.99), default=None,
+              help="CORPUS_DIR is a flat folder: hold out this fraction of files as the test split (fixed seed).")
+@click.option("--seed", type=int, default=0, show_default=True, help="Seed of --split.")
+@force_option
+@quiet_option
+@guarded
+def bench(corpus_dir, model, json_out, csv_out, split, seed, force, quiet):
+    """Compare lcodec with general compressors on a corpus with train/ and test/ folders.
+
+    Every test file is compressed on its own by every codec and round-trip checked.
+    The baselines' dictionary (zstd) is trained on train/.
+    """
+    from . import bench as B
+
+    for out in (json_out, csv_out):
+        if out and os.path.lexists(out) and not force:
+            raise UsageError(f"{out} exists; pass --force to overwrite it")
+    codecs = [B.lcodec_codec(None, "lcodec-strata")]
+    if model:
+        codecs.insert(0, B.lcodec_codec(model, "lcodec-model"))
+    progress = None if quiet else (lambda msg: click.echo(msg, err=True))
+    rows = B.run_bench(corpus_dir, codecs, progress=progress, **({"split": split, "seed": seed} if split else {}))
+    if json_out:
+        B.write_json(rows, json_out)
+    if csv_out:
+        B.write_csv(rows, csv_out)
+    click.echo(B.format_table(rows))
+
+
+@main.command(epilog=_example("demo"))
+@click.option("--workdir", type=click.Path(file_okay=False), default="lcodec-demo", show_default=True,
+              help="Where the demo corpus and archive are written.")
+@click.option("--scale", type=click.FloatRange(0.01, 20), default=1.0, show_default=True, help="Corpus size factor.")
+@quiet_option
+@guarded
+def demo(workdir, scale, quiet):
+    """The main job on the bundled demo corpus: make the corpus, pack the test split,
+    verify it, and compare against general compressors."""
+    from . import demo as D
+
+    D.run(workdir, scale, echo=lambda m: click.echo(m), quiet=quiet)
+
+
+if __name__ == "__main__":
+    main()

@@ -1,0 +1,218 @@
+"""Container format v1: byte layout, writer and a validating reader.
+
+The layout is documented byte by byte in docs/FORMAT.md; keep the two in step (the
+format-change rules are in DEVELOPERS.md). All integers are little-endian.
+
+The reader never trusts a length: every size is checked against the bytes really
+present and against the format's own caps before anything is allocated or decoded.
+"""
+from __future__ import annotations
+
+import hashlib
+import json
+import struct
+from dataclasses import dataclass, field
+
+import crc32c as _crc32c
+
+from .errors import DataError
+
+MAGIC = b"\x9blcodec\n"
+VERSION = 1
+SUPPORTED_VERSIONS = (1,)
+
+FLAG_MEMBERS = 0x0001  # a member table is present (several files / a folder)
+
+METHOD_STORED = 0
+METHOD_QUEUE = 1  # modelled, constriction range coder
+METHOD_STACK = 2  # modelled, constriction ANS coder
+METHOD_NAMES = {METHOD_STORED: "stored", METHOD_QUEUE: "modelled/queue", METHOD_STACK: "modelled/stack"}
+
+MAX_FRAME_RAW = 1 << 26  # 64 MiB: the most raw bytes one frame may claim
+MAX_LANES = 4096
+MAX_IDENTITY = 1 << 16  # model identity JSON
+MAX_MEMBER_TABLE = 1 << 28
+MAX_PATH = 4096
+
+_FIXED = struct.Struct("<8sHHQ32sIIIII")  # magic .. member-table length, header CRC-32C
+FIXED_SIZE = _FIXED.size  # 72, the header CRC-32C being its last 4 bytes
+_FRAME = struct.Struct("<IIBBHI")  # raw len, coded len, method, reserved, lanes, raw CRC-32C
+FRAME_HEAD = _FRAME.size + 4  # 20: the record's own CRC-32C follows
+_MEMBER = struct.Struct("<IQ32sq")  # mode, size, SHA-256, mtime_ns (after u16 len + path)
+
+
+def crc32c(data) -> int:
+    return _crc32c.crc32c(data)
+
+
+@dataclass
+class Member:
+    path: str  # relative, '/'-separated
+    mode: int  # st_mode: file type bits and permissions
+    size: int
+    sha256: bytes
+    mtime_ns: int = 0
+
+    @property
+    def is_dir(self) -> bool:
+        return (self.mode & 0o170000) == 0o040000
+
+
+@dataclass
+class Frame:
+    index: int
+    offset: int  # of the record in the file
+    raw_len: int
+    coded_len: int
+    method: int
+    lanes: int
+    raw_crc: int
+    payload: memoryview = field(repr=False)
+
+
+@dataclass
+class Container:
+    version: int
+    flags: int
+    content_size: int
+    content_sha256: bytes
+    frame_size: int
+    identity: dict
+    members: list[Member] | None
+    frames: list[Frame]
+    file_size: int
+
+    @property
+    def coded_bytes(self) -> int:
+        return self.file_size
+
+
+# -- writer -------------------------------------------------------------------------------
+def encode_members(members: list[Member]) -> bytes:
+    out = [struct.pack("<I", len(members))]
+    for m in members:
+        p = m.path.encode("utf-8")
+        out.append(struct.pack("<H", len(p)) + p + _MEMBER.pack(m.mode, m.size, m.sha256, m.mtime_ns))
+    return b"".join(out)
+
+
+def frame_record(raw_len: int, coded: bytes, method: int, lanes: int, raw_crc: int) -> bytes:
+    head = _FRAME.pack(raw_len, len(coded), method, 0, lanes, raw_crc)
+    return head + struct.pack("<I", crc32c(head)) + coded
+
+
+def header_bytes(content_size: int, content_sha256: bytes, n_frames: int, frame_size: int,
+                 identity: dict, members: list[Member] | None) -> bytes:
+    ident = json.dumps(identity, sort_keys=True, separators=(",", ":")).encode("utf-8")
+    table = encode_members(members) if members is not None else b""
+    flags = FLAG_MEMBERS if members is not None else 0
+    fixed = _FIXED.pack(MAGIC, VERSION, flags, content_size, content_sha256, n_frames, frame_size,
+                        len(ident), len(table), 0)[:-4]
+    body = fixed + ident + table
+    return fixed + struct.pack("<I", crc32c(body)) + ident + table
+
+
+# -- reader -------------------------------------------------------------------------------
+def _need(cond: bool, msg: str):
+    if not cond:
+        raise DataError(msg)
+
+
+def read_header(buf) -> tuple[dict, int]:
+    """Parse and check the header; returns (fields, offset of the first frame record)."""
+    mv = memoryview(buf)
+    n = len(mv)
+    _need(n >= 8 and bytes(mv[:8]) == MAGIC, "not an lcodec archive (magic bytes do not match)")
+    _need(n >= 10, "archive truncated inside its header")
+    version = struct.unpack_from("<H", mv, 8)[0]
+    if version not in SUPPORTED_VERSIONS:
+        raise DataError(f"unsupported format version {version} (this lcodec reads version "
+                        f"{', '.join(map(str, SUPPORTED_VERSIONS))}); a newer lcodec may read it")
+    _need(n >= FIXED_SIZE, "archive truncated inside its header")
+    (_, _, flags, size, sha, n_frames, frame_size, ilen, tlen, hcrc) = _FIXED.unpack_from(mv, 0)
+    _need(ilen <= MAX_IDENTITY and tlen <= MAX_MEMBER_TABLE, "header damaged (impossible field lengths)")
+    end = FIXED_SIZE + ilen + tlen
+    _need(end <= n, "archive truncated inside its header")
+    body = bytes(mv[: FIXED_SIZE - 4]) + bytes(mv[FIXED_SIZE:end])
+    _need(crc32c(body) == hcrc, "header damaged (header checksum does not match)")
+    _need(flags & ~FLAG_MEMBERS == 0, "header damaged (unknown flags)")
+    _need(1 <= frame_size <= MAX_FRAME_RAW, "header damaged (bad frame size)")
+    try:
+        identity = json.loads(bytes(mv[FIXED_SIZE:FIXED_SIZE + ilen]).decode("utf-8"))
+    except (UnicodeDecodeError, ValueError):
+        raise DataError("header damaged (model identity is not readable)") from None
+    _need(isinstance(identity, dict) and isinstance(identity.get("model"), str), "header damaged (no model identity)")
+    members = None
+    if flags & FLAG_MEMBERS:
+        members = _read_members(mv[FIXED_SIZE + ilen:end])
+    else:
+        _need(tlen == 0, "header damaged (member table without its flag)")
+    # Each frame record takes at least FRAME_HEAD bytes, which bounds n_frames by the file size.
+    _need(n_frames <= (n - end) // FRAME_HEAD, "archive truncated: fewer bytes than its frames need")
+    return dict(version=version, flags=flags, content_size=size, content_sha256=sha, n_frames=n_frames,
+                frame_size=frame_size, identity=identity, members=members), end
+
+
+def _read_members(mv) -> list[Member]:
+    n = len(mv)
+    _need(n >= 4, "member table damaged")
+    count = struct.unpack_from("<I", mv, 0)[0]
+    _need(count <= (n - 4) // (2 + _MEMBER.size), "member table damaged (impossible member count)")
+    pos, out = 4, []
+    for _ in range(count):
+        _need(pos + 2 <= n, "member table damaged")
+        plen = struct.unpack_from("<H", mv, pos)[0]
+        pos += 2
+        _need(0 < plen <= MAX_PATH and pos + plen + _MEMBER.size <= n, "member table damaged")
+        try:
+            path = bytes(mv[pos:pos + plen]).decode("utf-8")
+        except UnicodeDecodeError:
+            raise DataError("member table damaged (path is not UTF-8)") from None
+        pos += plen
+        mode, size, sha, mtime = _MEMBER.unpack_from(mv, pos)
+        pos += _MEMBER.size
+        out.append(Member(path, mode, size, sha, mtime))
+    _need(pos == n, "member table damaged (trailing bytes)")
+    return out
+
+
+def expected_frame_sizes(content_size: int, frame_size: int, members: list[Member] | None) -> list[int]:
+    """Raw length of every frame: members start on a frame boundary; empty ones have none."""
+    sizes = [m.size for m in members if not m.is_dir] if members is not None else [content_size]
+    out = []
+    for s in sizes:
+        full, rest = divmod(s, frame_size)
+        out.extend([frame_size] * full + ([rest] if rest else []))
+    return out
+
+
+def read_container(buf) -> Container:
+    """Parse and check everything but the payloads' content. Raises DataError."""
+    mv = memoryview(buf)
+    h, pos = read_header(mv)
+    members = h["members"]
+    if members is not None:
+        _need(sum(m.size for m in members) == h["content_size"], "header damaged (member sizes do not add up)")
+    expect = expected_frame_sizes(h["content_size"], h["frame_size"], members)
+    _need(len(expect) == h["n_frames"], "header damaged (frame count does not match the sizes)")
+    frames = []
+    for i, want in enumerate(expect):
+        _need(pos + FRAME_HEAD <= len(mv), f"archive truncated at frame {i} (of {len(expect)})")
+        raw_len, coded_len, method, reserved, lanes, raw_crc = _FRAME.unpack_from(mv, pos)
+        rcrc = struct.unpack_from("<I", mv, pos + _FRAME.size)[0]
+        _need(crc32c(bytes(mv[pos:pos + _FRAME.size])) == rcrc, f"frame {i} damaged (record checksum does not match)")
+        _need(raw_len == want and reserved == 0 and method in METHOD_NAMES, f"frame {i} damaged (impossible record)")
+        _need(1 <= lanes <= min(MAX_LANES, max(raw_len, 1)), f"frame {i} damaged (bad lane count)")
+        if method == METHOD_STORED:
+            _need(coded_len == raw_len, f"frame {i} damaged (stored frame length)")
+        start = pos + FRAME_HEAD
+        _need(start + coded_len <= len(mv), f"archive truncated at frame {i} (of {len(expect)})")
+        frames.append(Frame(i, pos, raw_len, coded_len, method, lanes, raw_crc, mv[start:start + coded_len]))
+        pos = start + coded_len
+    _need(pos == len(mv), f"archive has {len(mv) - pos} unexpected bytes after its last frame")
+    return Container(h["version"], h["flags"], h["content_size"], h["content_sha256"], h["frame_size"],
+                     h["identity"], members, frames, len(mv))
+
+
+def sha256(data) -> bytes:
+    return hashlib.sha256(data).digest()

@@ -1,0 +1,113 @@
+"""Safe file-system work: atomic writes, no silent overwrites, inputs never touched."""
+from __future__ import annotations
+
+import os
+import shutil
+import stat
+import tempfile
+
+from .errors import DataError, UsageError
+
+ARCHIVE_EXT = ".lcodec"
+
+
+def _os_error(action: str, path: str, e: OSError) -> UsageError:
+    return UsageError(f"cannot {action} {path}: {e.strerror or e}")
+
+
+def atomic_write(path: str, data: bytes, force: bool = False, mode: int | None = None) -> None:
+    """Write via a temporary name in the same folder, fsync, then rename into place."""
+    if os.path.lexists(path) and not force:
+        raise UsageError(f"{path} exists; pass --force to overwrite it")
+    if os.path.isdir(path):
+        raise UsageError(f"{path} is a folder; give a file name")
+    folder = os.path.dirname(os.path.abspath(path))
+    try:
+        fd, tmp = tempfile.mkstemp(prefix="." + os.path.basename(path) + ".", suffix=".part", dir=folder)
+    except OSError as e:
+        raise _os_error("write into", folder, e) from None
+    try:
+        with os.fdopen(fd, "wb") as f:
+            f.write(data)
+            f.flush()
+            os.fsync(f.fileno())
+        if mode is not None:
+            os.chmod(tmp, stat.S_IMODE(mode))
+        os.replace(tmp, path)
+    except OSError as e:
+        _remove_quietly(tmp)
+        raise _os_error("write", path, e) from None
+    except BaseException:
+        _remove_quietly(tmp)
+        raise
+
+
+def _remove_quietly(p: str) -> None:
+    try:
+        if os.path.isdir(p) and not os.path.islink(p):
+            shutil.rmtree(p)
+        else:
+            os.unlink(p)
+    except OSError:
+        pass
+
+
+def read_input(path: str) -> bytes:
+    try:
+        with open(path, "rb") as f:
+            return f.read()
+    except FileNotFoundError:
+        raise UsageError(f"{path}: no such file") from None
+    except IsADirectoryError:
+        raise UsageError(f"{path} is a folder") from None
+    except OSError as e:
+        raise _os_error("read", path, e) from None
+
+
+def safe_member_path(rel: str) -> str:
+    """Refuse member paths that could escape the output folder."""
+    parts = rel.split("/")
+    if rel.startswith("/") or any(p in ("", ".", "..") for p in parts) or "\x00" in rel:
+        raise DataError(f"member path {rel!r} is unsafe (absolute, empty or climbing out); refusing to write it")
+    return os.path.join(*parts)
+
+
+def collect_inputs(paths: list[str]):
+    """Expand files and folders into (relative archive path, absolute path, stat) in a stable order.
+
+    A folder contributes its own name as the first path component; symlinks and special
+    files are skipped (reported through the returned `skipped` list).
+    """
+    items, skipped, seen = [], [], set()
+    for p in paths:
+        if not os.path.lexists(p):
+            raise UsageError(f"{p}: no such file or folder")
+        base = os.path.basename(os.path.normpath(os.path.abspath(p)))
+        if os.path.isdir(p) and not os.path.islink(p):
+            for dirpath, dirnames, filenames in os.walk(p):
+                dirnames.sort()
+                rel_dir = os.path.relpath(dirpath, p)
+                prefix = base if rel_dir == "." else base + "/" + rel_dir.replace(os.sep, "/")
+                st = os.stat(dirpath)
+                items.append((prefix, dirpath, st))
+                for name in sorted(filenames):
+                    full = os.path.join(dirpath, name)
+                    st = os.lstat(full)
+                    if stat.S_ISREG(st.st_mode):
+                        items.append((prefix + "/" + name, full, st))
+                    else:
+                        skipped.append(full)
+                for name in list(dirnames):
+                    if os.path.islink(os.path.join(dirpath, name)):
+                        skipped.append(os.path.join(dirpath, name))
+                        dirnames.remove(name)
+        else:
+            st = os.lstat(p)
+            if not stat.S_ISREG(st.st_mode):
+                raise UsageError(f"{p} is not a regular file")
+            items.append((base, p, st))
+    for rel, _, _ in items:
+        if rel in seen:
+            raise UsageError(f"two inputs would share the archive path {rel!r}; pack them from different folders")
+        seen.add(rel)
+    return items, skipped

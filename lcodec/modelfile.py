@@ -1,0 +1,102 @@
+"""Model files: data only (JSON metadata plus raw little-endian arrays), never code.
+
+Layout (all integers little-endian):
+    0   8  magic  9B 6C 63 6D 6F 64 65 6C  ("\\x9blcmodel")
+    8   2  model-file version (1)
+    10  2  reserved (0)
+    12  4  metadata length J (at most 1 MiB)
+    16  J  metadata, UTF-8 JSON object: "architecture" {"name", "params"}, "arrays" (a list of
+           {"name", "dtype", "shape"} in file order), and free descriptive keys (training
+           corpus summary, validation bits per byte, lcodec version)
+    ..     the arrays' bytes, back to back in the listed order, exactly as long as their
+           dtypes and shapes say; nothing may follow the last one
+    end-32 32 SHA-256 of everything before it
+A model's identity is the SHA-256 of the whole file; containers record it.
+"""
+from __future__ import annotations
+
+import hashlib
+import json
+import os
+import struct
+
+import numpy as np
+
+from .errors import ModelError
+
+MAGIC = b"\x9blcmodel"
+VERSION = 1
+MAX_META = 1 << 20
+MAX_ARRAY_BYTES = 1 << 31
+DTYPES = {"u1": np.uint8, "i1": np.int8, "i2": np.int16, "u2": np.uint16, "i4": np.int32, "i8": np.int64}
+
+
+def dump(path: str, architecture: dict, arrays: dict[str, np.ndarray] | None = None, **meta) -> str:
+    """Write a model file atomically; returns its SHA-256 (hex)."""
+    arrays = arrays or {}
+    listing, blobs = [], []
+    for name, a in arrays.items():
+        code = np.dtype(a.dtype).str.lstrip("<>|=")
+        if code not in DTYPES:
+            raise ValueError(f"array {name}: dtype {a.dtype} is not allowed in model files")
+        listing.append({"name": name, "dtype": code, "shape": list(a.shape)})
+        blobs.append(np.ascontiguousarray(a, np.dtype(DTYPES[code]).newbyteorder("<")).tobytes())
+    m = json.dumps({"architecture": architecture, "arrays": listing, **meta}, sort_keys=True).encode()
+    body = MAGIC + struct.pack("<HHI", VERSION, 0, len(m)) + m + b"".join(blobs)
+    body += hashlib.sha256(body).digest()
+    tmp = f"{path}.part-{os.getpid()}"
+    with open(tmp, "wb") as f:
+        f.write(body)
+        f.flush()
+        os.fsync(f.fileno())
+    os.replace(tmp, path)
+    return hashlib.sha256(body).hexdigest()
+
+
+def parse(blob: bytes, where: str = "model file") -> tuple[dict, dict[str, np.ndarray], str]:
+    """Check and read a model file's bytes: (metadata, arrays, sha256 hex). Raises ModelError."""
+    def bad(msg):
+        raise ModelError(f"{where}: {msg}")
+
+    if len(blob) < 48 or blob[:8] != MAGIC:
+        bad("not an lcodec model file (magic bytes do not match)")
+    version, _, mlen = struct.unpack_from("<HHI", blob, 8)
+    if version != VERSION:
+        bad(f"unsupported model-file version {version} (this lcodec reads version {VERSION})")
+    if hashlib.sha256(blob[:-32]).digest() != blob[-32:]:
+        bad("damaged (its SHA-256 trailer does not match its content)")
+    if mlen > MAX_META or 16 + mlen > len(blob) - 32:
+        bad("damaged (impossible metadata length)")
+    try:
+        meta = json.loads(blob[16:16 + mlen].decode("utf-8"))
+        arch = meta["architecture"]
+        listing = meta["arrays"]
+        assert isinstance(arch, dict) and isinstance(arch["name"], str) and isinstance(listing, list)
+    except Exception:
+        bad("damaged (metadata is not readable)")
+    arrays, pos, end = {}, 16 + mlen, len(blob) - 32
+    for spec in listing:
+        try:
+            name, code, shape = str(spec["name"]), spec["dtype"], [int(x) for x in spec["shape"]]
+            dt = np.dtype(DTYPES[code]).newbyteorder("<")
+        except Exception:
+            bad("damaged (bad array description)")
+        if any(x < 0 for x in shape):
+            bad(f"array {name}: negative shape")
+        nbytes = int(np.prod(shape, dtype=object)) * dt.itemsize
+        if nbytes > MAX_ARRAY_BYTES or pos + nbytes > end:
+            bad(f"array {name}: larger than the file holds")
+        arrays[name] = np.frombuffer(blob, dt, count=nbytes // dt.itemsize, offset=pos).reshape(shape).astype(dt.newbyteorder("="))
+        pos += nbytes
+    if pos != end:
+        bad("damaged (bytes left over after the arrays)")
+    return meta, arrays, hashlib.sha256(blob).hexdigest()
+
+
+def load(path: str) -> tuple[dict, dict[str, np.ndarray], str]:
+    try:
+        with open(path, "rb") as f:
+            blob = f.read()
+    except OSError as e:
+        raise ModelError(f"cannot read model file {path}: {e.strerror}") from None
+    return parse(blob, where=f"model file {path}")

@@ -1,0 +1,85 @@
+"""Model registry: built-in models by name, model files by path, identities in containers.
+
+A model object offers `teacher_chunks(data, starts, lengths)` (the encoder's pass, yielding
+(symbols, tables) in coding order), `stepper(lengths)` (the decoder's step function),
+`coder` ("queue" or "stack"), and `identity` (what a container records to name it).
+"""
+from __future__ import annotations
+
+import os
+
+from ..errors import DataError, ModelError
+from .. import modelfile
+from .strata import Strata
+
+BUILTIN = {"strata": Strata}
+
+
+class Loaded:
+    """A model read from a model file; its identity is the file's SHA-256."""
+
+    def __init__(self, inner, sha256: str, path: str, meta: dict):
+        self.inner, self.sha256, self.path, self.meta = inner, sha256, path, meta
+        self.coder = inner.coder
+        self.label = f"{meta['architecture']['name']} from {os.path.basename(path)}"
+
+    @property
+    def identity(self) -> dict:
+        return {"model": self.meta["architecture"]["name"], "sha256": self.sha256, "file": os.path.basename(self.path)}
+
+    def teacher_chunks(self, *a, **k):
+        return self.inner.teacher_chunks(*a, **k)
+
+    def stepper(self, *a, **k):
+        return self.inner.stepper(*a, **k)
+
+
+def default_model():
+    return Strata()
+
+
+def load_model(path: str) -> Loaded:
+    meta, arrays, sha = modelfile.load(path)
+    arch = meta["architecture"]
+    cls = BUILTIN.get(arch["name"])
+    if cls is None:
+        raise ModelError(f"model file {path}: unknown architecture {arch['name']!r} (this lcodec knows: {', '.join(BUILTIN)})")
+    try:
+        inner = cls.from_params(arch.get("params", {}), arrays) if arrays else cls.from_params(arch.get("params", {}))
+    except (KeyError, TypeError, ValueError) as e:
+        raise ModelError(f"model file {path}: bad parameters ({e})") from None
+    return Loaded(inner, sha, path, meta)
+
+
+def resolve(model):
+    """None -> the default adaptive model; a path -> a model file; a model object as is."""
+    if model is None:
+        return default_model()
+    if isinstance(model, (str, os.PathLike)):
+        return load_model(os.fspath(model))
+    return model
+
+
+def identity_text(identity: dict) -> str:
+    if "sha256" in identity:
+        return f"{identity['model']} model file {identity.get('file', '?')} (sha256 {identity['sha256']})"
+    return f"built-in {identity['model']} {identity.get('params', {})}"
+
+
+def for_identity(identity: dict, supplied):
+    """The model an archive needs, checked against the one the user gave (if any)."""
+    if "sha256" in identity:
+        if supplied is None or isinstance(supplied, Strata):
+            raise ModelError(f"this archive needs the {identity_text(identity)}; pass it with -m/--model")
+        m = resolve(supplied)
+        if getattr(m, "sha256", None) != identity["sha256"]:
+            raise ModelError(f"wrong model: this archive needs the {identity_text(identity)}, "
+                             f"but the given model is {identity_text(m.identity)}")
+        return m
+    cls = BUILTIN.get(identity.get("model"))
+    if cls is None:
+        raise DataError(f"archive names an unknown built-in model {identity.get('model')!r}")
+    try:
+        return cls.from_params(identity.get("params", {}))
+    except (KeyError, TypeError, ValueError) as e:
+        raise DataError(f"header damaged (bad model parameters: {e})") from None
