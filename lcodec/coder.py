@@ -56,14 +56,15 @@ def encode_frame(model, data: bytes, lanes: int, coder: str = "queue") -> tuple[
         enc = constriction.stream.queue.RangeEncoder()
         for syms, tab in model.teacher_chunks(arr, starts, lengths):
             if len(syms):
-                enc.encode(syms, _FAMILY, tab)
+                tab = np.ascontiguousarray(tab, np.float64)
+                enc.encode(np.ascontiguousarray(syms, np.int32), _FAMILY, tab)
                 nll += _nll_bits(syms, tab)
         words = enc.get_compressed()
     elif coder == "stack":
         all_syms, all_tabs = [], []
         for syms, tab in model.teacher_chunks(arr, starts, lengths):
-            all_syms.append(syms.copy())
-            all_tabs.append(tab.copy())
+            all_syms.append(np.ascontiguousarray(syms, np.int32).copy())
+            all_tabs.append(np.ascontiguousarray(tab, np.float64).copy())
             nll += _nll_bits(syms, tab)
         enc = constriction.stream.stack.AnsCoder()
         for syms, tab in zip(reversed(all_syms), reversed(all_tabs)):
@@ -95,7 +96,7 @@ def decode_frame(model, payload: bytes, n: int, lanes: int, coder: str = "queue"
     m_prev = 0
     for t in range(n_steps):
         m = int(active[t])
-        tab = step(prev, m_prev, m)
+        tab = np.ascontiguousarray(step(prev, m_prev, m), np.float64)
         syms = dec.decode(_FAMILY, tab)
         out[starts[:m] + t] = syms
         prev[:m] = syms

@@ -1,0 +1,93 @@
+"""The coding layer against information theory, and the adaptive model against known sources."""
+import numpy as np
+import pytest
+from scipy.stats import entropy
+
+from lcodec.coder import decode_frame, encode_frame, lane_layout, active_lanes
+from lcodec.models.strata import Strata
+
+FRAME_FIXED_BYTES = 8  # range/ANS coder flush: at most two 32-bit words beyond the NLL (docs/FORMAT.md)
+
+
+class FixedTable:
+    """A model with one known table for every symbol (an i.i.d. source's true distribution)."""
+
+    def __init__(self, freqs, coder="queue"):
+        self.freqs = np.asarray(freqs, np.float64)
+        self.coder = coder
+
+    def teacher_chunks(self, data, starts, lengths, chunk_steps=4096):
+        from lcodec.coder import active_lanes
+        act = active_lanes(lengths, int(lengths[0]) if len(lengths) else 0)
+        for t0 in range(0, len(act), chunk_steps):
+            syms = np.concatenate([data[starts[:m] + t] for t, m in enumerate(act[t0:t0 + chunk_steps], t0)]).astype(np.int32)
+            yield syms, np.broadcast_to(self.freqs, (len(syms), len(self.freqs)))
+
+    def stepper(self, lengths):
+        tab = np.broadcast_to(self.freqs, (len(lengths), len(self.freqs)))
+        return lambda prev, m_prev, m: tab[:m]
+
+
+def _iid(n, p, seed):
+    rng = np.random.default_rng(seed)
+    return rng.choice(len(p), size=n, p=p).astype(np.uint8)
+
+
+@pytest.mark.parametrize("coder", ["queue", "stack"])
+def test_iid_source_codes_within_half_percent_of_entropy(coder):
+    # reference: Shannon's source coding theorem; H from scipy.stats.entropy
+    freqs = np.array([5000, 2000, 1500, 800, 400, 200, 90, 10] + [0] * 248, np.float64)
+    freqs[8:] = 0
+    p = freqs[:8] / freqs[:8].sum()
+    data = _iid(200_000, p, 1)
+    H = entropy(p, base=2)
+    tab = freqs.copy()
+    tab[tab == 0] = 1e-9  # constriction still gives unused symbols its smallest probability
+    m = FixedTable(tab[:8], coder)
+    payload, nll = encode_frame(m, data.tobytes(), lanes=16, coder=coder)
+    bits = 8 * len(payload)
+    assert bits <= 1.005 * len(data) * H
+    assert bits >= 0.99 * len(data) * H  # nothing beats the entropy by more than chance
+    assert decode_frame(m, payload, len(data), 16, coder) == data.tobytes()
+
+
+def test_coded_size_tracks_model_nll_on_real_text(stdlib_text):
+    # bound stated in docs/FORMAT.md: coded <= NLL * 1.001 + FRAME_FIXED_BYTES, inputs >= 64 KiB
+    data = stdlib_text[: 1 << 17]
+    for coder in ("queue", "stack"):
+        payload, nll = encode_frame(Strata(), data, lanes=16, coder=coder)
+        assert len(payload) <= nll / 8 * 1.001 + FRAME_FIXED_BYTES
+        assert decode_frame(Strata(), payload, len(data), 16, coder) == data
+
+
+def test_two_state_markov_source_entropy_rate():
+    # reference: entropy rate of a stationary Markov chain, H = sum_i pi_i H(P_i)
+    # (Cover & Thomas, Elements of Information Theory, ch. 4)
+    a, b = 0.1, 0.3  # P(0->1), P(1->0)
+    pi0 = b / (a + b)
+    h = lambda q: float(entropy([q, 1 - q], base=2))
+    rate = pi0 * h(a) + (1 - pi0) * h(b)
+    n = 1 << 20
+    rng = np.random.default_rng(7)
+    u = rng.random(n)
+    x = np.empty(n, np.uint8)
+    s = 0
+    for i in range(n):  # plain loop on purpose: the source is defined step by step
+        s = (1 if u[i] < a else 0) if s == 0 else (0 if u[i] < b else 1)
+        x[i] = s
+    data = (x + ord("a")).tobytes()
+    payload, nll = encode_frame(Strata(), data, lanes=64)
+    assert 8 * len(payload) <= 1.02 * n * rate
+    assert 8 * len(payload) >= 0.99 * n * rate
+
+
+def test_lane_layout_covers_every_byte_once():
+    for n in (0, 1, 5, 63, 64, 65, 1000):
+        for lanes in (1, 3, 64):
+            starts, lengths = lane_layout(n, lanes)
+            assert lengths.sum() == n
+            assert all(lengths[i] >= lengths[i + 1] for i in range(len(lengths) - 1))
+            cover = np.concatenate([np.arange(s, s + l) for s, l in zip(starts, lengths)]) if n else np.array([])
+            assert (np.sort(cover) == np.arange(n)).all()
+            act = active_lanes(lengths, int(lengths[0]) if n else 0)
+            assert act.sum() == n
