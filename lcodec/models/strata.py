@@ -5,10 +5,10 @@ absolute discounting: starting from the uniform distribution, each order's count
 n(s) in the current context are discounted by d and the freed mass is given to the
 blend of the lower orders:
 
-    P_k(s) = ( max(n(s) - d, 0) + d * D * P_{k-1}(s) ) / T
+    P_k(s) = ( n(s) - d(n(s)) + E * P_{k-1}(s) ) / T,    E = sum over seen s of d(n(s))
 
-with T = sum n(s) and D = number of distinct symbols seen in the context (a context
-never seen leaves P_{k-1} unchanged). Counts are updated with update exclusion: the
+with T = sum n(s), d(0) = 0 and one discount each for counts of 1, 2 and >= 3 (a
+context never seen leaves P_{k-1} unchanged). Counts are updated with update exclusion: the
 symbol is counted at the highest order and at lower orders only while it was new
 there, which approximates continuation counts. Every number is an integer; P is kept
 in fixed point with total 2**P_BITS, and the table handed to the coder is P_K(s) + 1.
@@ -59,7 +59,10 @@ def _row_slots(hist, max_order, hash_log2, bases, slots, checks):
 
 @njit(cache=True, nogil=True)
 def _predict(counts, tot, dist, tags, slots, checks, max_order, disc, p, out):
-    """Blend orders 0..max_order into `out` (float64 holding integers >= 1)."""
+    """Blend orders 0..max_order into `out` (float64 holding integers >= 1).
+
+    disc[k] holds order k's discounts (in 1/F of a count) for counts 1, 2 and >= 3.
+    """
     one = np.int64(1) << P_BITS
     for s in range(256):
         p[s] = one >> 8
@@ -70,16 +73,18 @@ def _predict(counts, tot, dist, tags, slots, checks, max_order, disc, p, out):
         t = np.int64(tot[r])
         if t == 0:
             continue
-        d = np.int64(disc[k])
-        esc = d * np.int64(dist[r])
-        # bound: n*F <= 4080, esc <= 15*256, p[s] <= 2**20, so num < 2**33;
-        # inv <= 2**32 / 16, so num * inv < 2**61 fits int64.
-        inv = (np.int64(1) << 32) // (t * F)
+        d1, d2, d3 = np.int64(disc[k, 0]), np.int64(disc[k, 1]), np.int64(disc[k, 2])
         row = counts[r]
+        esc = np.int64(0)
         for s in range(256):
-            n = np.int64(row[s]) * F - d
-            if n < 0:
-                n = 0
+            c = row[s]
+            esc += 0 if c == 0 else (d1 if c == 1 else (d2 if c == 2 else d3))
+        # bound: n*F <= 4080, esc <= 47*256 < 2**14, p[s] <= 2**20, so num < 2**35;
+        # inv <= 2**32 / 16, so num * inv < 2**63 fits int64.
+        inv = (np.int64(1) << 32) // (t * F)
+        for s in range(256):
+            c = np.int64(row[s])
+            n = c * F - (0 if c == 0 else (d1 if c == 1 else (d2 if c == 2 else d3)))
             num = n * one + esc * p[s]
             p[s] = (num * inv) >> 32
     for s in range(256):
@@ -173,10 +178,12 @@ class Strata:
         if not 10 <= hash_log2 <= 20:
             raise ValueError("hash_log2 must be 10..20")
         if discount is None:
-            discount = [13] * (max_order + 1)
-        discount = [int(x) for x in discount]
-        if len(discount) != max_order + 1 or not all(1 <= x < F for x in discount):
-            raise ValueError(f"discount needs {max_order + 1} values in 1..{F - 1} (sixteenths of a count)")
+            discount = [[12, 16, 20]] * (max_order + 1)
+        discount = [[int(x) for x in row] for row in discount]
+        if len(discount) != max_order + 1 or not all(
+                len(row) == 3 and 1 <= row[0] < F and 1 <= row[1] < 2 * F and 1 <= row[2] < 3 * F for row in discount):
+            raise ValueError(f"discount needs {max_order + 1} rows of 3 values (for counts 1, 2, >=3) in "
+                             f"sixteenths of a count, each below its count")
         self.max_order = max_order
         self.hash_log2 = hash_log2
         self.discount = discount
@@ -205,9 +212,9 @@ class Strata:
         if not isinstance(params, dict) or set(params) != {"max_order", "hash_log2", "discount"}:
             raise ValueError("strata needs exactly max_order, hash_log2 and discount")
         disc = params["discount"]
-        if not isinstance(disc, list):
-            raise ValueError("discount must be a list")
-        return cls(as_int(params["max_order"]), as_int(params["hash_log2"]), [as_int(x) for x in disc])
+        if not isinstance(disc, list) or not all(isinstance(row, list) for row in disc):
+            raise ValueError("discount must be a list of lists")
+        return cls(as_int(params["max_order"]), as_int(params["hash_log2"]), [[as_int(x) for x in row] for row in disc])
 
     # -- state ---------------------------------------------------------------------------
     def hash_bits(self, n_bytes: int) -> int:
