@@ -1,7 +1,8 @@
 """Container format v1: byte layout, writer and a validating reader.
 
 The layout is documented byte by byte in docs/FORMAT.md; keep the two in step (the
-format-change rules are in DEVELOPERS.md). All integers are little-endian.
+format-change rules are in DEVELOPERS.md). Fixed-width integers are little-endian;
+variable-width ones are unsigned LEB128 ("varint"), at most 8 bytes.
 
 The reader never trusts a length: every size is checked against the bytes really
 present and against the format's own caps before anything is allocated or decoded.
@@ -17,11 +18,11 @@ import crc32c as _crc32c
 
 from .errors import DataError
 
-MAGIC = b"\x9blcodec\n"
+MAGIC = b"\x9blc\n"
 VERSION = 1
 SUPPORTED_VERSIONS = (1,)
 
-FLAG_MEMBERS = 0x0001  # a member table is present (several files / a folder)
+FLAG_MEMBERS = 0x01  # a member table is present (several files / a folder)
 
 METHOD_STORED = 0
 METHOD_QUEUE = 1  # modelled, constriction range coder
@@ -29,16 +30,39 @@ METHOD_STACK = 2  # modelled, constriction ANS coder
 METHOD_NAMES = {METHOD_STORED: "stored", METHOD_QUEUE: "modelled/queue", METHOD_STACK: "modelled/stack"}
 
 MAX_FRAME_RAW = 1 << 26  # 64 MiB: the most raw bytes one frame may claim
+MAX_CONTENT = 1 << 50
 MAX_LANES = 4096
 MAX_IDENTITY = 1 << 16  # model identity JSON
 MAX_MEMBER_TABLE = 1 << 28
 MAX_PATH = 4096
-
-_FIXED = struct.Struct("<8sHHQ32sIIIII")  # magic .. member-table length, header CRC-32C
-FIXED_SIZE = _FIXED.size  # 72, the header CRC-32C being its last 4 bytes
-_FRAME = struct.Struct("<IIBBHI")  # raw len, coded len, method, reserved, lanes, raw CRC-32C
-FRAME_HEAD = _FRAME.size + 4  # 20: the record's own CRC-32C follows
+MIN_RECORD = 11  # smallest frame record: 3 one-byte varints, method, two CRCs
 _MEMBER = struct.Struct("<IQ32sq")  # mode, size, SHA-256, mtime_ns (after u16 len + path)
+
+
+def uvarint(n: int) -> bytes:
+    """Unsigned LEB128: 7 bits a byte, low bits first, high bit set on all but the last."""
+    out = bytearray()
+    while True:
+        b = n & 0x7F
+        n >>= 7
+        if n:
+            out.append(b | 0x80)
+        else:
+            out.append(b)
+            return bytes(out)
+
+
+def read_uvarint(mv, pos: int, what: str) -> tuple[int, int]:
+    """(value, next position); at most 8 bytes (values below 2**56)."""
+    val = 0
+    for i in range(8):
+        if pos + i >= len(mv):
+            raise DataError(f"archive truncated inside {what}")
+        b = mv[pos + i]
+        val |= (b & 0x7F) << (7 * i)
+        if not b & 0x80:
+            return val, pos + i + 1
+    raise DataError(f"{what} damaged (overlong number)")
 
 
 def crc32c(data) -> int:
@@ -62,6 +86,7 @@ class Member:
 class Frame:
     index: int
     offset: int  # of the record in the file
+    payload_offset: int  # of the coded bytes in the file (the record head lies between)
     raw_len: int
     coded_len: int
     method: int
@@ -81,6 +106,7 @@ class Container:
     members: list[Member] | None
     frames: list[Frame]
     file_size: int
+    spans: dict  # byte ranges of the header CRC, identity and member table (for tools and tests)
 
     @property
     def coded_bytes(self) -> int:
@@ -97,7 +123,7 @@ def encode_members(members: list[Member]) -> bytes:
 
 
 def frame_record(raw_len: int, coded: bytes, method: int, lanes: int, raw_crc: int) -> bytes:
-    head = _FRAME.pack(raw_len, len(coded), method, 0, lanes, raw_crc)
+    head = uvarint(raw_len) + uvarint(len(coded)) + bytes([method]) + uvarint(lanes) + struct.pack("<I", raw_crc)
     return head + struct.pack("<I", crc32c(head)) + coded
 
 
@@ -106,10 +132,9 @@ def header_bytes(content_size: int, content_sha256: bytes, n_frames: int, frame_
     ident = json.dumps(identity, sort_keys=True, separators=(",", ":")).encode("utf-8")
     table = encode_members(members) if members is not None else b""
     flags = FLAG_MEMBERS if members is not None else 0
-    fixed = _FIXED.pack(MAGIC, VERSION, flags, content_size, content_sha256, n_frames, frame_size,
-                        len(ident), len(table), 0)[:-4]
-    body = fixed + ident + table
-    return fixed + struct.pack("<I", crc32c(body)) + ident + table
+    head = (MAGIC + bytes([VERSION, flags]) + uvarint(content_size) + content_sha256 + uvarint(n_frames)
+            + uvarint(frame_size) + uvarint(len(ident)) + uvarint(len(table)))
+    return head + struct.pack("<I", crc32c(head + ident + table)) + ident + table
 
 
 # -- reader -------------------------------------------------------------------------------
@@ -122,35 +147,42 @@ def read_header(buf) -> tuple[dict, int]:
     """Parse and check the header; returns (fields, offset of the first frame record)."""
     mv = memoryview(buf)
     n = len(mv)
-    _need(n >= 8 and bytes(mv[:8]) == MAGIC, "not an lcodec archive (magic bytes do not match)")
-    _need(n >= 10, "archive truncated inside its header")
-    version = struct.unpack_from("<H", mv, 8)[0]
+    _need(n >= 4 and bytes(mv[:4]) == MAGIC, "not an lcodec archive (magic bytes do not match)")
+    _need(n >= 6, "archive truncated inside its header")
+    version, flags = mv[4], mv[5]
     if version not in SUPPORTED_VERSIONS:
         raise DataError(f"unsupported format version {version} (this lcodec reads version "
                         f"{', '.join(map(str, SUPPORTED_VERSIONS))}); a newer lcodec may read it")
-    _need(n >= FIXED_SIZE, "archive truncated inside its header")
-    (_, _, flags, size, sha, n_frames, frame_size, ilen, tlen, hcrc) = _FIXED.unpack_from(mv, 0)
-    _need(ilen <= MAX_IDENTITY and tlen <= MAX_MEMBER_TABLE, "header damaged (impossible field lengths)")
-    end = FIXED_SIZE + ilen + tlen
+    size, pos = read_uvarint(mv, 6, "the header")
+    _need(pos + 32 <= n, "archive truncated inside its header")
+    sha = bytes(mv[pos:pos + 32])
+    n_frames, pos = read_uvarint(mv, pos + 32, "the header")
+    frame_size, pos = read_uvarint(mv, pos, "the header")
+    ilen, pos = read_uvarint(mv, pos, "the header")
+    tlen, pos = read_uvarint(mv, pos, "the header")
+    _need(ilen <= MAX_IDENTITY and tlen <= MAX_MEMBER_TABLE and size <= MAX_CONTENT,
+          "header damaged (impossible field lengths)")
+    end = pos + 4 + ilen + tlen
     _need(end <= n, "archive truncated inside its header")
-    body = bytes(mv[: FIXED_SIZE - 4]) + bytes(mv[FIXED_SIZE:end])
-    _need(crc32c(body) == hcrc, "header damaged (header checksum does not match)")
+    hcrc = struct.unpack_from("<I", mv, pos)[0]
+    _need(crc32c(bytes(mv[:pos]) + bytes(mv[pos + 4:end])) == hcrc, "header damaged (header checksum does not match)")
     _need(flags & ~FLAG_MEMBERS == 0, "header damaged (unknown flags)")
     _need(1 <= frame_size <= MAX_FRAME_RAW, "header damaged (bad frame size)")
     try:
-        identity = json.loads(bytes(mv[FIXED_SIZE:FIXED_SIZE + ilen]).decode("utf-8"))
+        identity = json.loads(bytes(mv[pos + 4:pos + 4 + ilen]).decode("utf-8"))
     except (UnicodeDecodeError, ValueError):
         raise DataError("header damaged (model identity is not readable)") from None
     _need(isinstance(identity, dict) and isinstance(identity.get("model"), str), "header damaged (no model identity)")
     members = None
     if flags & FLAG_MEMBERS:
-        members = _read_members(mv[FIXED_SIZE + ilen:end])
+        members = _read_members(mv[pos + 4 + ilen:end])
     else:
         _need(tlen == 0, "header damaged (member table without its flag)")
-    # Each frame record takes at least FRAME_HEAD bytes, which bounds n_frames by the file size.
-    _need(n_frames <= (n - end) // FRAME_HEAD, "archive truncated: fewer bytes than its frames need")
+    # Each frame record takes at least MIN_RECORD bytes, which bounds n_frames by the file size.
+    _need(n_frames <= (n - end) // MIN_RECORD, "archive truncated: fewer bytes than its frames need")
+    spans = {"crc": (pos, pos + 4), "identity": (pos + 4, pos + 4 + ilen), "members": (pos + 4 + ilen, end)}
     return dict(version=version, flags=flags, content_size=size, content_sha256=sha, n_frames=n_frames,
-                frame_size=frame_size, identity=identity, members=members), end
+                frame_size=frame_size, identity=identity, members=members, spans=spans), end
 
 
 def _read_members(mv) -> list[Member]:
@@ -197,21 +229,27 @@ def read_container(buf) -> Container:
     _need(len(expect) == h["n_frames"], "header damaged (frame count does not match the sizes)")
     frames = []
     for i, want in enumerate(expect):
-        _need(pos + FRAME_HEAD <= len(mv), f"archive truncated at frame {i} (of {len(expect)})")
-        raw_len, coded_len, method, reserved, lanes, raw_crc = _FRAME.unpack_from(mv, pos)
-        rcrc = struct.unpack_from("<I", mv, pos + _FRAME.size)[0]
-        _need(crc32c(bytes(mv[pos:pos + _FRAME.size])) == rcrc, f"frame {i} damaged (record checksum does not match)")
-        _need(raw_len == want and reserved == 0 and method in METHOD_NAMES, f"frame {i} damaged (impossible record)")
+        where = f"frame {i} (of {len(expect)})"
+        start = pos
+        raw_len, pos = read_uvarint(mv, pos, where)
+        coded_len, pos = read_uvarint(mv, pos, where)
+        _need(pos + 1 <= len(mv), f"archive truncated at {where}")
+        method = mv[pos]
+        lanes, pos = read_uvarint(mv, pos + 1, where)
+        _need(pos + 8 <= len(mv), f"archive truncated at {where}")
+        raw_crc, rcrc = struct.unpack_from("<II", mv, pos)
+        _need(crc32c(bytes(mv[start:pos + 4])) == rcrc, f"frame {i} damaged (record checksum does not match)")
+        _need(raw_len == want and method in METHOD_NAMES, f"frame {i} damaged (impossible record)")
         _need(1 <= lanes <= min(MAX_LANES, max(raw_len, 1)), f"frame {i} damaged (bad lane count)")
         if method == METHOD_STORED:
             _need(coded_len == raw_len, f"frame {i} damaged (stored frame length)")
-        start = pos + FRAME_HEAD
-        _need(start + coded_len <= len(mv), f"archive truncated at frame {i} (of {len(expect)})")
-        frames.append(Frame(i, pos, raw_len, coded_len, method, lanes, raw_crc, mv[start:start + coded_len]))
-        pos = start + coded_len
+        pos += 8
+        _need(pos + coded_len <= len(mv), f"archive truncated at {where}")
+        frames.append(Frame(i, start, pos, raw_len, coded_len, method, lanes, raw_crc, mv[pos:pos + coded_len]))
+        pos += coded_len
     _need(pos == len(mv), f"archive has {len(mv) - pos} unexpected bytes after its last frame")
     return Container(h["version"], h["flags"], h["content_size"], h["content_sha256"], h["frame_size"],
-                     h["identity"], members, frames, len(mv))
+                     h["identity"], members, frames, len(mv), h["spans"])
 
 
 def sha256(data) -> bytes:

@@ -77,5 +77,5 @@ def test_golden_containers_decode_exactly(name):
     assert lcodec.unpack(blob) == orig
     # and today's encoder, given the recorded parameters, still writes the same bytes
     ident = lcodec.info(blob)
-    model = Strata.from_params(ident["model"]["params"])
+    model = Strata.from_identity(ident["model"])
     assert lcodec.pack(orig, model=model, frame_size=ident["frame_size"]) == blob

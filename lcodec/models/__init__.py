@@ -63,6 +63,8 @@ def resolve(model):
 def identity_text(identity: dict) -> str:
     if "sha256" in identity:
         return f"{identity['model']} model file {identity.get('file', '?')} (sha256 {identity['sha256']})"
+    if "preset" in identity:
+        return f"built-in {identity['model']}, preset {identity['preset']}"
     return f"built-in {identity['model']} {identity.get('params', {})}"
 
 
@@ -80,6 +82,6 @@ def for_identity(identity: dict, supplied):
     if cls is None:
         raise DataError(f"archive names an unknown built-in model {identity.get('model')!r}")
     try:
-        return cls.from_params(identity.get("params", {}))
+        return cls.from_identity(identity)
     except (KeyError, TypeError, ValueError) as e:
         raise DataError(f"header damaged (bad model parameters: {e})") from None

@@ -18,9 +18,10 @@ from the same state, then the lanes' symbols are counted in lane order. Encoder 
 decoder run the same two kernels (`_predict`, `_update`), so their tables agree by
 construction; a fresh state is allocated per frame, so frames are independent.
 
-Contexts of order 1 and 2 index their rows directly; orders >= 3 are hashed into
-2**hash_log2 rows each, with a 32-bit check tag per row (a row whose tag differs is
-treated as empty and taken over on update).
+Order-1 contexts index their rows directly; orders >= 2 are hashed into at most
+2**hash_log2 rows each (fewer for short frames, so that a small file touches little
+memory), with a 32-bit check tag per row (a row whose tag differs is treated as empty
+and taken over on update).
 """
 from __future__ import annotations
 
@@ -41,9 +42,8 @@ def _row_slots(hist, max_order, hash_log2, bases, slots, checks):
     slots[0] = bases[0]
     checks[0] = 0
     for k in range(1, max_order + 1):
-        if k <= 2:
-            ctx = hist & np.uint64((1 << (8 * k)) - 1)
-            slots[k] = bases[k] + np.int64(ctx)
+        if k == 1:
+            slots[k] = bases[k] + np.int64(hist & np.uint64(0xFF))
             checks[k] = 0
         else:
             if k >= 8:
@@ -165,6 +165,13 @@ def _step(state, syms, m_prev, m, max_order, hash_log2, disc, out_tab):
         _predict(counts, tot, dist, tags, slots, checks, max_order, disc, p, out_tab[b])
 
 
+# Named parameter sets. A preset, once released, is frozen: archives name it instead of
+# spelling out its parameters (a smaller header), so its meaning may never change.
+PRESETS = {
+    "o6": {"max_order": 6, "hash_log2": 18, "discount": [[12, 16, 20]] * 7},
+}
+
+
 class Strata:
     """The adaptive model. Parameters are part of the container's model identity."""
 
@@ -173,6 +180,7 @@ class Strata:
     coder = "queue"  # tables come one step at a time: the range coder needs none stored
 
     def __init__(self, max_order: int = 6, hash_log2: int = 18, discount=None):
+        """The defaults are preset "o6"."""
         if not 1 <= max_order <= 8:
             raise ValueError("max_order must be 1..8")
         if not 10 <= hash_log2 <= 20:
@@ -195,7 +203,19 @@ class Strata:
 
     @property
     def identity(self) -> dict:
+        """What a container records: a preset's name when the parameters are a preset's."""
+        for name, params in PRESETS.items():
+            if params == self.params:
+                return {"model": self.name, "preset": name}
         return {"model": self.name, "params": self.params}
+
+    @classmethod
+    def from_identity(cls, identity: dict) -> "Strata":
+        if "preset" in identity:
+            if identity["preset"] not in PRESETS:
+                raise ValueError(f"unknown strata preset {identity['preset']!r}")
+            return cls.from_params(PRESETS[identity["preset"]])
+        return cls.from_params(identity.get("params"))
 
     @property
     def label(self) -> str:
@@ -223,7 +243,7 @@ class Strata:
 
     def new_state(self, n_bytes: int, n_lanes: int):
         hashed = 1 << self.hash_bits(n_bytes)
-        rows = [1, 256, 65536][: self.max_order + 1] + [hashed] * max(0, self.max_order - 2)
+        rows = [1, 256] + [hashed] * (self.max_order - 1)
         bases = np.zeros(len(rows), np.int64)
         bases[1:] = np.cumsum(rows)[:-1]
         total = int(sum(rows))
