@@ -94,13 +94,17 @@ def decode_frame(model, payload: bytes, n: int, lanes: int, coder: str = "queue"
     step = model.stepper(lengths)
     prev = np.zeros(len(lengths), np.int32)
     m_prev = 0
-    for t in range(n_steps):
-        m = int(active[t])
-        tab = np.ascontiguousarray(step(prev, m_prev, m), np.float64)
-        syms = dec.decode(_FAMILY, tab)
-        out[starts[:m] + t] = syms
-        prev[:m] = syms
-        m_prev = m
+    try:
+        for t in range(n_steps):
+            m = int(active[t])
+            tab = np.ascontiguousarray(step(prev, m_prev, m), np.float64)
+            syms = dec.decode(_FAMILY, tab)
+            out[starts[:m] + t] = syms
+            prev[:m] = syms
+            m_prev = m
+    finally:
+        if hasattr(step, "close"):
+            step.close()
     return out.tobytes()
 
 

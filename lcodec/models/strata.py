@@ -25,6 +25,8 @@ and taken over on update).
 """
 from __future__ import annotations
 
+import threading
+
 import numpy as np
 from numba import njit
 
@@ -37,14 +39,16 @@ _M2 = np.uint64(0xD6E8FEB86659FD93)
 
 
 @njit(cache=True, nogil=True)
-def _row_slots(hist, max_order, hash_log2, bases, slots, checks):
-    """Row index and check tag of each order's context (orders 0..max_order)."""
+def _row_slots(hist, max_order, hash_log2, bases, gen, slots, checks):
+    """Row index and check tag of each order's context (orders 0..max_order). A tag holds
+    the frame's generation in its high 32 bits, so rows left by earlier frames read as empty."""
+    g = gen << np.uint64(32)
     slots[0] = bases[0]
-    checks[0] = 0
+    checks[0] = g
     for k in range(1, max_order + 1):
         if k == 1:
             slots[k] = bases[k] + np.int64(hist & np.uint64(0xFF))
-            checks[k] = 0
+            checks[k] = g
         else:
             if k >= 8:
                 ctx = hist
@@ -54,7 +58,7 @@ def _row_slots(hist, max_order, hash_log2, bases, slots, checks):
             x = x ^ (x >> np.uint64(31))
             x = x * _M2
             slots[k] = bases[k] + np.int64(x >> np.uint64(64 - hash_log2))
-            checks[k] = np.uint32((x >> np.uint64(8)) & np.uint64(0xFFFFFFFF)) | np.uint32(1)
+            checks[k] = g | ((x >> np.uint64(8)) & np.uint64(0xFFFFFFFF))
 
 
 @njit(cache=True, nogil=True)
@@ -125,9 +129,9 @@ def _update(counts, tot, dist, tags, slots, checks, max_order, sym):
 @njit(cache=True, nogil=True)
 def _teacher(state, data, starts, lengths, t0, t1, max_order, hash_log2, disc, out_syms, out_tab):
     """Tables of steps t0..t1 for all active lanes, in coding order, updating state."""
-    counts, tot, dist, tags, bases, hist = state
+    counts, tot, dist, tags, bases, hist, gen = state
     slots = np.empty(max_order + 1, np.int64)
-    checks = np.empty(max_order + 1, np.uint32)
+    checks = np.empty(max_order + 1, np.uint64)
     p = np.empty(256, np.int64)
     nl = lengths.shape[0]
     i = 0
@@ -136,12 +140,12 @@ def _teacher(state, data, starts, lengths, t0, t1, max_order, hash_log2, disc, o
         while m < nl and lengths[m] > t:
             m += 1
         for b in range(m):
-            _row_slots(hist[b], max_order, hash_log2, bases, slots, checks)
+            _row_slots(hist[b], max_order, hash_log2, bases, gen, slots, checks)
             _predict(counts, tot, dist, tags, slots, checks, max_order, disc, p, out_tab[i + b])
             out_syms[i + b] = data[starts[b] + t]
         for b in range(m):
             sym = data[starts[b] + t]
-            _row_slots(hist[b], max_order, hash_log2, bases, slots, checks)
+            _row_slots(hist[b], max_order, hash_log2, bases, gen, slots, checks)
             _update(counts, tot, dist, tags, slots, checks, max_order, sym)
             hist[b] = (hist[b] << np.uint64(8)) | np.uint64(sym)
         i += m
@@ -151,18 +155,42 @@ def _teacher(state, data, starts, lengths, t0, t1, max_order, hash_log2, disc, o
 @njit(cache=True, nogil=True)
 def _step(state, syms, m_prev, m, max_order, hash_log2, disc, out_tab):
     """Decoder step: count the previous step's symbols of m_prev lanes, then predict m lanes."""
-    counts, tot, dist, tags, bases, hist = state
+    counts, tot, dist, tags, bases, hist, gen = state
     slots = np.empty(max_order + 1, np.int64)
-    checks = np.empty(max_order + 1, np.uint32)
+    checks = np.empty(max_order + 1, np.uint64)
     p = np.empty(256, np.int64)
     for b in range(m_prev):
         sym = syms[b]
-        _row_slots(hist[b], max_order, hash_log2, bases, slots, checks)
+        _row_slots(hist[b], max_order, hash_log2, bases, gen, slots, checks)
         _update(counts, tot, dist, tags, slots, checks, max_order, sym)
         hist[b] = (hist[b] << np.uint64(8)) | np.uint64(sym)
     for b in range(m):
-        _row_slots(hist[b], max_order, hash_log2, bases, slots, checks)
+        _row_slots(hist[b], max_order, hash_log2, bases, gen, slots, checks)
         _predict(counts, tot, dist, tags, slots, checks, max_order, disc, p, out_tab[b])
+
+
+_local = threading.local()
+
+
+def _pool_take(n_rows: int):
+    """Row arrays with at least n_rows rows, and a generation number not used before with
+    them. One idle set is kept per thread; a frame opened while it is busy gets new arrays."""
+    pool = getattr(_local, "pool", None)
+    if pool is not None and not pool["busy"] and pool["rows"] >= n_rows and pool["gen"] < 0xFFFFFFFF:
+        pool["busy"] = True
+        pool["gen"] += 1
+        return (*pool["arrays"], pool["gen"])
+    arrays = (np.zeros((n_rows, 256), np.uint8), np.zeros(n_rows, np.int32),
+              np.zeros(n_rows, np.int32), np.zeros(n_rows, np.uint64))
+    if pool is None or not pool["busy"]:  # keep the newest, largest set
+        _local.pool = {"rows": n_rows, "arrays": arrays, "gen": 1, "busy": True}
+    return (*arrays, 1)  # zeroed tags hold generation 0, which never matches
+
+
+def _pool_give(state):
+    pool = getattr(_local, "pool", None)
+    if pool is not None and pool["arrays"][0] is state[0]:
+        pool["busy"] = False
 
 
 # Named parameter sets. A preset, once released, is frozen: archives name it instead of
@@ -242,18 +270,14 @@ class Strata:
         return max(10, min(self.hash_log2, int(max(n_bytes, 1) - 1).bit_length() + 1))
 
     def new_state(self, n_bytes: int, n_lanes: int):
+        """State for one frame: row arrays from this thread's pool (reused, never cleared:
+        a fresh generation makes every old row read as empty) and fresh lane histories."""
         hashed = 1 << self.hash_bits(n_bytes)
         rows = [1, 256] + [hashed] * (self.max_order - 1)
         bases = np.zeros(len(rows), np.int64)
         bases[1:] = np.cumsum(rows)[:-1]
-        total = int(sum(rows))
-        # np.zeros maps zero pages lazily: a short frame touches only the rows it uses.
-        counts = np.zeros((total, 256), np.uint8)
-        tot = np.zeros(total, np.int32)
-        dist = np.zeros(total, np.int32)
-        tags = np.zeros(total, np.uint32)
-        hist = np.zeros(n_lanes, np.uint64)
-        return (counts, tot, dist, tags, bases, hist)
+        counts, tot, dist, tags, gen = _pool_take(int(sum(rows)))
+        return (counts, tot, dist, tags, bases, np.zeros(n_lanes, np.uint64), np.uint64(gen))
 
     # -- the two passes ------------------------------------------------------------------
     def teacher_chunks(self, data: np.ndarray, starts: np.ndarray, lengths: np.ndarray, chunk_steps: int = 256):
@@ -264,10 +288,13 @@ class Strata:
         nl = len(lengths)
         syms = np.empty(chunk_steps * nl, np.int32)
         tab = np.empty((chunk_steps * nl, 256), np.float64)
-        for t0 in range(0, n_steps, chunk_steps):
-            t1 = min(n_steps, t0 + chunk_steps)
-            k = _teacher(state, data, starts, lengths, t0, t1, self.max_order, hb, self._disc, syms, tab)
-            yield syms[:k], tab[:k]
+        try:
+            for t0 in range(0, n_steps, chunk_steps):
+                t1 = min(n_steps, t0 + chunk_steps)
+                k = _teacher(state, data, starts, lengths, t0, t1, self.max_order, hb, self._disc, syms, tab)
+                yield syms[:k], tab[:k]
+        finally:
+            _pool_give(state)
 
     def stepper(self, lengths: np.ndarray):
         """Decoder side: returns step(prev_syms, m_prev, m) -> tables (m, 256)."""
@@ -280,4 +307,5 @@ class Strata:
             _step(state, prev_syms, m_prev, m, mo, hl, disc, tab)
             return tab[:m]
 
+        step.close = lambda: _pool_give(state)
         return step
