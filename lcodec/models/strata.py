@@ -77,18 +77,22 @@ def _predict(counts, tot, dist, tags, slots, checks, max_order, disc, p, out):
         t = np.int64(tot[r])
         if t == 0:
             continue
-        d1, d2, d3 = np.int64(disc[k, 0]), np.int64(disc[k, 1]), np.int64(disc[k, 2])
+        # discount of a count c, without branches (so the loops vectorise):
+        # d(c) = a1*[c>=1] + a2*[c>=2] + a3*[c>=3]
+        a1 = np.int64(disc[k, 0])
+        a2 = np.int64(disc[k, 1]) - a1
+        a3 = np.int64(disc[k, 2]) - np.int64(disc[k, 1])
         row = counts[r]
         esc = np.int64(0)
         for s in range(256):
-            c = row[s]
-            esc += 0 if c == 0 else (d1 if c == 1 else (d2 if c == 2 else d3))
+            c = np.int64(row[s])
+            esc += a1 * (c >= 1) + a2 * (c >= 2) + a3 * (c >= 3)
         # bound: n*F <= 4080, esc <= 47*256 < 2**14, p[s] <= 2**20, so num < 2**35;
         # inv <= 2**32 / 16, so num * inv < 2**63 fits int64.
         inv = (np.int64(1) << 32) // (t * F)
         for s in range(256):
             c = np.int64(row[s])
-            n = c * F - (0 if c == 0 else (d1 if c == 1 else (d2 if c == 2 else d3)))
+            n = c * F - (a1 * (c >= 1) + a2 * (c >= 2) + a3 * (c >= 3))
             num = n * one + esc * p[s]
             p[s] = (num * inv) >> 32
     for s in range(256):
