@@ -14,7 +14,8 @@ REPO = Path(__file__).resolve().parents[1]
 if str(REPO) not in sys.path:
     sys.path.insert(0, str(REPO))
 
-from corpora import make_demo, open_data  # noqa: E402
+from corpora import open_data  # noqa: E402
+from lcodec import democorpus as make_demo  # noqa: E402
 
 SMALL = 0.05
 
