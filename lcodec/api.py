@@ -155,8 +155,18 @@ def decode(blob, model=None, progress=None, keep_going: bool = False) -> Decoded
     cont = C.read_container(blob)
     m = for_identity(cont.identity, model)
     if cont.members is not None:
+        kinds = {}
         for mem in cont.members:
             safe_member_path(mem.path)
+            if mem.path in kinds:
+                raise DataError(f"member table damaged (member path {mem.path!r} appears twice)")
+            kinds[mem.path] = mem.is_dir
+        for path in kinds:
+            parts = path.split("/")
+            for i in range(1, len(parts)):
+                if kinds.get("/".join(parts[:i])) is False:
+                    raise DataError(f"member table damaged (member {path!r} lies under "
+                                    f"{'/'.join(parts[:i])!r}, which is a file)")
     out = Decoded(cont, [])
     for fr in cont.frames:
         try:
@@ -212,7 +222,7 @@ def unpack_to_dir(blob, out_dir: str, model=None, force: bool = False, progress=
         raise UsageError(f"{out_dir} exists and is not a folder")
     parent = os.path.dirname(os.path.abspath(out_dir))
     tmp = os.path.join(parent, f".{os.path.basename(os.path.abspath(out_dir))}.part-{os.getpid()}")
-    written = []
+    written, folders = [], []
     try:
         os.makedirs(tmp)
         for mem, first, n in d.member_ranges():
@@ -220,6 +230,7 @@ def unpack_to_dir(blob, out_dir: str, model=None, force: bool = False, progress=
             target = os.path.join(tmp, rel)
             if mem.is_dir:
                 os.makedirs(target, exist_ok=True)
+                folders.append(mem)
                 continue
             os.makedirs(os.path.dirname(target), exist_ok=True)
             with open(target, "wb") as f:
@@ -233,12 +244,21 @@ def unpack_to_dir(blob, out_dir: str, model=None, force: bool = False, progress=
         if not exists:
             os.rename(tmp, out_dir)
         else:  # --force into an existing folder: move each file into place
+            for mem in folders:
+                os.makedirs(os.path.join(out_dir, safe_member_path(mem.path)), exist_ok=True)
             for rel_path in written:
                 rel = safe_member_path(rel_path)
                 dst = os.path.join(out_dir, rel)
                 os.makedirs(os.path.dirname(dst), exist_ok=True)
                 os.replace(os.path.join(tmp, rel), dst)
             _remove_quietly(tmp)
+        # Folder modes and times last, deepest first: writing into a folder changes its
+        # time, and a read-only folder mode would block writing its files.
+        for mem in sorted(folders, key=lambda m: m.path.count("/"), reverse=True):
+            p = os.path.join(out_dir, safe_member_path(mem.path))
+            os.chmod(p, mem.mode & 0o7777)
+            if mem.mtime_ns:
+                os.utime(p, ns=(mem.mtime_ns, mem.mtime_ns))
     except OSError as e:
         _remove_quietly(tmp)
         raise UsageError(f"cannot write into {out_dir}: {e.strerror or e}") from None
