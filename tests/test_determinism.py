@@ -38,7 +38,7 @@ def teacher_tables(model, data, lanes, chunk):
 @pytest.mark.parametrize("lanes", [1, 5, 64])
 def test_parallel_pass_equals_step_pass(stdlib_text, lanes):
     data = stdlib_text[:20_000]
-    for params in ({}, {"max_order": 3, "hash_log2": 12, "discount": [[4, 6, 8], [8, 12, 16], [12, 16, 20], [15, 20, 30]]}):
+    for params in ({}, {"max_order": 3, "hash_log2": 12, "discount": [[4, 6, 8], [8, 12, 16], [12, 16, 20], [15, 20, 30]], "match_min": 0}):
         a = teacher_tables(Strata(**params), data, lanes, chunk=97)
         b = step_tables(Strata(**params), data, lanes)
         assert a.dtype == b.dtype == np.float64

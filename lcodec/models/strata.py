@@ -33,6 +33,9 @@ from numba import njit
 P_BITS = 20  # fixed-point total of the blended distribution
 F = 16  # discount is expressed in sixteenths of a count
 COUNT_LIMIT = 255  # uint8 counts: a row is halved when a count would pass this
+MATCH_LENGTHS = 16  # match lengths 0..15+ ...
+MATCH_LEVELS = 16  # ... times 16 levels of the blend's own probability: the hit-rate cells
+MATCH_LIMIT = 4095  # hit-rate counters are halved past this, to keep adapting
 
 _M1 = np.uint64(0x9E3779B97F4A7C15)  # odd multipliers for context hashing
 _M2 = np.uint64(0xD6E8FEB86659FD93)
@@ -62,8 +65,8 @@ def _row_slots(hist, max_order, hash_log2, bases, gen, slots, checks):
 
 
 @njit(cache=True, nogil=True)
-def _predict(counts, tot, dist, tags, slots, checks, max_order, disc, p, out):
-    """Blend orders 0..max_order into `out` (float64 holding integers >= 1).
+def _predict(counts, tot, dist, tags, slots, checks, max_order, disc, p):
+    """Blend orders 0..max_order into p (integers, total about 2**P_BITS).
 
     disc[k] holds order k's discounts (in 1/F of a count) for counts 1, 2 and >= 3.
     """
@@ -95,8 +98,6 @@ def _predict(counts, tot, dist, tags, slots, checks, max_order, disc, p, out):
             n = c * F - (a1 * (c >= 1) + a2 * (c >= 2) + a3 * (c >= 3))
             num = n * one + esc * p[s]
             p[s] = (num * inv) >> 32
-    for s in range(256):
-        out[s] = np.float64(p[s] + 1)
 
 
 @njit(cache=True, nogil=True)
@@ -131,13 +132,111 @@ def _update(counts, tot, dist, tags, slots, checks, max_order, sym):
 
 
 @njit(cache=True, nogil=True)
-def _teacher(state, data, starts, lengths, t0, t1, max_order, hash_log2, disc, out_syms, out_tab):
+def _step_of(pos, lay):
+    """Step at which frame position `pos` is coded (lay: n, base lane length, lanes one longer)."""
+    base, extra = lay[1], lay[2]
+    big = extra * (base + 1)
+    if pos < big:
+        return pos % (base + 1)
+    return (pos - big) % base
+
+
+@njit(cache=True, nogil=True)
+def _match_hash(hist, lay):
+    ctx = hist & np.uint64((1 << (8 * lay[3])) - 1) if lay[3] < 8 else hist
+    x = (ctx + np.uint64(99)) * _M1
+    x = x ^ (x >> np.uint64(29))
+    x = x * _M2
+    return np.int64(x >> np.uint64(64 - lay[4]))
+
+
+@njit(cache=True, nogil=True)
+def _match_predict(match, b, p):
+    """Long-repeat predictor: where the lane's last bytes occurred before, the byte that
+    followed gets the probability measured, so far in this frame, for matches of this
+    length whose byte the blend gave about the same probability (raised or lowered)."""
+    buf, mtab, mptr, mlen, mstat, lay, mcell, mpred = match
+    mcell[b] = -1
+    total = np.int64(0)
+    for s in range(256):
+        total += p[s]
+    if mptr[b] >= 0:
+        e = np.int64(buf[mptr[b]])
+    else:  # no repeat to follow: calibrate the blend's own favourite (length class 0)
+        e = np.int64(0)
+        for s in range(1, 256):
+            if p[s] > p[e]:
+                e = s
+    mpred[b] = e
+    pe = p[e]
+    if total - pe < 1024:  # the blend is already (nearly) certain of e
+        return
+    cell = (min(mlen[b], MATCH_LENGTHS - 1) if mptr[b] >= 0 else 0) * MATCH_LEVELS + (pe * MATCH_LEVELS) // total
+    mcell[b] = cell
+    st = mstat[cell]
+    target = (np.int64(st[0]) * total) // np.int64(st[1])
+    target = min(max(target, np.int64(1)), total - 1024)
+    # bound: p[s] <= 2**21 and f <= (2**21 << 20) / 1024 = 2**31, so p[s] * f < 2**52
+    f = ((total - target) << 20) // (total - pe)
+    for s in range(256):
+        p[s] = (p[s] * f) >> 20
+    p[e] = target
+
+
+@njit(cache=True, nogil=True)
+def _match_update(match, b, start, t, sym, hist, gen):
+    """After lane b coded `sym` at step t: score and extend its match, or look for a new
+    one, then index the context just completed. Only bytes of steps <= t are read."""
+    buf, mtab, mptr, mlen, mstat, lay, mcell, mpred = match
+    n, mmin = lay[0], lay[3]
+    cur = start + t
+    if mcell[b] >= 0:
+        st = mstat[mcell[b]]
+        st[0] += 1 if mpred[b] == sym else 0
+        st[1] += 1
+        if st[1] > MATCH_LIMIT:
+            st[0] = (st[0] + 1) >> 1
+            st[1] = (st[1] + 1) >> 1
+    if mptr[b] >= 0:
+        hit = buf[mptr[b]] == sym
+        nxt = mptr[b] + 1
+        if hit and nxt < n and _step_of(nxt, lay) <= t:
+            mptr[b] = nxt
+            mlen[b] += 1
+        else:
+            mptr[b] = -1
+            mlen[b] = 0
+    if t + 1 < mmin:
+        return
+    h = _match_hash(hist, lay)
+    g = gen << np.uint64(32)
+    if mptr[b] < 0:
+        entry = mtab[h]
+        if (entry & np.uint64(0xFFFFFFFF00000000)) == g:
+            q = np.int64(entry & np.uint64(0xFFFFFFFF))
+            if q < n and _step_of(q, lay) <= t:
+                ln = 0
+                while ln < 32:
+                    a = q - 1 - ln
+                    c = cur - ln
+                    if a < 0 or c < start or _step_of(a, lay) > t or buf[a] != buf[c]:
+                        break
+                    ln += 1
+                if ln >= mmin:
+                    mptr[b] = q
+                    mlen[b] = ln
+    mtab[h] = g | np.uint64(cur + 1)
+
+
+@njit(cache=True, nogil=True)
+def _teacher(state, match, data, starts, lengths, t0, t1, max_order, hash_log2, disc, out_syms, out_tab):
     """Tables of steps t0..t1 for all active lanes, in coding order, updating state."""
     counts, tot, dist, tags, bases, hist, gen = state
     slots = np.empty(max_order + 1, np.int64)
     checks = np.empty(max_order + 1, np.uint64)
     p = np.empty(256, np.int64)
     nl = lengths.shape[0]
+    use_match = match[5][3] > 0
     i = 0
     for t in range(t0, t1):
         m = 0
@@ -145,32 +244,52 @@ def _teacher(state, data, starts, lengths, t0, t1, max_order, hash_log2, disc, o
             m += 1
         for b in range(m):
             _row_slots(hist[b], max_order, hash_log2, bases, gen, slots, checks)
-            _predict(counts, tot, dist, tags, slots, checks, max_order, disc, p, out_tab[i + b])
+            _predict(counts, tot, dist, tags, slots, checks, max_order, disc, p)
+            if use_match:
+                _match_predict(match, b, p)
+            _emit(p, out_tab[i + b])
             out_syms[i + b] = data[starts[b] + t]
         for b in range(m):
             sym = data[starts[b] + t]
             _row_slots(hist[b], max_order, hash_log2, bases, gen, slots, checks)
             _update(counts, tot, dist, tags, slots, checks, max_order, sym)
             hist[b] = (hist[b] << np.uint64(8)) | np.uint64(sym)
+            if use_match:
+                _match_update(match, b, starts[b], t, sym, hist[b], gen)
         i += m
     return i
 
 
 @njit(cache=True, nogil=True)
-def _step(state, syms, m_prev, m, max_order, hash_log2, disc, out_tab):
-    """Decoder step: count the previous step's symbols of m_prev lanes, then predict m lanes."""
+def _step(state, match, starts, syms, t_prev, m_prev, m, max_order, hash_log2, disc, out_tab):
+    """Decoder step: count the symbols of step t_prev (m_prev lanes), then predict m lanes."""
     counts, tot, dist, tags, bases, hist, gen = state
     slots = np.empty(max_order + 1, np.int64)
     checks = np.empty(max_order + 1, np.uint64)
     p = np.empty(256, np.int64)
+    buf = match[0]
+    use_match = match[5][3] > 0
+    for b in range(m_prev):
+        buf[starts[b] + t_prev] = syms[b]
     for b in range(m_prev):
         sym = syms[b]
         _row_slots(hist[b], max_order, hash_log2, bases, gen, slots, checks)
         _update(counts, tot, dist, tags, slots, checks, max_order, sym)
         hist[b] = (hist[b] << np.uint64(8)) | np.uint64(sym)
+        if use_match:
+            _match_update(match, b, starts[b], t_prev, sym, hist[b], gen)
     for b in range(m):
         _row_slots(hist[b], max_order, hash_log2, bases, gen, slots, checks)
-        _predict(counts, tot, dist, tags, slots, checks, max_order, disc, p, out_tab[b])
+        _predict(counts, tot, dist, tags, slots, checks, max_order, disc, p)
+        if use_match:
+            _match_predict(match, b, p)
+        _emit(p, out_tab[b])
+
+
+@njit(cache=True, nogil=True)
+def _emit(p, out):
+    for s in range(256):
+        out[s] = np.float64(p[s] + 1)
 
 
 _local = threading.local()
@@ -185,7 +304,7 @@ def _pool_take(n_rows: int):
         pool["gen"] += 1
         return (*pool["arrays"], pool["gen"])
     arrays = (np.zeros((n_rows, 256), np.uint8), np.zeros(n_rows, np.int32),
-              np.zeros(n_rows, np.int32), np.zeros(n_rows, np.uint64))
+              np.zeros(n_rows, np.int32), np.zeros(n_rows, np.uint64), np.zeros(n_rows, np.uint64))
     if pool is None or not pool["busy"]:  # keep the newest, largest set
         _local.pool = {"rows": n_rows, "arrays": arrays, "gen": 1, "busy": True}
     return (*arrays, 1)  # zeroed tags hold generation 0, which never matches
@@ -200,7 +319,7 @@ def _pool_give(state):
 # Named parameter sets. A preset, once released, is frozen: archives name it instead of
 # spelling out its parameters (a smaller header), so its meaning may never change.
 PRESETS = {
-    "o6": {"max_order": 6, "hash_log2": 18, "discount": [[12, 16, 20]] * 7},
+    "o6m": {"max_order": 6, "hash_log2": 18, "discount": [[13, 18, 24]] * 7, "match_min": 6},
 }
 
 
@@ -211,14 +330,17 @@ class Strata:
     kind = "adaptive"
     coder = "queue"  # tables come one step at a time: the range coder needs none stored
 
-    def __init__(self, max_order: int = 6, hash_log2: int = 18, discount=None):
-        """The defaults are preset "o6"."""
+    def __init__(self, max_order: int = 6, hash_log2: int = 18, discount=None, match_min: int = 6):
+        """The defaults are preset "o6m". match_min: shortest repeat the match model follows
+        (0 turns it off)."""
+        if not (match_min == 0 or 4 <= match_min <= 8):
+            raise ValueError("match_min must be 0 (off) or 4..8")
         if not 1 <= max_order <= 8:
             raise ValueError("max_order must be 1..8")
         if not 10 <= hash_log2 <= 20:
             raise ValueError("hash_log2 must be 10..20")
         if discount is None:
-            discount = [[12, 16, 20]] * (max_order + 1)
+            discount = [[13, 18, 24]] * (max_order + 1)
         discount = [[int(x) for x in row] for row in discount]
         if len(discount) != max_order + 1 or not all(
                 len(row) == 3 and 1 <= row[0] < F and 1 <= row[1] < 2 * F and 1 <= row[2] < 3 * F for row in discount):
@@ -228,10 +350,12 @@ class Strata:
         self.hash_log2 = hash_log2
         self.discount = discount
         self._disc = np.array(discount, np.int64)
+        self.match_min = match_min
 
     @property
     def params(self) -> dict:
-        return {"max_order": self.max_order, "hash_log2": self.hash_log2, "discount": list(self.discount)}
+        return {"max_order": self.max_order, "hash_log2": self.hash_log2, "discount": list(self.discount),
+                "match_min": self.match_min}
 
     @property
     def identity(self) -> dict:
@@ -251,7 +375,7 @@ class Strata:
 
     @property
     def label(self) -> str:
-        return f"strata (built-in, orders 0-{self.max_order})"
+        return f"strata (built-in, orders 0-{self.max_order}{', repeats' if self.match_min else ''})"
 
     @classmethod
     def from_params(cls, params: dict) -> "Strata":
@@ -261,12 +385,13 @@ class Strata:
                 raise ValueError(f"expected an integer, got {v!r}")
             return v
 
-        if not isinstance(params, dict) or set(params) != {"max_order", "hash_log2", "discount"}:
-            raise ValueError("strata needs exactly max_order, hash_log2 and discount")
+        if not isinstance(params, dict) or set(params) != {"max_order", "hash_log2", "discount", "match_min"}:
+            raise ValueError("strata needs exactly max_order, hash_log2, discount and match_min")
         disc = params["discount"]
         if not isinstance(disc, list) or not all(isinstance(row, list) for row in disc):
             raise ValueError("discount must be a list of lists")
-        return cls(as_int(params["max_order"]), as_int(params["hash_log2"]), [[as_int(x) for x in row] for row in disc])
+        return cls(as_int(params["max_order"]), as_int(params["hash_log2"]), [[as_int(x) for x in row] for row in disc],
+                   as_int(params["match_min"]))
 
     # -- state ---------------------------------------------------------------------------
     def hash_bits(self, n_bytes: int) -> int:
@@ -280,14 +405,27 @@ class Strata:
         rows = [1, 256] + [hashed] * (self.max_order - 1)
         bases = np.zeros(len(rows), np.int64)
         bases[1:] = np.cumsum(rows)[:-1]
-        counts, tot, dist, tags, gen = _pool_take(int(sum(rows)))
-        return (counts, tot, dist, tags, bases, np.zeros(n_lanes, np.uint64), np.uint64(gen))
+        counts, tot, dist, tags, mtab, gen = _pool_take(int(sum(rows)))
+        return (counts, tot, dist, tags, bases, np.zeros(n_lanes, np.uint64), np.uint64(gen)), mtab
+
+    def new_match(self, buf, mtab, lengths):
+        """Match-model state: the frame's bytes (known ones), index, per-lane match, hit rates."""
+        n, nl = int(lengths.sum()), len(lengths)
+        base = int(lengths[-1]) if nl else 0
+        extra = int((lengths > base).sum()) if nl else 0
+        mbits = self.hash_bits(n)
+        mstat = np.empty((MATCH_LENGTHS * MATCH_LEVELS, 2), np.int32)
+        mstat[:, 0] = 2 * (np.arange(MATCH_LENGTHS * MATCH_LEVELS) % MATCH_LEVELS) + 1
+        mstat[:, 1] = 2 * MATCH_LEVELS  # each cell starts at its level's midpoint: no change
+        lay = np.array([n, max(base, 1), extra, self.match_min, mbits], np.int64)
+        return (buf, mtab, np.full(nl, -1, np.int64), np.zeros(nl, np.int64), mstat, lay, np.full(nl, -1, np.int64), np.zeros(nl, np.int64))
 
     # -- the two passes ------------------------------------------------------------------
     def teacher_chunks(self, data: np.ndarray, starts: np.ndarray, lengths: np.ndarray, chunk_steps: int = 256):
         """Yield (symbols, tables) for consecutive step ranges, in coding order."""
         n = int(lengths.sum())
-        state, hb = self.new_state(n, len(lengths)), self.hash_bits(n)
+        (state, mtab), hb = self.new_state(n, len(lengths)), self.hash_bits(n)
+        match = self.new_match(data, mtab, lengths)
         n_steps = int(lengths[0]) if len(lengths) else 0
         nl = len(lengths)
         syms = np.empty(chunk_steps * nl, np.int32)
@@ -295,20 +433,26 @@ class Strata:
         try:
             for t0 in range(0, n_steps, chunk_steps):
                 t1 = min(n_steps, t0 + chunk_steps)
-                k = _teacher(state, data, starts, lengths, t0, t1, self.max_order, hb, self._disc, syms, tab)
+                k = _teacher(state, match, data, starts, lengths, t0, t1, self.max_order, hb, self._disc, syms, tab)
                 yield syms[:k], tab[:k]
         finally:
             _pool_give(state)
 
     def stepper(self, lengths: np.ndarray):
-        """Decoder side: returns step(prev_syms, m_prev, m) -> tables (m, 256)."""
+        """Decoder side: returns step(prev_syms, m_prev, m) -> tables (m, 256); call it once
+        per step, in order, with the previous step's symbols."""
         n = int(lengths.sum())
-        state, hl = self.new_state(n, len(lengths)), self.hash_bits(n)
+        (state, mtab), hl = self.new_state(n, len(lengths)), self.hash_bits(n)
+        match = self.new_match(np.zeros(max(n, 1), np.uint8), mtab, lengths)
+        starts = np.zeros(len(lengths), np.int64)
+        starts[1:] = np.cumsum(lengths)[:-1]
         tab = np.empty((max(len(lengths), 1), 256), np.float64)
         mo, disc = self.max_order, self._disc
+        t = [-1]
 
         def step(prev_syms, m_prev, m):
-            _step(state, prev_syms, m_prev, m, mo, hl, disc, tab)
+            _step(state, match, starts, prev_syms, t[0], m_prev, m, mo, hl, disc, tab)
+            t[0] += 1
             return tab[:m]
 
         step.close = lambda: _pool_give(state)
