@@ -1,0 +1,7 @@
+#!/usr/bin/env bash
+# The project's size and speed targets (figures, MET/MISSED) plus the slow tests.
+set -euo pipefail
+cd "$(dirname "$0")/.."
+[ -x .venv/bin/lcodec ] || bash scripts/setup.sh
+.venv/bin/python scripts/bench_targets.py --out bench-out "$@"
+.venv/bin/python -m pytest -q -m slow || [ $? = 5 ]
