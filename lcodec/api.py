@@ -27,8 +27,8 @@ from .fsio import atomic_write, collect_inputs, safe_member_path, _remove_quietl
 from .models import for_identity, identity_text, resolve
 
 DEFAULT_FRAME_SIZE = 1 << 20
-MAX_LANES = 64
-LANE_BYTES = 4096  # a lane per 4 KiB of frame, at most MAX_LANES
+MAX_LANES = 16
+LANE_BYTES = 16384  # a lane per 16 KiB of frame, at most MAX_LANES (measured trade-off: DEVELOPERS.md)
 
 
 def choose_lanes(n: int) -> int:
