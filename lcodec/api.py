@@ -28,6 +28,7 @@ from .models import for_identity, identity_text, resolve
 
 DEFAULT_FRAME_SIZE = 1 << 20
 MAX_LANES = 16
+KEPT_MODE_BITS = 0o777  # permission bits restored; set-id and sticky bits are not
 LANE_BYTES = 16384  # a lane per 16 KiB of frame, at most MAX_LANES (measured trade-off: DEVELOPERS.md)
 
 
@@ -134,6 +135,8 @@ class Decoded:
 
 
 def _decode_frame(model, fr: C.Frame) -> bytes:
+    if C.crc32c(fr.payload) != fr.coded_crc:
+        raise DataError(f"frame {fr.index} damaged (CRC-32C of its coded bytes does not match)")
     if fr.method == C.METHOD_STORED:
         raw = bytes(fr.payload)
     else:
@@ -237,13 +240,15 @@ def unpack_to_dir(blob, out_dir: str, model=None, force: bool = False, progress=
                 f.write(b"".join(d.frames[first:first + n]))
                 f.flush()
                 os.fsync(f.fileno())
-            os.chmod(target, mem.mode & 0o7777)
+            os.chmod(target, mem.mode & KEPT_MODE_BITS)
             if mem.mtime_ns:
                 os.utime(target, ns=(mem.mtime_ns, mem.mtime_ns))
             written.append(mem.path)
         if not exists:
             os.rename(tmp, out_dir)
         else:  # --force into an existing folder: move each file into place
+            for mem in d.container.members:  # never write through a link inside out_dir
+                _refuse_links(out_dir, mem.path)
             for mem in folders:
                 os.makedirs(os.path.join(out_dir, safe_member_path(mem.path)), exist_ok=True)
             for rel_path in written:
@@ -256,13 +261,22 @@ def unpack_to_dir(blob, out_dir: str, model=None, force: bool = False, progress=
         # time, and a read-only folder mode would block writing its files.
         for mem in sorted(folders, key=lambda m: m.path.count("/"), reverse=True):
             p = os.path.join(out_dir, safe_member_path(mem.path))
-            os.chmod(p, mem.mode & 0o7777)
+            os.chmod(p, mem.mode & KEPT_MODE_BITS)
             if mem.mtime_ns:
                 os.utime(p, ns=(mem.mtime_ns, mem.mtime_ns))
     except OSError as e:
         _remove_quietly(tmp)
         raise UsageError(f"cannot write into {out_dir}: {e.strerror or e}") from None
     return written
+
+
+def _refuse_links(out_dir: str, member_path: str) -> None:
+    parts = member_path.split("/")
+    for i in range(1, len(parts) + 1):
+        p = os.path.join(out_dir, *parts[:i])
+        if os.path.islink(p):
+            raise UsageError(f"{p} is a symbolic link; lcodec does not write through links "
+                             f"(remove it, or unpack into a new folder)")
 
 
 @dataclass

@@ -35,7 +35,7 @@ MAX_LANES = 4096
 MAX_IDENTITY = 1 << 16  # model identity JSON
 MAX_MEMBER_TABLE = 1 << 28
 MAX_PATH = 4096
-MIN_RECORD = 11  # smallest frame record: 3 one-byte varints, method, two CRCs
+MIN_RECORD = 16  # smallest frame record: 3 one-byte varints, method, three CRCs
 _MEMBER = struct.Struct("<IQ32sq")  # mode, size, SHA-256, mtime_ns (after u16 len + path)
 
 
@@ -92,6 +92,7 @@ class Frame:
     method: int
     lanes: int
     raw_crc: int
+    coded_crc: int  # CRC-32C of the coded bytes: damage is caught before decoding
     payload: memoryview = field(repr=False)
 
 
@@ -123,7 +124,8 @@ def encode_members(members: list[Member]) -> bytes:
 
 
 def frame_record(raw_len: int, coded: bytes, method: int, lanes: int, raw_crc: int) -> bytes:
-    head = uvarint(raw_len) + uvarint(len(coded)) + bytes([method]) + uvarint(lanes) + struct.pack("<I", raw_crc)
+    head = (uvarint(raw_len) + uvarint(len(coded)) + bytes([method]) + uvarint(lanes)
+            + struct.pack("<II", raw_crc, crc32c(coded)))
     return head + struct.pack("<I", crc32c(head)) + coded
 
 
@@ -203,6 +205,9 @@ def _read_members(mv) -> list[Member]:
         pos += plen
         mode, size, sha, mtime = _MEMBER.unpack_from(mv, pos)
         pos += _MEMBER.size
+        kind = mode & 0o170000
+        _need(kind in (0o100000, 0o040000), f"member table damaged ({path!r} is neither a file nor a folder)")
+        _need(kind == 0o100000 or size == 0, f"member table damaged (folder {path!r} has a size)")
         out.append(Member(path, mode, size, sha, mtime))
     _need(pos == n, "member table damaged (trailing bytes)")
     return out
@@ -236,16 +241,17 @@ def read_container(buf) -> Container:
         _need(pos + 1 <= len(mv), f"archive truncated at {where}")
         method = mv[pos]
         lanes, pos = read_uvarint(mv, pos + 1, where)
-        _need(pos + 8 <= len(mv), f"archive truncated at {where}")
-        raw_crc, rcrc = struct.unpack_from("<II", mv, pos)
-        _need(crc32c(bytes(mv[start:pos + 4])) == rcrc, f"frame {i} damaged (record checksum does not match)")
+        _need(pos + 12 <= len(mv), f"archive truncated at {where}")
+        raw_crc, coded_crc, rcrc = struct.unpack_from("<III", mv, pos)
+        _need(crc32c(bytes(mv[start:pos + 8])) == rcrc, f"frame {i} damaged (record checksum does not match)")
         _need(raw_len == want and method in METHOD_NAMES, f"frame {i} damaged (impossible record)")
         _need(1 <= lanes <= min(MAX_LANES, max(raw_len, 1)), f"frame {i} damaged (bad lane count)")
         if method == METHOD_STORED:
             _need(coded_len == raw_len, f"frame {i} damaged (stored frame length)")
-        pos += 8
+        pos += 12
         _need(pos + coded_len <= len(mv), f"archive truncated at {where}")
-        frames.append(Frame(i, start, pos, raw_len, coded_len, method, lanes, raw_crc, mv[pos:pos + coded_len]))
+        frames.append(Frame(i, start, pos, raw_len, coded_len, method, lanes, raw_crc, coded_crc,
+                            mv[pos:pos + coded_len]))
         pos += coded_len
     _need(pos == len(mv), f"archive has {len(mv) - pos} unexpected bytes after its last frame")
     return Container(h["version"], h["flags"], h["content_size"], h["content_sha256"], h["frame_size"],

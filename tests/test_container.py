@@ -37,6 +37,6 @@ def test_header_layout_matches_docs():
     assert blob[:4] == b"\x9blc\n" and blob[4] == 1 and blob[5] == 0
     assert blob[6:8] == bytes([0xAC, 0x02])  # 300 as LEB128
     assert blob[8:40] == b"\x11" * 32
-    h, end = C.read_header(blob + b"\0" * 11)
+    h, end = C.read_header(blob + b"\0" * C.MIN_RECORD)
     assert end == len(blob) and h["content_size"] == 300 and h["frame_size"] == 1 << 20
     assert h["identity"] == {"model": "x"}

@@ -30,14 +30,15 @@ from lcodec import container as C
 #   HEADER_MAX = 72: magic 4, version 1, flags 1, content size (varint, <= 8), SHA-256 32,
 #                frame count (varint, <= 8), frame size (varint, <= 4), identity and
 #                member-table lengths (varints, <= 3 and <= 4), header CRC-32C 4: 69 at most;
-#   PER_FRAME = 20: a record head is raw length and coded length (varints, <= 4 each for a
-#                64 MiB frame), method 1, lanes (varint, <= 2), raw CRC-32C 4, record CRC-32C 4;
+#   PER_FRAME = 24: a record head is raw length and coded length (varints, <= 4 each for a
+#                64 MiB frame), method 1, lanes (varint, <= 2), raw CRC-32C 4, coded-bytes
+#                CRC-32C 4, record CRC-32C 4: 23 at most;
 #   the identity JSON of the built-in model is kept below IDENTITY_CAP.
-# Measured on this machine (format v1 as of this commit): the built-in identity JSON is 32
-# bytes, the header 49, and 50 000 random bytes grow by 99 bytes (49 + 32 + an 18-byte
-# record head); the empty archive is 81 bytes.
+# Measured on this machine (format v1 as of this commit): the built-in identity JSON is 33
+# bytes, the header 49-51, and 50 000 random bytes grow by 104 bytes (50 + 33 + a 21-byte
+# record head); the empty archive is 82 bytes.
 HEADER_MAX = 72
-PER_FRAME = 20
+PER_FRAME = 24
 IDENTITY_CAP = 256
 
 
