@@ -11,8 +11,10 @@ import os
 from ..errors import DataError, ModelError
 from .. import modelfile
 from .strata import Strata
+from .weft import Weft
 
-BUILTIN = {"strata": Strata}
+BUILTIN = {"strata": Strata}  # models an archive can name without a model file
+ARCHITECTURES = {"strata": Strata, "weft": Weft}  # what a model file may hold
 
 
 class Loaded:
@@ -33,6 +35,10 @@ class Loaded:
     def stepper(self, *a, **k):
         return self.inner.stepper(*a, **k)
 
+    def lanes_for(self, n: int):
+        f = getattr(self.inner, "lanes_for", None)
+        return f(n) if f else None
+
 
 def default_model():
     return Strata()
@@ -41,9 +47,10 @@ def default_model():
 def load_model(path: str) -> Loaded:
     meta, arrays, sha = modelfile.load(path)
     arch = meta["architecture"]
-    cls = BUILTIN.get(arch["name"])
+    cls = ARCHITECTURES.get(arch["name"])
     if cls is None:
-        raise ModelError(f"model file {path}: unknown architecture {arch['name']!r} (this lcodec knows: {', '.join(BUILTIN)})")
+        raise ModelError(f"model file {path}: unknown architecture {arch['name']!r} "
+                         f"(this lcodec knows: {', '.join(ARCHITECTURES)})")
     try:
         inner = cls.from_params(arch.get("params", {}), arrays) if arrays else cls.from_params(arch.get("params", {}))
     except (KeyError, TypeError, ValueError) as e:

@@ -1,0 +1,192 @@
+"""`weft`: the learned byte model. Integer-exact inference, numpy or torch backend.
+
+An autoregressive MLP over a window of the W previous bytes of a lane (the published
+masked-autoencoder family: the distribution of byte i depends on bytes before i only,
+here by construction of the window):
+
+    x      = concat(emb[c_{i-W}], ..., emb[c_{i-1}])     int8, W*E values (256 = before the lane)
+    acc    = x @ w1 + b1                                 int32
+    h      = clamp((acc * m1 + 2**(s1-1)) >> s1, 0, 127) the ReLU and requantisation, integers
+    logit  = h @ w2 + b2                                 int32
+    freq   = lut[min((max(logit) - logit) * mo + 2**(so-1) >> so, len(lut) - 1)]
+
+`lut` (stored in the model file, so no exp() runs at inference) holds
+round(2**20 * exp(-k / 32)), at least 1: the table is a softmax evaluated on a grid of
+1/32 nat. Both products run as float32 matrix products of integer-valued operands; the
+bounds below keep every partial sum under 2**24, which makes them exact in any
+summation order, thread count or batch shape.
+
+The encoder computes the tables of a whole chunk of steps in one teacher-forced pass;
+the decoder computes one step for every lane at once.
+"""
+from __future__ import annotations
+
+import numpy as np
+
+PAD = 256  # context symbol for positions before the start of a lane
+LUT_STEPS_PER_NAT = 32
+CHUNK_SYMBOLS = 4096
+
+
+def check_arrays(params: dict, arrays: dict) -> None:
+    """Refuse a model whose arrays do not fit its parameters or break the exactness bounds."""
+    W, E, H = params["window"], params["embed"], params["hidden"]
+    want = {"emb": ((257, E), np.int8), "w1": ((W * E, H), np.int8), "b1": ((H,), np.int32),
+            "w2": ((H, 256), np.int8), "b2": ((256,), np.int32)}
+    for name, (shape, dt) in want.items():
+        a = arrays.get(name)
+        if a is None or tuple(a.shape) != shape or a.dtype != dt:
+            raise ValueError(f"array {name} must be {np.dtype(dt).name} {shape}")
+    lut = arrays.get("lut")
+    if lut is None or lut.ndim != 1 or not 2 <= len(lut) <= 1 << 16 or lut.dtype != np.int32:
+        raise ValueError("array lut must be int32 of length 2..65536")
+    if int(lut.min()) < 1 or int(lut.max()) > 1 << 24:
+        raise ValueError("lut values must be 1..2**24")
+    # exactness: |x|,|w1| <= 127 with W*E terms; 0 <= h <= 127, |w2| <= 127 with H terms
+    if 127 * 127 * W * E >= 1 << 24 or 127 * 127 * H >= 1 << 24:
+        raise ValueError("window*embed and hidden must keep 127*127*terms below 2**24")
+    for k in ("m1", "mo"):
+        if not 0 < params[k] < 1 << 31:
+            raise ValueError(f"{k} out of range")
+    for k in ("s1", "so"):
+        if not 1 <= params[k] <= 40:
+            raise ValueError(f"{k} out of range")
+    if int(np.abs(arrays["b1"]).max(initial=0)) >= 1 << 24 or int(np.abs(arrays["b2"]).max(initial=0)) >= 1 << 24:
+        raise ValueError("biases out of range")
+
+
+class NumpyKernels:
+    """The integer forward pass with numpy (float32 BLAS on integer values)."""
+
+    name = "numpy"
+
+    def __init__(self, params, arrays):
+        self.p = params
+        self.emb = arrays["emb"]
+        self.w1 = arrays["w1"].astype(np.float32)
+        self.b1 = arrays["b1"].astype(np.int64)
+        self.w2 = arrays["w2"].astype(np.float32)
+        self.b2 = arrays["b2"].astype(np.int64)
+        self.lut = arrays["lut"].astype(np.int64)
+
+    def tables(self, ctx: np.ndarray) -> np.ndarray:
+        p = self.p
+        x = self.emb[ctx].reshape(len(ctx), -1).astype(np.float32)
+        # bound: |x|, |w1| <= 127, window*embed terms: every partial sum < 2**24, exact
+        acc = (x @ self.w1).astype(np.int64) + self.b1
+        h = np.clip((acc * p["m1"] + (1 << (p["s1"] - 1))) >> p["s1"], 0, 127).astype(np.float32)
+        # bound: 0 <= h <= 127, |w2| <= 127, hidden terms: every partial sum < 2**24, exact
+        logit = (h @ self.w2).astype(np.int64) + self.b2
+        z = logit.max(axis=1, keepdims=True) - logit
+        idx = np.minimum((z * p["mo"] + (1 << (p["so"] - 1))) >> p["so"], len(self.lut) - 1)
+        return self.lut[idx].astype(np.float64)
+
+
+class TorchKernels:
+    """The same integer forward pass with torch (float32 matmul on integer values)."""
+
+    name = "torch"
+
+    def __init__(self, params, arrays):
+        import torch
+
+        self.torch = torch
+        self.p = params
+        self.emb = torch.from_numpy(arrays["emb"].astype(np.int64))
+        self.w1 = torch.from_numpy(arrays["w1"].astype(np.float32))
+        self.b1 = torch.from_numpy(arrays["b1"].astype(np.int64))
+        self.w2 = torch.from_numpy(arrays["w2"].astype(np.float32))
+        self.b2 = torch.from_numpy(arrays["b2"].astype(np.int64))
+        self.lut = torch.from_numpy(arrays["lut"].astype(np.int64))
+
+    def tables(self, ctx: np.ndarray) -> np.ndarray:
+        t, p = self.torch, self.p
+        with t.no_grad():
+            c = t.from_numpy(np.ascontiguousarray(ctx, np.int64))
+            x = self.emb[c].reshape(len(ctx), -1).to(t.float32)
+            acc = (x @ self.w1).to(t.int64) + self.b1  # exact: partial sums < 2**24
+            h = t.clamp((acc * p["m1"] + (1 << (p["s1"] - 1))) >> p["s1"], 0, 127).to(t.float32)
+            logit = (h @ self.w2).to(t.int64) + self.b2  # exact: partial sums < 2**24
+            z = logit.max(dim=1, keepdim=True).values - logit
+            idx = t.clamp((z * p["mo"] + (1 << (p["so"] - 1))) >> p["so"], max=len(self.lut) - 1)
+            return self.lut[idx].numpy().astype(np.float64)
+
+
+BACKENDS = {"numpy": NumpyKernels, "torch": TorchKernels}
+
+
+class Weft:
+    name = "weft"
+    kind = "learned"
+    coder = "queue"  # tables arrive in coding order, chunk by chunk: the range coder stores none
+
+    def __init__(self, params: dict, arrays: dict, backend: str = "numpy"):
+        self.params = {k: int(params[k]) for k in ("window", "embed", "hidden", "m1", "s1", "mo", "so")}
+        check_arrays(self.params, arrays)
+        self.arrays = arrays
+        self.window = self.params["window"]
+        self.set_backend(backend)
+
+    def set_backend(self, backend: str) -> None:
+        if backend not in BACKENDS:
+            raise ValueError(f"unknown backend {backend!r} (have: {', '.join(BACKENDS)})")
+        self.kernels = BACKENDS[backend](self.params, self.arrays)
+
+    @classmethod
+    def from_params(cls, params: dict, arrays: dict | None = None) -> "Weft":
+        if arrays is None:
+            raise ValueError("weft needs its arrays (a model file)")
+        return cls(params, arrays)
+
+    @property
+    def identity(self) -> dict:  # only ever used through a model file (models.Loaded)
+        return {"model": self.name, "params": self.params}
+
+    def tables(self, ctx: np.ndarray) -> np.ndarray:
+        return self.kernels.tables(ctx)
+
+    def lanes_for(self, n: int) -> int:
+        """No adaptive state to share, so lanes cost only their first W bytes' context:
+        one lane per 2 KiB, at most 64, for batched decoding."""
+        return max(1, min(64, n // 2048))
+
+    # -- the two passes ------------------------------------------------------------------
+    def _lane_windows(self, data, starts, lengths):
+        """Padded lane matrix: row b is W pads then lane b's bytes (then pads)."""
+        W, nl = self.window, len(lengths)
+        L = int(lengths[0]) if nl else 0
+        mat = np.full((nl, W + L), PAD, np.int16)
+        for b in range(nl):
+            mat[b, W:W + lengths[b]] = data[starts[b]:starts[b] + lengths[b]]
+        return mat
+
+    def teacher_chunks(self, data, starts, lengths, chunk_steps=None):
+        """All tables, chunk by chunk of steps, in coding order (step, then lane)."""
+        nl = len(lengths)
+        if nl == 0 or int(lengths[0]) == 0:
+            return
+        W = self.window
+        mat = self._lane_windows(data, starts, lengths)
+        n_steps = int(lengths[0])
+        per = chunk_steps or max(1, CHUNK_SYMBOLS // nl)
+        for t0 in range(0, n_steps, per):
+            t1 = min(n_steps, t0 + per)
+            ts = np.arange(t0, t1)
+            active = lengths[None, :] > ts[:, None]  # (steps, lanes); rows are prefixes
+            tt, bb = np.nonzero(active)  # row-major: step order, then lane order
+            tt = tt + t0
+            ctx = mat[bb[:, None], tt[:, None] + np.arange(W)[None, :]]
+            syms = mat[bb, tt + W].astype(np.int32)
+            yield syms, self.tables(ctx)
+
+    def stepper(self, lengths):
+        W, nl = self.window, len(lengths)
+        ctx = np.full((max(nl, 1), W), PAD, np.int16)
+
+        def step(prev_syms, m_prev, m):
+            if m_prev:
+                ctx[:m_prev, :-1] = ctx[:m_prev, 1:]
+                ctx[:m_prev, -1] = prev_syms[:m_prev]
+            return self.tables(ctx[:m])
+
+        return step

@@ -1,0 +1,260 @@
+"""`lcodec train`: fit a weft model on a corpus with quantisation-aware training, then
+export the integer model and measure it.
+
+Training runs in ordinary float torch, with the integer path simulated in the forward
+pass (weights, embeddings and hidden activations rounded to int8/uint7 grids with a
+straight-through gradient), so the exported integer model loses little. A validation
+split (by file) is held out; training stops at the time limit or when validation stops
+improving; the command ends with the exported integer model's validation bits per byte,
+computed from the very tables the coder would use.
+
+Only this module imports torch; decoding never needs it.
+"""
+from __future__ import annotations
+
+import json
+import math
+import os
+import random
+import time
+
+import numpy as np
+
+from . import __version__, modelfile
+from .errors import UsageError
+from .models.weft import LUT_STEPS_PER_NAT, PAD, Weft
+
+PRESETS = {
+    # name: window, embed, hidden, batch, learning rate (figures in DEVELOPERS.md)
+    "small": dict(window=16, embed=12, hidden=192, batch=1024, lr=3e-3),
+    "tiny": dict(window=8, embed=8, hidden=64, batch=512, lr=3e-3),  # for tests
+}
+DEFAULT_PRESET = "small"
+LUT_LEN = LUT_STEPS_PER_NAT * 24  # down to exp(-24): below 2**-34, floored at 1 anyway
+
+
+def read_corpus(paths: list[str], max_bytes: int | None = None) -> list[tuple[str, bytes]]:
+    """Files under the given files/folders, sorted, skipping empty ones."""
+    found = []
+    for p in paths:
+        if os.path.isdir(p):
+            for dp, dns, fns in os.walk(p):
+                dns.sort()
+                for n in sorted(fns):
+                    found.append(os.path.join(dp, n))
+        elif os.path.isfile(p):
+            found.append(p)
+        else:
+            raise UsageError(f"{p}: no such file or folder")
+    out, total = [], 0
+    for f in found:
+        if os.path.islink(f):
+            continue
+        with open(f, "rb") as fh:
+            data = fh.read()
+        if data:
+            out.append((f, data))
+            total += len(data)
+        if max_bytes and total >= max_bytes:
+            break
+    if not out:
+        raise UsageError("the training corpus holds no non-empty files")
+    return out
+
+
+class Positions:
+    """Every byte of a set of files as (context window, symbol), contexts within the file."""
+
+    def __init__(self, files: list[bytes], window: int):
+        self.buf = np.frombuffer(b"".join(files), np.uint8).astype(np.int16)
+        lens = np.array([len(f) for f in files], np.int64)
+        self.start = np.repeat(np.concatenate([[0], np.cumsum(lens)[:-1]]), lens)
+        self.n = len(self.buf)
+        self.window = window
+
+    def batch(self, idx: np.ndarray):
+        W = self.window
+        pos = idx[:, None] - W + np.arange(W)[None, :]
+        ok = pos >= self.start[idx][:, None]
+        ctx = np.where(ok, self.buf[np.maximum(pos, 0)], PAD)
+        return ctx.astype(np.int64), self.buf[idx].astype(np.int64)
+
+
+def _build(torch, cfg):
+    nn = torch.nn
+    W, E, H = cfg["window"], cfg["embed"], cfg["hidden"]
+
+    class RoundSTE(torch.autograd.Function):
+        @staticmethod
+        def forward(ctx, x):
+            return torch.round(x)
+
+        @staticmethod
+        def backward(ctx, g):
+            return g
+
+    def fq(x, scale, lo, hi):
+        return torch.clamp(RoundSTE.apply(x / scale), lo, hi) * scale
+
+    class Net(nn.Module):
+        def __init__(self):
+            super().__init__()
+            self.emb = nn.Embedding(257, E)
+            self.l1 = nn.Linear(W * E, H)
+            self.l2 = nn.Linear(H, 256)
+            self.register_buffer("h_max", torch.tensor(4.0))
+            nn.init.normal_(self.emb.weight, std=0.5)
+
+        def scales(self):
+            return {"e": self.emb.weight.detach().abs().max() / 127 + 1e-12,
+                    "w1": self.l1.weight.detach().abs().max() / 127 + 1e-12,
+                    "w2": self.l2.weight.detach().abs().max() / 127 + 1e-12,
+                    "h": self.h_max / 127}
+
+        def forward(self, ctx, quant=True):
+            s = self.scales()
+            e = fq(self.emb.weight, s["e"], -127, 127) if quant else self.emb.weight
+            x = e[ctx].reshape(len(ctx), -1)
+            w1 = fq(self.l1.weight, s["w1"], -127, 127) if quant else self.l1.weight
+            h = torch.relu(x @ w1.t() + self.l1.bias)
+            if self.training:  # track the activation range the integer grid must cover
+                with torch.no_grad():
+                    self.h_max.mul_(0.99).add_(0.01 * torch.quantile(h.detach().flatten()[:65536], 0.999).clamp(min=1e-3))
+            if quant:
+                h = fq(h, s["h"], 0, 127)
+            w2 = fq(self.l2.weight, s["w2"], -127, 127) if quant else self.l2.weight
+            return h @ w2.t() + self.l2.bias
+
+    return Net()
+
+
+def export(net, cfg) -> tuple[dict, dict]:
+    """Float QAT network -> integer parameters and arrays of a weft model."""
+    s = {k: float(v) for k, v in net.scales().items()}
+    emb = np.clip(np.round(net.emb.weight.detach().numpy() / s["e"]), -127, 127).astype(np.int8)
+    w1 = np.clip(np.round(net.l1.weight.detach().numpy().T / s["w1"]), -127, 127).astype(np.int8)
+    w2 = np.clip(np.round(net.l2.weight.detach().numpy().T / s["w2"]), -127, 127).astype(np.int8)
+    acc_scale = s["e"] * s["w1"]  # value of one unit of acc
+    b1 = np.round(net.l1.bias.detach().numpy() / acc_scale).astype(np.int64)
+    logit_scale = s["h"] * s["w2"]  # value (nats) of one unit of logit
+    b2 = np.round(net.l2.bias.detach().numpy() / logit_scale).astype(np.int64)
+    s1 = 24
+    m1 = int(round(acc_scale / s["h"] * (1 << s1)))
+    while m1 >= 1 << 30 and s1 > 1:
+        s1 -= 1
+        m1 = int(round(acc_scale / s["h"] * (1 << s1)))
+    so = 24
+    mo = int(round(logit_scale * LUT_STEPS_PER_NAT * (1 << so)))
+    while mo >= 1 << 30 and so > 1:
+        so -= 1
+        mo = int(round(logit_scale * LUT_STEPS_PER_NAT * (1 << so)))
+    lut = np.maximum(1, np.round((1 << 20) * np.exp(-np.arange(LUT_LEN) / LUT_STEPS_PER_NAT))).astype(np.int32)
+    lim = (1 << 24) - 1
+    params = {"window": cfg["window"], "embed": cfg["embed"], "hidden": cfg["hidden"],
+              "m1": max(m1, 1), "s1": s1, "mo": max(mo, 1), "so": so}
+    arrays = {"emb": emb, "w1": w1, "b1": np.clip(b1, -lim, lim).astype(np.int32), "w2": w2,
+              "b2": np.clip(b2, -lim, lim).astype(np.int32), "lut": lut}
+    return params, arrays
+
+
+def integer_bpb(model: Weft, pos: Positions, idx: np.ndarray) -> float:
+    bits = 0.0
+    for i in range(0, len(idx), 8192):
+        ctx, sym = pos.batch(idx[i:i + 8192])
+        tab = model.tables(ctx)
+        bits += float(-np.log2(tab[np.arange(len(sym)), sym] / tab.sum(1)).sum())
+    return bits / len(idx)
+
+
+def train(corpus: list[str], out: str, time_limit: float = 600.0, preset: str = DEFAULT_PRESET,
+          seed: int = 0, max_bytes: int | None = None, echo=print, force: bool = False) -> dict:
+    try:
+        import torch
+    except ImportError:
+        raise UsageError("training needs torch: run scripts/setup.sh (installs torch==2.13.0)") from None
+    if preset not in PRESETS:
+        raise UsageError(f"unknown preset {preset!r} (have: {', '.join(PRESETS)})")
+    if os.path.lexists(out) and not force:
+        raise UsageError(f"{out} exists; pass --force to overwrite it")
+    cfg = PRESETS[preset]
+    t_start = time.perf_counter()
+    random.seed(seed)
+    np.random.seed(seed)
+    torch.manual_seed(seed)
+    files = read_corpus(corpus, max_bytes)
+    order = list(range(len(files)))
+    random.Random(seed).shuffle(order)
+    n_val = max(1, len(files) // 10) if len(files) > 1 else 0
+    val_ids, train_ids = set(order[:n_val]), order[n_val:]
+    train_files = [files[i][1] for i in train_ids]
+    val_files = [files[i][1] for i in sorted(val_ids)] or [files[0][1][-max(1, len(files[0][1]) // 10):]]
+    W = cfg["window"]
+    tr, va = Positions(train_files, W), Positions(val_files, W)
+    rng = np.random.default_rng(seed)
+    val_idx = np.sort(rng.choice(va.n, size=min(va.n, 200_000), replace=False))
+    echo(f"training weft/{preset} on {tr.n:,} bytes ({len(train_files)} files); validating on "
+         f"{len(val_idx):,} bytes of {len(val_files)} held-out files; time limit {time_limit:.0f} s")
+    net = _build(torch, cfg)
+    opt = torch.optim.Adam(net.parameters(), lr=cfg["lr"])
+    vctx, vsym = va.batch(np.sort(rng.permutation(val_idx)[:50_000]))
+    vctx, vsym = torch.from_numpy(vctx), torch.from_numpy(vsym)
+    best, best_state, curve, bad, step = math.inf, None, [], 0, 0
+    last_eval = time.perf_counter()
+    run_loss, run_n = 0.0, 0
+    log2e = 1 / math.log(2)
+    while True:
+        net.train()
+        idx = rng.integers(0, tr.n, size=cfg["batch"])
+        ctx, sym = tr.batch(idx)
+        loss = torch.nn.functional.cross_entropy(net(torch.from_numpy(ctx)), torch.from_numpy(sym))
+        opt.zero_grad()
+        loss.backward()
+        opt.step()
+        run_loss += float(loss) * log2e
+        run_n += 1
+        step += 1
+        now = time.perf_counter()
+        elapsed = now - t_start
+        if now - last_eval >= max(5.0, min(30.0, time_limit / 20)) or elapsed >= time_limit:
+            net.eval()
+            with torch.no_grad():
+                vb = float(torch.nn.functional.cross_entropy(net(vctx), vsym)) * log2e
+            curve.append({"seconds": round(elapsed, 1), "step": step, "train_bpb": run_loss / run_n, "val_bpb": vb})
+            echo(f"  {elapsed:6.0f} s  step {step:7d}  train {run_loss / run_n:.3f}  validation {vb:.3f} bits per byte")
+            run_loss, run_n, last_eval = 0.0, 0, now
+            if vb < best - 1e-3:
+                best, bad = vb, 0
+                best_state = {k: v.clone() for k, v in net.state_dict().items()}
+            else:
+                bad += 1
+            if elapsed >= time_limit or bad >= 4:
+                if bad >= 4:
+                    echo("  validation stopped improving")
+                break
+    if best_state is not None:
+        net.load_state_dict(best_state)
+    net.eval()
+    params, arrays = export(net, cfg)
+    model = Weft(params, arrays)
+    int_bpb = integer_bpb(model, va, val_idx)
+    with torch.no_grad():
+        fl = 0.0
+        for i in range(0, len(val_idx), 8192):
+            c, s_ = va.batch(val_idx[i:i + 8192])
+            fl += float(torch.nn.functional.cross_entropy(net(torch.from_numpy(c)), torch.from_numpy(s_), reduction="sum")) * log2e
+        float_bpb = fl / len(val_idx)
+    meta = {
+        "lcodec_version": __version__,
+        "preset": preset,
+        "seed": seed,
+        "quantisation": "int8 weights and embeddings, uint7 hidden activations, softmax on a 1/32-nat grid (lut)",
+        "training": {"files": len(train_files), "bytes": tr.n, "seconds": round(time.perf_counter() - t_start, 1),
+                     "steps": step, "corpus": [os.path.abspath(c) for c in corpus][:20]},
+        "validation": {"files": len(val_files), "bytes": int(len(val_idx)), "float_qat_bpb": round(float_bpb, 4),
+                       "integer_bpb": round(int_bpb, 4)},
+        "learning_curve": curve,
+    }
+    sha = modelfile.dump(out, {"name": "weft", "params": params}, arrays, **meta)
+    echo(f"exported integer model: validation {int_bpb:.4f} bits per byte (float QAT {float_bpb:.4f}); "
+         f"{os.path.getsize(out):,} bytes, sha256 {sha[:16]}... -> {out}")
+    return {"sha256": sha, "integer_bpb": int_bpb, "float_bpb": float_bpb, "curve": curve, "meta": meta}
