@@ -57,7 +57,7 @@ def _encode_pieces(pieces, model, frame_size: int, stats: PackStats, progress=No
     for piece in pieces:
         for off in range(0, len(piece), frame_size):
             raw = bytes(piece[off:off + frame_size])
-            lanes = choose_lanes(len(raw))
+            lanes = (getattr(model, "lanes_for", lambda n: None)(len(raw))) or choose_lanes(len(raw))
             coded, nll = encode_frame(model, raw, lanes, coder)
             if len(coded) >= len(raw):  # incompressible: store (growth is the record only)
                 records.append(C.frame_record(len(raw), raw, C.METHOD_STORED, 1, C.crc32c(raw)))

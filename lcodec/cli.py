@@ -24,6 +24,7 @@ EXAMPLES = {
     "info": "lcodec info station-logs" + ARCHIVE_EXT + " --json",
     "bench": "lcodec bench my-corpus/ --json bench.json --csv bench.csv",
     "demo": "lcodec demo",
+    "train": "lcodec train station-logs/ -o logs.lcmodel --time-limit 600",
 }
 
 
@@ -314,6 +315,29 @@ def bench(corpus_dir, model, json_out, csv_out, split, seed, force, quiet):
     if csv_out:
         B.write_csv(rows, csv_out)
     click.echo(B.format_table(rows))
+
+
+@main.command(epilog=_example("train"))
+@click.argument("corpus", nargs=-1, required=True)
+@click.option("-o", "--output", "output", required=True, type=click.Path(dir_okay=False), help="Model file to write.")
+@click.option("--time-limit", type=click.FloatRange(1, 7 * 86400), default=600, show_default=True,
+              help="Stop training after this many seconds (earlier if validation stops improving).")
+@click.option("--preset", default="small", show_default=True, help="Model size preset (see DEVELOPERS.md).")
+@click.option("--seed", type=int, default=0, show_default=True, help="Seed of the validation split and the training.")
+@click.option("--max-bytes", type=int, default=None, help="Read at most this many bytes of the corpus.")
+@force_option
+@guarded
+def train(corpus, output, time_limit, preset, seed, max_bytes, force):
+    """Train a learned byte model (weft) on files and folders; write a model file.
+
+    A tenth of the files is held out for validation; progress shows running train and
+    validation bits per byte; the command ends with the exported integer model's
+    validation bits per byte. Needs torch (scripts/setup.sh installs it); using the
+    model file to pack or unpack does not.
+    """
+    from . import train as T
+
+    T.train(list(corpus), output, time_limit, preset, seed, max_bytes, echo=lambda m: click.echo(m, err=True), force=force)
 
 
 @main.command(epilog=_example("demo"))
