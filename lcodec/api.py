@@ -36,6 +36,12 @@ def choose_lanes(n: int) -> int:
     return max(1, min(MAX_LANES, n // LANE_BYTES))
 
 
+def frame_lanes(model, n: int) -> int:
+    """Lanes of an n-byte frame coded with `model`: the model's own choice (`lanes_for`),
+    else choose_lanes."""
+    return (getattr(model, "lanes_for", lambda n: None)(n)) or choose_lanes(n)
+
+
 @dataclass
 class PackStats:
     raw_bytes: int = 0
@@ -57,7 +63,7 @@ def _encode_pieces(pieces, model, frame_size: int, stats: PackStats, progress=No
     for piece in pieces:
         for off in range(0, len(piece), frame_size):
             raw = bytes(piece[off:off + frame_size])
-            lanes = (getattr(model, "lanes_for", lambda n: None)(len(raw))) or choose_lanes(len(raw))
+            lanes = frame_lanes(model, len(raw))
             coded, nll = encode_frame(model, raw, lanes, coder)
             if len(coded) >= len(raw):  # incompressible: store (growth is the record only)
                 records.append(C.frame_record(len(raw), raw, C.METHOD_STORED, 1, C.crc32c(raw)))
