@@ -210,7 +210,7 @@ def train(corpus: list[str], out: str, time_limit: float = 600.0, preset: str = 
         opt.zero_grad()
         loss.backward()
         opt.step()
-        run_loss += float(loss) * log2e
+        run_loss += float(loss.detach()) * log2e
         run_n += 1
         step += 1
         now = time.perf_counter()

@@ -24,6 +24,29 @@ def sample_text(seed: int, n: int) -> bytes:
     return "".join(out).encode()[:n]
 
 
+def golden_weft():
+    """A tiny trained weft model and a container made with it (needs torch)."""
+    from lcodec import train as T
+
+    mpath = os.path.join(HERE, "weft-tiny.lcmodel")
+    arc, orig = os.path.join(HERE, "weft-v1-text.lcodec"), os.path.join(HERE, "weft-v1-text.orig")
+    if os.path.exists(arc):
+        print(f"keep {arc}")
+        return
+    import tempfile
+    with tempfile.TemporaryDirectory() as d:
+        for i in range(8):
+            with open(os.path.join(d, f"log{i}.txt"), "wb") as f:
+                f.write(sample_text(100 + i, 30_000))
+        T.train([d], mpath, time_limit=20, preset="tiny", seed=0, echo=print)
+    data = sample_text(9, 12_000)
+    with open(orig, "wb") as f:
+        f.write(data)
+    with open(arc, "wb") as f:
+        f.write(lcodec.pack(data, model=mpath, frame_size=4096))
+    print(f"wrote {arc}")
+
+
 def main():
     os.makedirs(HERE, exist_ok=True)
     vectors = {"strata-v1-text": sample_text(1, 20_000), "strata-v1-binary": bytes(random.Random(2).randbytes(3000)) + bytes(range(256)) * 8}
@@ -37,6 +60,7 @@ def main():
         with open(arc, "wb") as f:
             f.write(lcodec.pack(data, frame_size=8192))
         print(f"wrote {arc}")
+    golden_weft()
 
 
 if __name__ == "__main__":
