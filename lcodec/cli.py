@@ -25,6 +25,7 @@ EXAMPLES = {
     "bench": "lcodec bench my-corpus/ --json bench.json --csv bench.csv",
     "demo": "lcodec demo",
     "train": "lcodec train station-logs/ -o logs.lcmodel --time-limit 600",
+    "explain": "lcodec explain station-logs/vh07_gateway.log -o vh07-costs.html",
 }
 
 
@@ -291,10 +292,12 @@ def info(path, as_json, frames):
 @click.option("--split", "split", type=click.FloatRange(0.01, 0.99), default=None,
               help="CORPUS_DIR is a flat folder: hold out this fraction of files as the test split (fixed seed).")
 @click.option("--seed", type=int, default=0, show_default=True, help="Seed of --split.")
+@click.option("--report", "report_dir", type=click.Path(), default=None,
+              help="Also write a report folder: index.html, summary.md, the rows, PNG charts (needs matplotlib).")
 @force_option
 @quiet_option
 @guarded
-def bench(corpus_dir, model, json_out, csv_out, split, seed, force, quiet):
+def bench(corpus_dir, model, json_out, csv_out, split, seed, report_dir, force, quiet):
     """Compare lcodec with general compressors on a corpus with train/ and test/ folders.
 
     Every test file is compressed on its own by every codec and round-trip checked.
@@ -305,6 +308,11 @@ def bench(corpus_dir, model, json_out, csv_out, split, seed, force, quiet):
     for out in (json_out, csv_out):
         if out and os.path.lexists(out) and not force:
             raise UsageError(f"{out} exists; pass --force to overwrite it")
+    if report_dir:
+        from . import report as R
+
+        R.check_out_dir(report_dir, force)
+        R.require_matplotlib()
     codecs = [B.lcodec_codec(None, "lcodec-strata")]
     if model:
         codecs.insert(0, B.lcodec_codec(model, "lcodec-model"))
@@ -315,6 +323,58 @@ def bench(corpus_dir, model, json_out, csv_out, split, seed, force, quiet):
     if csv_out:
         B.write_csv(rows, csv_out)
     click.echo(B.format_table(rows))
+    if report_dir:
+        R.write_report(rows, report_dir, title=f"lcodec bench: {os.path.basename(os.path.abspath(corpus_dir))}",
+                       force=force)
+        if not quiet:
+            click.echo(f"report written to {os.path.join(report_dir, 'index.html')}", err=True)
+
+
+@main.command(epilog=_example("explain"))
+@click.argument("file")
+@model_option
+@click.option("-o", "--output", "output", required=True, type=click.Path(dir_okay=False),
+              help="The HTML page to write (a PNG heat strip is written beside it).")
+@click.option("--png", "png_out", type=click.Path(dir_okay=False), default=None,
+              help="Where to write the PNG heat strip. Default: OUTPUT with .png in place of .html.")
+@click.option("--frame-size", type=click.IntRange(1, 1 << 26), default=1 << 20, show_default=True,
+              help="Frame size to cost the file with (as `lcodec pack --frame-size`).")
+@click.option("--view-bytes", type=click.IntRange(1, 1 << 24), default=None,
+              help="Render at most this many bytes in the page (default 256 KiB of text, 64 KiB of hex); "
+                   "totals always cover the whole file.")
+@force_option
+@quiet_option
+@guarded
+def explain(file, model, output, png_out, frame_size, view_bytes, force, quiet):
+    """Show what every byte of FILE costs under the model, as `lcodec pack` would code it.
+
+    Writes an HTML page: a heat map of bits per byte over the text (a hex view for
+    binary files), the most expensive 64-byte regions, and the totals (sum of symbol
+    costs, the packed archive's real size, bits per byte); and a PNG heat strip.
+    """
+    from . import explain as X
+
+    png_out = png_out or X.default_png_path(output)
+    if os.path.abspath(png_out) == os.path.abspath(output):
+        raise UsageError("--png and -o/--output name the same file")
+    for out in (output, png_out):
+        if os.path.lexists(out) and not force:
+            raise UsageError(f"{out} exists; pass --force to overwrite it")
+    if os.path.isdir(file):
+        raise UsageError(f"{file} is a folder; explain takes one file")
+    data = read_input(file)
+    X.require_matplotlib()
+    bar = Progress(2 * len(data), "explaining", quiet)
+    ex = X.explain(data, model, frame_size, bar)
+    bar.close()
+    png = X.heat_png(ex)
+    page = X.render_html(ex, os.path.basename(file), view_bytes, png)
+    atomic_write(png_out, png, force=force, mode=X.readable_mode())
+    atomic_write(output, page.encode("utf-8"), force=force, mode=X.readable_mode())
+    if not quiet:
+        click.echo(f"{ex.raw_bytes} bytes: {ex.total_bits:,.0f} bits under the model ({ex.bits_per_byte:.3f} bits "
+                   f"per byte); packed {ex.archive_bytes} bytes ({ex.archive_bits_per_byte:.3f} bits per byte); "
+                   f"wrote {output} and {png_out}", err=True)
 
 
 @main.command(epilog=_example("train"))

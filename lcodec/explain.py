@@ -31,6 +31,7 @@ from . import api
 from . import container as C
 from .coder import active_lanes, lane_layout
 from .models import identity_text, resolve
+from .report import readable_mode, require_matplotlib  # noqa: F401  (also used by the CLI)
 
 VIEW_TEXT_BYTES = 256 * 1024
 VIEW_HEX_BYTES = 64 * 1024
@@ -89,16 +90,19 @@ def _frame_costs(model, raw: np.ndarray, lanes: int) -> np.ndarray:
     return out
 
 
-def symbol_costs(data: bytes, model=None, frame_size: int = api.DEFAULT_FRAME_SIZE) -> np.ndarray:
+def symbol_costs(data: bytes, model=None, frame_size: int = api.DEFAULT_FRAME_SIZE, progress=None) -> np.ndarray:
     """The cost in bits of every byte of `data` under `model` (None: the built-in
     adaptive model; a model file's path; or a model object), one float64 per byte in
     file order, framed and laned as api.pack_stats codes it. Each frame starts from a
-    fresh model state, as in the container."""
+    fresh model state, as in the container. `progress`, if given, is called with the
+    byte count of each frame done."""
     m = resolve(model)
     arr = np.frombuffer(bytes(data), np.uint8)
     out = np.empty(len(arr), np.float64)
     for off, n, lanes in frame_spans(len(arr), m, frame_size):
         out[off:off + n] = _frame_costs(m, arr[off:off + n], lanes)
+        if progress:
+            progress(n)
     return out
 
 
@@ -191,12 +195,13 @@ def top_windows(costs: np.ndarray, window: int = WINDOW, n: int = TOP_N) -> list
     return out
 
 
-def explain(data: bytes, model=None, frame_size: int = api.DEFAULT_FRAME_SIZE) -> Explanation:
-    """Symbol costs of `data`, and the archive api.pack_stats makes of it, side by side."""
+def explain(data: bytes, model=None, frame_size: int = api.DEFAULT_FRAME_SIZE, progress=None) -> Explanation:
+    """Symbol costs of `data`, and the archive api.pack_stats makes of it, side by side.
+    `progress`, if given, is called with byte counts (2 x len(data) in all)."""
     data = bytes(data)
     m = resolve(model)
-    costs = symbol_costs(data, m, frame_size)
-    blob, stats = api.pack_stats(data, m, frame_size)
+    costs = symbol_costs(data, m, frame_size, progress)
+    blob, stats = api.pack_stats(data, m, frame_size, progress)
     cont = C.read_container(blob)
     spans = frame_spans(len(data), m, frame_size)
     frames = []
@@ -435,24 +440,10 @@ model gave it.</p>
 """
 
 
-def _pyplot():
-    try:
-        import matplotlib
-
-        matplotlib.use("Agg")
-        import matplotlib.pyplot as plt
-    except ImportError:
-        from .errors import UsageError
-
-        raise UsageError("charts need matplotlib, which is not installed: "
-                         "pip install matplotlib (or pip install 'lcodec[bench]')") from None
-    return plt
-
-
 def heat_png(ex: Explanation, path: str | None = None, columns: int = 1200) -> bytes:
     """A PNG of the whole file: mean bits per byte along it (line) over a heat strip,
     frame boundaries marked. Returns the PNG bytes (and writes them to `path`, if given)."""
-    plt = _pyplot()
+    plt = require_matplotlib()
     from matplotlib.colors import BoundaryNorm, ListedColormap
 
     n = ex.raw_bytes
@@ -468,15 +459,17 @@ def heat_png(ex: Explanation, path: str | None = None, columns: int = 1200) -> b
     norm = BoundaryNorm(bounds, cmap.N)
     fig, (ax, hx) = plt.subplots(2, 1, figsize=(11.2, 3.6), dpi=100, sharex=True,
                                  gridspec_kw={"height_ratios": [3, 1], "hspace": 0.08})
-    ax.plot(centre, mean, color="#8c1437", lw=1.0)
-    ax.fill_between(centre, mean, color="#f98c4c", alpha=0.25, lw=0)
+    k = max(1, cols // 60)  # a moving average over about 1/60 of the file, drawn over the columns
+    smooth = np.convolve(np.pad(mean, (k // 2, k - 1 - k // 2), mode="edge"), np.ones(k) / k, mode="valid")
+    ax.fill_between(centre, mean, color="#f98c4c", alpha=0.35, lw=0, label="mean of each column")
+    ax.plot(centre, smooth, color="#8c1437", lw=1.4, label=f"moving average over {k} columns")
     ax.axhline(ex.bits_per_byte, color="#1d2430", lw=0.8, ls="--",
-               label=f"file average {ex.bits_per_byte:.3f} bits per byte")
+               label=f"file average {ex.bits_per_byte:.3f}")
     ax.set_ylabel("bits per byte")
     ax.set_ylim(0, max(8.5, float(mean.max()) * 1.05) if n else 8.5)
     ax.grid(axis="y", color="#e3e6ea", lw=0.6)
-    ax.legend(loc="upper right", frameon=False, fontsize=9)
-    ax.set_title(f"mean cost per byte along the file ({cols:,} columns of about {max(n // cols, 1):,} bytes)",
+    ax.legend(loc="lower right", bbox_to_anchor=(1.0, 1.0), frameon=False, fontsize=8.5, ncol=3)
+    ax.set_title(f"bits per byte along the file\n{cols:,} columns of about {max(n // cols, 1):,} bytes",
                  fontsize=10, loc="left")
     hx.imshow(mean[None, :], aspect="auto", cmap=cmap, norm=norm, extent=(0, max(n, 1), 0, 1),
               interpolation="nearest")
@@ -489,7 +482,9 @@ def heat_png(ex: Explanation, path: str | None = None, columns: int = 1200) -> b
         a.set_xlim(0, max(n, 1))
         for s in ("top", "right"):
             a.spines[s].set_visible(False)
-    hx.ticklabel_format(axis="x", style="plain")
+    from matplotlib.ticker import FuncFormatter
+
+    hx.xaxis.set_major_formatter(FuncFormatter(lambda v, _pos: f"{v:,.0f}"))
     buf = io.BytesIO()
     fig.savefig(buf, format="png", bbox_inches="tight", facecolor="white")
     plt.close(fig)

@@ -59,9 +59,16 @@ def require_matplotlib():
         matplotlib.use("Agg")
         import matplotlib.pyplot as plt
     except ImportError:
-        raise UsageError("the report's charts need matplotlib, which is not installed: "
+        raise UsageError("charts need matplotlib, which is not installed: "
                          "pip install matplotlib (or pip install 'lcodec[bench]')") from None
     return plt
+
+
+def readable_mode() -> int:
+    """0o666 less the umask: reports and pages are for reading (the usual file mode)."""
+    mask = os.umask(0)
+    os.umask(mask)
+    return 0o666 & ~mask
 
 
 def check_out_dir(out_dir: str, force: bool = False) -> None:
@@ -493,10 +500,8 @@ def _write_folder(out_dir: str, files: dict, rows) -> None:
             atomic_write(os.path.join(folder, name), blob, force=True)
         write_json(rows, os.path.join(folder, "bench.json"))
         write_csv(rows, os.path.join(folder, "bench.csv"))
-        mask = os.umask(0)  # a report is for reading: the usual file mode, not a private one
-        os.umask(mask)
         for name in list(files) + ["bench.json", "bench.csv"]:
-            os.chmod(os.path.join(folder, name), 0o666 & ~mask)
+            os.chmod(os.path.join(folder, name), readable_mode())
 
     if os.path.isdir(out_dir):
         put(out_dir)
