@@ -172,7 +172,7 @@ def read_header(buf) -> tuple[dict, int]:
     _need(1 <= frame_size <= MAX_FRAME_RAW, "header damaged (bad frame size)")
     try:
         identity = json.loads(bytes(mv[pos + 4:pos + 4 + ilen]).decode("utf-8"))
-    except (UnicodeDecodeError, ValueError):
+    except (UnicodeDecodeError, ValueError, RecursionError):  # RecursionError: nesting too deep
         raise DataError("header damaged (model identity is not readable)") from None
     _need(isinstance(identity, dict) and isinstance(identity.get("model"), str), "header damaged (no model identity)")
     members = None
@@ -213,14 +213,44 @@ def _read_members(mv) -> list[Member]:
     return out
 
 
+def frame_count(content_size: int, frame_size: int, members: list[Member] | None) -> int:
+    """How many frames the sizes imply (computed without listing them)."""
+    sizes = [m.size for m in members if not m.is_dir] if members is not None else [content_size]
+    return sum(-(-s // frame_size) for s in sizes)
+
+
 def expected_frame_sizes(content_size: int, frame_size: int, members: list[Member] | None) -> list[int]:
-    """Raw length of every frame: members start on a frame boundary; empty ones have none."""
+    """Raw length of every frame: members start on a frame boundary; empty ones have none.
+    Check frame_count() against the frames really present first: the list is that long."""
     sizes = [m.size for m in members if not m.is_dir] if members is not None else [content_size]
     out = []
     for s in sizes:
         full, rest = divmod(s, frame_size)
         out.extend([frame_size] * full + ([rest] if rest else []))
     return out
+
+
+def read_record(mv, pos: int, index: int, where: str | None = None) -> Frame:
+    """Parse and check the frame record at `pos` on its own (record CRC-32C, method, lanes,
+    stored length, coded bytes within the file); the caller checks the raw length it
+    expects. Raises DataError. Also used to find records by scanning (lcodec.salvage)."""
+    where = where or f"frame {index}"
+    start = pos
+    raw_len, pos = read_uvarint(mv, pos, where)
+    coded_len, pos = read_uvarint(mv, pos, where)
+    _need(pos + 1 <= len(mv), f"archive truncated at {where}")
+    method = mv[pos]
+    lanes, pos = read_uvarint(mv, pos + 1, where)
+    _need(pos + 12 <= len(mv), f"archive truncated at {where}")
+    raw_crc, coded_crc, rcrc = struct.unpack_from("<III", mv, pos)
+    _need(crc32c(bytes(mv[start:pos + 8])) == rcrc, f"frame {index} damaged (record checksum does not match)")
+    _need(method in METHOD_NAMES and raw_len <= MAX_FRAME_RAW, f"frame {index} damaged (impossible record)")
+    _need(1 <= lanes <= min(MAX_LANES, max(raw_len, 1)), f"frame {index} damaged (bad lane count)")
+    if method == METHOD_STORED:
+        _need(coded_len == raw_len, f"frame {index} damaged (stored frame length)")
+    pos += 12
+    _need(pos + coded_len <= len(mv), f"archive truncated at {where}")
+    return Frame(index, start, pos, raw_len, coded_len, method, lanes, raw_crc, coded_crc, mv[pos:pos + coded_len])
 
 
 def read_container(buf) -> Container:
@@ -230,29 +260,17 @@ def read_container(buf) -> Container:
     members = h["members"]
     if members is not None:
         _need(sum(m.size for m in members) == h["content_size"], "header damaged (member sizes do not add up)")
+    # Count before listing: a header claiming 2**50 bytes in frames of 1 byte must not
+    # make a list of 2**50 sizes (n_frames is already bounded by the file size).
+    _need(frame_count(h["content_size"], h["frame_size"], members) == h["n_frames"],
+          "header damaged (frame count does not match the sizes)")
     expect = expected_frame_sizes(h["content_size"], h["frame_size"], members)
-    _need(len(expect) == h["n_frames"], "header damaged (frame count does not match the sizes)")
     frames = []
     for i, want in enumerate(expect):
-        where = f"frame {i} (of {len(expect)})"
-        start = pos
-        raw_len, pos = read_uvarint(mv, pos, where)
-        coded_len, pos = read_uvarint(mv, pos, where)
-        _need(pos + 1 <= len(mv), f"archive truncated at {where}")
-        method = mv[pos]
-        lanes, pos = read_uvarint(mv, pos + 1, where)
-        _need(pos + 12 <= len(mv), f"archive truncated at {where}")
-        raw_crc, coded_crc, rcrc = struct.unpack_from("<III", mv, pos)
-        _need(crc32c(bytes(mv[start:pos + 8])) == rcrc, f"frame {i} damaged (record checksum does not match)")
-        _need(raw_len == want and method in METHOD_NAMES, f"frame {i} damaged (impossible record)")
-        _need(1 <= lanes <= min(MAX_LANES, max(raw_len, 1)), f"frame {i} damaged (bad lane count)")
-        if method == METHOD_STORED:
-            _need(coded_len == raw_len, f"frame {i} damaged (stored frame length)")
-        pos += 12
-        _need(pos + coded_len <= len(mv), f"archive truncated at {where}")
-        frames.append(Frame(i, start, pos, raw_len, coded_len, method, lanes, raw_crc, coded_crc,
-                            mv[pos:pos + coded_len]))
-        pos += coded_len
+        fr = read_record(mv, pos, i, f"frame {i} (of {len(expect)})")
+        _need(fr.raw_len == want, f"frame {i} damaged (impossible record)")
+        frames.append(fr)
+        pos = fr.payload_offset + fr.coded_len
     _need(pos == len(mv), f"archive has {len(mv) - pos} unexpected bytes after its last frame")
     return Container(h["version"], h["flags"], h["content_size"], h["content_sha256"], h["frame_size"],
                      h["identity"], members, frames, len(mv), h["spans"])
