@@ -157,6 +157,31 @@ def export(net, cfg) -> tuple[dict, dict]:
     return params, arrays
 
 
+def write_curve_png(curve: list, path: str, title: str) -> str | None:
+    """Train and validation bits per byte against time; None when matplotlib is missing."""
+    try:
+        import matplotlib
+        matplotlib.use("Agg")
+        import matplotlib.pyplot as plt
+    except ImportError:
+        return None
+    fig, ax = plt.subplots(figsize=(7, 4), dpi=100)
+    t = [c["seconds"] for c in curve]
+    ax.plot(t, [c["train_bpb"] for c in curve], label="train (running mean)", color="#3b6ea8")
+    ax.plot(t, [c["val_bpb"] for c in curve], label="validation", color="#c8553d", marker="o", ms=3)
+    ax.set_xlabel("seconds")
+    ax.set_ylabel("bits per byte")
+    ax.set_title(title)
+    ax.grid(alpha=0.3)
+    ax.legend()
+    fig.tight_layout()
+    tmp = path + ".part"
+    fig.savefig(tmp, format="png")
+    plt.close(fig)
+    os.replace(tmp, path)
+    return path
+
+
 def integer_bpb(model: Weft, pos: Positions, idx: np.ndarray) -> float:
     bits = 0.0
     for i in range(0, len(idx), 8192):
@@ -254,6 +279,9 @@ def train(corpus: list[str], out: str, time_limit: float = 600.0, preset: str = 
                        "integer_bpb": round(int_bpb, 4)},
         "learning_curve": curve,
     }
+    png = write_curve_png(curve, out + ".curve.png", f"weft/{preset}: bits per byte during training")
+    if png:
+        meta["learning_curve_png"] = os.path.basename(png)
     sha = modelfile.dump(out, {"name": "weft", "params": params}, arrays, **meta)
     echo(f"exported integer model: validation {int_bpb:.4f} bits per byte (float QAT {float_bpb:.4f}); "
          f"{os.path.getsize(out):,} bytes, sha256 {sha[:16]}... -> {out}")
