@@ -17,17 +17,18 @@ from __future__ import annotations
 
 import hashlib
 import json
-import os
 import struct
 
 import numpy as np
 
 from .errors import ModelError
+from .fsio import atomic_write
 
 MAGIC = b"\x9blcmodel"
 VERSION = 1
 MAX_META = 1 << 20
 MAX_ARRAY_BYTES = 1 << 31
+MAX_NDIM = 8
 DTYPES = {"u1": np.uint8, "i1": np.int8, "i2": np.int16, "u2": np.uint16, "i4": np.int32, "i8": np.int64}
 
 
@@ -44,12 +45,7 @@ def dump(path: str, architecture: dict, arrays: dict[str, np.ndarray] | None = N
     m = json.dumps({"architecture": architecture, "arrays": listing, **meta}, sort_keys=True).encode()
     body = MAGIC + struct.pack("<HHI", VERSION, 0, len(m)) + m + b"".join(blobs)
     body += hashlib.sha256(body).digest()
-    tmp = f"{path}.part-{os.getpid()}"
-    with open(tmp, "wb") as f:
-        f.write(body)
-        f.flush()
-        os.fsync(f.fileno())
-    os.replace(tmp, path)
+    atomic_write(path, body, force=True)  # temporary name, fsync, rename; no temp left on error
     return hashlib.sha256(body).hexdigest()
 
 
@@ -77,12 +73,21 @@ def parse(blob: bytes, where: str = "model file") -> tuple[dict, dict[str, np.nd
     arrays, pos, end = {}, 16 + mlen, len(blob) - 32
     for spec in listing:
         try:
-            name, code, shape = str(spec["name"]), spec["dtype"], [int(x) for x in spec["shape"]]
+            name, code, shape = spec["name"], spec["dtype"], spec["shape"]
             dt = np.dtype(DTYPES[code]).newbyteorder("<")
         except Exception:
             bad("damaged (bad array description)")
+        # Exact JSON integers only (no strings, floats or booleans), a bounded rank, and
+        # every extent bounded (a zero elsewhere must not let one extent be 10**30).
+        if not (isinstance(name, str) and isinstance(shape, list) and len(shape) <= MAX_NDIM
+                and all(type(x) is int for x in shape)):
+            bad("damaged (bad array description)")
         if any(x < 0 for x in shape):
             bad(f"array {name}: negative shape")
+        if name in arrays:
+            bad(f"array {name}: listed twice")
+        if any(x > MAX_ARRAY_BYTES for x in shape):
+            bad(f"array {name}: larger than the file holds")
         nbytes = int(np.prod(shape, dtype=object)) * dt.itemsize
         if nbytes > MAX_ARRAY_BYTES or pos + nbytes > end:
             bad(f"array {name}: larger than the file holds")
