@@ -15,8 +15,23 @@ def _os_error(action: str, path: str, e: OSError) -> UsageError:
     return UsageError(f"cannot {action} {path}: {e.strerror or e}")
 
 
+def _umask() -> int:
+    try:  # Linux: read it without changing it
+        with open("/proc/self/status") as f:
+            for line in f:
+                if line.startswith("Umask:"):
+                    return int(line.split()[1], 8)
+    except (OSError, ValueError):
+        pass
+    old = os.umask(0o022)
+    os.umask(old)
+    return old
+
+
 def atomic_write(path: str, data: bytes, force: bool = False, mode: int | None = None) -> None:
-    """Write via a temporary name in the same folder, fsync, then rename into place."""
+    """Write via a temporary name in the same folder, fsync, then rename into place.
+    The file gets `mode`, or what a plain open() would give (0o666 less the umask), not
+    the temporary file's private 0o600."""
     if os.path.lexists(path) and not force:
         raise UsageError(f"{path} exists; pass --force to overwrite it")
     if os.path.isdir(path):
@@ -31,8 +46,7 @@ def atomic_write(path: str, data: bytes, force: bool = False, mode: int | None =
             f.write(data)
             f.flush()
             os.fsync(f.fileno())
-        if mode is not None:
-            os.chmod(tmp, stat.S_IMODE(mode))
+        os.chmod(tmp, stat.S_IMODE(mode) if mode is not None else 0o666 & ~_umask())
         os.replace(tmp, path)
     except OSError as e:
         _remove_quietly(tmp)
