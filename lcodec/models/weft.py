@@ -22,6 +22,7 @@ the decoder computes one step for every lane at once.
 from __future__ import annotations
 
 import numpy as np
+from numba import njit
 
 PAD = 256  # context symbol for positions before the start of a lane
 LUT_STEPS_PER_NAT = 32
@@ -55,6 +56,33 @@ def check_arrays(params: dict, arrays: dict) -> None:
         raise ValueError("biases out of range")
 
 
+@njit(cache=True, nogil=True)
+def _requant(acc, b1, m1, s1, out):
+    """h = clamp((acc + b1) * m1 + 2**(s1-1) >> s1, 0, 127), from the exact float32 product."""
+    half = np.int64(1) << (s1 - 1)
+    for i in range(acc.shape[0]):
+        for j in range(acc.shape[1]):
+            v = ((np.int64(acc[i, j]) + b1[j]) * m1 + half) >> s1
+            out[i, j] = np.float32(min(max(v, 0), 127))
+
+
+@njit(cache=True, nogil=True)
+def _softmax_lut(lg, b2, mo, so, lut, out):
+    """freq = lut[min(round((max - logit) * mo / 2**so), len - 1)], row by row."""
+    half = np.int64(1) << (so - 1)
+    last = lut.shape[0] - 1
+    row = np.empty(lg.shape[1], np.int64)
+    for i in range(lg.shape[0]):
+        mx = np.int64(-(1 << 62))
+        for j in range(lg.shape[1]):
+            row[j] = np.int64(lg[i, j]) + b2[j]
+            mx = max(mx, row[j])
+        for j in range(lg.shape[1]):
+            # bound: max - logit < 2**26 and mo < 2**31, so the product < 2**57
+            k = ((mx - row[j]) * mo + half) >> so
+            out[i, j] = np.float64(lut[min(k, last)])
+
+
 class NumpyKernels:
     """The integer forward pass with numpy (float32 BLAS on integer values)."""
 
@@ -73,13 +101,14 @@ class NumpyKernels:
         p = self.p
         x = self.emb[ctx].reshape(len(ctx), -1).astype(np.float32)
         # bound: |x|, |w1| <= 127, window*embed terms: every partial sum < 2**24, exact
-        acc = (x @ self.w1).astype(np.int64) + self.b1
-        h = np.clip((acc * p["m1"] + (1 << (p["s1"] - 1))) >> p["s1"], 0, 127).astype(np.float32)
+        acc = x @ self.w1
+        h = np.empty(acc.shape, np.float32)
+        _requant(acc, self.b1, p["m1"], p["s1"], h)
         # bound: 0 <= h <= 127, |w2| <= 127, hidden terms: every partial sum < 2**24, exact
-        logit = (h @ self.w2).astype(np.int64) + self.b2
-        z = logit.max(axis=1, keepdims=True) - logit
-        idx = np.minimum((z * p["mo"] + (1 << (p["so"] - 1))) >> p["so"], len(self.lut) - 1)
-        return self.lut[idx].astype(np.float64)
+        lg = h @ self.w2
+        out = np.empty(lg.shape, np.float64)
+        _softmax_lut(lg, self.b2, p["mo"], p["so"], self.lut, out)
+        return out
 
 
 class TorchKernels:
