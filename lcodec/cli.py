@@ -352,17 +352,19 @@ def explain(file, model, output, png_out, frame_size, view_bytes, force, quiet):
     binary files), the most expensive 64-byte regions, and the totals (sum of symbol
     costs, the packed archive's real size, bits per byte); and a PNG heat strip.
     """
+    if os.path.isdir(file):
+        raise UsageError(f"{file} is a folder; explain takes one file")
+    data = read_input(file)
     from . import explain as X
 
     png_out = png_out or X.default_png_path(output)
     if os.path.abspath(png_out) == os.path.abspath(output):
         raise UsageError("--png and -o/--output name the same file")
+    if os.path.abspath(file) in (os.path.abspath(output), os.path.abspath(png_out)):
+        raise UsageError("the output would overwrite the input")
     for out in (output, png_out):
         if os.path.lexists(out) and not force:
             raise UsageError(f"{out} exists; pass --force to overwrite it")
-    if os.path.isdir(file):
-        raise UsageError(f"{file} is a folder; explain takes one file")
-    data = read_input(file)
     X.require_matplotlib()
     bar = Progress(2 * len(data), "explaining", quiet)
     ex = X.explain(data, model, frame_size, bar)
