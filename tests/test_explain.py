@@ -25,6 +25,7 @@ from lcodec import container as C
 from lcodec.coder import active_lanes, lane_layout
 from lcodec.explain import (TOP_N, WINDOW, explain, heat_png, looks_like_text, render_html,
                             symbol_costs, top_windows)
+from lcodec.models import resolve
 from lcodec.models.strata import Strata
 
 from pageshot import ink_stats, screenshot
@@ -216,3 +217,18 @@ def test_cli_explain(tmp_path, stdlib_text):
     h = _cli("explain", "--help")
     assert h.returncode == 0 and b"Example:" in h.stdout
     assert not [n for n in os.listdir(tmp_path) if n.startswith(".")]  # no temporary files left
+
+
+def test_model_file_with_its_own_lane_choice():
+    # the committed golden model file (a learned model choosing its own lane count)
+    golden = os.path.join(os.path.dirname(__file__), "golden")
+    model, orig = os.path.join(golden, "weft-tiny.lcmodel"), os.path.join(golden, "weft-v1-text.orig")
+    if not (os.path.isfile(model) and os.path.isfile(orig)):
+        pytest.skip("no golden model file here")
+    with open(orig, "rb") as f:
+        data = f.read()
+    ex = explain(data, model)
+    m = resolve(model)
+    assert [f.lanes for f in ex.frames] == [api.frame_lanes(m, len(data))]
+    assert ex.frames[0].method != "stored"
+    assert ex.total_bits == pytest.approx(api.pack_stats(data, model)[1].nll_bits, rel=1e-6)
