@@ -19,7 +19,8 @@ from .fsio import ARCHIVE_EXT, atomic_write, read_input
 
 EXAMPLES = {
     "pack": "lcodec pack station-logs/ -o station-logs" + ARCHIVE_EXT,
-    "unpack": "lcodec unpack station-logs" + ARCHIVE_EXT + " -o restored/",
+    "unpack": "lcodec unpack station-logs" + ARCHIVE_EXT + " -o restored/\n"
+              "  lcodec unpack damaged" + ARCHIVE_EXT + " -o restored/ --salvage --keep-damaged",
     "verify": "lcodec verify station-logs" + ARCHIVE_EXT + " --against station-logs/",
     "info": "lcodec info station-logs" + ARCHIVE_EXT + " --json",
     "bench": "lcodec bench my-corpus/ --json bench.json --csv bench.csv",
@@ -31,6 +32,16 @@ EXAMPLES = {
 
 def _example(name):
     return f"\b\nExample:\n  {EXAMPLES[name]}"
+
+
+def _silence_stdout():
+    """After stdout failed, point it at /dev/null so the exit flush cannot fail again."""
+    try:
+        fd = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(fd, sys.stdout.fileno())
+        os.close(fd)
+    except (OSError, ValueError):
+        pass
 
 
 def guarded(fn):
@@ -47,6 +58,11 @@ def guarded(fn):
             sys.exit(130)
         except BrokenPipeError:
             sys.exit(1)
+        except OSError as e:  # e.g. stdout on a full disk; file outputs report their own
+            _silence_stdout()
+            where = f" ({e.filename})" if e.filename else ""
+            click.echo(f"lcodec: input/output failed: {e.strerror or e}{where}", err=True)
+            sys.exit(2)
         except MemoryError:
             click.echo("lcodec: out of memory", err=True)
             sys.exit(1)
@@ -176,13 +192,22 @@ def _tree_bytes(inputs) -> int:
               help=f"File or folder to write ('-' for stdout). Default: the archive name without {ARCHIVE_EXT}.")
 @model_option
 @force_option
+@click.option("--salvage", "salvage_mode", is_flag=True,
+              help="Damaged archive: write every member (or the content) whose frames all decode and whose "
+                   "SHA-256 matches, leave the rest out, and write a report (OUT.salvage.json). Exit 1 if "
+                   "anything was damaged.")
+@click.option("--keep-damaged", is_flag=True,
+              help="With --salvage: also write damaged members as NAME.lcodec-damaged, damaged ranges zero-filled.")
+@click.option("--report", "report_path", type=click.Path(dir_okay=False), default=None,
+              help="With --salvage: where the JSON report goes (default: OUT.salvage.json).")
 @quiet_option
 @guarded
-def unpack(archive, output, model, force, quiet):
+def unpack(archive, output, model, force, salvage_mode, keep_damaged, report_path, quiet):
     """Restore an archive: a file, a folder for multi-member archives, or '-' for stdout.
 
     Every frame checksum and the SHA-256 of the content are checked before anything is
-    written under the final name.
+    written under the final name. With --salvage, a damaged archive gives back what is
+    undamaged (see README.md, "Damaged archives").
     """
     from . import api
 
@@ -193,6 +218,18 @@ def unpack(archive, output, model, force, quiet):
         output = archive[: -len(ARCHIVE_EXT)]
     if output != "-" and os.path.lexists(output) and not force:
         raise UsageError(f"{output} exists; pass --force to overwrite it")
+    if salvage_mode or keep_damaged or report_path:
+        from . import salvage as S
+
+        if not salvage_mode:
+            raise UsageError("--keep-damaged and --report go with --salvage")
+        if output == "-":
+            raise UsageError("--salvage writes files and a report: give -o with a file or folder name")
+        res = S.salvage_to(blob, output, model, keep_damaged, force, report_path, archive_name=archive)
+        if not (quiet and res.ok):
+            for line in S.summary(res):
+                click.echo(line, err=True)
+        sys.exit(0 if res.ok else 1)
     multi = api.is_multi(blob)
     bar = Progress(api.info(blob)["content_bytes"], "unpacking", quiet)
     if multi:
