@@ -44,6 +44,7 @@ EDGES = (0.25, 0.5, 1.0, 2.0, 3.0, 4.0, 6.0, 8.0, 12.0)
 COLOURS = ("#ffffff", "#fff6d5", "#ffe9a3", "#ffd36b", "#fdb061", "#f98c4c",
            "#e6573f", "#c4303c", "#8c1437", "#4b0b2f")
 DARK_FROM = 7  # bins from here on get light text
+TITLE_FROM_BIN = 5  # spans of 3 bits per byte and more carry their own hover title (cheaper ones: the line's)
 
 
 # ---- the numbers ------------------------------------------------------------------
@@ -239,23 +240,37 @@ def looks_like_text(data: bytes) -> bool:
     return ctrl <= len(text) // 200
 
 
-def _text_view(data: bytes, costs: np.ndarray, anchors: set) -> str:
-    """Characters in spans coloured by bits per byte; equal neighbours share a span."""
+def _decode_view(data: bytes) -> str:
     for cut in range(4):
         try:
-            text = data[:len(data) - cut].decode("utf-8")
-            break
+            return data[:len(data) - cut].decode("utf-8")
         except UnicodeDecodeError:
             continue
-    else:
-        text = data.decode("latin-1")
-    out = []
+    return data.decode("latin-1")
+
+
+def _text_view(data: bytes, costs: np.ndarray, anchors: set) -> str:
+    """Characters in spans coloured by bits per byte (equal neighbours share a span),
+    each line wrapped in a span whose title gives its offset and bits; spans of
+    TITLE_FROM_BIN and up carry their own title (hover shows the cost)."""
+    text = _decode_view(data)
+    out, line = [], []
     run, run_bin, run_off, run_bits, run_bytes = [], -1, 0, 0.0, 0
+    line_no, line_off, line_bits = 1, 0, 0.0
 
     def close():
-        if run:
-            out.append(f'<span class="c{run_bin}" title="offset {run_off:,}: {run_bytes} byte'
-                       f'{"s" if run_bytes != 1 else ""}, {run_bits:.1f} bits">{"".join(run)}</span>')
+        if not run:
+            return
+        tip = ""
+        if run_bin >= TITLE_FROM_BIN:
+            tip = (f' title="offset {run_off:,}: {run_bits:.1f} bits"' if run_bytes == 1 else
+                   f' title="offset {run_off:,}, {run_bytes} bytes: {run_bits:.1f} bits"')
+        line.append(f'<i class=c{run_bin}{tip}>{"".join(run)}</i>')
+
+    def end_line(end_pos):
+        n = end_pos - line_off
+        out.append(f'<span class="ln" title="line {line_no:,}, offset {line_off:,}: {n} bytes, {line_bits:.1f} bits'
+                   f' ({line_bits / max(n, 1):.2f} per byte)">{"".join(line)}</span>')
 
     cost_list = costs[:len(data)].tolist()
     byte_bins = bins_of(costs[:len(data)]).tolist()
@@ -267,16 +282,19 @@ def _text_view(data: bytes, costs: np.ndarray, anchors: set) -> str:
             nb = len(ch.encode("utf-8"))
             bits = sum(cost_list[pos:pos + nb])
             b = bisect.bisect_right(EDGES, bits / nb)
+        line_bits += bits
         if pos in anchors:
             close()
             run = []
-            out.append(f'<a id="o{pos}"></a>')
+            line.append(f'<a id="o{pos}"></a>')
         if ch == "\n":
             close()
-            run = []
-            out.append(f'<span class="c{b} nl" title="offset {pos:,}: line end, {bits:.1f} bits">'
-                       f'\u21b5</span>\n')
-            run_bin = -1
+            run, run_bin = [], -1
+            tip = f' title="offset {pos:,}: line end, {bits:.1f} bits"' if b >= TITLE_FROM_BIN else ""
+            line.append(f'<i class="c{b} nl"{tip}>\u21b5</i>')
+            end_line(pos + 1)
+            out.append("\n")
+            line, line_no, line_off, line_bits = [], line_no + 1, pos + 1, 0.0
         else:
             if ch < " " and ch not in "\t" or ch == "\x7f":
                 glyph = "\u00b7"
@@ -290,6 +308,8 @@ def _text_view(data: bytes, costs: np.ndarray, anchors: set) -> str:
             run_bytes += nb
         pos += nb
     close()
+    if line:
+        end_line(pos)
     return "".join(out)
 
 
@@ -302,9 +322,9 @@ def _hex_view(data: bytes, costs: np.ndarray, anchors: set) -> str:
         for j, byte in enumerate(chunk):
             i = row + j
             b = bins[i]
-            cells.append(f'<i class="c{b}" title="offset {i:,}: {costs[i]:.1f} bits">{byte:02x}</i>')
+            cells.append(f'<i class=c{b} title="offset {i:,}: {costs[i]:.1f} bits">{byte:02x}</i>')
             ch = chr(byte) if 32 <= byte < 127 else "\u00b7"
-            chars.append(f'<i class="c{b}">{html.escape(ch, quote=False)}</i>')
+            chars.append(f'<i class=c{b}>{html.escape(ch, quote=False)}</i>')
         pad = "   " * (HEX_ROW - len(chunk))
         anchor = "".join(f'<a id="o{a}"></a>' for a in range(row, row + HEX_ROW) if a in anchors)
         lines.append(f'{anchor}<span class="off">{row:08x}</span>  {" ".join(cells)}{pad}  {"".join(chars)}')
@@ -338,6 +358,7 @@ td.x{font-family:ui-monospace,"DejaVu Sans Mono",Menlo,monospace;font-size:12px;
   font-family:ui-monospace,"DejaVu Sans Mono",Menlo,monospace;font-size:12.5px;line-height:1.5;
   white-space:pre-wrap;overflow-wrap:anywhere;tab-size:4;margin:0}
 .view.hex{white-space:pre;overflow-x:auto}
+.view i{font-style:normal}
 .view .off{color:#8a93a1}
 .view .nl{color:#b9bfc8}
 .view .c7.nl,.view .c8.nl,.view .c9.nl{color:#f0d0d0}
@@ -432,7 +453,7 @@ model gave it.</p>
 <table><tr><th>frame</th><th>offset</th><th>bytes</th><th>lanes</th><th class="l">method</th><th>model bits</th>
 <th>bits per byte</th><th>archive bytes</th></tr>{frame_rows}</table>
 <h2>Heat map</h2>
-<p class="note">{cap_note} Colour: bits per byte (hover for the offset and cost).
+<p class="note">{cap_note} Colour: bits per byte. Hover: a line's offset and bits, or those of an expensive run (3 bits per byte or more); in the hex view, every byte's.
 {"&#8629; marks a line end." if text_mode else "Hex view: offset, 16 bytes, then the bytes as text."}</p>
 <div class="legend">{_legend()}</div>
 <pre class="view{'' if text_mode else ' hex'}">{view}</pre>
