@@ -32,6 +32,10 @@ CHUNK_SYMBOLS = 4096
 def check_arrays(params: dict, arrays: dict) -> None:
     """Refuse a model whose arrays do not fit its parameters or break the exactness bounds."""
     W, E, H = params["window"], params["embed"], params["hidden"]
+    # Exact positive integers: with embed 0 the arrays below are empty and the exactness
+    # bound holds for any window, so a hostile file could ask for a window of 10**12.
+    if not all(type(v) is int and v >= 1 for v in (W, E, H)):
+        raise ValueError("window, embed and hidden must be positive integers")
     want = {"emb": ((257, E), np.int8), "w1": ((W * E, H), np.int8), "b1": ((H,), np.int32),
             "w2": ((H, 256), np.int8), "b2": ((256,), np.int32)}
     for name, (shape, dt) in want.items():
