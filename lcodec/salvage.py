@@ -223,10 +223,12 @@ def scan_records(mv, lo: int, hi: int, lengths: set | None = None) -> dict:
 
 def _place(mv, first: int, lay: Layout, scan_from: int, whole: bool):
     """Frame number -> record: walk from the header's end, then place the records found by
-    scanning. `whole`: the file is long enough to hold every frame, so a chain of records
-    that ends exactly at the end of the file holds the archive's last frames. A placement
-    must leave at least MIN_RECORD bytes for each frame it skips (no record is shorter).
-    Returns (placed {index: Frame}, unplaced [Frame], bytes after the last frame)."""
+    scanning. `whole`: the file is long enough to hold every frame (so the frame count is
+    bounded by the file's size), and a chain of records that ends exactly at the end of
+    the file holds the archive's last frames; only then are records also placed by their
+    raw lengths, and only where exactly one place fits (bytes may have been deleted, so
+    the room between records proves nothing). Returns (placed {index: Frame}, unplaced
+    [Frame], bytes after the last frame)."""
     n = len(mv)
     placed = {}
     pos, i = first, 0
@@ -234,7 +236,7 @@ def _place(mv, first: int, lay: Layout, scan_from: int, whole: bool):
         fr = _record(mv, pos)
         if fr is None or fr.raw_len != lay.raw_len(i):
             break
-        fr.index = i
+        fr.index, fr.placed_by = i, "header"
         placed[i] = fr
         pos, i = _end(fr), i + 1
     if i == lay.n:
@@ -259,10 +261,10 @@ def _place(mv, first: int, lay: Layout, scan_from: int, whole: bool):
                 chain.append(q)
                 q = _end(heads[q])
             base = lay.n - len(chain)
-            if (base >= i and (base - i) * C.MIN_RECORD <= max(chain[0] - pos, 0)
+            if (base >= i
                     and all(heads[q].raw_len == lay.raw_len(base + j) for j, q in enumerate(chain))):
                 for j, q in enumerate(chain):
-                    heads[q].index = base + j
+                    heads[q].index, heads[q].placed_by = base + j, "end of file"
                     placed[base + j] = heads[q]
                     used.add(q)
     spans = sorted((f.offset, _end(f)) for f in placed.values() if _intact(f))
@@ -285,27 +287,23 @@ def _place(mv, first: int, lay: Layout, scan_from: int, whole: bool):
         lo = max((f.index for f in before), default=-1) + 1  # the first frame number it may take
         hi = min((f.index for f in after), default=lay.n)  # frame numbers stop before this
         gap_start = max((_end(f) for f in before), default=first)
-        gap_end = min((f.offset for f in after), default=None)
 
-        def fits(j, seg=seg, lo=lo, hi=hi, gap_start=gap_start, gap_end=gap_end, seg_end=seg_end, s=s):
-            if not (lo <= j and j + len(seg) <= hi and (j - lo) * C.MIN_RECORD <= s - gap_start):
-                return False
-            if gap_end is not None and (hi - j - len(seg)) * C.MIN_RECORD > gap_end - seg_end:
-                return False
-            return all(heads[q].raw_len == lay.raw_len(j + t) for t, q in enumerate(seg))
+        def fits(j, seg=seg, lo=lo, hi=hi):
+            return (lo <= j and j + len(seg) <= hi and not any(j + t in placed for t in range(len(seg)))
+                    and all(heads[q].raw_len == lay.raw_len(j + t) for t, q in enumerate(seg)))
 
+        where, how = [], "raw lengths"
         if _lenient_end(mv, gap_start) == s and gap_start < s and fits(lo + 1):
-            where = [lo + 1]  # the damaged head just before points exactly at this record
-        else:
-            where = []
-            for j in range(lo, min(hi - len(seg) + 1, lo + MAX_PATTERN_SPAN)):
+            where, how = [lo + 1], "damaged head before it"  # its length fields point exactly here
+        elif whole and hi - lo <= MAX_PATTERN_SPAN:
+            for j in range(lo, hi - len(seg) + 1):
                 if fits(j):
                     where.append(j)
                     if len(where) > 1:
                         break
         if len(where) == 1 and not any(where[0] + t in placed for t in range(len(seg))):
             for t, q in enumerate(seg):
-                heads[q].index = where[0] + t
+                heads[q].index, heads[q].placed_by = where[0] + t, how
                 placed[where[0] + t] = heads[q]
         else:
             unplaced.extend(heads[q] for q in seg)
@@ -321,6 +319,7 @@ class FrameResult:
     archive_range: tuple | None = None
     exact: bool = True  # archive_range is the record itself, not only the region it lies in
     data: bytes | None = field(default=None, repr=False)
+    placed_by: str = ""  # "header" (walked from it), "end of file", "damaged head before it", "raw lengths"
 
 
 @dataclass
@@ -408,6 +407,11 @@ class Salvage:
                                                                    if f.status == "missing")) if lay else None,
                        "found_but_unplaced": len(self.unplaced)},
             "damaged_frames": damaged,
+            # Records carry no frame number: one found by scanning is placed by the evidence
+            # named here, and a record copied in from elsewhere would pass its own CRC-32C.
+            "good_frames_placed_by_scanning": [
+                {"frame": i, "placed_by": f.placed_by, "archive_range": list(f.archive_range)}
+                for i, f in sorted(self.frames.items()) if f.status == "good" and f.placed_by != "header"],
             "unplaced_records": [{"archive_range": list(f.archive_range), "reason": f.reason} for f in self.unplaced],
             "problems": list(self.problems),
             "ranges": "half-open [start, end) byte offsets",
@@ -505,7 +509,7 @@ def salvage(blob, model=None, progress=None) -> Salvage:
                     fr = placed[i]
                     data, why = _decode(m, fr, progress)
                     frames[i] = FrameResult(i, "good" if data is not None else "damaged", why,
-                                            (fr.offset, _end(fr)), True, data)
+                                            (fr.offset, _end(fr)), True, data, fr.placed_by)
                     continue
                 j = bisect.bisect_left(order, i)
                 a = _end(placed[order[j - 1]]) if j > 0 else hints.end
