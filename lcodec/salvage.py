@@ -34,6 +34,7 @@ from __future__ import annotations
 import bisect
 import json
 import os
+import re
 from dataclasses import dataclass, field
 
 from . import container as C
@@ -661,6 +662,7 @@ def salvage_to(blob, output: str, model=None, keep_damaged: bool = False, force:
         if p and os.path.lexists(p) and not force:
             raise UsageError(f"{p} exists; pass --force to overwrite it")
     res = salvage(blob, model, progress)
+    failed = None
     try:
         if res.members is not None:
             _write_members(res, output, keep_damaged)
@@ -670,11 +672,25 @@ def salvage_to(blob, output: str, model=None, keep_damaged: bool = False, force:
         elif keep_damaged and res.partial is not None:
             atomic_write(damaged_path, res.partial, force=force)
             res.outputs.append(damaged_path)
-    finally:
-        res.outputs.append(report_path)
-        rep = {**({"archive": archive_name} if archive_name else {}), **res.report()}
-        atomic_write(report_path, (json.dumps(rep, indent=2) + "\n").encode("utf-8"), force=True)
+    except LcodecError as e:  # e.g. a full disk: still try to leave the report
+        failed = e
+        res.problems.append(f"writing the output failed: {e}")
+    res.outputs.append(report_path)
+    rep = {**({"archive": archive_name} if archive_name else {}), **res.report()}
+    try:
+        atomic_write(report_path, _report_text(rep).encode("utf-8"), force=True)
+    except LcodecError:
+        if failed is None:
+            raise
+    if failed is not None:
+        raise failed
     return res
+
+
+def _report_text(rep: dict) -> str:
+    """JSON, indented, with each [start, end] range on one line."""
+    text = json.dumps(rep, indent=2, ensure_ascii=False)
+    return re.sub(r"\[\s+(-?\d+),\s+(-?\d+)\s+\]", r"[\1, \2]", text) + "\n"
 
 
 def _write_members(res: Salvage, out_dir: str, keep_damaged: bool) -> None:
