@@ -85,6 +85,8 @@ def for_identity(identity: dict, supplied):
             raise ModelError(f"wrong model: this archive needs the {identity_text(identity)}, "
                              f"but the given model is {identity_text(m.identity)}")
         return m
+    if isinstance(supplied, (str, os.PathLike)):
+        resolve(supplied)  # not needed here, but a damaged or hostile model file given is still refused
     cls = BUILTIN.get(identity.get("model"))
     if cls is None:
         raise DataError(f"archive names an unknown built-in model {identity.get('model')!r}")
