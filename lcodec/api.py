@@ -273,6 +273,9 @@ def unpack_to_dir(blob, out_dir: str, model=None, force: bool = False, progress=
     except OSError as e:
         _remove_quietly(tmp)
         raise UsageError(f"cannot write into {out_dir}: {e.strerror or e}") from None
+    except BaseException:  # a refused link, an interrupt: no temporary folder left behind
+        _remove_quietly(tmp)
+        raise
     return written
 
 
