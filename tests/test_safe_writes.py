@@ -271,3 +271,14 @@ def test_inputs_are_never_touched(work):
     for argv in runs:
         run_cli(*argv)
     assert state() == before
+
+
+def test_a_refused_unpack_into_an_existing_folder_leaves_no_temporary_folder(work):
+    src, out = work
+    dest = out / "dest"
+    (dest / "station").mkdir(parents=True)
+    os.symlink(str(out), dest / "station" / "sub")  # a link where a member folder goes
+    r = run_cli("unpack", out / "tree.lcodec", "-o", dest, "--force")
+    assert r.exit_code == 2 and "symbolic link" in r.stderr
+    assert sorted(os.listdir(dest / "station")) == ["sub"]
+    no_temp_left(out)
