@@ -225,7 +225,13 @@ def unpack(archive, output, model, force, salvage_mode, keep_damaged, report_pat
             raise UsageError("--keep-damaged and --report go with --salvage")
         if output == "-":
             raise UsageError("--salvage writes files and a report: give -o with a file or folder name")
-        res = S.salvage_to(blob, output, model, keep_damaged, force, report_path, archive_name=archive)
+        hints = S.read_header_hints(memoryview(blob))
+        bar = Progress(min(hints.content_size, 1 << 40) if hints else 0, "salvaging", quiet)
+        try:
+            res = S.salvage_to(blob, output, model, keep_damaged, force, report_path, archive_name=archive,
+                               progress=bar)
+        finally:
+            bar.close()
         if not (quiet and res.ok):
             for line in S.summary(res):
                 click.echo(line, err=True)
