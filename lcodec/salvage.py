@@ -45,6 +45,7 @@ DAMAGED_SUFFIX = ".lcodec-damaged"
 REPORT_SUFFIX = ".salvage.json"
 MAX_DISTINCT_FIND = 64  # distinct raw lengths looked up with bytes.find; with more, every offset is tried
 MAX_PATTERN_SPAN = 100_000  # frame numbers tried when placing records by their raw lengths
+MAX_PATTERN_WORK = 2_000_000  # raw-length comparisons in all, when placing records by them
 
 
 # -- the header, read with or without its checksum ----------------------------------------
@@ -278,34 +279,48 @@ def _place(mv, first: int, lay: Layout, scan_from: int, whole: bool):
     rest_set = set(rest)
     successors = {_end(heads[q]) for q in rest}
     unplaced = []
+    # Placed records by offset (frame numbers grow with offsets: every placement keeps it so).
+    by_offset = sorted((f.offset, f.index, _end(f)) for f in placed.values())
+    work = [MAX_PATTERN_WORK]  # raw-length comparisons allowed in all: a hostile file cannot make this slow
     for s in [q for q in rest if q not in successors]:
         seg = [s]
         while _end(heads[seg[-1]]) in rest_set and len(seg) <= len(rest):
             seg.append(_end(heads[seg[-1]]))
         seg_end = _end(heads[seg[-1]])
-        before = [f for f in placed.values() if f.offset < s]
-        after = [f for f in placed.values() if f.offset >= seg_end]
-        lo = max((f.index for f in before), default=-1) + 1  # the first frame number it may take
-        hi = min((f.index for f in after), default=lay.n)  # frame numbers stop before this
-        gap_start = max((_end(f) for f in before), default=first)
+        k = bisect.bisect_left(by_offset, (s, -1, -1))
+        lo = by_offset[k - 1][1] + 1 if k else 0  # the first frame number it may take
+        gap_start = by_offset[k - 1][2] if k else first
+        k2 = bisect.bisect_left(by_offset, (seg_end, -1, -1))
+        hi = by_offset[k2][1] if k2 < len(by_offset) else lay.n  # frame numbers stop before this
 
         def fits(j, seg=seg, lo=lo, hi=hi):
-            return (lo <= j and j + len(seg) <= hi and not any(j + t in placed for t in range(len(seg)))
-                    and all(heads[q].raw_len == lay.raw_len(j + t) for t, q in enumerate(seg)))
+            if not (lo <= j and j + len(seg) <= hi):
+                return False
+            for t, q in enumerate(seg):
+                work[0] -= 1
+                if j + t in placed or heads[q].raw_len != lay.raw_len(j + t):
+                    return False
+            return True
 
         where, how = [], "raw lengths"
         if _lenient_end(mv, gap_start) == s and gap_start < s and fits(lo + 1):
             where, how = [lo + 1], "damaged head before it"  # its length fields point exactly here
         elif whole and hi - lo <= MAX_PATTERN_SPAN:
             for j in range(lo, hi - len(seg) + 1):
+                if work[0] <= 0:
+                    where = []  # out of budget: the search is incomplete, so nothing is proven
+                    break
                 if fits(j):
                     where.append(j)
                     if len(where) > 1:
                         break
-        if len(where) == 1 and not any(where[0] + t in placed for t in range(len(seg))):
+            if work[0] <= 0 and len(where) == 1:
+                where = []
+        if len(where) == 1:
             for t, q in enumerate(seg):
                 heads[q].index, heads[q].placed_by = where[0] + t, how
                 placed[where[0] + t] = heads[q]
+                bisect.insort(by_offset, (q, where[0] + t, _end(heads[q])))
         else:
             unplaced.extend(heads[q] for q in seg)
     return placed, unplaced, 0
