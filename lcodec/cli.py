@@ -278,7 +278,7 @@ def verify(archive, against, model, quiet):
         return
     for p in rep.problems:
         click.echo(f"FAILED: {p}", err=True)
-    if rep.frames or rep.members:  # damage, not an unreadable file: say how to get the rest back
+    if not any(k in p for p in rep.problems for k in ("not an lcodec archive", "unsupported format version")):
         click.echo(f"(lcodec unpack {archive} -o OUT --salvage writes every undamaged member and a report)", err=True)
     sys.exit(1)
 
