@@ -24,7 +24,8 @@ What the format gives (docs/FORMAT.md), and how each piece is used:
   is written under its own name; a single-file archive's content only when every frame
   decodes and the content's SHA-256 matches. With keep_damaged, damaged content is
   written as NAME.lcodec-damaged with its damaged byte ranges zero-filled (the ranges are
-  in the report; bytes outside them passed their frame's CRC-32C only).
+  in the report; bytes outside them passed their frame's CRC-32C only: a record copied
+  in from another archive passes its own CRC and carries no frame number).
 
 Damaged data is never written under a member's own name. Byte ranges in the report are
 half-open [start, end) offsets.

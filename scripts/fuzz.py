@@ -34,13 +34,13 @@ Counted:
   CRC-32C, so that would mean damage got through a checksum.
   Salvage: a member it calls recovered, or content it calls proven, that differs from
   the original; a frame it calls good and places in a seed's own layout whose bytes
-  differ from the original's there, when it was placed by the walk from the header or
-  its bytes are no frame of any seed. A record copied from elsewhere (a splice of two
-  seeds, or of a seed with itself) passes its own CRC-32C and carries no frame number,
-  so salvage may place it by scanning where a record of its length is missing: such
-  frames are counted apart ("copied records placed"); they only ever appear in a
-  .lcodec-damaged output (members and content are written as good only when their
-  SHA-256 matches) and the report lists every good frame placed by scanning;
+  differ from the original's there and are no frame of any seed (damage that got
+  through a CRC-32C). A record copied from elsewhere (a splice of two seeds, or of a
+  seed with itself) passes its own CRC-32C and carries no frame number, so salvage, like
+  any reader of format v1, may take it for the frame whose place it occupies: such
+  frames are counted apart ("copied records placed"); they can only ever appear in a
+  .lcodec-damaged output, since members and content are written as good only when their
+  SHA-256 matches;
 * verify/decode disagreement: verify says ok but decode refuses, or the reverse;
 * worst time per input, and peak RSS (resource.getrusage maxrss). The address space is
   capped (RLIMIT_AS: what setup used plus --mem-headroom GiB) so that an unbounded
@@ -630,7 +630,7 @@ class Originals:
 
 
 ORIGINALS = None
-COPIED = []  # frames salvage placed by scanning that are copies of other frames (splices)
+COPIED = []  # good frames that are copies of other frames (splices), taken for the frame they replace
 
 
 def check_salvage(blob, seed, truth, model, write_dir):
@@ -663,9 +663,9 @@ def check_salvage(blob, seed, truth, model, write_dir):
             if f.status == "good" and key in o.layouts:
                 a, b = lay.content_range(i)
                 if not any(f.data == whole[a:b] for whole in o.layouts[key]):
-                    if f.placed_by == "header" or f.data not in o.frame_data:
+                    if f.data not in o.frame_data:
                         raise Wrong(f"salvage misplaced good frame: frame {i} ({f.placed_by})")
-                    COPIED.append(i)  # a copy of another frame placed by scanning: see the docstring
+                    COPIED.append(i)  # a copy of another frame, taken for this one: see the docstring
     if not crafted:
         for f in res.pieces:
             if f.status == "good" and f.data not in o.frame_data:
@@ -882,7 +882,7 @@ def format_summary(s: dict) -> str:
         f"  crashes {s['crashes']}, hangs {s['hangs']} (budget {s['budget_s']} s), wrong outputs "
         f"{s['wrong_outputs']}, verify/decode disagreements {s['verify_decode_disagreements']}",
         f"  salvage runs {s['salvage_runs']:,} (outputs written and checked {s['salvage_writes']:,}); copied "
-        f"records placed by scanning {s['salvage_copied_records_placed']}",
+        f"records taken for a missing frame {s['salvage_copied_records_placed']}",
         f"  worst time per input {s['worst_time_per_input_s']} s ({s['worst_input']})",
         f"  peak RSS {s['peak_rss_mib']} MiB (after setup {s['rss_after_setup_mib']} MiB; address space capped at "
         f"{s['address_space_cap_mib']} MiB)",
