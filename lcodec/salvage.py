@@ -615,12 +615,12 @@ def _assemble(res: Salvage, hints: Hints) -> None:
         res.members.append(r)
         try:
             safe_member_path(mem.path)
-            ok_path = mem.path not in paths and not mem.path.endswith(DAMAGED_SUFFIX)
+            ok_path = mem.path not in paths
         except DataError:
             ok_path = False
         paths.add(mem.path)
         if not ok_path:
-            r.reason = "member path unsafe, repeated or reserved; not written"
+            r.reason = "member path unsafe or repeated; not written"
         elif mem.is_dir:
             if res.names_checked:
                 r.status = "recovered"
@@ -715,10 +715,14 @@ def _write_members(res: Salvage, out_dir: str, keep_damaged: bool) -> None:
     from .api import KEPT_MODE_BITS, _refuse_links
 
     todo = []  # (member result, path written, bytes, or None for a folder)
+    taken = {r.path for r in res.members}
     for r in res.members:
         if r.status == "recovered":
             todo.append((r, r.path, None if r.is_dir else r.data))
         elif keep_damaged and not r.is_dir and r.partial is not None:
+            if r.path + DAMAGED_SUFFIX in taken:  # a member of that name exists: never overwrite it
+                r.reason += f"; not written as {r.path + DAMAGED_SUFFIX} (a member has that name)"
+                continue
             r.written_as = r.path + DAMAGED_SUFFIX
             todo.append((r, r.written_as, r.partial))
     if not todo:

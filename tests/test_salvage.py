@@ -313,3 +313,18 @@ def test_salvage_needs_the_model_file(tmp_path):
     arc.write_bytes(blob)
     r = run_cli("unpack", arc, "-o", tmp_path / "m", "--salvage")
     assert r.exit_code == 1 and "-m/--model" in r.stderr
+
+
+def test_a_marked_name_never_overwrites_a_member(tmp_path):
+    root = tmp_path / "box"
+    root.mkdir()
+    real = stdlib_file("colorsys.py", 2000)
+    (root / "x").write_bytes(real)
+    (root / ("x" + S.DAMAGED_SUFFIX)).write_bytes(b"a real member with the marked name\n")
+    blob, _ = api.pack_paths([str(root)])
+    cont = C.read_container(blob)
+    res = S.salvage_to(flip(blob, payload_middle(cont, 0)), str(tmp_path / "out"), keep_damaged=True)
+    got = tree_files(tmp_path / "out")
+    assert got == {"box/x" + S.DAMAGED_SUFFIX: b"a real member with the marked name\n"}
+    [lost] = [r for r in res.members if r.status == "lost"]
+    assert lost.path == "box/x" and lost.written_as is None and "a member has that name" in lost.reason
