@@ -321,7 +321,7 @@ def test_a_marked_name_never_overwrites_a_member(tmp_path):
     real = stdlib_file("colorsys.py", 2000)
     (root / "x").write_bytes(real)
     (root / ("x" + S.DAMAGED_SUFFIX)).write_bytes(b"a real member with the marked name\n")
-    blob, _ = api.pack_paths([str(root)])
+    blob, _ = api.pack_paths([str(root)], frame_size=1024)  # x: two frames, the first damaged
     cont = C.read_container(blob)
     res = S.salvage_to(flip(blob, payload_middle(cont, 0)), str(tmp_path / "out"), keep_damaged=True)
     got = tree_files(tmp_path / "out")
