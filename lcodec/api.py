@@ -18,12 +18,10 @@ import os
 import time
 from dataclasses import dataclass, field
 
-import numpy as np
-
 from . import container as C
 from .coder import encode_frame, decode_frame
 from .errors import DataError, UsageError
-from .fsio import atomic_write, collect_inputs, safe_member_path, _remove_quietly, read_input
+from .fsio import collect_inputs, safe_member_path, _remove_quietly, read_input
 from .models import for_identity, identity_text, resolve
 
 DEFAULT_FRAME_SIZE = 1 << 20

@@ -12,7 +12,6 @@ Only this module imports torch; decoding never needs it.
 """
 from __future__ import annotations
 
-import json
 import math
 import os
 import random

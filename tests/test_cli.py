@@ -14,13 +14,13 @@ import json
 import os
 import subprocess
 import sys
-import sysconfig
 
 import pytest
 
 from lcodec import api, modelfile
 from lcodec.cli import main as cli_group
 from lcodec.models.strata import Strata
+from support import stdlib_file  # noqa: E402
 
 
 def strata_architecture(max_order: int, hash_log2: int) -> dict:
@@ -53,13 +53,6 @@ def no_traceback(r):
     assert "Traceback" not in err_of(r) and b"Traceback" not in r.stdout
 
 
-def stdlib_file(rel: str) -> bytes:
-    # reference: the Python standard library's own sources
-    p = os.path.join(sysconfig.get_paths()["stdlib"], *rel.split("/"))
-    if not os.path.isfile(p):
-        pytest.skip(f"{p} is not on this machine")
-    with open(p, "rb") as f:
-        return f.read()
 
 
 @pytest.fixture

@@ -14,7 +14,6 @@ import os
 import struct
 import subprocess
 import sys
-import sysconfig
 
 import pytest
 
@@ -22,17 +21,11 @@ from lcodec import api
 from lcodec import container as C
 from lcodec.errors import DataError
 from lcodec.models import default_model
+from support import stdlib_file  # noqa: E402
 
 FRAME_SIZE = 8192  # the single-file archive is cut into several frames
 
 
-def stdlib_file(rel: str) -> bytes:
-    # reference: the Python standard library's own sources
-    p = os.path.join(sysconfig.get_paths()["stdlib"], *rel.split("/"))
-    if not os.path.isfile(p):
-        pytest.skip(f"{p} is not on this machine")
-    with open(p, "rb") as f:
-        return f.read()
 
 
 # -- the two archives ---------------------------------------------------------------------

@@ -9,30 +9,10 @@ import numpy as np
 import pytest
 
 import lcodec
-from lcodec.coder import active_lanes, lane_layout
 from lcodec.models.strata import Strata
+from support import step_tables, teacher_tables
 
 GOLDEN = os.path.join(os.path.dirname(__file__), "golden")
-
-
-def step_tables(model, data, lanes):
-    """All tables of a frame as the decoder computes them, one step at a time."""
-    arr = np.frombuffer(data, np.uint8)
-    starts, lengths = lane_layout(len(arr), lanes)
-    step = model.stepper(lengths)
-    prev = np.zeros(len(lengths), np.int32)
-    out, m_prev = [], 0
-    for t, m in enumerate(active_lanes(lengths, int(lengths[0]))):
-        out.append(step(prev, m_prev, int(m)).copy())
-        prev[:m] = arr[starts[:m] + t]
-        m_prev = int(m)
-    return np.concatenate(out)
-
-
-def teacher_tables(model, data, lanes, chunk):
-    arr = np.frombuffer(data, np.uint8)
-    starts, lengths = lane_layout(len(arr), lanes)
-    return np.concatenate([t.copy() for _, t in model.teacher_chunks(arr, starts, lengths, chunk_steps=chunk)])
 
 
 @pytest.mark.parametrize("lanes", [1, 5, 64])

@@ -23,6 +23,7 @@ from hypothesis import strategies as st
 
 from lcodec import api
 from lcodec import container as C
+from support import stdlib_file  # noqa: E402
 
 # -- the stated growth bound for incompressible data --------------------------------------
 # Incompressible frames are stored, so an archive of n raw bytes is at most
@@ -61,13 +62,6 @@ def identity_len(blob: bytes) -> int:
     return b - a
 
 
-def stdlib_file(rel: str) -> bytes:
-    # reference: the Python standard library's own sources
-    p = os.path.join(sysconfig.get_paths()["stdlib"], *rel.split("/"))
-    if not os.path.isfile(p):
-        pytest.skip(f"{p} is not on this machine")
-    with open(p, "rb") as f:
-        return f.read()
 
 
 REAL_FILES = ["colorsys.py", "textwrap.py", "heapq.py", "json/decoder.py", "shlex.py", "keyword.py"]

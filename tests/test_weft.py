@@ -10,9 +10,9 @@ import pytest
 
 import lcodec
 from lcodec import modelfile
-from lcodec.coder import active_lanes, lane_layout
 from lcodec.models import load_model
 from lcodec.models.weft import PAD, Weft
+from support import step_tables, teacher_tables
 
 GOLDEN = os.path.join(os.path.dirname(__file__), "golden")
 
@@ -32,43 +32,24 @@ def random_weft(seed=0, W=8, E=8, H=32):
     return Weft(params, arrays)
 
 
-def teacher(model, data, lanes, chunk=None):
-    arr = np.frombuffer(data, np.uint8)
-    s, l = lane_layout(len(arr), lanes)
-    return np.concatenate([t.copy() for _, t in model.teacher_chunks(arr, s, l, chunk_steps=chunk)])
-
-
-def stepwise(model, data, lanes):
-    arr = np.frombuffer(data, np.uint8)
-    starts, lengths = lane_layout(len(arr), lanes)
-    step = model.stepper(lengths)
-    prev = np.zeros(len(lengths), np.int32)
-    out, mp = [], 0
-    for t, m in enumerate(active_lanes(lengths, int(lengths[0]))):
-        out.append(step(prev, mp, int(m)).copy())
-        prev[:m] = arr[starts[:m] + t]
-        mp = int(m)
-    return np.concatenate(out)
-
-
 @pytest.mark.parametrize("lanes", [1, 5, 64])
 def test_parallel_pass_equals_step_pass(stdlib_text, lanes):
     m = random_weft()
     data = stdlib_text[:6000]
-    a = teacher(m, data, lanes, chunk=37)  # several chunks
-    assert np.array_equal(a, teacher(m, data, lanes))  # chunking changes nothing
-    assert np.array_equal(a, stepwise(m, data, lanes))
+    a = teacher_tables(m, data, lanes, chunk=37)  # several chunks
+    assert np.array_equal(a, teacher_tables(m, data, lanes))  # chunking changes nothing
+    assert np.array_equal(a, step_tables(m, data, lanes))
     assert (a >= 1).all() and (a == np.floor(a)).all()
 
 
 def test_numpy_and_torch_backends_agree(stdlib_text):
     pytest.importorskip("torch")
     m = random_weft(1)
-    a = teacher(m, stdlib_text[:5000], 7)
+    a = teacher_tables(m, stdlib_text[:5000], 7)
     m.set_backend("torch")
-    b = teacher(m, stdlib_text[:5000], 7)
+    b = teacher_tables(m, stdlib_text[:5000], 7)
     assert np.array_equal(a, b)
-    assert np.array_equal(stepwise(m, stdlib_text[:800], 3), teacher(random_weft(1), stdlib_text[:800], 3))
+    assert np.array_equal(step_tables(m, stdlib_text[:800], 3), teacher_tables(random_weft(1), stdlib_text[:800], 3))
 
 
 def test_masked_property():
@@ -77,11 +58,11 @@ def test_masked_property():
     m = random_weft(2)
     rng = np.random.default_rng(0)
     data = rng.integers(0, 256, 400).astype(np.uint8)
-    base = teacher(m, data.tobytes(), 1)
+    base = teacher_tables(m, data.tobytes(), 1)
     for i in (0, 1, 9, 200, 399):
         changed = data.copy()
         changed[i:] = rng.integers(0, 256, len(data) - i)
-        other = teacher(m, changed.tobytes(), 1)
+        other = teacher_tables(m, changed.tobytes(), 1)
         assert np.array_equal(base[: i + 1], other[: i + 1])  # tables up to and including i
     ctx = np.full((1, m.window), PAD)
     assert m.tables(ctx).shape == (1, 256)

@@ -1,0 +1,41 @@
+"""Helpers shared by the tests (import as `from support import ...`)."""
+import os
+import sysconfig
+
+import numpy as np
+import pytest
+
+from lcodec.coder import active_lanes, lane_layout
+
+
+def stdlib_file(rel: str) -> bytes:
+    # reference: the Python standard library's own sources
+    p = os.path.join(sysconfig.get_paths()["stdlib"], *rel.split("/"))
+    if not os.path.isfile(p):
+        pytest.skip(f"{p} is not on this machine")
+    with open(p, "rb") as f:
+        return f.read()
+
+
+def teacher_tables(model, data, lanes, chunk=None):
+    """All tables of a frame from the encoder's (parallel, teacher-forced) pass."""
+    arr = np.frombuffer(data, np.uint8)
+    starts, lengths = lane_layout(len(arr), lanes)
+    kw = {} if chunk is None else {"chunk_steps": chunk}
+    return np.concatenate([t.copy() for _, t in model.teacher_chunks(arr, starts, lengths, **kw)])
+
+
+def step_tables(model, data, lanes):
+    """All tables of a frame as the decoder computes them, one step at a time."""
+    arr = np.frombuffer(data, np.uint8)
+    starts, lengths = lane_layout(len(arr), lanes)
+    step = model.stepper(lengths)
+    prev = np.zeros(len(lengths), np.int32)
+    out, m_prev = [], 0
+    for t, m in enumerate(active_lanes(lengths, int(lengths[0]))):
+        out.append(step(prev, m_prev, int(m)).copy())
+        prev[:m] = arr[starts[:m] + t]
+        m_prev = int(m)
+    if hasattr(step, "close"):
+        step.close()
+    return np.concatenate(out)
