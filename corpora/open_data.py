@@ -22,7 +22,7 @@ Usage:
 
 The second form copies the split into OUT_DIR/train and OUT_DIR/test (file names made
 from the relative path, '/' replaced by '__') and writes OUT_DIR/manifest.tsv, so that
-`lcodec bench OUT_DIR` can run on it. Pure standard library.
+`lcodec bench OUT_DIR` can run on it. Standard library, plus lcodec.democorpus for clearing a previous run.
 """
 
 from __future__ import annotations
@@ -31,10 +31,15 @@ import argparse
 import hashlib
 import os
 import random
-import shutil
 import sys
 import sysconfig
 from pathlib import Path
+
+try:
+    from lcodec.democorpus import clear_previous_run
+except ImportError:  # run from a checkout without lcodec installed
+    sys.path.insert(0, os.path.join(os.path.dirname(os.path.abspath(__file__)), ".."))
+    from lcodec.democorpus import clear_previous_run
 
 MANIFEST_NAME = "manifest.tsv"
 TEXT_PROBE_BYTES = 8192
@@ -268,22 +273,6 @@ def flat_name(rel: str) -> str:
     return name
 
 
-def _clear_previous(out: Path) -> None:
-    manifest = out / MANIFEST_NAME
-    if manifest.is_file():
-        for line in manifest.read_text(encoding="utf-8", errors="surrogateescape").splitlines()[1:]:
-            parts = line.split("\t")
-            if len(parts) >= 2 and parts[0] in ("train", "test") and "/" not in parts[1]:
-                p = out / parts[0] / parts[1]
-                if p.is_file() and not p.is_symlink():
-                    p.unlink()
-    for sub in ("train", "test"):
-        d = out / sub
-        if d.exists() and any(d.iterdir()):
-            raise FileExistsError("%s is not empty and its files are not from an earlier run; "
-                                  "choose an empty OUT_DIR" % d)
-
-
 def materialise(kind: str, out_dir, limit_bytes=None, seed: int = 0, test_fraction: float = 0.1) -> dict:
     """Copy a kind's split into out_dir/train and out_dir/test; return a summary dict.
 
@@ -294,7 +283,7 @@ def materialise(kind: str, out_dir, limit_bytes=None, seed: int = 0, test_fracti
     train, test = split_entries(kind, limit_bytes, seed, test_fraction)
     out = Path(out_dir)
     out.mkdir(parents=True, exist_ok=True)
-    _clear_previous(out)
+    clear_previous_run(out, MANIFEST_NAME)
     rows = []
     summary = {"kind": kind, "seed": seed, "limit_bytes": limit_bytes,
                "train": {"files": 0, "bytes": 0}, "test": {"files": 0, "bytes": 0}}

@@ -261,13 +261,7 @@ def unpack_to_dir(blob, out_dir: str, model=None, force: bool = False, progress=
                 os.makedirs(os.path.dirname(dst), exist_ok=True)
                 os.replace(os.path.join(tmp, rel), dst)
             _remove_quietly(tmp)
-        # Folder modes and times last, deepest first: writing into a folder changes its
-        # time, and a read-only folder mode would block writing its files.
-        for mem in sorted(folders, key=lambda m: m.path.count("/"), reverse=True):
-            p = os.path.join(out_dir, safe_member_path(mem.path))
-            os.chmod(p, mem.mode & KEPT_MODE_BITS)
-            if mem.mtime_ns:
-                os.utime(p, ns=(mem.mtime_ns, mem.mtime_ns))
+        apply_folder_modes(out_dir, folders)
     except OSError as e:
         _remove_quietly(tmp)
         raise UsageError(f"cannot write into {out_dir}: {e.strerror or e}") from None
@@ -275,6 +269,16 @@ def unpack_to_dir(blob, out_dir: str, model=None, force: bool = False, progress=
         _remove_quietly(tmp)
         raise
     return written
+
+
+def apply_folder_modes(out_dir: str, folders) -> None:
+    """Folder modes and times last, deepest first: writing into a folder changes its time,
+    and a read-only folder mode would block writing its files."""
+    for mem in sorted(folders, key=lambda m: m.path.count("/"), reverse=True):
+        p = os.path.join(out_dir, safe_member_path(mem.path))
+        os.chmod(p, mem.mode & KEPT_MODE_BITS)
+        if mem.mtime_ns:
+            os.utime(p, ns=(mem.mtime_ns, mem.mtime_ns))
 
 
 def _refuse_links(out_dir: str, member_path: str) -> None:

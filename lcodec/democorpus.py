@@ -1120,11 +1120,12 @@ def split_names(seed: int, files: list, test_fraction: float = TEST_FRACTION) ->
     return test
 
 
-def _clear_previous(out: Path) -> None:
-    """Remove the files a previous run listed in its manifest; refuse foreign files."""
-    manifest = out / MANIFEST_NAME
+def clear_previous_run(out: Path, manifest_name: str = MANIFEST_NAME) -> None:
+    """Remove the files a previous run listed in its manifest; refuse foreign files.
+    (Shared with corpora/open_data.py, whose manifests use the same layout.)"""
+    manifest = out / manifest_name
     if manifest.is_file():
-        for line in manifest.read_text(encoding="utf-8").splitlines()[1:]:
+        for line in manifest.read_text(encoding="utf-8", errors="surrogateescape").splitlines()[1:]:
             parts = line.split("\t")
             if len(parts) >= 2 and parts[0] in ("train", "test") and "/" not in parts[1]:
                 p = out / parts[0] / parts[1]
@@ -1147,7 +1148,7 @@ def generate(out_dir, scale: float = 1.0, seed: int = DEFAULT_SEED) -> dict:
     files = build_files(seed, scale)
     test = split_names(seed, files)
     out.mkdir(parents=True, exist_ok=True)
-    _clear_previous(out)
+    clear_previous_run(out)
     for sub in ("train", "test"):
         (out / sub).mkdir(exist_ok=True)
     summary = {"seed": seed, "scale": scale, "train": {"files": 0, "bytes": 0},

@@ -712,6 +712,7 @@ def _report_text(rep: dict) -> str:
 def _write_members(res: Salvage, out_dir: str, keep_damaged: bool) -> None:
     """Members into `out_dir` through a temporary folder renamed into place (or, into an
     existing folder with --force, file by file), as api.unpack_to_dir does."""
+    from . import api
     from .api import KEPT_MODE_BITS, _refuse_links
 
     todo = []  # (member result, path written, bytes, or None for a folder)
@@ -764,11 +765,7 @@ def _write_members(res: Salvage, out_dir: str, keep_damaged: bool) -> None:
                 os.replace(os.path.join(tmp, safe_member_path(rel_path)), dst)
             _remove_quietly(tmp)
         if res.names_checked:  # folder modes and times last, deepest first
-            for r in sorted(folders, key=lambda m: m.path.count("/"), reverse=True):
-                p = os.path.join(out_dir, safe_member_path(r.path))
-                os.chmod(p, r.mode & KEPT_MODE_BITS)
-                if r.mtime_ns:
-                    os.utime(p, ns=(r.mtime_ns, r.mtime_ns))
+            api.apply_folder_modes(out_dir, folders)
     except OSError as e:
         _remove_quietly(tmp)
         raise UsageError(f"cannot write into {out_dir}: {e.strerror or e}") from None
