@@ -8,13 +8,14 @@ import pytest
 from lcodec.coder import active_lanes, lane_layout
 
 
-def stdlib_file(rel: str) -> bytes:
+def stdlib_file(rel: str, n: int | None = None) -> bytes:
+    """The first n bytes (all by default) of a file of the Python standard library."""
     # reference: the Python standard library's own sources
     p = os.path.join(sysconfig.get_paths()["stdlib"], *rel.split("/"))
     if not os.path.isfile(p):
         pytest.skip(f"{p} is not on this machine")
     with open(p, "rb") as f:
-        return f.read()
+        return f.read()[:n]
 
 
 def teacher_tables(model, data, lanes, chunk=None):

@@ -19,7 +19,6 @@ import os
 import stat
 import subprocess
 import sys
-import sysconfig
 import tempfile
 
 import pytest
@@ -29,18 +28,12 @@ from lcodec import api, fsio
 from lcodec import salvage as S
 from lcodec.cli import main as cli_group
 from lcodec.errors import UsageError
+from support import stdlib_file  # noqa: E402
 
 ENOSPC_TEXT = os.strerror(errno.ENOSPC)  # "No space left on device"
 EACCES_TEXT = os.strerror(errno.EACCES)  # "Permission denied"
 
 
-def stdlib_file(rel: str, n: int | None = None) -> bytes:
-    # reference: the Python standard library's own sources
-    p = os.path.join(sysconfig.get_paths()["stdlib"], *rel.split("/"))
-    if not os.path.isfile(p):
-        pytest.skip(f"{p} is not on this machine")
-    with open(p, "rb") as f:
-        return f.read()[:n]
 
 
 def run_cli(*args):

@@ -15,7 +15,6 @@ import os
 import random
 import subprocess
 import sys
-import sysconfig
 
 import pytest
 from click.testing import CliRunner
@@ -26,15 +25,9 @@ from lcodec import salvage as S
 from lcodec.cli import main as cli_group
 from lcodec.errors import ModelError
 from lcodec.models.strata import Strata
+from support import stdlib_file  # noqa: E402
 
 
-def stdlib_file(rel: str, n: int | None = None) -> bytes:
-    # reference: the Python standard library's own sources
-    p = os.path.join(sysconfig.get_paths()["stdlib"], *rel.split("/"))
-    if not os.path.isfile(p):
-        pytest.skip(f"{p} is not on this machine")
-    with open(p, "rb") as f:
-        return f.read()[:n]
 
 
 def flip(blob: bytes, pos: int, bit: int = 0) -> bytes:
