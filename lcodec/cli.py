@@ -429,18 +429,21 @@ def explain(file, model, output, png_out, frame_size, view_bytes, force, quiet):
 @click.option("-o", "--output", "output", required=True, type=click.Path(dir_okay=False), help="Model file to write.")
 @click.option("--time-limit", type=click.FloatRange(1, 7 * 86400), default=600, show_default=True,
               help="Stop training after this many seconds (earlier if validation stops improving).")
-@click.option("--preset", default="small", show_default=True, help="Model size preset (see DEVELOPERS.md).")
+@click.option("--preset", default="braid", show_default=True,
+              help="What to train: braid (corpus statistics braided with per-file adaptation; default), "
+                   "braid-lean (smaller, faster), or the neural weft presets small and tiny (need torch). "
+                   "Figures in README.md.")
 @click.option("--seed", type=int, default=0, show_default=True, help="Seed of the validation split and the training.")
 @click.option("--max-bytes", type=int, default=None, help="Read at most this many bytes of the corpus.")
 @force_option
 @guarded
 def train(corpus, output, time_limit, preset, seed, max_bytes, force):
-    """Train a learned byte model (weft) on files and folders; write a model file.
+    """Train a model on files and folders of one kind; write a model file.
 
-    A tenth of the files is held out for validation; progress shows running train and
-    validation bits per byte; the command ends with the exported integer model's
-    validation bits per byte. Needs torch (scripts/setup.sh installs it); using the
-    model file to pack or unpack does not.
+    A tenth of the files is held out for validation; progress shows validation bits per
+    byte; the command ends with the exported integer model's validation bits per byte.
+    The weft presets need torch (scripts/setup.sh installs it); packing and unpacking
+    with any model file do not.
     """
     from . import train as T
 

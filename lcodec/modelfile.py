@@ -8,6 +8,7 @@ Layout (all integers little-endian):
     16  J  metadata, UTF-8 JSON object: "architecture" {"name", "params"}, "arrays" (a list of
            {"name", "dtype", "shape"} in file order), and free descriptive keys (training
            corpus summary, validation bits per byte, lcodec version)
+           (dtypes: u1 i1 u2 i2 u4 i4 i8, little-endian)
     ..     the arrays' bytes, back to back in the listed order, exactly as long as their
            dtypes and shapes say; nothing may follow the last one
     end-32 32 SHA-256 of everything before it
@@ -29,7 +30,7 @@ VERSION = 1
 MAX_META = 1 << 20
 MAX_ARRAY_BYTES = 1 << 31
 MAX_NDIM = 8
-DTYPES = {"u1": np.uint8, "i1": np.int8, "i2": np.int16, "u2": np.uint16, "i4": np.int32, "i8": np.int64}
+DTYPES = {"u1": np.uint8, "i1": np.int8, "i2": np.int16, "u2": np.uint16, "i4": np.int32, "u4": np.uint32, "i8": np.int64}
 
 
 def dump(path: str, architecture: dict, arrays: dict[str, np.ndarray] | None = None, **meta) -> str:

@@ -28,7 +28,7 @@ PRESETS = {
     "small": dict(window=16, embed=12, hidden=192, batch=1024, lr=3e-3),
     "tiny": dict(window=8, embed=8, hidden=64, batch=512, lr=3e-3),  # for tests
 }
-DEFAULT_PRESET = "small"
+DEFAULT_PRESET = "braid"
 LUT_LEN = LUT_STEPS_PER_NAT * 24  # down to exp(-24): below 2**-34, floored at 1 anyway
 
 
@@ -166,7 +166,8 @@ def write_curve_png(curve: list, path: str, title: str) -> str | None:
         return None
     fig, ax = plt.subplots(figsize=(7, 4), dpi=100)
     t = [c["seconds"] for c in curve]
-    ax.plot(t, [c["train_bpb"] for c in curve], label="train (running mean)", color="#3b6ea8")
+    if all("train_bpb" in c for c in curve):
+        ax.plot(t, [c["train_bpb"] for c in curve], label="train (running mean)", color="#3b6ea8")
     ax.plot(t, [c["val_bpb"] for c in curve], label="validation", color="#c8553d", marker="o", ms=3)
     ax.set_xlabel("seconds")
     ax.set_ylabel("bits per byte")
@@ -192,12 +193,18 @@ def integer_bpb(model: Weft, pos: Positions, idx: np.ndarray) -> float:
 
 def train(corpus: list[str], out: str, time_limit: float = 600.0, preset: str = DEFAULT_PRESET,
           seed: int = 0, max_bytes: int | None = None, echo=print, force: bool = False) -> dict:
+    from . import braid_train
+
+    if preset in braid_train.PRESETS:
+        if os.path.lexists(out) and not force:
+            raise UsageError(f"{out} exists; pass --force to overwrite it")
+        return braid_train.train_braid(read_corpus(corpus, max_bytes), corpus, out, time_limit, preset, seed, echo)
     try:
         import torch
     except ImportError:
         raise UsageError("training needs torch: run scripts/setup.sh (installs torch==2.13.0)") from None
     if preset not in PRESETS:
-        raise UsageError(f"unknown preset {preset!r} (have: {', '.join(PRESETS)})")
+        raise UsageError(f"unknown preset {preset!r} (have: {', '.join([*braid_train.PRESETS, *PRESETS])})")
     if os.path.lexists(out) and not force:
         raise UsageError(f"{out} exists; pass --force to overwrite it")
     cfg = PRESETS[preset]

@@ -12,9 +12,10 @@ from ..errors import DataError, ModelError
 from .. import modelfile
 from .strata import Strata
 from .weft import Weft
+from .braid import Braid
 
 BUILTIN = {"strata": Strata}  # models an archive can name without a model file
-ARCHITECTURES = {"strata": Strata, "weft": Weft}  # what a model file may hold
+ARCHITECTURES = {"strata": Strata, "weft": Weft, "braid": Braid}  # what a model file may hold
 
 
 class Loaded:
