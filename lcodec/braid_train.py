@@ -94,7 +94,7 @@ def train_braid(files: list[tuple[str, bytes]], corpus: list[str], out: str, tim
     groups = [g for g in groups if g]
 
     def score(d):
-        model.corpus = model.corpus[:6] + (np.array(d, np.int64),)
+        model.set_corpus_discount(d)
         return _bpb(model, sample)
 
     best = score(disc)

@@ -47,6 +47,29 @@ def golden_weft():
     print(f"wrote {arc}")
 
 
+def golden_braid():
+    """A tiny braid model counted from generated log lines, and a container made with it."""
+    from lcodec import train as T
+
+    mpath = os.path.join(HERE, "braid-tiny.lcmodel")
+    arc, orig = os.path.join(HERE, "braid-v1-text.lcodec"), os.path.join(HERE, "braid-v1-text.orig")
+    if os.path.exists(arc):
+        print(f"keep {arc}")
+        return
+    import tempfile
+    with tempfile.TemporaryDirectory() as d:
+        for i in range(10):
+            with open(os.path.join(d, f"log{i}.txt"), "wb") as f:
+                f.write(sample_text(200 + i, 6_000))
+        T.train([d], mpath, time_limit=5, preset="braid-lean", seed=0, echo=print)
+    data = sample_text(19, 12_000)
+    with open(orig, "wb") as f:
+        f.write(data)
+    with open(arc, "wb") as f:
+        f.write(lcodec.pack(data, model=mpath, frame_size=4096))
+    print(f"wrote {arc}")
+
+
 def main():
     os.makedirs(HERE, exist_ok=True)
     vectors = {"strata-v1-text": sample_text(1, 20_000), "strata-v1-binary": bytes(random.Random(2).randbytes(3000)) + bytes(range(256)) * 8}
@@ -61,6 +84,7 @@ def main():
             f.write(lcodec.pack(data, frame_size=8192))
         print(f"wrote {arc}")
     golden_weft()
+    golden_braid()
 
 
 if __name__ == "__main__":

@@ -150,8 +150,9 @@ def _file_layer(counts, tot, tags, r, chk, disc, p):
 
 @njit(cache=True, nogil=True)
 def _braid_predict(corpus, fstate, hist, slots, checks, max_order, dfile, p, tmp):
-    ctags, cstart, esym, ecnt, cbase, csize, dcorp = corpus
+    ctags, cstart, esym, ecnt, cbase, csize, dcorp, mode = corpus
     counts, tot, dist, ftags = fstate[0], fstate[1], fstate[2], fstate[3]
+    use_file = mode[0] == 0
     one = np.int64(1) << P_BITS
     for s in range(256):
         p[s] = one >> 8
@@ -161,7 +162,8 @@ def _braid_predict(corpus, fstate, hist, slots, checks, max_order, dfile, p, tmp
             j = _lookup(ctags, cbase[k], csize[k], _ctx_hash(hist, k))
             if j >= 0:
                 _corpus_layer(esym, ecnt, np.int64(cstart[j]), np.int64(cstart[j + 1]), dcorp[k], p, tmp)
-        _file_layer(counts, tot, ftags, slots[k], checks[k], dfile[k], p)
+        if use_file:
+            _file_layer(counts, tot, ftags, slots[k], checks[k], dfile[k], p)
 
 
 @njit(cache=True, nogil=True)
@@ -173,7 +175,7 @@ def _teacher(corpus, state, match, data, starts, lengths, t0, t1, max_order, has
     p = np.empty(256, np.int64)
     tmp = np.empty(256, np.int64)
     nl = lengths.shape[0]
-    use_match = match[5][3] > 0
+    use_match = match[5][3] > 0 and corpus[7][0] == 0
     i = 0
     for t in range(t0, t1):
         m = 0
@@ -206,7 +208,7 @@ def _step(corpus, state, match, starts, syms, t_prev, m_prev, m, max_order, hash
     p = np.empty(256, np.int64)
     tmp = np.empty(256, np.int64)
     buf = match[0]
-    use_match = match[5][3] > 0
+    use_match = match[5][3] > 0 and corpus[7][0] == 0
     for b in range(m_prev):
         buf[starts[b] + t_prev] = syms[b]
     for b in range(m_prev):
@@ -263,7 +265,9 @@ class Braid:
     kind = "learned"
     coder = "queue"
 
-    def __init__(self, params: dict, arrays: dict):
+    def __init__(self, params: dict, arrays: dict, prior_only: bool = False):
+        """prior_only: the corpus layers alone (no file layers, no repeat model), for the
+        ablation figures; such an object is only ever costed, never used to pack."""
         allowed = {"corpus_order", "max_order", "hash_log2", "discount", "match_min"}
         if not isinstance(params, dict) or set(params) != allowed:
             raise ValueError(f"braid needs exactly {', '.join(sorted(allowed))}")
@@ -277,7 +281,7 @@ class Braid:
         bases = np.zeros(len(sizes), np.int64)
         bases[1:] = np.cumsum(sizes)[:-1]
         self.corpus = (arrays["tags"], arrays["start"], arrays["sym"], arrays["cnt"], bases, sizes.astype(np.int64),
-                       arrays["corpus_discount"].astype(np.int64))
+                       arrays["corpus_discount"].astype(np.int64), np.array([1 if prior_only else 0], np.int64))
 
     @classmethod
     def from_params(cls, params: dict, arrays: dict | None = None) -> "Braid":
@@ -288,6 +292,10 @@ class Braid:
     @property
     def identity(self) -> dict:  # only ever used through a model file (models.Loaded)
         return {"model": self.name, "params": self.params}
+
+    def set_corpus_discount(self, disc) -> None:
+        """Replace the corpus discounts (the training search tries settings this way)."""
+        self.corpus = self.corpus[:6] + (np.array(disc, np.int64),) + self.corpus[7:]
 
     def teacher_chunks(self, data, starts, lengths, chunk_steps: int = 256):
         f = self.file

@@ -1,0 +1,164 @@
+"""braid: corpus tables braided with per-file adaptation. Integer tables, encoder pass ==
+decoder pass, round trips with a model file, hostile model files refused, the golden
+model + container, and the mixed model against its two halves."""
+import hashlib
+import os
+import subprocess
+import sys
+
+import numpy as np
+import pytest
+
+import lcodec
+from lcodec import modelfile
+from lcodec.braid_build import build
+from lcodec.braid_train import nll_bits
+from lcodec.errors import ModelError
+from lcodec.models import load_model
+from lcodec.models import strata as S
+from lcodec.models.braid import Braid
+from support import stdlib_file, step_tables, teacher_tables
+
+GOLDEN = os.path.join(os.path.dirname(__file__), "golden")
+# reference: modules of the Python standard library (real source files)
+CORPUS = ["argparse.py", "ast.py", "configparser.py", "csv.py", "dataclasses.py", "difflib.py", "enum.py"]
+HELD_OUT = ["calendar.py", "shlex.py", "textwrap.py"]
+
+
+def params(order):
+    p = {"corpus_order": order, **S.PRESETS["o6m"]}
+    p["discount"] = [list(r) for r in p["discount"]]
+    return p
+
+
+@pytest.fixture(scope="module")
+def tiny(tmp_path_factory):
+    """A braid model file counted from a few standard-library modules (orders 0-4)."""
+    files = [stdlib_file(f) for f in CORPUS]
+    arrays = build(files, 4, 2)
+    path = str(tmp_path_factory.mktemp("braid") / "tiny.lcmodel")
+    modelfile.dump(path, {"name": "braid", "params": params(4)}, arrays)
+    return path
+
+
+def test_parallel_pass_equals_step_pass(tiny):
+    m = load_model(tiny)
+    data = stdlib_file("shlex.py", 30_000)
+    for lanes in (1, 3, 16):
+        a = teacher_tables(m, data, lanes, chunk=53)
+        assert np.array_equal(a, teacher_tables(m, data, lanes))  # chunking changes nothing
+        assert np.array_equal(a, step_tables(m, data, lanes))
+        assert (a == np.floor(a)).all() and (a >= 1).all()
+
+
+def test_tables_depend_only_on_earlier_bytes(tiny):
+    # the causal property: changing byte i and later leaves the tables of 0..i unchanged
+    m = load_model(tiny)
+    data = bytearray(stdlib_file("textwrap.py", 3000))
+    a = teacher_tables(m, bytes(data), 1)
+    data[1500:] = bytes(reversed(data[1500:]))
+    b = teacher_tables(m, bytes(data), 1)
+    assert np.array_equal(a[:1501], b[:1501])
+    assert not np.array_equal(a[1501:], b[1501:])
+
+
+def test_round_trip_and_wrong_model(tiny, tmp_path):
+    data = stdlib_file("calendar.py")
+    blob = lcodec.pack(data, model=tiny, frame_size=20_000)
+    assert lcodec.unpack(blob, model=tiny) == data
+    assert len(blob) < len(lcodec.pack(data, frame_size=20_000))  # the corpus helps
+    with pytest.raises(ModelError, match="needs the braid model file"):
+        lcodec.unpack(blob)
+    other = str(tmp_path / "other.lcmodel")
+    modelfile.dump(other, {"name": "braid", "params": params(3)}, build([stdlib_file("csv.py")], 3, 2))
+    with pytest.raises(ModelError, match="wrong model"):
+        lcodec.unpack(blob, model=other)
+
+
+def test_same_archive_across_processes_and_thread_settings(tiny, tmp_path):
+    src = tmp_path / "in.py"
+    src.write_bytes(stdlib_file("textwrap.py") * 3)
+    code = ("import sys, hashlib, lcodec; d = open(sys.argv[1], 'rb').read(); "
+            "print(hashlib.sha256(lcodec.pack(d, model=sys.argv[2], frame_size=40000)).hexdigest())")
+    digests = {hashlib.sha256(lcodec.pack(src.read_bytes(), model=tiny, frame_size=40000)).hexdigest()}
+    for threads in ("1", "2"):
+        env = dict(os.environ, NUMBA_NUM_THREADS=threads, OMP_NUM_THREADS=threads)
+        out = subprocess.run([sys.executable, "-c", code, str(src), tiny], env=env, capture_output=True, text=True, check=True)
+        digests.add(out.stdout.strip())
+    assert len(digests) == 1
+
+
+def test_mixed_never_worse_than_its_better_half(tiny):
+    """On held-out files the braid costs at most 1% more than the better of its halves:
+    the corpus tables alone (prior only) and strata alone (adaptive only)."""
+    meta, arrays, _ = modelfile.load(tiny)
+    mixed = load_model(tiny)
+    prior = Braid(meta["architecture"]["params"], arrays, prior_only=True)
+    for name in HELD_OUT:
+        data = stdlib_file(name)
+        b_mixed, b_prior, b_adapt = nll_bits(mixed, data), nll_bits(prior, data), nll_bits(S.Strata(), data)
+        assert b_mixed <= 1.01 * min(b_prior, b_adapt), (name, b_mixed, b_prior, b_adapt)
+
+
+def test_counts_follow_the_recipe():
+    # order 1 after b"ab" * 3 + b"ac": raw counts at the top order; continuation counts below
+    arrays = build([b"abababac"], 1, 1)
+    m = Braid(params(1), arrays)
+    tags, start, sym, cnt = m.corpus[:4]
+    rows = {}
+    base = 0
+    for k, size in enumerate(arrays["sizes"].tolist()):
+        for j in range(base, base + size):
+            if tags[j]:
+                rows.setdefault(k, []).append(dict(zip(sym[start[j]:start[j + 1]].tolist(), cnt[start[j]:start[j + 1]].tolist())))
+        base += size
+    # order 1: after 'a' came b three times and c once; after 'b' came a three times; at
+    # the start (context 0) came 'a' once
+    assert sorted(map(sorted, (r.items() for r in rows[1]))) == sorted([[(97, 1)], [(98, 3), (99, 1)], [(97, 3)]])
+    # order 0: each byte counted once per distinct order-1 context it followed: a after
+    # {start, b}, b after {a}, c after {a}
+    assert rows[0] == [{97: 2, 98: 1, 99: 1}]
+
+
+@pytest.mark.parametrize("damage", ["sizes", "start", "no_empty_slot", "zero_count", "discount"])
+def test_hostile_model_files_are_refused(tiny, tmp_path, damage):
+    meta, arrays, _ = modelfile.load(tiny)
+    arrays = {k: v.copy() for k, v in arrays.items()}
+    if damage == "sizes":
+        arrays["sizes"][0] += 1
+    elif damage == "start":
+        arrays["start"][-1] += 5
+    elif damage == "no_empty_slot":
+        arrays["tags"][:arrays["sizes"][0]] = 7
+    elif damage == "zero_count":
+        arrays["cnt"][3] = 0
+    else:
+        arrays["corpus_discount"][0, 0] = 99
+    bad = str(tmp_path / "bad.lcmodel")
+    modelfile.dump(bad, meta["architecture"], arrays)
+    with pytest.raises(ModelError, match="bad parameters"):
+        load_model(bad)
+
+
+def test_golden_model_and_container():
+    model = os.path.join(GOLDEN, "braid-tiny.lcmodel")
+    blob = open(os.path.join(GOLDEN, "braid-v1-text.lcodec"), "rb").read()
+    orig = open(os.path.join(GOLDEN, "braid-v1-text.orig"), "rb").read()
+    assert lcodec.unpack(blob, model=model) == orig
+    assert lcodec.pack(orig, model=model, frame_size=4096) == blob
+
+
+def test_train_cli_default_preset_is_braid(tmp_path):
+    corpus = tmp_path / "corpus"
+    corpus.mkdir()
+    for name in CORPUS:
+        (corpus / name).write_bytes(stdlib_file(name))
+    out = tmp_path / "m.lcmodel"
+    r = subprocess.run([sys.executable, "-m", "lcodec", "train", str(corpus), "-o", str(out), "--time-limit", "5"],
+                       capture_output=True, text=True, timeout=300)
+    assert r.returncode == 0, r.stderr
+    assert "exported braid model: validation" in r.stderr
+    meta, _, _ = modelfile.load(str(out))
+    assert meta["architecture"]["name"] == "braid" and meta["validation"]["integer_bpb"] > 0
+    r2 = subprocess.run([sys.executable, "-m", "lcodec", "train", str(corpus), "-o", str(out)], capture_output=True, text=True)
+    assert r2.returncode == 2 and "exists" in r2.stderr  # never overwritten without --force
