@@ -88,25 +88,29 @@ def train_braid(files: list[tuple[str, bytes]], corpus: list[str], out: str, tim
             break
         sample.append(f[:api.DEFAULT_FRAME_SIZE])
         got += len(sample[-1])
-    C = cfg["corpus_order"]
-    disc = [list(r) for r in arrays["corpus_discount"].tolist()]
-    groups = [list(range(0, min(2, C + 1))), list(range(2, min(4, C + 1))), list(range(4, C + 1))]
-    groups = [g for g in groups if g]
+    C, F = cfg["corpus_order"], len(params["discount"]) - 1
+    # the search's coordinates: groups of orders, each of the corpus layers or the file's
+    # (the high orders first: they decide most of the cost, so a short time limit gets them)
+    groups = [("corpus", range(4, C + 1)), ("file", range(4, F + 1)), ("corpus", range(2, min(4, C + 1))),
+              ("file", range(0, min(4, F + 1))), ("corpus", range(0, min(2, C + 1)))]
+    groups = [(part, g) for part, g in groups if len(g)]
+    disc = {"corpus": [list(r) for r in arrays["corpus_discount"].tolist()], "file": [list(r) for r in params["discount"]]}
 
     def score(d):
-        model.set_corpus_discount(d)
+        model.set_corpus_discount(d["corpus"])
+        model.set_file_discount(d["file"])
         return _bpb(model, sample)
 
     best = score(disc)
     curve = [{"seconds": round(time.perf_counter() - t_start, 1), "step": 0, "val_bpb": best}]
-    echo(f"  {curve[-1]['seconds']:6.0f} s  corpus discounts {disc[-1]} (all orders)  validation sample {best:.4f} bits per byte")
+    echo(f"  {curve[-1]['seconds']:6.0f} s  discounts {disc['corpus'][-1]} everywhere: validation sample {best:.4f} bits per byte")
     step = 0
-    for _ in range(2):  # two sweeps over the groups
-        for g in groups:
+    for _ in range(2):  # two sweeps over the coordinates
+        for part, g in groups:
             for cand in CANDIDATES:
                 if time.perf_counter() - t_start >= time_limit:
                     break
-                trial = [list(cand) if k in g else disc[k] for k in range(C + 1)]
+                trial = {**disc, part: [list(cand) if k in g else disc[part][k] for k in range(len(disc[part]))]}
                 if trial == disc:
                     continue
                 v = score(trial)
@@ -114,7 +118,9 @@ def train_braid(files: list[tuple[str, bytes]], corpus: list[str], out: str, tim
                 if v < best - 1e-5:
                     best, disc = v, trial
                 curve.append({"seconds": round(time.perf_counter() - t_start, 1), "step": step, "val_bpb": best})
-                echo(f"  {curve[-1]['seconds']:6.0f} s  orders {g[0]}-{g[-1]} discounts {cand}: {v:.4f}  (best {best:.4f})")
+                echo(f"  {curve[-1]['seconds']:6.0f} s  {part} orders {g[0]}-{g[-1]} discounts {cand}: {v:.4f}  (best {best:.4f})")
+    params["discount"] = disc["file"]
+    disc = disc["corpus"]
     arrays["corpus_discount"] = np.array(disc, np.int64)
     model = Braid(params, arrays)
     val_bpb = _bpb(model, val_files)

@@ -200,13 +200,11 @@ def _teacher(corpus, state, match, data, starts, lengths, t0, t1, max_order, has
 
 
 @njit(cache=True, nogil=True)
-def _step(corpus, state, match, starts, syms, t_prev, m_prev, m, max_order, hash_log2, dfile, out_tab):
-    """Decoder step: count the symbols of step t_prev (m_prev lanes), then predict m lanes."""
+def _step(corpus, state, match, starts, syms, t_prev, m_prev, m, max_order, hash_log2, dfile, out_tab, work):
+    """Decoder step: count the symbols of step t_prev (m_prev lanes), then predict m lanes.
+    `work` holds the scratch arrays, made once per frame (a step is too short to allocate)."""
     counts, tot, dist, tags, bases, hist, gen = state
-    slots = np.empty(max_order + 1, np.int64)
-    checks = np.empty(max_order + 1, np.uint64)
-    p = np.empty(256, np.int64)
-    tmp = np.empty(256, np.int64)
+    slots, checks, p, tmp = work
     buf = match[0]
     use_match = match[5][3] > 0 and corpus[7][0] == 0
     for b in range(m_prev):
@@ -297,6 +295,11 @@ class Braid:
         """Replace the corpus discounts (the training search tries settings this way)."""
         self.corpus = self.corpus[:6] + (np.array(disc, np.int64),) + self.corpus[7:]
 
+    def set_file_discount(self, disc) -> None:
+        """Replace the per-file tables' discounts (tried by the training search too)."""
+        self.file = S.Strata.from_params({**self.file.params, "discount": [list(map(int, r)) for r in disc]})
+        self.params["discount"] = [list(map(int, r)) for r in disc]
+
     def teacher_chunks(self, data, starts, lengths, chunk_steps: int = 256):
         f = self.file
         n = int(lengths.sum())
@@ -323,10 +326,11 @@ class Braid:
         starts[1:] = np.cumsum(lengths)[:-1]
         tab = np.empty((max(len(lengths), 1), 256), np.float64)
         mo, disc, corpus = f.max_order, f._disc, self.corpus
+        work = (np.empty(mo + 1, np.int64), np.empty(mo + 1, np.uint64), np.empty(256, np.int64), np.empty(256, np.int64))
         t = [-1]
 
         def step(prev_syms, m_prev, m):
-            _step(corpus, state, match, starts, prev_syms, t[0], m_prev, m, mo, hl, disc, tab)
+            _step(corpus, state, match, starts, prev_syms, t[0], m_prev, m, mo, hl, disc, tab, work)
             t[0] += 1
             return tab[:m]
 

@@ -1,0 +1,205 @@
+#!/usr/bin/env python3
+"""The learned model's targets: braid (corpus statistics braided with per-file adaptation)
+against the general compressors, on three kinds of real files, plus one large file, the
+ablation (prior only, adaptive only, mixed) and the presets. Not a test: prints figures,
+writes JSON, and marks each target MET or MISSED (exit 0 either way, unless something
+fails to round-trip).
+
+    python scripts/bench_braid.py [--out DIR] [--kinds python_stdlib,c_headers,package_data]
+                                  [--time-limit S] [--skip-large] [--skip-presets]
+
+Targets:
+  * per kind, each test file packed on its own: braid's total <= 0.75 x the best of
+    zlib -9, bz2 -9, xz -9e, zstd -19, zstd -19 with a dictionary trained on the same
+    train split, brotli -11 and PPMd order 8;
+  * one large file (a concatenation of a test split of at least 10 MB): <= 0.85 x the
+    best of xz -9e, brotli -11 with a 16 MiB window and PPMd order 16;
+  * decode at least 100 KB/s on that file, loading the model once included;
+  * the default preset's model file at most 64 MB;
+  * coded size within 0.1% of the model's NLL (the learned-model issue).
+"""
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import sys
+import time
+
+import numpy as np
+
+ROOT = os.path.join(os.path.dirname(os.path.abspath(__file__)), "..")
+sys.path.insert(0, ROOT)
+
+from corpora import open_data  # noqa: E402
+from lcodec import api, bench as B, modelfile  # noqa: E402
+from lcodec import baselines as BL  # noqa: E402
+from lcodec.braid_train import nll_bits  # noqa: E402
+from lcodec.models import load_model  # noqa: E402
+from lcodec.models.braid import Braid  # noqa: E402
+from lcodec.models.strata import Strata  # noqa: E402
+from lcodec.train import train  # noqa: E402
+
+LC, ST = "lcodec-braid", "lcodec-strata"
+MODEL_BUDGET = 64_000_000
+
+
+def say(msg: str) -> None:
+    print(msg, flush=True)
+
+
+def files_of(folder: str) -> list[bytes]:
+    out = []
+    for name in sorted(os.listdir(folder)):
+        with open(os.path.join(folder, name), "rb") as f:
+            out.append(f.read())
+    return out
+
+
+def train_model(corpus: str, out: str, preset: str, time_limit: float) -> tuple[str, dict, float]:
+    path = os.path.join(out, f"{os.path.basename(corpus)}-{preset}.lcmodel")
+    t0 = time.perf_counter()
+    train([os.path.join(corpus, "train")], path, time_limit, preset, 0, echo=lambda m: None, force=True)
+    return path, modelfile.load(path)[0], time.perf_counter() - t0
+
+
+def ablation(model_path: str, tests: list[bytes]) -> dict:
+    """NLL bits per byte of the test files: corpus tables alone, strata alone, braided."""
+    meta, arrays, _ = modelfile.load(model_path)
+    mixed = load_model(model_path)
+    prior = Braid(meta["architecture"]["params"], arrays, prior_only=True)
+    n = sum(len(t) for t in tests)
+    return {name: sum(nll_bits(m, t) for t in tests) / n
+            for name, m in (("prior_only", prior), ("adaptive_only", Strata()), ("mixed", mixed))}
+
+
+def kind_targets(kind: str, out: str, time_limit: float) -> dict:
+    corpus = os.path.join(out, kind)
+    open_data.materialise(kind, corpus, limit_bytes=32 << 20)
+    model, meta, train_s = train_model(corpus, out, "braid", time_limit)
+    msize = os.path.getsize(model)
+    say(f"\n== {kind}: model {msize:,} bytes, trained in {train_s:.0f} s "
+        f"(validation {meta['validation']['integer_bpb']:.4f} bits per byte)")
+    rows = B.run_bench(corpus, [B.lcodec_codec(model, LC), B.lcodec_codec(None, ST)])
+    B.write_json(rows, os.path.join(out, f"bench-braid-{kind}.json"))
+    say(B.format_table(rows))
+    tot = {r["codec"]: r for r in rows if r["file"] == B.TOTAL}
+    base = {k: v for k, v in tot.items() if k in BL.DEFAULT_NAMES}
+    best_name = min(base, key=lambda k: base[k]["coded_bytes"])
+    lc = tot[LC]
+    ratio = lc["coded_bytes"] / base[best_name]["coded_bytes"]
+    abl = ablation(model, files_of(os.path.join(corpus, "test")))
+    res = {"kind": kind, "files": lc.get("files"), "raw_bytes": lc["raw_bytes"], "braid_bytes": lc["coded_bytes"],
+           "braid_bpb": lc["bits_per_byte"], "nll_bpb": lc["nll_bits"] / lc["raw_bytes"],
+           "coded_over_nll": 8 * lc["coded_bytes"] / lc["nll_bits"], "model_bytes": msize, "train_seconds": train_s,
+           "encode_s": lc["encode_s"], "decode_s": lc["decode_s"],
+           "best_baseline": best_name, "best_baseline_bpb": base[best_name]["bits_per_byte"], "ratio_to_best": ratio,
+           "ratios": {k: lc["coded_bytes"] / v["coded_bytes"] for k, v in base.items()},
+           "strata_bpb": tot[ST]["bits_per_byte"], "ablation_nll_bpb": abl}
+    res["target_met"] = ratio <= 0.75
+    say(f"target: <= 0.75 x the best baseline ({best_name}, {base[best_name]['bits_per_byte']:.3f} bits per byte): "
+        f"x{ratio:.3f} {'MET' if res['target_met'] else 'MISSED'}; model {msize:,} bytes; coded/NLL "
+        f"{res['coded_over_nll']:.5f}")
+    say("ablation (NLL bits per byte): " + ", ".join(f"{k} {v:.4f}" for k, v in abl.items()))
+    return res
+
+
+def large_target(out: str, time_limit: float) -> dict:
+    """A >= 10 MB concatenation of a test split (the standard library with 35% held out)."""
+    corpus = os.path.join(out, "python_stdlib-large")
+    open_data.materialise("python_stdlib", corpus, test_fraction=0.35)
+    data = b"".join(files_of(os.path.join(corpus, "test")))
+    model, meta, train_s = train_model(corpus, out, "braid", time_limit)
+    say(f"\n== one large file: {len(data):,} bytes (the test split of {corpus}, concatenated); "
+        f"model {os.path.getsize(model):,} bytes")
+    res = {"bytes": len(data), "model_bytes": os.path.getsize(model), "baselines": {}}
+    for name in ("xz-9e", "brotli-11-w24", "ppmd-o16"):
+        b = BL.make_baseline(name)
+        t0 = time.perf_counter()
+        c = b.compress(data)
+        res["baselines"][name] = {"bytes": len(c), "seconds": time.perf_counter() - t0}
+        say(f"  {name}: {len(c):,} bytes ({8 * len(c) / len(data):.3f} bits per byte, {time.perf_counter() - t0:.0f} s)")
+    m = load_model(model)
+    api.pack(data[:5000], model=m)  # compile the kernels outside the timing
+    for frame in (1 << 20, 4 << 20):
+        t0 = time.perf_counter()
+        blob = api.pack(data, model=m, frame_size=frame)
+        enc = time.perf_counter() - t0
+        t0 = time.perf_counter()
+        back = api.unpack(blob, model=load_model(model))  # the model load is part of decoding
+        dec = time.perf_counter() - t0
+        assert back == data, "large-file round trip failed"
+        best = min(v["bytes"] for v in res["baselines"].values())
+        r = {"bytes": len(blob), "bits_per_byte": 8 * len(blob) / len(data), "ratio_to_best": len(blob) / best,
+             "encode_kb_s": len(data) / enc / 1e3, "decode_kb_s": len(data) / dec / 1e3}
+        res[f"frame_{frame >> 20}MiB"] = r
+        say(f"  braid, {frame >> 20} MiB frames: {len(blob):,} bytes ({r['bits_per_byte']:.3f} bits per byte), "
+            f"x{r['ratio_to_best']:.3f} the best of the three; encode {r['encode_kb_s']:.0f} KB/s, decode (model load "
+            f"included) {r['decode_kb_s']:.0f} KB/s")
+    r = res["frame_1MiB"]
+    res["target_size_met"] = r["ratio_to_best"] <= 0.85
+    res["target_decode_met"] = r["decode_kb_s"] >= 100
+    say(f"target: <= 0.85 x the best of xz -9e, brotli -11 (16 MiB window), PPMd o16: x{r['ratio_to_best']:.3f} "
+        f"{'MET' if res['target_size_met'] else 'MISSED'}; decode >= 100 KB/s: {r['decode_kb_s']:.0f} KB/s "
+        f"{'MET' if res['target_decode_met'] else 'MISSED'} (default 1 MiB frames)")
+    return res
+
+
+def presets(out: str, time_limit: float) -> dict:
+    """braid against braid-lean on the standard library: size, speed, model size."""
+    corpus = os.path.join(out, "python_stdlib")
+    tests = files_of(os.path.join(corpus, "test"))
+    data = b"".join(tests)
+    res = {}
+    say("\n== presets (the standard library's test split, each file on its own)")
+    for preset in ("braid", "braid-lean"):
+        model, meta, train_s = train_model(corpus, out, preset, time_limit)
+        m = load_model(model)
+        api.pack(data[:5000], model=m)
+        t0 = time.perf_counter()
+        blobs = [api.pack(t, model=m) for t in tests]
+        enc = time.perf_counter() - t0
+        t0 = time.perf_counter()
+        m2 = load_model(model)
+        assert all(api.unpack(b, model=m2) == t for b, t in zip(blobs, tests))
+        dec = time.perf_counter() - t0
+        size = sum(map(len, blobs))
+        res[preset] = {"bits_per_byte": 8 * size / len(data), "model_bytes": os.path.getsize(model),
+                       "encode_kb_s": len(data) / enc / 1e3, "decode_kb_s": len(data) / dec / 1e3, "train_seconds": train_s}
+        say(f"  {preset}: {8 * size / len(data):.4f} bits per byte, model {os.path.getsize(model):,} bytes, "
+            f"encode {len(data) / enc / 1e3:.0f} KB/s, decode {len(data) / dec / 1e3:.0f} KB/s (model load included), "
+            f"trained in {train_s:.0f} s")
+    return res
+
+
+def main() -> int:
+    ap = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
+    ap.add_argument("--out", default="bench-out", help="folder for corpora, models and JSON (default: bench-out)")
+    ap.add_argument("--kinds", default="python_stdlib,c_headers,package_data")
+    ap.add_argument("--time-limit", type=float, default=600, help="training time limit per model (seconds)")
+    ap.add_argument("--skip-large", action="store_true")
+    ap.add_argument("--skip-presets", action="store_true")
+    a = ap.parse_args()
+    os.makedirs(a.out, exist_ok=True)
+    say(f"load average at start: {os.getloadavg()[0]:.2f}")
+    report = {"kinds": [kind_targets(k, a.out, a.time_limit) for k in a.kinds.split(",") if k]}
+    if not a.skip_large:
+        report["large"] = large_target(a.out, a.time_limit)
+    if not a.skip_presets and "python_stdlib" in a.kinds:
+        report["presets"] = presets(a.out, a.time_limit)
+    say("\n== summary")
+    for r in report["kinds"]:
+        say(f"  {r['kind']:14s} braid {r['braid_bpb']:.3f} bits per byte, x{r['ratio_to_best']:.3f} {r['best_baseline']} "
+            f"({'MET' if r['target_met'] else 'MISSED'}), model {r['model_bytes']:,} bytes "
+            f"({'MET' if r['model_bytes'] <= MODEL_BUDGET else 'MISSED'} <= 64 MB); ablation "
+            + ", ".join(f"{k} {v:.3f}" for k, v in r["ablation_nll_bpb"].items()))
+    say(f"load average at end: {os.getloadavg()[0]:.2f}")
+    report["load_average_end"] = os.getloadavg()[0]
+    with open(os.path.join(a.out, "braid-targets.json"), "w") as f:
+        json.dump(report, f, indent=2)
+    say(f"\nwritten {os.path.join(a.out, 'braid-targets.json')}")
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
