@@ -31,11 +31,28 @@ def contexts(data: np.ndarray, pos_in_file: np.ndarray, k: int) -> np.ndarray:
 
 
 @njit(cache=True)
+def _insert(tags, base, size, x):
+    """Put hash x's tag in its home slot or the next free one (linear probing); -1 when
+    the same tag is already in the table (two contexts alike in 32 bits: keep the first)."""
+    tag = np.uint32(((x >> np.uint64(8)) & np.uint64(0xFFFFFFFF)) | np.uint64(1))
+    j = base + np.int64(((x >> np.uint64(32)) * np.uint64(size)) >> np.uint64(32))
+    end = base + size
+    while tags[j] != 0:
+        if tags[j] == tag:
+            return -1
+        j += 1
+        if j == end:
+            j = base
+    tags[j] = tag
+    return j
+
+
+@njit(cache=True)
 def _fill(tags, start_len, base, size, ctx_hash, row_first, row_len):
     """Insert each row's context; start_len[slot] = (first entry, entry count)."""
     kept = np.zeros(ctx_hash.shape[0], np.bool_)
     for r in range(ctx_hash.shape[0]):
-        j = B._insert(tags, base, size, ctx_hash[r])
+        j = _insert(tags, base, size, ctx_hash[r])
         if j >= 0:
             start_len[j, 0] = row_first[r]
             start_len[j, 1] = row_len[r]

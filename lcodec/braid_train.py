@@ -26,11 +26,12 @@ from .models import strata as S
 from .models.braid import Braid
 
 PRESETS = {
-    # name: corpus orders, fewest sightings of a kept context (orders >= 2), size budget
-    "braid": dict(corpus_order=6, min_seen=2, budget=64 << 20),
-    "braid-lean": dict(corpus_order=4, min_seen=2, budget=16 << 20),
+    # corpus orders, fewest sightings of a kept context (orders >= 2), size budget of the
+    # tables, and the per-file adaptive half (strata's parameters); figures in README.md
+    "braid": dict(corpus_order=6, min_seen=2, budget=64 << 20,
+                  file=dict(max_order=8, hash_log2=18, discount=[[13, 18, 24]] * 9, match_min=5)),
+    "braid-lean": dict(corpus_order=4, min_seen=2, budget=16 << 20, file=dict(S.PRESETS["o6m"])),
 }
-FILE_PRESET = "o6m"  # the per-file adaptive half: strata's frozen preset
 VALIDATION_SAMPLE = 400_000  # bytes of held-out files the discount search costs per trial
 # discount settings tried per order group (sixteenths of a count, for counts 1, 2, >=3)
 CANDIDATES = [[10, 14, 20], [13, 18, 24], [14, 22, 30], [15, 26, 36], [15, 29, 42], [15, 31, 46]]
@@ -77,7 +78,7 @@ def train_braid(files: list[tuple[str, bytes]], corpus: list[str], out: str, tim
         echo(f"  {size:,} bytes of tables is over the preset's {cfg['budget']:,}: dropping contexts seen fewer "
              f"than {min_seen * 2} times")
         min_seen *= 2
-    params = {"corpus_order": cfg["corpus_order"], **S.PRESETS[FILE_PRESET]}
+    params = {"corpus_order": cfg["corpus_order"], **cfg["file"]}
     params["discount"] = [list(r) for r in params["discount"]]
     model = Braid(params, arrays)
     # validation sample for the search: whole held-out files, in a seeded order, up to the cap

@@ -61,13 +61,18 @@ def tag_of(x):
 
 
 @njit(cache=True, nogil=True)
-def _lookup(tags, base, size, x):
-    """Slot of the context with hash x in one order's table, or -1 when it is not there."""
+def _home(base, size, x):
+    """Home slot of hash x in one order's table."""
+    return base + np.int64(((x >> np.uint64(32)) * np.uint64(size)) >> np.uint64(32))
+
+
+@njit(cache=True, nogil=True)
+def _probe(slot2, base, size, x, j):
+    """Slot of the context with hash x, probing from slot j, or -1 when it is not there."""
     tag = np.uint32(((x >> np.uint64(8)) & np.uint64(0xFFFFFFFF)) | np.uint64(1))
-    j = base + np.int64(((x >> np.uint64(32)) * np.uint64(size)) >> np.uint64(32))
     end = base + size
     while True:
-        t = tags[j]
+        t = slot2[j, 0]
         if t == tag:
             return j
         if t == 0:
@@ -77,93 +82,104 @@ def _lookup(tags, base, size, x):
             j = base
 
 
-@njit(cache=True, nogil=True)
-def _insert(tags, base, size, x):
-    tag = np.uint32(((x >> np.uint64(8)) & np.uint64(0xFFFFFFFF)) | np.uint64(1))
-    j = base + np.int64(((x >> np.uint64(32)) * np.uint64(size)) >> np.uint64(32))
-    end = base + size
-    while tags[j] != 0:
-        if tags[j] == tag:
-            return -1  # two contexts with the same tag in the same order: keep the first
-        j += 1
-        if j == end:
-            j = base
-    tags[j] = tag
-    return j
-
-
 # -- the layers ----------------------------------------------------------------------------
+# The chain P <- (n(s) - d(n(s)) + E * P) / T, applied layer after layer from the uniform
+# distribution up, is linear in P, so it is evaluated from the top layer down instead:
+#
+#     P(s) = sum over layers l of A_l * (n_l(s) - d(n_l(s))) / T_l  +  A_bottom / 256
+#
+# with A_top = 1 and A below layer l = A_l * E_l / T_l. A layer then costs only its seen
+# bytes (a stored corpus row holds a few), plus one pass over 256 bytes at the end. A is
+# kept in fixed point with 31 fraction bits; every step floors.
+ONE_A = 1 << 31
+INV_BITS = 43  # inv = 2**43 // (T * F): at least 2**22 because T * F < 2**21
+
+
 @njit(cache=True, nogil=True)
-def _corpus_layer(esym, ecnt, a, b, disc, p, tmp):
-    """P <- (n(s) - d(n(s)) + E * P) / T over one stored row (entries a..b)."""
-    one = np.int64(1) << P_BITS
+def _sparse_layer(ent, a, b, disc, p, A):
+    """Add one stored corpus row's share (entries a..b: byte | count << 8) to p; return
+    the A left below it."""
     a1 = np.int64(disc[0])
     a2 = np.int64(disc[1]) - a1
     a3 = np.int64(disc[2]) - np.int64(disc[1])
     t = np.int64(0)
     esc = np.int64(0)
     for e in range(a, b):
-        c = np.int64(ecnt[e])
+        c = np.int64(ent[e] >> 8)
         t += c
         esc += a1 + a2 * (c >= 2) + a3 * (c >= 3)
     if t == 0:
-        return
-    # bound: entries <= 256 and counts <= 255, so esc <= 47 * t and t * F < 2**21; with
-    # inv <= 2**32 / (F * t) and p[s] <= 2**21: esc * p[s] * inv <= 47/16 * 2**53 and
-    # n * one * inv <= 2**52 (n <= F * t), so num * inv < 2**56 fits int64.
-    inv = (np.int64(1) << 32) // (t * F)
+        return A
+    # bound: a row has at most 256 entries of counts <= 255, so t * F < 2**21 and
+    # inv <= 2**43 / F = 2**39; n = c * F - d < 2**12, so n * inv < 2**51 and w < 2**31
+    # (n < t * F); A <= 2**31, so A * w < 2**62. esc < t * F likewise keeps A below 2**31.
+    inv = (np.int64(1) << INV_BITS) // (t * F)
     for e in range(a, b):
-        s = esym[e]
-        c = np.int64(ecnt[e])
+        c = np.int64(ent[e] >> 8)
         n = c * F - (a1 + a2 * (c >= 2) + a3 * (c >= 3))
-        tmp[e - a] = ((n * one + esc * p[s]) * inv) >> 32
-    for s in range(256):
-        p[s] = (esc * p[s] * inv) >> 32
-    for e in range(a, b):
-        p[esym[e]] = tmp[e - a]
+        w = (n * inv) >> (INV_BITS - 31)
+        p[ent[e] & 0xFF] += (A * w) >> (62 - P_BITS)
+    return (A * ((esc * inv) >> (INV_BITS - 31))) >> 31
 
 
 @njit(cache=True, nogil=True)
-def _file_layer(counts, tot, tags, r, chk, disc, p):
-    """The same over the file's own dense row r (strata's tables), when its tag matches."""
-    if tags[r] != chk:
-        return
-    t = np.int64(tot[r])
-    if t == 0:
-        return
-    one = np.int64(1) << P_BITS
+def _dense_layer(row, t, disc, p, A):
+    """The same for the file's own dense row of 256 counts (strata's tables)."""
     a1 = np.int64(disc[0])
     a2 = np.int64(disc[1]) - a1
     a3 = np.int64(disc[2]) - np.int64(disc[1])
-    row = counts[r]
-    esc = np.int64(0)
+    # how many counts are >= 1, >= 2, >= 3 (byte compares and additions only, so the
+    # loop vectorises); the escape is then three products
+    n1 = np.int32(0)
+    n2 = np.int32(0)
+    n3 = np.int32(0)
+    for s in range(256):
+        c = row[s]
+        n1 += c >= 1
+        n2 += c >= 2
+        n3 += c >= 3
+    esc = a1 * n1 + a2 * n2 + a3 * n3
+    # bound: as _sparse_layer (a dense row also holds at most 256 counts <= 255)
+    inv = (np.int64(1) << INV_BITS) // (t * F)
     for s in range(256):
         c = np.int64(row[s])
-        esc += a1 * (c >= 1) + a2 * (c >= 2) + a3 * (c >= 3)
-    # bound: as strata._predict (num < 2**35, inv <= 2**28)
-    inv = (np.int64(1) << 32) // (t * F)
-    for s in range(256):
-        c = np.int64(row[s])
-        n = c * F - (a1 * (c >= 1) + a2 * (c >= 2) + a3 * (c >= 3))
-        p[s] = ((n * one + esc * p[s]) * inv) >> 32
+        if c:
+            n = c * F - (a1 + a2 * (c >= 2) + a3 * (c >= 3))
+            w = (n * inv) >> (INV_BITS - 31)
+            p[s] += (A * w) >> (62 - P_BITS)
+    return (A * ((esc * inv) >> (INV_BITS - 31))) >> 31
 
 
 @njit(cache=True, nogil=True)
-def _braid_predict(corpus, fstate, hist, slots, checks, max_order, dfile, p, tmp):
-    ctags, cstart, esym, ecnt, cbase, csize, dcorp, mode = corpus
-    counts, tot, dist, ftags = fstate[0], fstate[1], fstate[2], fstate[3]
+def _braid_predict(corpus, fstate, hist, slots, checks, max_order, dfile, p):
+    """p <- the braided distribution (integers, total about 2**P_BITS), top layer first:
+    at each order the file's own row sits above the corpus row of the same context."""
+    slot2, ent, cbase, csize, dcorp, mode, found = corpus
+    counts, tot, ftags = fstate[0], fstate[1], fstate[3]
     use_file = mode[0] == 0
-    one = np.int64(1) << P_BITS
-    for s in range(256):
-        p[s] = one >> 8
     corder = cbase.shape[0] - 1
-    for k in range(max_order + 1):
+    # every order's home slot first: independent loads the processor can overlap
+    for k in range(corder + 1):
+        x = _ctx_hash(hist, k)
+        j = _home(cbase[k], csize[k], x)
+        found[k] = _probe(slot2, cbase[k], csize[k], x, j)
+    for s in range(256):
+        p[s] = 0
+    A = np.int64(ONE_A)
+    for k in range(max(max_order, corder), -1, -1):
+        if use_file and k <= max_order:
+            r = slots[k]
+            if ftags[r] == checks[k] and tot[r] > 0:
+                A = _dense_layer(counts[r], np.int64(tot[r]), dfile[k], p, A)
         if k <= corder:
-            j = _lookup(ctags, cbase[k], csize[k], _ctx_hash(hist, k))
+            j = found[k]
             if j >= 0:
-                _corpus_layer(esym, ecnt, np.int64(cstart[j]), np.int64(cstart[j + 1]), dcorp[k], p, tmp)
-        if use_file:
-            _file_layer(counts, tot, ftags, slots[k], checks[k], dfile[k], p)
+                A = _sparse_layer(ent, np.int64(slot2[j, 1]), np.int64(slot2[j + 1, 1]), dcorp[k], p, A)
+        if A == 0:
+            break
+    u = (A << (P_BITS - 8)) >> 31  # the uniform distribution's share: A / 256 of 2**P_BITS
+    for s in range(256):
+        p[s] += u
 
 
 @njit(cache=True, nogil=True)
@@ -173,9 +189,8 @@ def _teacher(corpus, state, match, data, starts, lengths, t0, t1, max_order, has
     slots = np.empty(max_order + 1, np.int64)
     checks = np.empty(max_order + 1, np.uint64)
     p = np.empty(256, np.int64)
-    tmp = np.empty(256, np.int64)
     nl = lengths.shape[0]
-    use_match = match[5][3] > 0 and corpus[7][0] == 0
+    use_match = match[5][3] > 0 and corpus[5][0] == 0
     i = 0
     for t in range(t0, t1):
         m = 0
@@ -183,7 +198,7 @@ def _teacher(corpus, state, match, data, starts, lengths, t0, t1, max_order, has
             m += 1
         for b in range(m):
             S._row_slots(hist[b], max_order, hash_log2, bases, gen, slots, checks)
-            _braid_predict(corpus, state, hist[b], slots, checks, max_order, dfile, p, tmp)
+            _braid_predict(corpus, state, hist[b], slots, checks, max_order, dfile, p)
             if use_match:
                 S._match_predict(match, b, p)
             S._emit(p, out_tab[i + b])
@@ -204,9 +219,9 @@ def _step(corpus, state, match, starts, syms, t_prev, m_prev, m, max_order, hash
     """Decoder step: count the symbols of step t_prev (m_prev lanes), then predict m lanes.
     `work` holds the scratch arrays, made once per frame (a step is too short to allocate)."""
     counts, tot, dist, tags, bases, hist, gen = state
-    slots, checks, p, tmp = work
+    slots, checks, p = work
     buf = match[0]
-    use_match = match[5][3] > 0 and corpus[7][0] == 0
+    use_match = match[5][3] > 0 and corpus[5][0] == 0
     for b in range(m_prev):
         buf[starts[b] + t_prev] = syms[b]
     for b in range(m_prev):
@@ -218,7 +233,7 @@ def _step(corpus, state, match, starts, syms, t_prev, m_prev, m, max_order, hash
             S._match_update(match, b, starts[b], t_prev, sym, hist[b], gen)
     for b in range(m):
         S._row_slots(hist[b], max_order, hash_log2, bases, gen, slots, checks)
-        _braid_predict(corpus, state, hist[b], slots, checks, max_order, dfile, p, tmp)
+        _braid_predict(corpus, state, hist[b], slots, checks, max_order, dfile, p)
         if use_match:
             S._match_predict(match, b, p)
         S._emit(p, out_tab[b])
@@ -278,8 +293,15 @@ class Braid:
         sizes = arrays["sizes"]
         bases = np.zeros(len(sizes), np.int64)
         bases[1:] = np.cumsum(sizes)[:-1]
-        self.corpus = (arrays["tags"], arrays["start"], arrays["sym"], arrays["cnt"], bases, sizes.astype(np.int64),
-                       arrays["corpus_discount"].astype(np.int64), np.array([1 if prior_only else 0], np.int64))
+        # in memory, each slot's tag and first entry side by side, and each entry's byte and
+        # count in one 16-bit word: one cache line per slot and per row where four were
+        slot2 = np.empty((len(arrays["tags"]) + 1, 2), np.uint32)
+        slot2[:-1, 0] = arrays["tags"]
+        slot2[-1, 0] = 0
+        slot2[:, 1] = arrays["start"]
+        ent = arrays["sym"].astype(np.uint16) | (arrays["cnt"].astype(np.uint16) << np.uint16(8))
+        self.corpus = (slot2, ent, bases, sizes.astype(np.int64), arrays["corpus_discount"].astype(np.int64),
+                       np.array([1 if prior_only else 0], np.int64), np.zeros(len(sizes), np.int64))
 
     @classmethod
     def from_params(cls, params: dict, arrays: dict | None = None) -> "Braid":
@@ -291,9 +313,15 @@ class Braid:
     def identity(self) -> dict:  # only ever used through a model file (models.Loaded)
         return {"model": self.name, "params": self.params}
 
+    def lanes_for(self, n: int) -> int:
+        """One lane per 64 KiB of frame, at most 16: lanes share the file's tables but each
+        loses its neighbours' recent bytes, which costs more here than for strata (on the
+        standard library, 16 KiB lanes cost 1.0% against one lane per file)."""
+        return max(1, min(16, n // 65536))
+
     def set_corpus_discount(self, disc) -> None:
         """Replace the corpus discounts (the training search tries settings this way)."""
-        self.corpus = self.corpus[:6] + (np.array(disc, np.int64),) + self.corpus[7:]
+        self.corpus = self.corpus[:4] + (np.array(disc, np.int64),) + self.corpus[5:]
 
     def set_file_discount(self, disc) -> None:
         """Replace the per-file tables' discounts (tried by the training search too)."""
@@ -326,7 +354,7 @@ class Braid:
         starts[1:] = np.cumsum(lengths)[:-1]
         tab = np.empty((max(len(lengths), 1), 256), np.float64)
         mo, disc, corpus = f.max_order, f._disc, self.corpus
-        work = (np.empty(mo + 1, np.int64), np.empty(mo + 1, np.uint64), np.empty(256, np.int64), np.empty(256, np.int64))
+        work = (np.empty(mo + 1, np.int64), np.empty(mo + 1, np.uint64), np.empty(256, np.int64))
         t = [-1]
 
         def step(prev_syms, m_prev, m):
