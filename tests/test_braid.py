@@ -100,6 +100,23 @@ def test_mixed_never_worse_than_its_better_half(tiny):
         assert b_mixed <= 1.01 * min(b_prior, b_adapt), (name, b_mixed, b_prior, b_adapt)
 
 
+def test_learned_hit_rates_round_trip(tiny, tmp_path):
+    """A model whose repeat-model cells start from held-out hit rates (as training writes
+    them) codes and decodes exactly, and its cells differ from the default."""
+    from lcodec.braid_train import match_prior
+
+    meta, arrays, _ = modelfile.load(tiny)
+    prior = match_prior(load_model(tiny).inner, [stdlib_file(n) for n in HELD_OUT])
+    assert prior is not None and prior.shape == (S.MATCH_LENGTHS * S.MATCH_LEVELS, 2)
+    path = str(tmp_path / "prior.lcmodel")
+    modelfile.dump(path, meta["architecture"], {**arrays, "match_prior": prior})
+    m = load_model(path)
+    data = stdlib_file("textwrap.py")
+    assert np.array_equal(teacher_tables(m, data[:9000], 2), step_tables(m, data[:9000], 2))
+    assert lcodec.unpack(lcodec.pack(data, model=path), model=path) == data
+    assert not np.array_equal(teacher_tables(m, data[:9000], 1), teacher_tables(load_model(tiny), data[:9000], 1))
+
+
 def test_counts_follow_the_recipe():
     # order 1 after b"ab" * 3 + b"ac": raw counts at the top order; continuation counts below
     arrays = build([b"abababac"], 1, 1)
@@ -120,7 +137,7 @@ def test_counts_follow_the_recipe():
     assert rows[0] == [{97: 2, 98: 1, 99: 1}]
 
 
-@pytest.mark.parametrize("damage", ["sizes", "start", "no_empty_slot", "zero_count", "discount"])
+@pytest.mark.parametrize("damage", ["sizes", "start", "no_empty_slot", "zero_count", "discount", "match_prior"])
 def test_hostile_model_files_are_refused(tiny, tmp_path, damage):
     meta, arrays, _ = modelfile.load(tiny)
     arrays = {k: v.copy() for k, v in arrays.items()}
@@ -132,8 +149,10 @@ def test_hostile_model_files_are_refused(tiny, tmp_path, damage):
         arrays["tags"][:arrays["sizes"][0]] = 7
     elif damage == "zero_count":
         arrays["cnt"][3] = 0
-    else:
+    elif damage == "discount":
         arrays["corpus_discount"][0, 0] = 99
+    else:
+        arrays["match_prior"] = np.full((S.MATCH_LENGTHS * S.MATCH_LEVELS, 2), [40, 32], np.int32)  # hits > trials
     bad = str(tmp_path / "bad.lcmodel")
     modelfile.dump(bad, meta["architecture"], arrays)
     with pytest.raises(ModelError, match="bad parameters"):

@@ -266,6 +266,12 @@ def check_arrays(params: dict, arrays: dict) -> None:
             raise ValueError(f"corpus table of order {k} has no empty slot")
     if int(arrays["cnt"].min(initial=1)) < 1:
         raise ValueError("stored counts are 1..255")
+    mp = arrays.get("match_prior")
+    if mp is not None:
+        cells = S.MATCH_LENGTHS * S.MATCH_LEVELS
+        if mp.dtype != np.int32 or mp.shape != (cells, 2) or int(mp[:, 1].min()) < 1 \
+                or int(mp[:, 1].max()) > S.MATCH_LIMIT or int(mp[:, 0].min()) < 0 or (mp[:, 0] > mp[:, 1]).any():
+            raise ValueError(f"match_prior must be int32 ({cells}, 2) of hits <= trials <= {S.MATCH_LIMIT}, trials >= 1")
     disc = arrays["corpus_discount"]
     if disc.shape != (C + 1, 3) or not all(1 <= r[0] < F and 1 <= r[1] < 2 * F and 1 <= r[2] < 3 * F for r in disc.tolist()):
         raise ValueError("corpus_discount must hold 3 discounts per order, each below its count")
@@ -290,6 +296,7 @@ class Braid:
         self.params = dict(params)
         check_arrays(params, arrays)
         self.arrays = arrays
+        self.match_prior = arrays.get("match_prior")
         sizes = arrays["sizes"]
         bases = np.zeros(len(sizes), np.int64)
         bases[1:] = np.cumsum(sizes)[:-1]
@@ -328,11 +335,22 @@ class Braid:
         self.file = S.Strata.from_params({**self.file.params, "discount": [list(map(int, r)) for r in disc]})
         self.params["discount"] = [list(map(int, r)) for r in disc]
 
-    def teacher_chunks(self, data, starts, lengths, chunk_steps: int = 256):
+    def new_match(self, buf, mtab, lengths):
+        """strata's repeat model, its hit-rate cells started from the corpus's (when the
+        model file has them) instead of from no change."""
+        match = self.file.new_match(buf, mtab, lengths)
+        if self.match_prior is not None:
+            match[4][:] = self.match_prior
+        return match
+
+    def teacher_chunks(self, data, starts, lengths, chunk_steps: int = 256, match_stats=None):
+        """match_stats: an array of the hit-rate cells' shape, to which this frame's
+        observations (hits, trials) are added at the end (training uses it)."""
         f = self.file
         n = int(lengths.sum())
         (state, mtab), hb = f.new_state(n, len(lengths)), f.hash_bits(n)
-        match = f.new_match(data, mtab, lengths)
+        match = self.new_match(data, mtab, lengths)
+        start_cells = match[4].copy()
         n_steps = int(lengths[0]) if len(lengths) else 0
         nl = len(lengths)
         syms = np.empty(chunk_steps * nl, np.int32)
@@ -342,6 +360,8 @@ class Braid:
                 t1 = min(n_steps, t0 + chunk_steps)
                 k = _teacher(self.corpus, state, match, data, starts, lengths, t0, t1, f.max_order, hb, f._disc, syms, tab)
                 yield syms[:k], tab[:k]
+            if match_stats is not None:
+                match_stats += np.maximum(match[4].astype(np.int64) - start_cells, 0)
         finally:
             S._pool_give(state)
 
@@ -349,7 +369,7 @@ class Braid:
         f = self.file
         n = int(lengths.sum())
         (state, mtab), hl = f.new_state(n, len(lengths)), f.hash_bits(n)
-        match = f.new_match(np.zeros(max(n, 1), np.uint8), mtab, lengths)
+        match = self.new_match(np.zeros(max(n, 1), np.uint8), mtab, lengths)
         starts = np.zeros(len(lengths), np.int64)
         starts[1:] = np.cumsum(lengths)[:-1]
         tab = np.empty((max(len(lengths), 1), 256), np.float64)
