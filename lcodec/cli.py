@@ -301,7 +301,9 @@ def info(path, as_json, frames):
         else:
             click.echo(f"model file {path}: {meta['architecture']['name']}, {len(blob)} bytes, sha256 {sha}")
             for k, v in sorted(meta.items()):
-                if k != "arrays":
+                if k == "learning_curve" and isinstance(v, list) and len(v) > 4:
+                    click.echo(f"  {k}: {len(v)} points, last {json.dumps(v[-1])} (all of them: --json)")
+                elif k != "arrays":
                     click.echo(f"  {k}: {json.dumps(v)}")
             for a in meta["arrays"]:
                 click.echo(f"  array {a['name']}: {a['dtype']} {a['shape']}")
