@@ -18,6 +18,9 @@ BUILTIN = {"strata": Strata}  # models an archive can name without a model file
 ARCHITECTURES = {"strata": Strata, "weft": Weft, "braid": Braid}  # what a model file may hold
 
 
+NAMED_IN_IDENTITY = {"weft"}
+
+
 class Loaded:
     """A model read from a model file; its identity is the file's SHA-256."""
 
@@ -28,7 +31,13 @@ class Loaded:
 
     @property
     def identity(self) -> dict:
-        return {"model": self.meta["architecture"]["name"], "sha256": self.sha256, "file": os.path.basename(self.path)}
+        """Model name and the file's SHA-256. The file's base name (for messages only) is
+        recorded for weft alone, which shipped that way: its archives must re-encode to the
+        same bytes; for the rest it would cost about 25 bytes in every archive."""
+        ident = {"model": self.meta["architecture"]["name"], "sha256": self.sha256}
+        if ident["model"] in NAMED_IN_IDENTITY:
+            ident["file"] = os.path.basename(self.path)
+        return ident
 
     def teacher_chunks(self, *a, **k):
         return self.inner.teacher_chunks(*a, **k)
@@ -70,7 +79,8 @@ def resolve(model):
 
 def identity_text(identity: dict) -> str:
     if "sha256" in identity:
-        return f"{identity['model']} model file {identity.get('file', '?')} (sha256 {identity['sha256']})"
+        name = f" {identity['file']}" if isinstance(identity.get("file"), str) else ""
+        return f"{identity['model']} model file{name} (sha256 {identity['sha256']})"
     if "preset" in identity:
         return f"built-in {identity['model']}, preset {identity['preset']}"
     return f"built-in {identity['model']} {identity.get('params', {})}"
