@@ -21,7 +21,6 @@ import numpy as np
 from . import __version__, api, modelfile
 from .braid_build import build
 from .coder import lane_layout
-from .errors import UsageError
 from .models import strata as S
 from .models.braid import Braid
 
