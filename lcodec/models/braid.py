@@ -28,6 +28,8 @@ probing, a slot's entries at `start[j]:start[j+1]` of the entry arrays.
 """
 from __future__ import annotations
 
+import threading
+
 import numpy as np
 from numba import njit
 
@@ -122,32 +124,85 @@ def _sparse_layer(ent, a, b, disc, p, A):
     return (A * ((esc * inv) >> (INV_BITS - 31))) >> 31
 
 
+# The file's tables: row r is rows[r, :256] (the counts), rows[r, 256:] (the bytes seen,
+# in the order they came, meta[r, N1] of them) and meta[r] (tag, total, and how many
+# counts are >= 1, 2, 3): three cache lines for the usual row, not seven arrays.
+TAG_LO, TAG_HI, TOT, N1, N2, N3 = 0, 1, 2, 3, 4, 5
+META = 8  # uint32 fields per row (two spare): two rows per 64-byte line
+
+
 @njit(cache=True, nogil=True)
-def _dense_layer(row, t, disc, p, A):
-    """The same for the file's own dense row of 256 counts (strata's tables)."""
+def _tag_is(meta, r, chk):
+    return meta[r, TAG_LO] == np.uint32(chk & np.uint64(0xFFFFFFFF)) and meta[r, TAG_HI] == np.uint32(chk >> np.uint64(32))
+
+
+@njit(cache=True, nogil=True)
+def _file_layer(fs, r, disc, p, A):
+    """The same for the file's own row r: only the bytes it has seen (as a corpus row)."""
+    rows, meta = fs[0], fs[1]
     a1 = np.int64(disc[0])
     a2 = np.int64(disc[1]) - a1
     a3 = np.int64(disc[2]) - np.int64(disc[1])
-    # how many counts are >= 1, >= 2, >= 3 (byte compares and additions only, so the
-    # loop vectorises); the escape is then three products
-    n1 = np.int32(0)
-    n2 = np.int32(0)
-    n3 = np.int32(0)
-    for s in range(256):
-        c = row[s]
-        n1 += c >= 1
-        n2 += c >= 2
-        n3 += c >= 3
-    esc = a1 * n1 + a2 * n2 + a3 * n3
-    # bound: as _sparse_layer (a dense row also holds at most 256 counts <= 255)
-    inv = (np.int64(1) << INV_BITS) // (t * F)
-    for s in range(256):
-        c = np.int64(row[s])
-        if c:
-            n = c * F - (a1 + a2 * (c >= 2) + a3 * (c >= 3))
-            w = (n * inv) >> (INV_BITS - 31)
-            p[s] += (A * w) >> (62 - P_BITS)
+    n1 = np.int64(meta[r, N1])
+    esc = a1 * n1 + a2 * np.int64(meta[r, N2]) + a3 * np.int64(meta[r, N3])
+    # bound: as _sparse_layer (a row holds at most 256 counts <= 255)
+    inv = (np.int64(1) << INV_BITS) // (np.int64(meta[r, TOT]) * F)
+    for i in range(n1):
+        s = rows[r, 256 + i]
+        c = np.int64(rows[r, s])
+        n = c * F - (a1 + a2 * (c >= 2) + a3 * (c >= 3))
+        w = (n * inv) >> (INV_BITS - 31)
+        p[s] += (A * w) >> (62 - P_BITS)
     return (A * ((esc * inv) >> (INV_BITS - 31))) >> 31
+
+
+@njit(cache=True, nogil=True)
+def _file_update(fs, slots, checks, max_order, sym):
+    """Count `sym` in the file's rows from the highest order down, stopping below the first
+    order that knew it (strata's update exclusion, with its halving at 255). A row left by
+    an earlier frame (another generation in its tag) is cleared through its list first."""
+    rows, meta = fs[0], fs[1]
+    for k in range(max_order, -1, -1):
+        r = slots[k]
+        chk = checks[k]
+        if not _tag_is(meta, r, chk):
+            for i in range(meta[r, N1]):
+                rows[r, rows[r, 256 + i]] = 0
+            meta[r, TOT] = 0
+            meta[r, N1] = 0
+            meta[r, N2] = 0
+            meta[r, N3] = 0
+            meta[r, TAG_LO] = np.uint32(chk & np.uint64(0xFFFFFFFF))
+            meta[r, TAG_HI] = np.uint32(chk >> np.uint64(32))
+        c = rows[r, sym]
+        if c >= S.COUNT_LIMIT:
+            t = 0
+            m2 = 0
+            m3 = 0
+            for i in range(meta[r, N1]):
+                x = rows[r, 256 + i]
+                v = rows[r, x]
+                if v > 1:
+                    v = (v + 1) >> 1
+                rows[r, x] = v
+                t += v
+                m2 += v >= 2
+                m3 += v >= 3
+            meta[r, TOT] = t
+            meta[r, N2] = m2
+            meta[r, N3] = m3
+            c = rows[r, sym]
+        rows[r, sym] = c + 1
+        meta[r, TOT] += 1
+        if c == 0:
+            rows[r, 256 + meta[r, N1]] = sym
+            meta[r, N1] += 1
+        elif c == 1:
+            meta[r, N2] += 1
+        elif c == 2:
+            meta[r, N3] += 1
+        if c != 0:
+            break
 
 
 @njit(cache=True, nogil=True)
@@ -155,7 +210,7 @@ def _braid_predict(corpus, fstate, hist, slots, checks, max_order, dfile, p):
     """p <- the braided distribution (integers, total about 2**P_BITS), top layer first:
     at each order the file's own row sits above the corpus row of the same context."""
     slot2, ent, cbase, csize, dcorp, mode, found = corpus
-    counts, tot, ftags = fstate[0], fstate[1], fstate[3]
+    fmeta = fstate[1]
     use_file = mode[0] == 0
     corder = cbase.shape[0] - 1
     # every order's home slot first: independent loads the processor can overlap
@@ -169,8 +224,8 @@ def _braid_predict(corpus, fstate, hist, slots, checks, max_order, dfile, p):
     for k in range(max(max_order, corder), -1, -1):
         if use_file and k <= max_order:
             r = slots[k]
-            if ftags[r] == checks[k] and tot[r] > 0:
-                A = _dense_layer(counts[r], np.int64(tot[r]), dfile[k], p, A)
+            if _tag_is(fmeta, r, checks[k]) and fmeta[r, TOT] > 0:
+                A = _file_layer(fstate, r, dfile[k], p, A)
         if k <= corder:
             j = found[k]
             if j >= 0:
@@ -185,7 +240,7 @@ def _braid_predict(corpus, fstate, hist, slots, checks, max_order, dfile, p):
 @njit(cache=True, nogil=True)
 def _teacher(corpus, state, match, data, starts, lengths, t0, t1, max_order, hash_log2, dfile, out_syms, out_tab):
     """Tables of steps t0..t1 for all active lanes, in coding order, updating state."""
-    counts, tot, dist, tags, bases, hist, gen = state
+    bases, hist, gen = state[2], state[3], state[4]
     slots = np.empty(max_order + 1, np.int64)
     checks = np.empty(max_order + 1, np.uint64)
     p = np.empty(256, np.int64)
@@ -206,7 +261,7 @@ def _teacher(corpus, state, match, data, starts, lengths, t0, t1, max_order, has
         for b in range(m):
             sym = data[starts[b] + t]
             S._row_slots(hist[b], max_order, hash_log2, bases, gen, slots, checks)
-            S._update(counts, tot, dist, tags, slots, checks, max_order, sym)
+            _file_update(state, slots, checks, max_order, sym)
             hist[b] = (hist[b] << np.uint64(8)) | np.uint64(sym)
             if use_match:
                 S._match_update(match, b, starts[b], t, sym, hist[b], gen)
@@ -218,7 +273,7 @@ def _teacher(corpus, state, match, data, starts, lengths, t0, t1, max_order, has
 def _step(corpus, state, match, starts, syms, t_prev, m_prev, m, max_order, hash_log2, dfile, out_tab, work):
     """Decoder step: count the symbols of step t_prev (m_prev lanes), then predict m lanes.
     `work` holds the scratch arrays, made once per frame (a step is too short to allocate)."""
-    counts, tot, dist, tags, bases, hist, gen = state
+    bases, hist, gen = state[2], state[3], state[4]
     slots, checks, p = work
     buf = match[0]
     use_match = match[5][3] > 0 and corpus[5][0] == 0
@@ -227,7 +282,7 @@ def _step(corpus, state, match, starts, syms, t_prev, m_prev, m, max_order, hash
     for b in range(m_prev):
         sym = syms[b]
         S._row_slots(hist[b], max_order, hash_log2, bases, gen, slots, checks)
-        S._update(counts, tot, dist, tags, slots, checks, max_order, sym)
+        _file_update(state, slots, checks, max_order, sym)
         hist[b] = (hist[b] << np.uint64(8)) | np.uint64(sym)
         if use_match:
             S._match_update(match, b, starts[b], t_prev, sym, hist[b], gen)
@@ -237,6 +292,29 @@ def _step(corpus, state, match, starts, syms, t_prev, m_prev, m, max_order, hash
         if use_match:
             S._match_predict(match, b, p)
         S._emit(p, out_tab[b])
+
+
+# -- the file's tables: one idle set per thread, reused across frames -----------------------
+_local = threading.local()
+
+
+def _pool_take(n_rows: int):
+    """Row arrays with at least n_rows rows and a generation not used before with them."""
+    pool = getattr(_local, "pool", None)
+    if pool is not None and not pool["busy"] and pool["rows"] >= n_rows and pool["gen"] < 0xFFFFFFFF:
+        pool["busy"] = True
+        pool["gen"] += 1
+        return pool["arrays"], pool["gen"]
+    arrays = (np.zeros((n_rows, 512), np.uint8), np.zeros((n_rows, META), np.uint32), np.zeros(n_rows, np.uint64))
+    if pool is None or not pool["busy"]:
+        _local.pool = {"rows": n_rows, "arrays": arrays, "gen": 1, "busy": True}
+    return arrays, 1  # zeroed tags hold generation 0, which never matches
+
+
+def _pool_give(state):
+    pool = getattr(_local, "pool", None)
+    if pool is not None and pool["arrays"][0] is state[0]:
+        pool["busy"] = False
 
 
 # -- the model -----------------------------------------------------------------------------
@@ -320,6 +398,16 @@ class Braid:
     def identity(self) -> dict:  # only ever used through a model file (models.Loaded)
         return {"model": self.name, "params": self.params}
 
+    def new_state(self, n: int, n_lanes: int):
+        """The file's tables for one frame (rows as strata sizes them) and its match index."""
+        f = self.file
+        hashed = 1 << f.hash_bits(n)
+        rows = [1, 256] + [hashed] * (f.max_order - 1)
+        bases = np.zeros(len(rows), np.int64)
+        bases[1:] = np.cumsum(rows)[:-1]
+        arrays, gen = _pool_take(int(sum(rows)))
+        return (arrays[0], arrays[1], bases, np.zeros(n_lanes, np.uint64), np.uint64(gen)), arrays[2]
+
     def lanes_for(self, n: int) -> int:
         """One lane per 64 KiB of frame, at most 16: lanes share the file's tables but each
         loses its neighbours' recent bytes, which costs more here than for strata (on the
@@ -348,7 +436,7 @@ class Braid:
         observations (hits, trials) are added at the end (training uses it)."""
         f = self.file
         n = int(lengths.sum())
-        (state, mtab), hb = f.new_state(n, len(lengths)), f.hash_bits(n)
+        (state, mtab), hb = self.new_state(n, len(lengths)), f.hash_bits(n)
         match = self.new_match(data, mtab, lengths)
         start_cells = match[4].copy()
         n_steps = int(lengths[0]) if len(lengths) else 0
@@ -363,12 +451,12 @@ class Braid:
             if match_stats is not None:
                 match_stats += np.maximum(match[4].astype(np.int64) - start_cells, 0)
         finally:
-            S._pool_give(state)
+            _pool_give(state)
 
     def stepper(self, lengths):
         f = self.file
         n = int(lengths.sum())
-        (state, mtab), hl = f.new_state(n, len(lengths)), f.hash_bits(n)
+        (state, mtab), hl = self.new_state(n, len(lengths)), f.hash_bits(n)
         match = self.new_match(np.zeros(max(n, 1), np.uint8), mtab, lengths)
         starts = np.zeros(len(lengths), np.int64)
         starts[1:] = np.cumsum(lengths)[:-1]
@@ -382,5 +470,5 @@ class Braid:
             t[0] += 1
             return tab[:m]
 
-        step.close = lambda: S._pool_give(state)
+        step.close = lambda: _pool_give(state)
         return step
