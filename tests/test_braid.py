@@ -181,3 +181,11 @@ def test_train_cli_default_preset_is_braid(tmp_path):
     assert meta["architecture"]["name"] == "braid" and meta["validation"]["integer_bpb"] > 0
     r2 = subprocess.run([sys.executable, "-m", "lcodec", "train", str(corpus), "-o", str(out)], capture_output=True, text=True)
     assert r2.returncode == 2 and "exists" in r2.stderr  # never overwritten without --force
+
+
+def test_bare_model_object_cannot_pack(tiny):
+    """Archives name a braid model by its file's SHA-256: an object not loaded from a file
+    (for instance the prior-only one used for the ablation) must refuse to pack."""
+    meta, arrays, _ = modelfile.load(tiny)
+    with pytest.raises(ValueError, match="model file"):
+        lcodec.pack(b"some bytes to pack", model=Braid(meta["architecture"]["params"], arrays, prior_only=True))

@@ -395,8 +395,10 @@ class Braid:
         return cls(params, arrays)
 
     @property
-    def identity(self) -> dict:  # only ever used through a model file (models.Loaded)
-        return {"model": self.name, "params": self.params}
+    def identity(self) -> dict:
+        """Never written: archives name a braid model by its file's SHA-256 (models.Loaded);
+        a bare object (and above all a prior-only one) cannot be named, so it cannot pack."""
+        raise ValueError("a braid model packs only when loaded from its model file (lcodec.models.load_model)")
 
     def new_state(self, n: int, n_lanes: int):
         """The file's tables for one frame (rows as strata sizes them) and its match index."""
