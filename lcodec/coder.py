@@ -88,23 +88,27 @@ def decode_frame(model, payload: bytes, n: int, lanes: int, coder: str = "queue"
         dec = constriction.stream.stack.AnsCoder(words)
     else:
         raise ValueError(f"unknown coder {coder!r}")
-    out = np.empty(n, np.uint8)
     n_steps = int(lengths[0]) if n else 0
-    active = active_lanes(lengths, n_steps)
+    active = active_lanes(lengths, n_steps).tolist()
     step = model.stepper(lengths)
+    # symbols by step and lane; lanes are laid out contiguously at the end (a step is a few
+    # microseconds of model work, so the loop does as little else as it can)
+    by_step = np.zeros((n_steps, len(lengths)), np.uint8)
     prev = np.zeros(len(lengths), np.int32)
     m_prev = 0
     try:
         for t in range(n_steps):
-            m = int(active[t])
+            m = active[t]
             tab = np.ascontiguousarray(step(prev, m_prev, m), np.float64)
-            syms = dec.decode(_FAMILY, tab)
-            out[starts[:m] + t] = syms
-            prev[:m] = syms
+            prev = np.asarray(dec.decode(_FAMILY, tab), np.int32)
+            by_step[t, :m] = prev
             m_prev = m
     finally:
         if hasattr(step, "close"):
             step.close()
+    out = np.empty(n, np.uint8)
+    for b, (a, ln) in enumerate(zip(starts.tolist(), lengths.tolist())):
+        out[a:a + ln] = by_step[:ln, b]
     return out.tobytes()
 
 
