@@ -19,8 +19,11 @@ import crc32c as _crc32c
 from .errors import DataError
 
 MAGIC = b"\x9blc\n"
-VERSION = 1
-SUPPORTED_VERSIONS = (1,)
+VERSION = 1  # written when the model identity is JSON
+VERSION_COMPACT = 2  # the same layout, the identity of a model file in binary (docs/FORMAT.md)
+SUPPORTED_VERSIONS = (1, 2)
+IDENT_MODEL_FILE = 1  # version-2 identity kind: SHA-256 of a model file, then its architecture's name
+MAX_MODEL_NAME = 64
 
 FLAG_MEMBERS = 0x01  # a member table is present (several files / a folder)
 
@@ -129,12 +132,53 @@ def frame_record(raw_len: int, coded: bytes, method: int, lanes: int, raw_crc: i
     return head + struct.pack("<I", crc32c(head)) + coded
 
 
+def _compact_identity(identity: dict) -> bytes | None:
+    """The version-2 form of a model-file identity {"model", "sha256"}, or None when the
+    identity holds anything else (then it is written as JSON, version 1)."""
+    if set(identity) != {"model", "sha256"}:
+        return None
+    name, sha = identity["model"], identity["sha256"]
+    if not (isinstance(name, str) and isinstance(sha, str) and len(sha) == 64
+            and all(c in "0123456789abcdef" for c in sha)):
+        return None
+    raw = name.encode("utf-8")
+    if not 1 <= len(raw) <= MAX_MODEL_NAME or not name.isprintable():
+        return None
+    return bytes([IDENT_MODEL_FILE]) + bytes.fromhex(sha) + raw
+
+
+def encode_identity(identity: dict) -> tuple[int, bytes]:
+    """(format version, identity bytes): compact binary for a model file's SHA-256 (60 bytes
+    smaller, which counts when small files are packed one per archive), JSON otherwise."""
+    compact = _compact_identity(identity)
+    if compact is not None:
+        return VERSION_COMPACT, compact
+    return VERSION, json.dumps(identity, sort_keys=True, separators=(",", ":")).encode("utf-8")
+
+
+def decode_identity(version: int, raw: bytes) -> dict:
+    if version == VERSION_COMPACT:
+        _need(len(raw) >= 34 and raw[0] == IDENT_MODEL_FILE, "header damaged (model identity is not readable)")
+        try:
+            name = raw[33:].decode("utf-8")
+        except UnicodeDecodeError:
+            raise DataError("header damaged (model identity is not readable)") from None
+        _need(len(raw) - 33 <= MAX_MODEL_NAME and name.isprintable(), "header damaged (model identity is not readable)")
+        return {"model": name, "sha256": raw[1:33].hex()}
+    try:
+        identity = json.loads(raw.decode("utf-8"))
+    except (UnicodeDecodeError, ValueError, RecursionError):  # RecursionError: nesting too deep
+        raise DataError("header damaged (model identity is not readable)") from None
+    _need(isinstance(identity, dict) and isinstance(identity.get("model"), str), "header damaged (no model identity)")
+    return identity
+
+
 def header_bytes(content_size: int, content_sha256: bytes, n_frames: int, frame_size: int,
                  identity: dict, members: list[Member] | None) -> bytes:
-    ident = json.dumps(identity, sort_keys=True, separators=(",", ":")).encode("utf-8")
+    version, ident = encode_identity(identity)
     table = encode_members(members) if members is not None else b""
     flags = FLAG_MEMBERS if members is not None else 0
-    head = (MAGIC + bytes([VERSION, flags]) + uvarint(content_size) + content_sha256 + uvarint(n_frames)
+    head = (MAGIC + bytes([version, flags]) + uvarint(content_size) + content_sha256 + uvarint(n_frames)
             + uvarint(frame_size) + uvarint(len(ident)) + uvarint(len(table)))
     return head + struct.pack("<I", crc32c(head + ident + table)) + ident + table
 
@@ -170,11 +214,7 @@ def read_header(buf) -> tuple[dict, int]:
     _need(crc32c(bytes(mv[:pos]) + bytes(mv[pos + 4:end])) == hcrc, "header damaged (header checksum does not match)")
     _need(flags & ~FLAG_MEMBERS == 0, "header damaged (unknown flags)")
     _need(1 <= frame_size <= MAX_FRAME_RAW, "header damaged (bad frame size)")
-    try:
-        identity = json.loads(bytes(mv[pos + 4:pos + 4 + ilen]).decode("utf-8"))
-    except (UnicodeDecodeError, ValueError, RecursionError):  # RecursionError: nesting too deep
-        raise DataError("header damaged (model identity is not readable)") from None
-    _need(isinstance(identity, dict) and isinstance(identity.get("model"), str), "header damaged (no model identity)")
+    identity = decode_identity(version, bytes(mv[pos + 4:pos + 4 + ilen]))
     members = None
     if flags & FLAG_MEMBERS:
         members = _read_members(mv[pos + 4 + ilen:end])

@@ -90,10 +90,8 @@ def read_header_hints(mv) -> Hints | None:
     crc_ok = C.crc32c(bytes(mv[:pos]) + bytes(mv[pos + 4:end])) == stored
     identity = None
     try:
-        obj = json.loads(bytes(mv[pos + 4:pos + 4 + ilen]).decode("utf-8"))
-        if isinstance(obj, dict) and isinstance(obj.get("model"), str):
-            identity = obj
-    except (UnicodeDecodeError, ValueError, RecursionError):
+        identity = C.decode_identity(mv[4], bytes(mv[pos + 4:pos + 4 + ilen]))
+    except DataError:
         pass
     flags = mv[5]
     members, readable = None, True

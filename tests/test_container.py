@@ -40,3 +40,27 @@ def test_header_layout_matches_docs():
     h, end = C.read_header(blob + b"\0" * C.MIN_RECORD)
     assert end == len(blob) and h["content_size"] == 300 and h["frame_size"] == 1 << 20
     assert h["identity"] == {"model": "x"}
+
+
+def test_version_2_identity_of_a_model_file():
+    # docs/FORMAT.md, version 2: kind 1, the 32-byte SHA-256, the architecture's name
+    sha = "ab" * 32
+    blob = C.header_bytes(5, b"\x22" * 32, 1, 1 << 20, {"model": "braid", "sha256": sha}, None)
+    assert blob[4] == 2
+    h, end = C.read_header(blob + b"\0" * C.MIN_RECORD)
+    assert h["identity"] == {"model": "braid", "sha256": sha} and h["version"] == 2
+    ident = blob[h["spans"]["identity"][0]:h["spans"]["identity"][1]]
+    assert ident == b"\x01" + bytes.fromhex(sha) + b"braid"
+    v1 = C.header_bytes(5, b"\x22" * 32, 1, 1 << 20, {"model": "braid", "sha256": sha, "file": "m.lcmodel"}, None)
+    assert v1[4] == 1 and len(v1) - len(blob) > 50  # anything more than the digest stays JSON
+
+
+@pytest.mark.parametrize("ident", [b"", b"\x01" + b"\0" * 32, b"\x02" + b"\0" * 32 + b"braid",
+                                   b"\x01" + b"\0" * 32 + b"\xff\xfe", b"\x01" + b"\0" * 32 + b"a\nb",
+                                   b"\x01" + b"\0" * 32 + b"x" * 65])
+def test_version_2_damaged_identity_is_refused(ident):
+    head = (C.MAGIC + bytes([2, 0]) + C.uvarint(5) + b"\x22" * 32 + C.uvarint(1) + C.uvarint(1 << 20)
+            + C.uvarint(len(ident)) + C.uvarint(0))
+    blob = head + C.struct.pack("<I", C.crc32c(head + ident)) + ident + b"\0" * C.MIN_RECORD
+    with pytest.raises(DataError, match="header damaged"):
+        C.read_header(blob)
