@@ -25,7 +25,8 @@ EXAMPLES = {
     "info": "lcodec info station-logs" + ARCHIVE_EXT + " --json",
     "bench": "lcodec bench my-corpus/ --json bench.json --csv bench.csv",
     "demo": "lcodec demo",
-    "train": "lcodec train station-logs/ -o logs.lcmodel --time-limit 600",
+    "train": "lcodec train station-logs/ -o logs.lcmodel --time-limit 600\n"
+             "  lcodec train --kind image scanner-7/train/ -o scans.lcmodel --time-limit 120",
     "explain": "lcodec explain station-logs/vh07_gateway.log -o vh07-costs.html",
 }
 
@@ -125,10 +126,13 @@ def _read_archive(path: str) -> bytes:
 @model_option
 @click.option("--frame-size", type=click.IntRange(1, 1 << 26), default=1 << 20, show_default=True,
               help="Raw bytes per independently decodable frame.")
+@click.option("--no-pixels", is_flag=True,
+              help="With a pixel model (-m, trained with --kind image): code image files as bytes too "
+                   "(byte-exact), not as pixels.")
 @force_option
 @quiet_option
 @guarded
-def pack(inputs, output, model, frame_size, force, quiet):
+def pack(inputs, output, model, frame_size, no_pixels, force, quiet):
     """Pack files, folders, or '-' (stdin) into one archive.
 
     One file or stdin makes a single-file archive; several inputs or a folder make a
@@ -149,16 +153,17 @@ def pack(inputs, output, model, frame_size, force, quiet):
     if inputs == ("-",):
         data = sys.stdin.buffer.read()
         bar = Progress(len(data), "packing", quiet)
-        blob, stats = api.pack_stats(data, model, frame_size, bar)
+        blob, stats = api.pack_stats(data, model, frame_size, bar, pixels=not no_pixels)
     elif len(inputs) == 1 and os.path.isfile(inputs[0]):
         data = read_input(inputs[0])
         bar = Progress(len(data), "packing", quiet)
-        blob, stats = api.pack_stats(data, model, frame_size, bar)
+        blob, stats = api.pack_stats(data, model, frame_size, bar, pixels=not no_pixels)
     else:
         total = _tree_bytes(inputs)
         bar = Progress(total, "packing", quiet)
         blob, stats = api.pack_paths(list(inputs), model, frame_size, bar,
-                                     on_skip=lambda p: click.echo(f"lcodec: skipped {p} (not a regular file)", err=True))
+                                     on_skip=lambda p: click.echo(f"lcodec: skipped {p} (not a regular file)", err=True),
+                                     pixels=not no_pixels)
     bar.close()
     if output == "-":
         sys.stdout.buffer.write(blob)
@@ -169,6 +174,15 @@ def pack(inputs, output, model, frame_size, force, quiet):
         click.echo(f"{stats.raw_bytes} -> {stats.coded_bytes} bytes, {stats.bits_per_byte:.3f} bits per byte "
                    f"(model NLL {stats.nll_bits / max(stats.raw_bytes, 1):.3f}), {stats.frames} frames, "
                    f"{stats.encode_s:.2f} s", err=True)
+        if stats.images:
+            n = sum(i["samples"] for i in stats.images)
+            kinds = {}
+            for i in stats.images:
+                kinds[i["guarantee"]] = kinds.get(i["guarantee"], 0) + 1
+            click.echo(f"{len(stats.images)} images as pixels ("
+                       + ", ".join(f"{v} {k}" for k, v in sorted(kinds.items())) + "): "
+                       f"{8.0 * sum(i['coded_bytes'] for i in stats.images) / n:.3f} bits per sub-pixel "
+                       f"(headers and metadata included)", err=True)
 
 
 def _tree_bytes(inputs) -> int:
@@ -275,6 +289,10 @@ def verify(archive, against, model, quiet):
         what = f"{rep.members} members, " if rep.members else ""
         extra = f", identical to {against}" if against else ""
         click.echo(f"ok: {what}{rep.content_bytes} bytes in {rep.frames} frames, all checksums match{extra}")
+        if rep.guarantees:
+            click.echo("  " + "; ".join(f"{n} {g}" for g, n in sorted(rep.guarantees.items()))
+                       + " (byte-exact: SHA-256 of the file's bytes; pixel-exact: SHA-256 of its samples "
+                         "and metadata, the file is rebuilt)")
         return
     for p in rep.problems:
         click.echo(f"FAILED: {p}", err=True)
@@ -323,10 +341,18 @@ def info(path, as_json, frames):
         for f in d["frames"]:
             click.echo(f"    #{f['index']}: {f['raw_bytes']} -> {f['coded_bytes']} bytes, {f['method']}, "
                        f"{f['lanes']} lanes, crc32c {f['crc32c']}")
+    imgs = [f["image"] for f in d["frames"] if "image" in f and "rows" in f["image"]]
+    if imgs:
+        n = sum(i["rows"] * i["columns"] * i["channels"] for i in imgs)
+        bits = sum(i["bits_per_subpixel"] * i["rows"] * i["columns"] * i["channels"] for i in imgs)
+        click.echo(f"  images    {len(imgs)} coded as pixels, {n} sub-pixels, {bits / n:.3f} bits per sub-pixel")
+    if d["members"] is None:
+        click.echo(f"  guarantee {d['guarantee']}")
     if d["members"] is not None:
         click.echo(f"  members   {len(d['members'])}")
         for m in d["members"]:
-            click.echo(f"    {m['path']}{'/' if m['folder'] else ''}  {m['bytes']} bytes  mode {m['mode']}")
+            g = "" if m["folder"] else f"  {m['guarantee']}"
+            click.echo(f"    {m['path']}{'/' if m['folder'] else ''}  {m['bytes']} bytes  mode {m['mode']}{g}")
 
 
 @main.command(epilog=_example("bench"))
@@ -427,24 +453,35 @@ def explain(file, model, output, png_out, frame_size, view_bytes, force, quiet):
 @main.command(epilog=_example("train"))
 @click.argument("corpus", nargs=-1, required=True)
 @click.option("-o", "--output", "output", required=True, type=click.Path(dir_okay=False), help="Model file to write.")
-@click.option("--time-limit", type=click.FloatRange(1, 7 * 86400), default=600, show_default=True,
-              help="Stop training after this many seconds (earlier if validation stops improving).")
+@click.option("--kind", type=click.Choice(["bytes", "image"]), default="bytes", show_default=True,
+              help="bytes: the byte model (weft) on any files; image: the pixel model (tessel) on image files "
+                   "(PGM/PPM, PNG, NPY, uncompressed TIFF, DICOM).")
+@click.option("--time-limit", type=click.FloatRange(1, 7 * 86400), default=None,
+              help="Stop training after this many seconds (earlier if validation stops improving). "
+                   "Default: 600 for bytes, 120 for images.")
 @click.option("--preset", default="small", show_default=True, help="Model size preset (see DEVELOPERS.md).")
 @click.option("--seed", type=int, default=0, show_default=True, help="Seed of the validation split and the training.")
-@click.option("--max-bytes", type=int, default=None, help="Read at most this many bytes of the corpus.")
+@click.option("--max-bytes", type=int, default=None, help="Read at most this many bytes of the corpus (bytes only).")
 @force_option
 @guarded
-def train(corpus, output, time_limit, preset, seed, max_bytes, force):
-    """Train a learned byte model (weft) on files and folders; write a model file.
+def train(corpus, output, kind, time_limit, preset, seed, max_bytes, force):
+    """Train a learned model on files and folders; write a model file.
 
     A tenth of the files is held out for validation; progress shows running train and
-    validation bits per byte; the command ends with the exported integer model's
-    validation bits per byte. Needs torch (scripts/setup.sh installs it); using the
-    model file to pack or unpack does not.
+    validation bits per byte (or per symbol); the command ends with the exported integer
+    model's validation figures. Needs torch (scripts/setup.sh installs it); using the
+    model file to pack or unpack does not. With --kind image, images are coded as pixels
+    by `pack -m MODEL` (see README.md, "Images").
     """
     from . import train as T
 
-    T.train(list(corpus), output, time_limit, preset, seed, max_bytes, echo=lambda m: click.echo(m, err=True), force=force)
+    echo = lambda m: click.echo(m, err=True)  # noqa: E731
+    if kind == "image":
+        if max_bytes is not None:
+            raise UsageError("--max-bytes goes with --kind bytes")
+        T.train_image(list(corpus), output, time_limit or 120.0, preset, seed, echo=echo, force=force)
+    else:
+        T.train(list(corpus), output, time_limit or 600.0, preset, seed, max_bytes, echo=echo, force=force)
 
 
 @main.command(epilog=_example("demo"))

@@ -12,9 +12,10 @@ from ..errors import DataError, ModelError
 from .. import modelfile
 from .strata import Strata
 from .weft import Weft
+from .tessel import Tessel
 
 BUILTIN = {"strata": Strata}  # models an archive can name without a model file
-ARCHITECTURES = {"strata": Strata, "weft": Weft}  # what a model file may hold
+ARCHITECTURES = {"strata": Strata, "weft": Weft, "tessel": Tessel}  # what a model file may hold
 
 
 class Loaded:
@@ -34,6 +35,15 @@ class Loaded:
 
     def stepper(self, *a, **k):
         return self.inner.stepper(*a, **k)
+
+    def __getattr__(self, name):  # image coding entry points of a pixel model (tessel)
+        if name in ("teacher_tables", "step_decode", "has_depth", "role_tables", "set_backend"):
+            return getattr(self.inner, name)
+        raise AttributeError(name)
+
+    @property
+    def is_image_model(self) -> bool:
+        return hasattr(self.inner, "step_decode")
 
     def lanes_for(self, n: int):
         f = getattr(self.inner, "lanes_for", None)
