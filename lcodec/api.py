@@ -232,9 +232,10 @@ def _decode_frame(model, fr: C.Frame) -> bytes:
     return raw
 
 
-def decode(blob, model=None, progress=None, keep_going: bool = False) -> Decoded:
+def decode(blob, model=None, progress=None, keep_going: bool = False, workers: int = 1) -> Decoded:
     """Decode every frame and check every checksum. With keep_going, damaged frames are
-    recorded in `problems` (and left as None) instead of raising at the first one."""
+    recorded in `problems` (and left as None) instead of raising at the first one. With
+    workers > 1, frames are decoded by that many threads (the output is the same)."""
     cont = C.read_container(blob)
     m = for_identity(cont.identity, model)
     if cont.members is not None:
@@ -251,18 +252,35 @@ def decode(blob, model=None, progress=None, keep_going: bool = False) -> Decoded
                     raise DataError(f"member table damaged (member {path!r} lies under "
                                     f"{'/'.join(parts[:i])!r}, which is a file)")
     out = Decoded(cont, [])
-    for fr in cont.frames:
+
+    def one(fr):
         try:
-            out.frames.append(_decode_frame(m, fr))
-            if fr.method == C.METHOD_IMAGE and image_guarantee(fr) == "pixel-exact":
-                out.records.add(fr.index)
+            return _decode_frame(m, fr), None
         except DataError as e:
-            if not keep_going:
-                raise
-            out.frames.append(None)
-            out.problems.append(str(e))
-        if progress:
-            progress(fr.raw_len)
+            return None, e
+
+    if workers > 1 and len(cont.frames) > 1:  # frames are independent: decode them side by side
+        from concurrent.futures import ThreadPoolExecutor
+        pool = ThreadPoolExecutor(workers)
+        results = pool.map(one, cont.frames)
+    else:
+        pool, results = None, map(one, cont.frames)
+    try:
+        for fr, (raw, err) in zip(cont.frames, results):
+            if err is not None:
+                if not keep_going:
+                    raise err
+                out.frames.append(None)
+                out.problems.append(str(err))
+            else:
+                out.frames.append(raw)
+                if fr.method == C.METHOD_IMAGE and image_guarantee(fr) == "pixel-exact":
+                    out.records.add(fr.index)
+            if progress:
+                progress(fr.raw_len)
+    finally:
+        if pool is not None:
+            pool.shutdown(wait=True, cancel_futures=True)
     if cont.members is not None:
         for mem, first, n in out.member_ranges():
             parts = out.frames[first:first + n]
@@ -281,9 +299,9 @@ def decode(blob, model=None, progress=None, keep_going: bool = False) -> Decoded
     return out
 
 
-def unpack(blob, model=None, progress=None) -> bytes:
+def unpack(blob, model=None, progress=None, workers: int = 1) -> bytes:
     """Archive bytes -> the original bytes (single-content archives)."""
-    d = decode(blob, model, progress)
+    d = decode(blob, model, progress, workers=workers)
     if d.container.members is not None:
         raise UsageError(f"this archive holds {len(d.container.members)} members; unpack it into a folder")
     return d.output_bytes(0, len(d.frames))
@@ -293,11 +311,11 @@ def is_multi(blob) -> bool:
     return bool(C.read_header(blob)[0]["flags"] & C.FLAG_MEMBERS)
 
 
-def unpack_to_dir(blob, out_dir: str, model=None, force: bool = False, progress=None) -> list[str]:
+def unpack_to_dir(blob, out_dir: str, model=None, force: bool = False, progress=None, workers: int = 1) -> list[str]:
     """Decode a multi-member archive into `out_dir` (created; must not exist unless force).
     Everything is decoded and verified first, then written under a temporary folder that
     is renamed into place; returns the member paths written."""
-    d = decode(blob, model, progress)
+    d = decode(blob, model, progress, workers=workers)
     if d.container.members is None:
         raise UsageError("this archive holds a single file; unpack it to a file name")
     exists = os.path.lexists(out_dir)
@@ -379,11 +397,11 @@ class VerifyReport:
     guarantees: dict = field(default_factory=dict)  # "byte-exact"/"pixel-exact" -> image count
 
 
-def verify(blob, model=None, against: str | None = None, progress=None) -> VerifyReport:
+def verify(blob, model=None, against: str | None = None, progress=None, workers: int = 1) -> VerifyReport:
     """Decode everything, check every checksum (and the original, if given); never raises
     DataError for damage: it is reported in `problems`."""
     try:
-        d = decode(blob, model, progress, keep_going=True)
+        d = decode(blob, model, progress, keep_going=True, workers=workers)
     except DataError as e:
         return VerifyReport(False, [str(e)], 0, 0, 0)
     problems = list(d.problems)

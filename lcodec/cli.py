@@ -23,7 +23,8 @@ EXAMPLES = {
               "  lcodec unpack damaged" + ARCHIVE_EXT + " -o restored/ --salvage --keep-damaged",
     "verify": "lcodec verify station-logs" + ARCHIVE_EXT + " --against station-logs/",
     "info": "lcodec info station-logs" + ARCHIVE_EXT + " --json",
-    "bench": "lcodec bench my-corpus/ --json bench.json --csv bench.csv",
+    "bench": "lcodec bench my-corpus/ --json bench.json --csv bench.csv\n"
+             "  lcodec bench --kind image scanner-7/test/ -m scans.lcmodel",
     "demo": "lcodec demo",
     "train": "lcodec train station-logs/ -o logs.lcmodel --time-limit 600\n"
              "  lcodec train --kind image scanner-7/train/ -o scans.lcmodel --time-limit 120",
@@ -97,6 +98,8 @@ class Progress:
 model_option = click.option("-m", "--model", "model", type=click.Path(dir_okay=False), default=None,
                             help="Model file to use (default: the built-in adaptive model).")
 force_option = click.option("--force", is_flag=True, help="Overwrite an existing output.")
+threads_option = click.option("--threads", type=click.IntRange(1, 64), default=1, show_default=True,
+                              help="Frames decoded side by side (images: one frame each). Same output.")
 quiet_option = click.option("-q", "--quiet", is_flag=True, help="No progress or summary on stderr.")
 
 
@@ -214,9 +217,10 @@ def _tree_bytes(inputs) -> int:
               help="With --salvage: also write damaged members as NAME.lcodec-damaged, damaged ranges zero-filled.")
 @click.option("--report", "report_path", type=click.Path(dir_okay=False), default=None,
               help="With --salvage: where the JSON report goes (default: OUT.salvage.json).")
+@threads_option
 @quiet_option
 @guarded
-def unpack(archive, output, model, force, salvage_mode, keep_damaged, report_path, quiet):
+def unpack(archive, output, model, force, salvage_mode, keep_damaged, report_path, threads, quiet):
     """Restore an archive: a file, a folder for multi-member archives, or '-' for stdout.
 
     Every frame checksum and the SHA-256 of the content are checked before anything is
@@ -255,9 +259,9 @@ def unpack(archive, output, model, force, salvage_mode, keep_damaged, report_pat
     if multi:
         if output == "-":
             raise UsageError("this archive holds several members; unpack it into a folder, not stdout")
-        api.unpack_to_dir(blob, output, model, force, bar)
+        api.unpack_to_dir(blob, output, model, force, bar, workers=threads)
     else:
-        data = api.unpack(blob, model, bar)
+        data = api.unpack(blob, model, bar, workers=threads)
         if output == "-":
             sys.stdout.buffer.write(data)
             sys.stdout.buffer.flush()
@@ -271,9 +275,10 @@ def unpack(archive, output, model, force, salvage_mode, keep_damaged, report_pat
 @click.option("--against", type=click.Path(exists=True), default=None,
               help="Also compare the decoded content with this original file or folder.")
 @model_option
+@threads_option
 @quiet_option
 @guarded
-def verify(archive, against, model, quiet):
+def verify(archive, against, model, threads, quiet):
     """Decode an archive and check every checksum; exit 0 when exact, 1 when not."""
     from . import api
 
@@ -283,7 +288,7 @@ def verify(archive, against, model, quiet):
     except LcodecError:
         total = 0
     bar = Progress(total, "verifying", quiet)
-    rep = api.verify(blob, model, against, bar)
+    rep = api.verify(blob, model, against, bar, workers=threads)
     bar.close()
     if rep.ok:
         what = f"{rep.members} members, " if rep.members else ""
@@ -365,15 +370,20 @@ def info(path, as_json, frames):
 @click.option("--seed", type=int, default=0, show_default=True, help="Seed of --split.")
 @click.option("--report", "report_dir", type=click.Path(), default=None,
               help="Also write a report folder: index.html, summary.md, the rows, PNG charts (needs matplotlib).")
+@click.option("--kind", type=click.Choice(["bytes", "image"]), default="bytes", show_default=True,
+              help="image: CORPUS_DIR is a folder of test images and -m a pixel model; reports bits per "
+                   "sub-pixel against PNG, WebP, JPEG-LS, JPEG 2000 and JPEG XL (needs imagecodecs).")
 @force_option
 @quiet_option
 @guarded
-def bench(corpus_dir, model, json_out, csv_out, split, seed, report_dir, force, quiet):
+def bench(corpus_dir, model, json_out, csv_out, split, seed, report_dir, kind, force, quiet):
     """Compare lcodec with general compressors on a corpus with train/ and test/ folders.
 
     Every test file is compressed on its own by every codec and round-trip checked.
     The baselines' dictionary (zstd) is trained on train/.
     """
+    if kind == "image":
+        return _bench_images(corpus_dir, model, json_out, csv_out or report_dir or split, force, quiet)
     from . import bench as B
 
     for out in (json_out, csv_out):
@@ -399,6 +409,37 @@ def bench(corpus_dir, model, json_out, csv_out, split, seed, report_dir, force, 
                        force=force)
         if not quiet:
             click.echo(f"report written to {os.path.join(report_dir, 'index.html')}", err=True)
+
+
+def _bench_images(corpus_dir, model, json_out, unsupported, force, quiet):
+    from . import imagebench as IB
+    from .models import resolve
+
+    if unsupported:
+        raise UsageError("--csv, --report and --split go with --kind bytes")
+    if model is None or not getattr(resolve(model), "is_image_model", False):
+        raise UsageError("--kind image needs -m with a pixel model (lcodec train --kind image)")
+    if json_out and os.path.lexists(json_out) and not force:
+        raise UsageError(f"{json_out} exists; pass --force to overwrite it")
+    try:
+        import imagecodecs  # noqa: F401
+    except ImportError:
+        raise UsageError("the image bench needs imagecodecs: pip install -e .[images]") from None
+    rows = []
+    for f in IB.image_files([corpus_dir]):
+        try:
+            rows.append(IB.bench_file(f, model))
+        except UsageError as e:
+            if not quiet:
+                click.echo(f"lcodec: skipped {e}", err=True)
+    if not rows:
+        raise UsageError(f"{corpus_dir} holds no image lcodec codes as pixels")
+    for line in IB.format_rows(rows):
+        click.echo(line)
+    click.echo(f"model file {os.path.getsize(model):,} bytes")
+    if json_out:
+        atomic_write(json_out, json.dumps({"rows": rows, "totals": IB.totals(rows),
+                                           "model_bytes": os.path.getsize(model)}, indent=1).encode(), force=force)
 
 
 @main.command(epilog=_example("explain"))

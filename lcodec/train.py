@@ -295,6 +295,9 @@ IMAGE_PRESETS = {
 }
 
 
+ADAPT_K = 2048
+
+
 def read_images(paths: list[str], echo=print) -> list[tuple[str, np.ndarray]]:
     """Samples of every image lcodec models under the given files/folders (others skipped)."""
     from .images import read_samples
@@ -417,7 +420,9 @@ def train_image(corpus: list[str], out: str, time_limit: float = 120.0, preset: 
                 if bad >= 4:
                     echo("  validation stopped improving")
                 break
-    params = {"embed": cfg["embed"], "hidden": cfg["hidden"], "chan_shift": chan_shift, "roles": {}, "bytes": "o6m"}
+    # adaptive counts: prior strength K of the network's table (figures in DEVELOPERS.md)
+    params = {"embed": cfg["embed"], "hidden": cfg["hidden"], "chan_shift": chan_shift, "roles": {}, "bytes": "o6m",
+              "adapt": {r: ADAPT_K for r in nets}}
     arrays = {}
     for r, net in nets.items():
         if best_state[r] is not None:

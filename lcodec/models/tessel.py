@@ -51,6 +51,10 @@ CHUNK = 8192  # symbols per teacher-pass batch
 HI_OFFSET = 128  # 16-bit residuals are offset so that -128..127 all have high byte 0
 FLAG_BIG_ENDIAN, FLAG_SIGNED = 1, 2
 PAYLOAD_VERSION = 1
+N_CLASSES = 16  # activity classes of the adaptive counts
+COUNT_LIMIT = 4096  # a context's counts are halved past this total, to keep adapting
+CTX_BASE = {"r8": 0, "r16h": N_CLASSES, "r16l": 2 * N_CLASSES}  # rows of the count table
+N_CTX = 6 * N_CLASSES  # r8 16, r16h 16, r16l 16 x 4 high-byte classes
 
 
 @njit(cache=True, nogil=True)
@@ -121,17 +125,85 @@ def _context(v, e, r, c, ch, cols, maxv, shift, idx):
     idx[11] = 11 * Q + _q(eWW)
     idx[12] = 12 * Q + _q(e1)
     idx[13] = 13 * Q + _q(e2)
+    # activity class of the adaptive counts: bit length of a local gradient/residual sum
+    a = abs(N - NW) + abs(NW - W) + abs(NE - N) + abs(eW) + abs(eN)
+    b = 0
+    while a:
+        b += 1
+        a >>= 1
+    idx[HI_SLOT] = min(b, N_CLASSES - 1)
     return p
 
 
 @njit(cache=True, nogil=True)
-def _teacher(v, deep, shift, e, idx, syms, preds):
+def _hib(hi):
+    """Class of a 16-bit high byte for the low byte's adaptive counts."""
+    if hi == 0:
+        return 0
+    if hi == 255:
+        return 1
+    return 2 if hi == 1 else 3
+
+
+@njit(cache=True, nogil=True)
+def _mix(tab, ctx, K, counts, out):
+    """out = the network's table (normalised to about 2**16) times K, plus 2**16 times the
+    adaptive counts of each row's context, plus 1: p = (K q + n) / (K + N). Integers
+    throughout: q = tab * inv >> 24 with inv = 2**40 // sum(tab), and tab <= sum, so the
+    product stays below 2**40; every out entry stays below 2**45 (exact in float64)."""
+    for i in range(tab.shape[0]):
+        tot = np.int64(0)
+        for j in range(256):
+            tot += np.int64(tab[i, j])
+        inv = (np.int64(1) << 40) // tot
+        row = ctx[i]
+        for j in range(256):
+            nq = (np.int64(tab[i, j]) * inv) >> 24
+            out[i, j] = np.float64(nq * K + (np.int64(counts[row, j]) << 16) + 1)
+
+
+@njit(cache=True, nogil=True)
+def _update(ctx, syms, counts, tots):
+    for i in range(ctx.shape[0]):
+        row = ctx[i]
+        counts[row, syms[i]] += 1
+        tots[row] += 1
+        if tots[row] > COUNT_LIMIT:
+            t = 0
+            for j in range(256):
+                counts[row, j] >>= 1
+                t += counts[row, j]
+            tots[row] = t
+
+
+@njit(cache=True, nogil=True)
+def _mix_chunk(tab, ctx, syms, gid, Ks, counts, tots, out):
+    """The encoder's side of the adaptive counts: group by group (one wavefront step and
+    sub-symbol, as the decoder sees them), every table from the state before the group,
+    then the group's symbols counted in lane order."""
+    n = tab.shape[0]
+    i = 0
+    while i < n:
+        j = i
+        while j < n and gid[j] == gid[i]:
+            j += 1
+        K = Ks[i]
+        if K > 0:
+            _mix(tab[i:j], ctx[i:j], K, counts, out[i:j])
+            _update(ctx[i:j], syms[i:j], counts, tots)
+        else:
+            out[i:j] = tab[i:j]
+        i = j
+
+
+@njit(cache=True, nogil=True)
+def _teacher(v, deep, shift, e, idx, syms, preds, ctx):
     """Every sub-symbol of a known image, in raster order (row, column, channel, byte):
     embedding rows, symbols; fills the residual plane e as it goes."""
     rows, cols, C = v.shape
     maxv = 65535 if deep else 255
     P = 2 if deep else 1
-    tmp = np.empty(N_SLOTS - 1, np.int64)
+    tmp = np.empty(N_SLOTS, np.int64)
     k = 0
     for r in range(rows):
         for c in range(cols):
@@ -149,22 +221,25 @@ def _teacher(v, deep, shift, e, idx, syms, preds):
                     idx[k + 1, HI_SLOT] = HI_SLOT * Q + hi
                     syms[k] = hi
                     syms[k + 1] = s & 0xFF
+                    ctx[k] = N_CLASSES + tmp[HI_SLOT]
+                    ctx[k + 1] = 2 * N_CLASSES + tmp[HI_SLOT] * 4 + _hib(hi)
                 else:
                     for j in range(N_SLOTS - 1):
                         idx[k, j] = tmp[j]
                     idx[k, HI_SLOT] = HI_SLOT * Q
                     syms[k] = (x - p) & 0xFF
+                    ctx[k] = tmp[HI_SLOT]
                 preds[k // P] = p
                 k += P
     return k
 
 
 @njit(cache=True, nogil=True)
-def _gather(v, e, r0, r1, t, ch, shift, deep, idx, preds):
+def _gather(v, e, r0, r1, t, ch, shift, deep, idx, preds, cls):
     """Contexts of channel ch of the pixels on wavefront step t, rows r0..r1-1."""
     cols = v.shape[1]
     maxv = 65535 if deep else 255
-    tmp = np.empty(N_SLOTS - 1, np.int64)
+    tmp = np.empty(N_SLOTS, np.int64)
     for i in range(r1 - r0):
         r = r0 + i
         c = t - DELAY * r
@@ -172,6 +247,7 @@ def _gather(v, e, r0, r1, t, ch, shift, deep, idx, preds):
         for j in range(N_SLOTS - 1):
             idx[i, j] = tmp[j]
         idx[i, HI_SLOT] = HI_SLOT * Q
+        cls[i] = tmp[HI_SLOT]
 
 
 @njit(cache=True, nogil=True)
@@ -216,7 +292,7 @@ def check_net(params: dict, arrays: dict, prefix: str) -> None:
         raise ValueError("biases out of range")
 
 
-def raster_features(v: np.ndarray, shift: int):
+def raster_features(v: np.ndarray, shift: int, with_ctx: bool = False):
     """(embedding rows (n, N_SLOTS), symbols (n,), roles (n,): 0 r8, 1 r16h, 2 r16l) of every
     sub-symbol of samples v (rows, cols, channels; uint8 or uint16), in raster order."""
     rows, cols, C = v.shape
@@ -228,8 +304,11 @@ def raster_features(v: np.ndarray, shift: int):
     idx = np.empty((n, N_SLOTS), np.int16)
     syms = np.empty(n, np.int32)
     preds = np.empty(rows * cols * C, np.int64)
-    _teacher(vi, deep, shift, e, idx, syms, preds)
+    ctx = np.empty(n, np.int16)
+    _teacher(vi, deep, shift, e, idx, syms, preds, ctx)
     roles = np.tile(np.array([1, 2], np.int8), n // 2) if deep else np.zeros(n, np.int8)
+    if with_ctx:
+        return idx, syms, roles, ctx
     return idx, syms, roles
 
 
@@ -240,8 +319,14 @@ class Tessel:
 
     def __init__(self, params: dict, arrays: dict, backend: str = "numpy"):
         p = params
-        if not isinstance(p, dict) or set(p) != {"embed", "hidden", "chan_shift", "roles", "bytes"}:
-            raise ValueError("tessel needs exactly embed, hidden, chan_shift, roles and bytes")
+        if not isinstance(p, dict) or not {"embed", "hidden", "chan_shift", "roles", "bytes"} <= set(p) <= {
+                "embed", "hidden", "chan_shift", "roles", "bytes", "adapt"}:
+            raise ValueError("tessel needs embed, hidden, chan_shift, roles and bytes (and optionally adapt)")
+        adapt = p.get("adapt", {})
+        if not isinstance(adapt, dict) or not set(adapt) <= set(p["roles"]) or not all(
+                type(k) is int and 0 <= k <= 1 << 16 for k in adapt.values()):
+            raise ValueError("adapt maps roles to integer prior strengths 0..65536")
+        self.adapt = dict(adapt)
         E, H = p["embed"], p["hidden"]
         if not all(type(x) is int and x >= 1 for x in (E, H)):
             raise ValueError("embed and hidden must be positive integers")
@@ -315,26 +400,47 @@ class Tessel:
         return raster_features(v, self.shift)
 
     def teacher_tables(self, v: np.ndarray, deep: bool):
-        """Yield (symbols, tables) in coding order, chunk by chunk (the encoder's pass)."""
+        """Yield (symbols, tables) in coding order, chunk by chunk (the encoder's pass).
+        Chunks end on wavefront groups (one step's sub-symbol), where the adaptive counts
+        are updated."""
         rows, cols, C = v.shape
         P = 2 if deep else 1
         vv = v.astype(np.uint16) if deep else v.astype(np.uint8)
-        idx, syms, roles = self.teacher(vv)
+        idx, syms, roles, ctx = raster_features(vv, self.shift, with_ctx=True)
         order = coding_order(rows, cols, C, P)
         names = ("r16h", "r16l") if deep else ("r8",)
-        for i in range(0, len(order), CHUNK):
-            o = order[i:i + CHUNK]
+        K = np.array([self.adapt.get(r, 0) for r in ROLES], np.int64)
+        # group id of each coded symbol: (step, sub-symbol); raster index -> (r, c, sub)
+        sub = order % (C * P)
+        pix = order // (C * P)
+        gid = ((pix % cols) + DELAY * (pix // cols)) * (C * P) + sub
+        bounds = np.flatnonzero(np.diff(gid)) + 1
+        counts = np.zeros((N_CTX, 256), np.int32)
+        tots = np.zeros(N_CTX, np.int64)
+        ends, last = [], 0
+        for b in bounds.tolist() + [len(order)]:  # chunks of whole groups, about CHUNK symbols
+            if b - last >= CHUNK or b == len(order):
+                ends.append(b)
+                last = b
+        i = 0
+        for j in ends:
+            o = order[i:j]
             ci, cs = idx[o], syms[o]
             tab = np.empty((len(o), 256), np.float64)
             if deep:
                 part = roles[o] - 1
-                for j, role in enumerate(names):
-                    sel = np.nonzero(part == j)[0]
+                for q, role in enumerate(names):
+                    sel = np.nonzero(part == q)[0]
                     if len(sel):
                         tab[sel] = self.role_tables(role, ci[sel])
             else:
                 tab[:] = self.role_tables("r8", ci)
+            if K.any():
+                out = np.empty_like(tab)
+                _mix_chunk(tab, ctx[o].astype(np.int64), cs, gid[i:j], K[roles[o]], counts, tots, out)
+                tab = out
             yield cs, tab
+            i = j
 
     def step_decode(self, rows: int, cols: int, C: int, deep: bool, decode, record=None) -> np.ndarray:
         """The decoder's pass: wavefront steps; `decode(tables) -> symbols` is the entropy
@@ -346,8 +452,26 @@ class Tessel:
         cap = min(rows, cols // DELAY + 2)
         idx = np.empty((cap, N_SLOTS), np.int16)
         preds = np.empty(cap, np.int64)
+        cls = np.empty(cap, np.int64)
         zero = np.zeros(cap, np.int64)
+        counts = np.zeros((N_CTX, 256), np.int32)
+        tots = np.zeros(N_CTX, np.int64)
+        mixed = np.empty((cap, 256), np.float64)
         n_steps = cols + DELAY * (rows - 1)
+
+        def table(role, m, ctx):
+            tab = self.role_tables(role, idx[:m])
+            K = self.adapt.get(role, 0)
+            if K:
+                _mix(tab, ctx, K, counts, mixed[:m])
+                tab = mixed[:m]
+            if record is not None:
+                record.append(tab.copy())
+            syms = np.asarray(decode(tab), np.int64)
+            if K:
+                _update(ctx, syms, counts, tots)
+            return syms
+
         with threadpool_limits(limits=1, user_api="blas"):  # small products: one BLAS thread is faster
             for t in range(n_steps):
                 r0, r1 = wavefront_rows(t, rows, cols)
@@ -355,21 +479,13 @@ class Tessel:
                 if m <= 0:
                     continue
                 for ch in range(C):
-                    _gather(v, e, r0, r1, t, ch, self.shift, deep, idx, preds)
+                    _gather(v, e, r0, r1, t, ch, self.shift, deep, idx, preds, cls)
                     if deep:
-                        tab = self.role_tables("r16h", idx[:m])
-                        if record is not None:
-                            record.append(tab.copy())
-                        hi = np.asarray(decode(tab), np.int64)
+                        hi = table("r16h", m, N_CLASSES + cls[:m])
                         idx[:m, HI_SLOT] = HI_SLOT * Q + hi
-                        tab = self.role_tables("r16l", idx[:m])
-                        if record is not None:
-                            record.append(tab.copy())
-                        lo = np.asarray(decode(tab), np.int64)
+                        hib = np.where(hi == 0, 0, np.where(hi == 255, 1, np.where(hi == 1, 2, 3)))
+                        lo = table("r16l", m, 2 * N_CLASSES + cls[:m] * 4 + hib)
                     else:
-                        tab = self.role_tables("r8", idx[:m])
-                        if record is not None:
-                            record.append(tab.copy())
-                        hi, lo = zero, np.asarray(decode(tab), np.int64)
+                        hi, lo = zero, table("r8", m, cls[:m].copy())
                     _apply(v, e, r0, r1, t, ch, deep, preds, hi, lo)
         return v
