@@ -30,7 +30,7 @@ GOLDEN = os.path.join(os.path.dirname(__file__), "golden")
 LUT = np.maximum(1, np.round((1 << 20) * np.exp(-np.arange(768) / 32))).astype(np.int32)
 
 
-def random_tessel(seed=0, E=4, H=24, roles=("r8", "r16h", "r16l"), shift=1):
+def random_tessel(seed=0, E=4, H=24, roles=("r8", "r16h", "r16l"), shift=1, adapt=64):
     """An untrained pixel model: random integer weights over output biases shaped like a
     two-sided geometric law around residual 0, so that it compresses images (enough to
     exercise every path, stored frames aside)."""
@@ -46,7 +46,10 @@ def random_tessel(seed=0, E=4, H=24, roles=("r8", "r16h", "r16l"), shift=1):
         arrays[r + ".w2"] = rng.integers(-8, 9, (H, 256)).astype(np.int8)
         arrays[r + ".b2"] = (peak[r] + rng.integers(-2000, 2000, 256)).astype(np.int32)
         rp[r] = {"m1": 1 << 10, "s1": 20, "mo": 1 << 12, "so": 20}
-    return Tessel({"embed": E, "hidden": H, "chan_shift": shift, "roles": rp, "bytes": "o6m"}, arrays)
+    params = {"embed": E, "hidden": H, "chan_shift": shift, "roles": rp, "bytes": "o6m"}
+    if adapt is not None:
+        params["adapt"] = {r: adapt for r in roles}
+    return Tessel(params, arrays)
 
 
 @pytest.fixture(scope="module")
@@ -359,8 +362,9 @@ def _tables(m, v, deep):
     return np.concatenate([t for _, t in m.teacher_tables(v, deep)])
 
 
+@pytest.mark.parametrize("adapt", [None, 64])
 @pytest.mark.parametrize("kind", ["grey8", "rgb8", "grey16"])
-def test_causal_property(kind):
+def test_causal_property(kind, adapt):
     """Masked-autoencoder property (Germain et al., 2015): the table of every sub-symbol
     depends only on sub-symbols coded before it. Changing one sample changes no table at
     or before its own position in coding order, and does change some later table."""
@@ -390,9 +394,10 @@ def test_causal_property(kind):
                     assert not np.array_equal(t[first + 1:], base[first + 1:]), (r, c, ch)
 
 
+@pytest.mark.parametrize("adapt", [None, 1, 3000])
 @pytest.mark.parametrize("kind", ["grey8", "rgb8", "grey16", "signed16"])
-def test_parallel_pass_equals_step_pass(kind):
-    m = random_tessel()
+def test_parallel_pass_equals_step_pass(kind, adapt):
+    m = random_tessel(adapt=adapt)
     if kind == "rgb8":
         a, lay_args = _sample("astronaut", 13, 17), (1, 0)
     elif kind in ("grey16", "signed16"):
@@ -435,6 +440,29 @@ def test_same_archive_across_processes_and_thread_settings(model_file, tmp_path)
         digests.add(out.stdout.strip())
     digests.add(hashlib.sha256(lcodec.pack(src.read_bytes(), model=model_file)).hexdigest())
     assert len(digests) == 1
+
+
+def test_chunking_does_not_change_tables(monkeypatch):
+    """The encoder's batches end on wavefront groups; their size changes no table."""
+    import lcodec.models.tessel as T
+    m = random_tessel()
+    v = _sample("camera", 33, 40)[:, :, None]
+    a = _tables(m, v, False)
+    monkeypatch.setattr(T, "CHUNK", 7)
+    assert np.array_equal(_tables(m, v, False), a)
+
+
+def test_adaptive_counts_stay_exact_at_the_limits():
+    """Largest network tables (every entry 2**20) and counts at the halving limit: the
+    mixed table is exact in float64 (below 2**53) and every entry positive."""
+    from lcodec.models.tessel import COUNT_LIMIT, N_CTX, _mix
+    tab = np.full((3, 256), float(1 << 20))
+    tab[1, 5] = 1.0
+    counts = np.zeros((N_CTX, 256), np.int32)
+    counts[0, :] = COUNT_LIMIT
+    out = np.empty_like(tab)
+    _mix(tab, np.zeros(3, np.int64), 1 << 16, counts, out)
+    assert (out >= 1).all() and out.max() < 2 ** 53 and (out == np.floor(out)).all()
 
 
 def test_model_file_round_trip_and_refusals(model_file, tmp_path):
