@@ -53,8 +53,6 @@ def analyse(data: bytes) -> ImageInfo | None:
             return _tiff(data)
         if data[:8] == PNG_SIG:
             return _png(data)
-        if data[:8] == RECORD_MAGIC:
-            return _record_info(data)
     except Exception:  # an unreadable or unusual file is coded as bytes, never refused
         return None
     return None

@@ -280,6 +280,35 @@ def test_folder_round_trip_and_guarantees(model_file, tmp_path):
     assert not api.verify(blob, model=model_file, against=str(d)).ok
 
 
+def test_a_file_that_is_a_pixel_record_stays_bytes(model_file):
+    """Only a PNG becomes a pixel record; a file that happens to be one is coded as its bytes."""
+    rec = analyse(_png(_sample("coins"))).content
+    assert analyse(rec) is None
+    blob = lcodec.pack(rec, model=model_file)
+    assert lcodec.info(blob)["guarantee"] == "byte-exact" and lcodec.unpack(blob, model=model_file) == rec
+
+
+def test_salvage_rebuilds_pixel_exact_members(model_file, tmp_path):
+    from lcodec import salvage as S
+    d = _folder(tmp_path)
+    blob, _ = api.pack_paths([str(d)], model=model_file)
+    inf = lcodec.info(blob)
+    names = [m["path"] for m in inf["members"] if not m["folder"]]
+    k = names.index("plates/a.pgm")  # damage the PGM's frame (frames follow the member order)
+    fr = inf["frames"][k]
+    end = inf["archive_bytes"] - sum(f["coded_bytes"] + 16 for f in inf["frames"][k + 1:])
+    bad = bytearray(blob)
+    bad[end - 40] ^= 0xFF  # inside the PGM frame's coded words (16+ bytes of head per later record)
+    assert not api.verify(bytes(bad), model=model_file).ok
+    out = tmp_path / "saved"
+    res = S.salvage_to(bytes(bad), str(out), model_file, False, False, None)
+    status = {m.path: m.status for m in res.members}
+    assert status["plates/a.pgm"] == "lost" and status["plates/b.png"] == "recovered"
+    assert np.array_equal(np.asarray(PIL.open(out / "plates" / "b.png")), _sample("coins"))
+    assert (out / "plates" / "c.dcm").read_bytes() == (d / "c.dcm").read_bytes()
+    assert fr["method"] == "modelled/image"
+
+
 def test_force_byte_mode(model_file, tmp_path):
     d = _folder(tmp_path)
     blob, stats = api.pack_paths([str(d)], model=model_file, pixels=False)
@@ -500,6 +529,28 @@ def test_train_image_cli(tmp_path):
     blob = lcodec.pack(data, model=str(out))
     assert lcodec.info(blob)["frames"][0]["method"] == "modelled/image"
     assert lcodec.unpack(blob, model=str(out)) == data
+
+
+def test_bench_kind_image_cli(model_file, tmp_path):
+    """bench --kind image: every codec round-trip checked, sizes equal a direct call of the
+    library (imagecodecs' JPEG XL here), JSON written."""
+    import json
+    import imagecodecs
+    d = tmp_path / "test"
+    d.mkdir()
+    (d / "a.pgm").write_bytes(_pgm(_sample("camera", 32, 40)))
+    (d / "b.dcm").write_bytes(open(_dicom("MR_small.dcm"), "rb").read())
+    j = tmp_path / "rows.json"
+    r = subprocess.run([sys.executable, "-m", "lcodec", "bench", "--kind", "image", str(d), "-m", model_file,
+                        "--json", str(j)], capture_output=True, text=True, env=dict(os.environ, PYTHONPATH=os.getcwd()))
+    assert r.returncode == 0, r.stderr
+    assert "jpegxl" in r.stdout and "total" in r.stdout
+    rows = {x["file"]: x for x in json.loads(j.read_text())["rows"]}
+    assert rows["a.pgm"]["codecs"]["jpegxl"] == len(imagecodecs.jpegxl_encode(_sample("camera", 32, 40), lossless=True, effort=9))
+    assert rows["b.dcm"]["codecs"]["webp"] is None and rows["b.dcm"]["bits"] == 16
+    r = subprocess.run([sys.executable, "-m", "lcodec", "bench", "--kind", "image", str(d)], capture_output=True,
+                       text=True, env=dict(os.environ, PYTHONPATH=os.getcwd()))
+    assert r.returncode == 2 and "pixel model" in r.stderr
 
 
 GOLDEN_IMAGES = sorted(f[:-7] for f in os.listdir(GOLDEN) if f.startswith("tessel-v1-") and f.endswith(".lcodec"))
