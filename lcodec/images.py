@@ -253,8 +253,10 @@ def png_samples(data: bytes):
         return None
     bps = depth // 8
     stride = w * ch * bps
-    raw = zlib.decompress(b"".join(b for t, b, _ in chunks if t == b"IDAT"))
-    if len(raw) != h * (stride + 1):
+    want = h * (stride + 1)
+    dec = zlib.decompressobj()
+    raw = dec.decompress(b"".join(b for t, b, _ in chunks if t == b"IDAT"), want + 1)  # never more than the image
+    if len(raw) != want or dec.unconsumed_tail:
         return None
     out = np.empty((h, stride), np.uint8)
     if not _unfilter(np.frombuffer(raw, np.uint8), h, stride, ch * bps, out):

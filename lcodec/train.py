@@ -295,7 +295,30 @@ IMAGE_PRESETS = {
 }
 
 
-ADAPT_K = 2048
+ADAPT_GRID = (0, 256, 1024, 4096, 16384)
+
+
+def choose_adapt(model, val_images: dict, echo=print) -> dict:
+    """Prior strength K of the adaptive counts, per depth: the value of ADAPT_GRID with the
+    fewest bits on the validation images (whole images through the encoder's pass)."""
+    out = {}
+    for deep, imgs in val_images.items():
+        roles = ("r16h", "r16l") if deep else ("r8",)
+        best = None
+        for K in ADAPT_GRID:
+            model.adapt = {r: K for r in roles}
+            bits = 0.0
+            for v in imgs:
+                for syms, tab in model.teacher_tables(v, deep):
+                    bits += float(-np.log2(tab[np.arange(len(syms)), syms] / tab.sum(1)).sum())
+            n = sum(v.size for v in imgs)
+            echo(f"  adaptive counts K={K}: {bits / n:.4f} bits per sample on the "
+                 f"{'16' if deep else '8'}-bit validation images")
+            if best is None or bits < best[1]:
+                best = (K, bits)
+        out.update({r: best[0] for r in roles})
+    model.adapt = {}
+    return out
 
 
 def read_images(paths: list[str], echo=print) -> list[tuple[str, np.ndarray]]:
@@ -339,7 +362,7 @@ def train_image(corpus: list[str], out: str, time_limit: float = 120.0, preset: 
     for name, v in imgs:
         groups.setdefault(v.dtype == np.uint16, []).append((name, v))
     data = {}  # role -> (train idx, train syms, val idx, val syms)
-    summary = {}
+    summary, val_images = {}, {}
     for deep, items in groups.items():
         order = list(range(len(items)))
         random.Random(seed).shuffle(order)
@@ -362,6 +385,7 @@ def train_image(corpus: list[str], out: str, time_limit: float = 120.0, preset: 
                 sym = np.concatenate([f[1][f[2] == (j + 1 if deep else 0)] for f in fl])
                 got[k] = (idx, sym)
             data[role] = got["train"] + got["val"]
+        val_images[deep] = parts["val"]
         summary["16-bit" if deep else "8-bit"] = {
             "train_images": [os.path.basename(items[i][0]) for i in range(len(items)) if i not in val_ids],
             "validation_images": [os.path.basename(items[i][0]) for i in sorted(val_ids)] or "last eighth of rows",
@@ -420,9 +444,7 @@ def train_image(corpus: list[str], out: str, time_limit: float = 120.0, preset: 
                 if bad >= 4:
                     echo("  validation stopped improving")
                 break
-    # adaptive counts: prior strength K of the network's table (figures in DEVELOPERS.md)
-    params = {"embed": cfg["embed"], "hidden": cfg["hidden"], "chan_shift": chan_shift, "roles": {}, "bytes": "o6m",
-              "adapt": {r: ADAPT_K for r in nets}}
+    params = {"embed": cfg["embed"], "hidden": cfg["hidden"], "chan_shift": chan_shift, "roles": {}, "bytes": "o6m"}
     arrays = {}
     for r, net in nets.items():
         if best_state[r] is not None:
@@ -433,6 +455,8 @@ def train_image(corpus: list[str], out: str, time_limit: float = 120.0, preset: 
         for k in ("emb", "w1", "b1", "w2", "b2"):
             arrays[f"{r}.{k}"] = a[k]
         arrays["lut"] = a["lut"]
+    model = Tessel(params, arrays)
+    params["adapt"] = choose_adapt(model, val_images, echo)  # prior strength of the adaptive counts
     model = Tessel(params, arrays)
     result = {}
     for r in nets:

@@ -239,6 +239,22 @@ def test_png_pixel_record_fields():
     assert np.array_equal(np.asarray(PIL.open(io.BytesIO(rebuild(analyse(data).content)))), _sample("camera"))
 
 
+def test_png_whose_image_data_is_too_long_is_bytes():
+    """IDAT inflating past what IHDR allows (here 1 MB for a 2 x 2 image) is not inflated
+    further and not turned into a record (PNG chunk layout: ISO/IEC 15948)."""
+    import struct as st
+
+    def chunk(t, b):
+        return st.pack(">I", len(b)) + t + b + st.pack(">I", zlib.crc32(t + b))
+    png = (b"\x89PNG\r\n\x1a\n" + chunk(b"IHDR", st.pack(">IIBBBBB", 2, 2, 8, 0, 0, 0, 0))
+           + chunk(b"IDAT", zlib.compress(bytes(1 << 20))) + chunk(b"IEND", b""))
+    assert analyse(png) is None
+    good = (b"\x89PNG\r\n\x1a\n" + chunk(b"IHDR", st.pack(">IIBBBBB", 2, 2, 8, 0, 0, 0, 0))
+            + chunk(b"IDAT", zlib.compress(bytes(6))) + chunk(b"IEND", b""))
+    assert analyse(good).guarantee == "pixel-exact"
+    assert np.array_equal(np.asarray(PIL.open(io.BytesIO(good))), np.zeros((2, 2), np.uint8))
+
+
 def test_one_bit_png_is_coded_as_bytes(model_file):
     buf = io.BytesIO()
     PIL.fromarray(_sample("camera") > 100).save(buf, "PNG")  # bit depth 1: not turned into a record
