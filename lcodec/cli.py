@@ -503,9 +503,12 @@ def explain(file, model, output, png_out, frame_size, view_bytes, force, quiet):
 @click.option("--preset", default="small", show_default=True, help="Model size preset (see DEVELOPERS.md).")
 @click.option("--seed", type=int, default=0, show_default=True, help="Seed of the validation split and the training.")
 @click.option("--max-bytes", type=int, default=None, help="Read at most this many bytes of the corpus (bytes only).")
+@click.option("--adapt-k", default="2048", show_default=True,
+              help="Images: prior strength K of the per-image adaptive counts (0 = off), or 'auto' to pick it "
+                   "per depth on the validation images.")
 @force_option
 @guarded
-def train(corpus, output, kind, time_limit, preset, seed, max_bytes, force):
+def train(corpus, output, kind, time_limit, preset, seed, max_bytes, adapt_k, force):
     """Train a learned model on files and folders; write a model file.
 
     A tenth of the files is held out for validation; progress shows running train and
@@ -520,7 +523,8 @@ def train(corpus, output, kind, time_limit, preset, seed, max_bytes, force):
     if kind == "image":
         if max_bytes is not None:
             raise UsageError("--max-bytes goes with --kind bytes")
-        T.train_image(list(corpus), output, time_limit or 120.0, preset, seed, echo=echo, force=force)
+        T.train_image(list(corpus), output, time_limit or 120.0, preset, seed, echo=echo, force=force,
+                      adapt_k=adapt_k)
     else:
         T.train(list(corpus), output, time_limit or 600.0, preset, seed, max_bytes, echo=echo, force=force)
 

@@ -295,6 +295,7 @@ IMAGE_PRESETS = {
 }
 
 
+ADAPT_K = 2048  # prior strength of the adaptive counts (figures in DEVELOPERS.md)
 ADAPT_GRID = (0, 256, 1024, 4096, 16384)
 
 
@@ -339,7 +340,7 @@ def read_images(paths: list[str], echo=print) -> list[tuple[str, np.ndarray]]:
 
 
 def train_image(corpus: list[str], out: str, time_limit: float = 120.0, preset: str = DEFAULT_PRESET,
-                seed: int = 0, echo=print, force: bool = False, chan_shift: int = 1) -> dict:
+                seed: int = 0, echo=print, force: bool = False, chan_shift: int = 1, adapt_k="2048") -> dict:
     """Fit a tessel pixel model: one network per role present in the corpus (8-bit samples;
     16-bit high and low bytes), quantisation-aware, then export and measure it."""
     try:
@@ -350,6 +351,8 @@ def train_image(corpus: list[str], out: str, time_limit: float = 120.0, preset: 
 
     if preset not in IMAGE_PRESETS:
         raise UsageError(f"unknown preset {preset!r} (have: {', '.join(IMAGE_PRESETS)})")
+    if str(adapt_k) != "auto" and not (str(adapt_k).isdigit() and 0 <= int(adapt_k) <= 1 << 16):
+        raise UsageError("--adapt-k must be 0..65536 or 'auto'")
     if os.path.lexists(out) and not force:
         raise UsageError(f"{out} exists; pass --force to overwrite it")
     cfg = dict(IMAGE_PRESETS[preset], window=N_SLOTS, emb_rows=EMB_ROWS)
@@ -456,7 +459,10 @@ def train_image(corpus: list[str], out: str, time_limit: float = 120.0, preset: 
             arrays[f"{r}.{k}"] = a[k]
         arrays["lut"] = a["lut"]
     model = Tessel(params, arrays)
-    params["adapt"] = choose_adapt(model, val_images, echo)  # prior strength of the adaptive counts
+    if str(adapt_k) == "auto":  # per depth, the grid value best on the validation images
+        params["adapt"] = choose_adapt(model, val_images, echo)
+    else:
+        params["adapt"] = {r: int(adapt_k) for r in nets}
     model = Tessel(params, arrays)
     result = {}
     for r in nets:
