@@ -6,7 +6,7 @@ coded as bytes):
 * byte-exact inputs (PGM/PPM P5/P6, NPY, uncompressed TIFF, uncompressed DICOM): the
   content is the file's own bytes; the layout names where its samples lie. Everything
   else (headers, metadata, other pages, trailing bytes) is coded as bytes.
-* pixel-exact inputs (PNG): the content is a *pixel record* (docs/FORMAT.md): a small
+* pixel-exact inputs (PNG, single-page compressed TIFF): the content is a *pixel record* (docs/FORMAT.md): a small
   header naming the source format, the file's metadata chunks kept as they were, then
   the samples. Unpack writes an equivalent file (`rebuild`): the same pixels and
   metadata chunks, with its own compressed stream.
@@ -114,13 +114,13 @@ def _npy(data):
 
 
 # -- TIFF (uncompressed, samples in one contiguous run) ---------------------------------------
-def _tiff(data):
+def _tiff(data, check: bool = True):
     import tifffile
 
     with tifffile.TiffFile(io.BytesIO(data)) as tif:
         page = tif.pages[0]
         if page.compression != 1:
-            return None  # compressed TIFF: coded as bytes (pixel records for TIFF are not written yet)
+            return _tiff_record(tif, page, check) if len(tif.pages) == 1 else None
         spp = page.samplesperpixel
         if spp > 1 and page.planarconfig != 1:
             return None
@@ -139,6 +139,91 @@ def _tiff(data):
             flags = (FLAG_BIG_ENDIAN if tif.byteorder == ">" else 0) | (FLAG_SIGNED if dt.kind == "i" else 0)
         lay = _fits(Layout(off, rows, cols, spp, dt.itemsize, flags), len(data))
         return lay and ImageInfo("tiff", BYTE_EXACT, data, lay)
+
+
+# compressed TIFF: a pixel record (samples, structure and every other tag, kept as values)
+TIFF_STRUCTURE = {256, 257, 258, 259, 262, 273, 277, 278, 279, 284, 317, 322, 323, 324, 325, 339,
+                  282, 283, 296}  # written by the TIFF writer itself (282, 283, 296: resolution)
+TIFF_LOSSLESS = {5, 8, 32773, 32946, 34925, 50000}  # LZW, deflate, PackBits, deflate, LZMA, Zstandard
+
+
+def _tag_value(v):
+    if isinstance(v, str):
+        return {"s": v}
+    if isinstance(v, bytes):
+        return {"b": v.hex()}
+    if isinstance(v, (int, float)) or hasattr(v, "__int__") and not isinstance(v, (tuple, list)):
+        return {"n": [int(v) if float(v) == int(v) else float(v)]}
+    if isinstance(v, (tuple, list)) and all(isinstance(x, (int, float)) for x in v):
+        return {"n": [x for x in v]}
+    raise ValueError("tag value lcodec does not keep")
+
+
+def _tiff_record(tif, page, check: bool = True):
+    spp = page.samplesperpixel
+    dt = np.dtype(page.dtype)
+    if dt.kind not in "ui" or dt.itemsize not in (1, 2) or page.bitspersample not in (8, 16) or spp > 4:
+        return None
+    if page.imagedepth != 1:
+        return None
+    a = page.asarray()
+    if spp > 1 and page.planarconfig == 2:
+        a = np.moveaxis(a, 0, -1)
+    a = a.reshape(page.imagelength, page.imagewidth, spp)
+    tags, seen = [], set()
+    for t in page.tags.values():
+        if t.code in TIFF_STRUCTURE or t.code in seen:
+            continue
+        seen.add(t.code)
+        tags.append([t.code, int(t.dtype), int(t.count), _tag_value(t.value)])
+    res = page.tags.get(282), page.tags.get(283), page.tags.get(296)
+    meta = {"format": "tiff", "compression": int(page.compression), "photometric": int(page.photometric),
+            "predictor": int(page.predictor), "planarconfig": int(page.planarconfig), "byteorder": tif.byteorder,
+            "sample_dtype": dt.str.lstrip("<>|="), "tags": tags,
+            "resolution": [list(res[0].value), list(res[1].value)] if res[0] and res[1] else None,
+            "resolutionunit": int(res[2].value) if res[2] else None}
+    samples = a.view(np.uint16) if dt.itemsize == 2 else a.view(np.uint8)
+    content = make_record(meta, b"", np.ascontiguousarray(samples))
+    if check:  # the file unpack will write must give back this very record, else: bytes
+        again = _tiff(rebuild(content), check=False)
+        if again is None or again.content != content:
+            return None
+    return _record_info(content)
+
+
+def _tiff_rebuild(meta, pix) -> bytes:
+    import tifffile
+
+    dt = np.dtype(meta["sample_dtype"])
+    a = pix.astype(np.uint16).view(dt) if dt.itemsize == 2 else pix.astype(np.uint8).view(dt)
+    if a.shape[2] == 1:
+        a = a[:, :, 0]
+    planar = None
+    if pix.shape[2] > 1:
+        planar = "separate" if meta["planarconfig"] == 2 else "contig"
+        if planar == "separate":
+            a = np.moveaxis(a, -1, 0)
+    extratags = []
+    for code, dtype, count, v in meta["tags"]:
+        val = v.get("s", v.get("n"))
+        if "b" in v:
+            val = bytes.fromhex(v["b"])
+        elif "n" in v and len(val) == 1:
+            val = val[0]
+        elif "n" in v:
+            val = tuple(val)
+        extratags.append((code, dtype, count, val, True))
+    comp = meta["compression"] if meta["compression"] in TIFF_LOSSLESS else 8
+    kw = {}
+    if meta["resolution"]:
+        kw["resolution"] = tuple(tuple(x) for x in meta["resolution"])
+        if meta["resolutionunit"] is not None:
+            kw["resolutionunit"] = meta["resolutionunit"]
+    buf = io.BytesIO()
+    tifffile.imwrite(buf, a, photometric=meta["photometric"], compression=comp,
+                     predictor=meta["predictor"] if meta["predictor"] > 1 else None, planarconfig=planar,
+                     byteorder=meta["byteorder"], metadata=None, software=False, extratags=extratags, **kw)
+    return buf.getvalue()
 
 
 # -- DICOM (uncompressed transfer syntaxes) --------------------------------------------------
@@ -316,7 +401,8 @@ def read_record(content: bytes) -> tuple[dict, bytes, np.ndarray]:
 def _record_info(content):
     meta, extra, pix = read_record(content)
     bps = pix.dtype.itemsize
-    lay = Layout(len(content) - pix.nbytes, pix.shape[0], pix.shape[1], pix.shape[2], bps, FLAG_RECORD)
+    signed = FLAG_SIGNED if bps == 2 and meta.get("sample_dtype") == "i2" else 0
+    lay = Layout(len(content) - pix.nbytes, pix.shape[0], pix.shape[1], pix.shape[2], bps, FLAG_RECORD | signed)
     lay.check(len(content))
     return ImageInfo(meta.get("format", "?"), PIXEL_EXACT, content, lay)
 
@@ -352,6 +438,8 @@ def _filter_rows(a: np.ndarray, bpp: int) -> bytes:
 def rebuild(content: bytes) -> bytes:
     """An image file from a pixel record (the file unpack writes for pixel-exact members)."""
     meta, extra, pix = read_record(content)
+    if meta.get("format") == "tiff":
+        return _tiff_rebuild(meta, pix)
     if meta.get("format") != "png":
         raise ValueError(f"unknown pixel-record format {meta.get('format')!r}")
     h, w, ch = pix.shape

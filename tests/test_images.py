@@ -144,12 +144,42 @@ def test_tiff_uncompressed_round_trip_byte_exact(kind, model_file):
         assert np.array_equal(np.asarray(PIL.open(io.BytesIO(out))), a)  # and Pillow
 
 
-def test_compressed_tiff_is_coded_as_bytes(model_file):
+@pytest.mark.parametrize("kind", ["zlib", "lzw-int16", "zlib-rgb-predictor", "packbits-u16", "zlib-planar"])
+def test_compressed_tiff_round_trip_pixel_exact(kind, model_file):
+    comp = kind.split("-")[0]
+    a = {"zlib": _sample("camera"), "lzw-int16": _sample("moon").astype(np.int16) - 500,
+         "zlib-rgb-predictor": _sample("astronaut", 14, 19), "packbits-u16": _sample("coins").astype(np.uint16) * 200,
+         "zlib-planar": _sample("astronaut", 14, 19)}[kind]
+    kw = {"predictor": 2} if "predictor" in kind else {}
+    src = np.moveaxis(a, -1, 0) if "planar" in kind else a
+    if "planar" in kind:
+        kw["planarconfig"] = "separate"
+        kw["photometric"] = "rgb"
     buf = io.BytesIO()
-    tifffile.imwrite(buf, _sample("text"), compression="zlib")
+    tifffile.imwrite(buf, src, compression=comp, description="bay-3 plate 7", resolution=(300, 300),
+                     software="scanner-7 fw 2", **kw)
     data = buf.getvalue()
     blob, inf, out = _roundtrip(data, model_file)
-    assert out == data and inf["frames"][0]["method"] != "modelled/image"
+    assert inf["guarantee"] == "pixel-exact" and inf["frames"][0]["method"] == "modelled/image"
+    with tifffile.TiffFile(io.BytesIO(out)) as t, tifffile.TiffFile(io.BytesIO(data)) as o:  # reference: tifffile
+        p, q = t.pages[0], o.pages[0]
+        assert np.array_equal(p.asarray(), q.asarray()) and p.asarray().dtype == q.asarray().dtype
+        assert p.compression == q.compression and p.description == "bay-3 plate 7"
+        assert p.tags["Software"].value == "scanner-7 fw 2"
+        assert p.tags["XResolution"].value == q.tags["XResolution"].value
+    assert analyse(out).content == analyse(data).content
+
+
+def test_lossy_or_multipage_tiff_is_coded_as_bytes(model_file):
+    for kw in ({"compression": "jpeg"}, {}):
+        buf = io.BytesIO()
+        if kw:
+            tifffile.imwrite(buf, _sample("camera", 32, 32), **kw)
+        else:
+            tifffile.imwrite(buf, np.stack([_sample("camera", 16, 16)] * 2), compression="zlib")
+        data = buf.getvalue()
+        blob, inf, out = _roundtrip(data, model_file)
+        assert out == data and inf["frames"][0]["method"] != "modelled/image"
 
 
 @pytest.mark.parametrize("name", ["CT_small.dcm", "MR_small.dcm", "MR_small_bigendian.dcm", "examples_overlay.dcm"])
