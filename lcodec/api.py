@@ -48,17 +48,39 @@ class PackStats:
     frames: int = 0
     stored_frames: int = 0
     encode_s: float = 0.0
+    images: list = field(default_factory=list)  # one dict per image frame
 
     @property
     def bits_per_byte(self) -> float:
         return 8.0 * self.coded_bytes / self.raw_bytes if self.raw_bytes else 0.0
 
 
-def _encode_pieces(pieces, model, frame_size: int, stats: PackStats, progress=None) -> list[bytes]:
+def _encode_pieces(pieces, model, frame_size: int, stats: PackStats, progress=None, images=None) -> list[bytes]:
+    from .pixels import encode_image_frame
+
     records, done = [], 0
     coder = model.coder
     method = C.METHOD_QUEUE if coder == "queue" else C.METHOD_STACK
-    for piece in pieces:
+    for i, piece in enumerate(pieces):
+        img = images[i] if images else None
+        if img is not None:  # one image, one frame (the frame size was raised to hold it)
+            raw = bytes(piece)
+            coded, nll_side, nll_pix = encode_image_frame(model, raw, img.layout)
+            if len(coded) >= len(raw) and img.guarantee == "byte-exact":
+                records.append(C.frame_record(len(raw), raw, C.METHOD_STORED, 1, C.crc32c(raw)))
+                stats.stored_frames += 1
+                stats.nll_bits += 8.0 * len(raw)
+            else:  # a pixel record is never stored: its frame says that unpack rebuilds a file
+                records.append(C.frame_record(len(raw), coded, C.METHOD_IMAGE, 1, C.crc32c(raw)))
+                stats.nll_bits += nll_side + nll_pix
+                stats.images.append({"kind": img.kind, "guarantee": img.guarantee, "samples": img.layout.rows
+                                     * img.layout.cols * img.layout.channels, "bits": 8 * img.layout.bps,
+                                     "coded_bytes": len(coded), "side_bytes": len(raw) - img.layout.region_len,
+                                     "nll_side_bits": nll_side, "nll_pixel_bits": nll_pix})
+            stats.frames += 1
+            if progress:
+                progress(len(raw))
+            continue
         for off in range(0, len(piece), frame_size):
             raw = bytes(piece[off:off + frame_size])
             lanes = frame_lanes(model, len(raw))
@@ -77,13 +99,41 @@ def _encode_pieces(pieces, model, frame_size: int, stats: PackStats, progress=No
     return records
 
 
-def _pack(pieces: list[bytes], members, model, frame_size: int, progress) -> tuple[bytes, PackStats]:
+def image_pieces(pieces: list[bytes], m, pixels: bool = True):
+    """With a pixel model: (contents, ImageInfo or None per piece). An image's content is its
+    own bytes (byte-exact) or its pixel record (pixel-exact); anything else stays bytes."""
+    if not pixels or not getattr(m, "is_image_model", False):
+        return pieces, None
+    from .images import analyse
+
+    out, infos = [], []
+    for p in pieces:
+        info = analyse(bytes(p)) if len(p) <= C.MAX_FRAME_RAW else None
+        if info is not None and not m.has_depth(info.layout.deep):
+            info = None  # the model has no network for this depth: bytes
+        infos.append(info)
+        out.append(info.content if info is not None else p)
+    return out, infos
+
+
+def _pack(pieces: list[bytes], members, model, frame_size: int, progress, pixels: bool = True) -> tuple[bytes, PackStats]:
     if not 1 <= frame_size <= C.MAX_FRAME_RAW:
         raise UsageError(f"frame size must be 1..{C.MAX_FRAME_RAW} bytes")
     t0 = time.perf_counter()
     m = resolve(model)
+    pieces, images = image_pieces(pieces, m, pixels)
+    if images and any(images):
+        frame_size = max([frame_size] + [len(p) for p, i in zip(pieces, images) if i is not None])
+        if members is not None:  # members of image content: size and SHA-256 of what is stored
+            it = iter(zip(pieces, images))
+            for k, mem in enumerate(members):
+                if mem.is_dir:
+                    continue
+                p, i = next(it)
+                if i is not None:
+                    members[k] = C.Member(mem.path, mem.mode, len(p), C.sha256(p), mem.mtime_ns)
     stats = PackStats(raw_bytes=sum(len(p) for p in pieces))
-    records = _encode_pieces(pieces, m, frame_size, stats, progress)
+    records = _encode_pieces(pieces, m, frame_size, stats, progress, images)
     h = C.sha256(b"".join(pieces)) if len(pieces) != 1 else C.sha256(pieces[0])
     head = C.header_bytes(stats.raw_bytes, h, len(records), frame_size, m.identity, members)
     blob = head + b"".join(records)
@@ -92,18 +142,20 @@ def _pack(pieces: list[bytes], members, model, frame_size: int, progress) -> tup
     return blob, stats
 
 
-def pack_stats(data: bytes, model=None, frame_size: int = DEFAULT_FRAME_SIZE, progress=None) -> tuple[bytes, PackStats]:
-    """Pack one byte string; returns (archive bytes, PackStats)."""
-    return _pack([bytes(data)], None, model, frame_size, progress)
+def pack_stats(data: bytes, model=None, frame_size: int = DEFAULT_FRAME_SIZE, progress=None,
+               pixels: bool = True) -> tuple[bytes, PackStats]:
+    """Pack one byte string; returns (archive bytes, PackStats). With a pixel model, an
+    image is coded as pixels unless pixels=False (then as bytes, byte-exact)."""
+    return _pack([bytes(data)], None, model, frame_size, progress, pixels)
 
 
-def pack(data: bytes, model=None, frame_size: int = DEFAULT_FRAME_SIZE, progress=None) -> bytes:
+def pack(data: bytes, model=None, frame_size: int = DEFAULT_FRAME_SIZE, progress=None, pixels: bool = True) -> bytes:
     """Pack one byte string into an archive (bytes)."""
-    return pack_stats(data, model, frame_size, progress)[0]
+    return pack_stats(data, model, frame_size, progress, pixels)[0]
 
 
 def pack_paths(paths: list[str], model=None, frame_size: int = DEFAULT_FRAME_SIZE, progress=None,
-               on_skip=None) -> tuple[bytes, PackStats]:
+               on_skip=None, pixels: bool = True) -> tuple[bytes, PackStats]:
     """Pack files and folders into one multi-member archive; returns (blob, stats)."""
     items, skipped = collect_inputs(list(paths))
     for s in skipped:
@@ -117,7 +169,7 @@ def pack_paths(paths: list[str], model=None, frame_size: int = DEFAULT_FRAME_SIZ
         data = read_input(full)
         members.append(C.Member(rel, st.st_mode, len(data), C.sha256(data), st.st_mtime_ns))
         pieces.append(data)
-    return _pack(pieces, members, model, frame_size, progress)
+    return _pack(pieces, members, model, frame_size, progress, pixels)
 
 
 # -- decoding -----------------------------------------------------------------------------
@@ -126,6 +178,19 @@ class Decoded:
     container: C.Container
     frames: list  # bytes per frame, or None where the frame is damaged
     problems: list = field(default_factory=list)
+    records: set = field(default_factory=set)  # frames whose content is a pixel record (pixel-exact)
+
+    def output_bytes(self, first: int, n: int) -> bytes:
+        """The bytes to write for frames first..first+n-1: the content, or for a pixel
+        record the image file rebuilt from it."""
+        data = b"".join(self.frames[first:first + n])
+        if n == 1 and first in self.records:
+            from .images import rebuild
+            try:
+                return rebuild(data)
+            except (ValueError, KeyError, TypeError):
+                raise DataError(f"frame {first}: its pixel record cannot be rebuilt into an image file") from None
+        return data
 
     def member_ranges(self):
         """(member, first frame index, frame count) for each member."""
@@ -143,6 +208,17 @@ def _decode_frame(model, fr: C.Frame) -> bytes:
         raise DataError(f"frame {fr.index} damaged (CRC-32C of its coded bytes does not match)")
     if fr.method == C.METHOD_STORED:
         raw = bytes(fr.payload)
+    elif fr.method == C.METHOD_IMAGE:
+        from .errors import ModelError
+        from .pixels import decode_image_frame
+        if not getattr(model, "is_image_model", False):
+            raise DataError(f"frame {fr.index} damaged (an image frame in an archive of a byte model)")
+        try:
+            raw = decode_image_frame(model, fr.payload, fr.raw_len)
+        except (DataError, ModelError, KeyboardInterrupt, SystemExit):
+            raise
+        except BaseException:
+            raise DataError(f"frame {fr.index} damaged (its coded words cannot be decoded)") from None
     else:
         coder = "queue" if fr.method == C.METHOD_QUEUE else "stack"
         try:
@@ -156,9 +232,10 @@ def _decode_frame(model, fr: C.Frame) -> bytes:
     return raw
 
 
-def decode(blob, model=None, progress=None, keep_going: bool = False) -> Decoded:
+def decode(blob, model=None, progress=None, keep_going: bool = False, workers: int = 1) -> Decoded:
     """Decode every frame and check every checksum. With keep_going, damaged frames are
-    recorded in `problems` (and left as None) instead of raising at the first one."""
+    recorded in `problems` (and left as None) instead of raising at the first one. With
+    workers > 1, frames are decoded by that many threads (the output is the same)."""
     cont = C.read_container(blob)
     m = for_identity(cont.identity, model)
     if cont.members is not None:
@@ -175,16 +252,35 @@ def decode(blob, model=None, progress=None, keep_going: bool = False) -> Decoded
                     raise DataError(f"member table damaged (member {path!r} lies under "
                                     f"{'/'.join(parts[:i])!r}, which is a file)")
     out = Decoded(cont, [])
-    for fr in cont.frames:
+
+    def one(fr):
         try:
-            out.frames.append(_decode_frame(m, fr))
+            return _decode_frame(m, fr), None
         except DataError as e:
-            if not keep_going:
-                raise
-            out.frames.append(None)
-            out.problems.append(str(e))
-        if progress:
-            progress(fr.raw_len)
+            return None, e
+
+    if workers > 1 and len(cont.frames) > 1:  # frames are independent: decode them side by side
+        from concurrent.futures import ThreadPoolExecutor
+        pool = ThreadPoolExecutor(workers)
+        results = pool.map(one, cont.frames)
+    else:
+        pool, results = None, map(one, cont.frames)
+    try:
+        for fr, (raw, err) in zip(cont.frames, results):
+            if err is not None:
+                if not keep_going:
+                    raise err
+                out.frames.append(None)
+                out.problems.append(str(err))
+            else:
+                out.frames.append(raw)
+                if fr.method == C.METHOD_IMAGE and image_guarantee(fr) == "pixel-exact":
+                    out.records.add(fr.index)
+            if progress:
+                progress(fr.raw_len)
+    finally:
+        if pool is not None:
+            pool.shutdown(wait=True, cancel_futures=True)
     if cont.members is not None:
         for mem, first, n in out.member_ranges():
             parts = out.frames[first:first + n]
@@ -203,23 +299,23 @@ def decode(blob, model=None, progress=None, keep_going: bool = False) -> Decoded
     return out
 
 
-def unpack(blob, model=None, progress=None) -> bytes:
+def unpack(blob, model=None, progress=None, workers: int = 1) -> bytes:
     """Archive bytes -> the original bytes (single-content archives)."""
-    d = decode(blob, model, progress)
+    d = decode(blob, model, progress, workers=workers)
     if d.container.members is not None:
         raise UsageError(f"this archive holds {len(d.container.members)} members; unpack it into a folder")
-    return b"".join(d.frames)
+    return d.output_bytes(0, len(d.frames))
 
 
 def is_multi(blob) -> bool:
     return bool(C.read_header(blob)[0]["flags"] & C.FLAG_MEMBERS)
 
 
-def unpack_to_dir(blob, out_dir: str, model=None, force: bool = False, progress=None) -> list[str]:
+def unpack_to_dir(blob, out_dir: str, model=None, force: bool = False, progress=None, workers: int = 1) -> list[str]:
     """Decode a multi-member archive into `out_dir` (created; must not exist unless force).
     Everything is decoded and verified first, then written under a temporary folder that
     is renamed into place; returns the member paths written."""
-    d = decode(blob, model, progress)
+    d = decode(blob, model, progress, workers=workers)
     if d.container.members is None:
         raise UsageError("this archive holds a single file; unpack it to a file name")
     exists = os.path.lexists(out_dir)
@@ -240,8 +336,9 @@ def unpack_to_dir(blob, out_dir: str, model=None, force: bool = False, progress=
                 folders.append(mem)
                 continue
             os.makedirs(os.path.dirname(target), exist_ok=True)
+            data = d.output_bytes(first, n)
             with open(target, "wb") as f:
-                f.write(b"".join(d.frames[first:first + n]))
+                f.write(data)
                 f.flush()
                 os.fsync(f.fileno())
             os.chmod(target, mem.mode & KEPT_MODE_BITS)
@@ -297,20 +394,37 @@ class VerifyReport:
     content_bytes: int
     frames: int
     members: int
+    guarantees: dict = field(default_factory=dict)  # "byte-exact"/"pixel-exact" -> image count
 
 
-def verify(blob, model=None, against: str | None = None, progress=None) -> VerifyReport:
+def verify(blob, model=None, against: str | None = None, progress=None, workers: int = 1) -> VerifyReport:
     """Decode everything, check every checksum (and the original, if given); never raises
     DataError for damage: it is reported in `problems`."""
     try:
-        d = decode(blob, model, progress, keep_going=True)
+        d = decode(blob, model, progress, keep_going=True, workers=workers)
     except DataError as e:
         return VerifyReport(False, [str(e)], 0, 0, 0)
     problems = list(d.problems)
     cont = d.container
     if against is not None and not problems:
         problems += _compare_against(d, against)
-    return VerifyReport(not problems, problems, cont.content_size, len(cont.frames), len(cont.members or []))
+    g = {}
+    for fr in cont.frames:
+        if fr.method == C.METHOD_IMAGE:
+            k = "pixel-exact image" if fr.index in d.records else "byte-exact image"
+            g[k] = g.get(k, 0) + 1
+    return VerifyReport(not problems, problems, cont.content_size, len(cont.frames), len(cont.members or []), g)
+
+
+def _original_content(path: str, is_record: bool) -> bytes:
+    """What a member's decoded content must equal: the file's bytes (byte-exact), or the
+    pixel record made from it (pixel-exact: the same samples and metadata)."""
+    data = read_input(path)
+    if is_record:
+        from .images import analyse
+        info = analyse(data)
+        return info.content if info is not None and info.guarantee == "pixel-exact" else data
+    return data
 
 
 def _compare_against(d: Decoded, against: str) -> list:
@@ -318,7 +432,9 @@ def _compare_against(d: Decoded, against: str) -> list:
     if cont.members is None:
         if not os.path.isfile(against):
             raise UsageError(f"{against}: not a file (this archive holds a single file)")
-        return [] if read_input(against) == b"".join(d.frames) else [f"decoded content differs from {against}"]
+        same = _original_content(against, 0 in d.records) == b"".join(d.frames)
+        what = "decoded pixels or metadata differ" if 0 in d.records else "decoded content differs"
+        return [] if same else [f"{what} from {against}"]
     probs = []
     root = against
     single_top = {m.path.split("/")[0] for m in cont.members}
@@ -332,17 +448,39 @@ def _compare_against(d: Decoded, against: str) -> list:
             continue
         if not os.path.isfile(p):
             probs.append(f"member {mem.path}: no such file under {against}")
-        elif read_input(p) != b"".join(d.frames[first:first + n]):
+        elif _original_content(p, n == 1 and first in d.records) != b"".join(d.frames[first:first + n]):
             probs.append(f"member {mem.path}: differs from {p}")
     return probs
+
+
+def image_guarantee(fr: C.Frame) -> str | None:
+    """"byte-exact" or "pixel-exact" for an image frame (from its plain descriptor), else None."""
+    if fr.method != C.METHOD_IMAGE:
+        return None
+    from .pixels import FLAG_RECORD, read_descriptor
+    lay, _ = read_descriptor(fr.payload, fr.raw_len)
+    return "pixel-exact" if lay.flags & FLAG_RECORD else "byte-exact"
+
+
+def _frame_info(f: C.Frame) -> dict:
+    d = {"index": f.index, "raw_bytes": f.raw_len, "coded_bytes": f.coded_len,
+         "method": C.METHOD_NAMES[f.method], "lanes": f.lanes, "crc32c": f"{f.raw_crc:08x}"}
+    if f.method == C.METHOD_IMAGE:
+        from .pixels import read_descriptor
+        try:
+            lay, _ = read_descriptor(f.payload, f.raw_len)
+            d["image"] = {"rows": lay.rows, "columns": lay.cols, "channels": lay.channels,
+                          "bits_per_sample": 8 * lay.bps, "guarantee": image_guarantee(f),
+                          "bits_per_subpixel": 8.0 * f.coded_len / (lay.rows * lay.cols * lay.channels)}
+        except DataError as e:
+            d["image"] = {"damaged": str(e)}
+    return d
 
 
 def info(blob) -> dict:
     """Header, members, frames and model identity, without decoding anything."""
     cont = C.read_container(blob)
-    frames = [{"index": f.index, "raw_bytes": f.raw_len, "coded_bytes": f.coded_len,
-               "method": C.METHOD_NAMES[f.method], "lanes": f.lanes, "crc32c": f"{f.raw_crc:08x}"}
-              for f in cont.frames]
+    frames = [_frame_info(f) for f in cont.frames]
     return {
         "format_version": cont.version,
         "archive_bytes": cont.file_size,
@@ -354,6 +492,26 @@ def info(blob) -> dict:
         "frame_size": cont.frame_size,
         "frames": frames,
         "members": None if cont.members is None else [
-            {"path": m.path, "bytes": m.size, "mode": f"{m.mode:o}", "sha256": m.sha256.hex(), "folder": m.is_dir}
-            for m in cont.members],
+            {"path": m.path, "bytes": m.size, "mode": f"{m.mode:o}", "sha256": m.sha256.hex(), "folder": m.is_dir,
+             "guarantee": g}
+            for m, g in zip(cont.members, _member_guarantees(cont))],
+        "guarantee": None if cont.members is not None else (
+            (image_guarantee(cont.frames[0]) if cont.frames and cont.frames[0].method == C.METHOD_IMAGE else None)
+            or "byte-exact"),
     }
+
+
+def _member_guarantees(cont: C.Container) -> list:
+    """Per member: "pixel-exact" (a pixel record, rebuilt into an image file) or "byte-exact"."""
+    out, i = [], 0
+    for m in cont.members:
+        n = 0 if m.is_dir else -(-m.size // cont.frame_size)
+        g = "byte-exact"
+        if n == 1 and i < len(cont.frames) and cont.frames[i].method == C.METHOD_IMAGE:
+            try:
+                g = image_guarantee(cont.frames[i])
+            except DataError:
+                g = "damaged"
+        out.append(g)
+        i += n
+    return out

@@ -23,9 +23,11 @@ EXAMPLES = {
               "  lcodec unpack damaged" + ARCHIVE_EXT + " -o restored/ --salvage --keep-damaged",
     "verify": "lcodec verify station-logs" + ARCHIVE_EXT + " --against station-logs/",
     "info": "lcodec info station-logs" + ARCHIVE_EXT + " --json",
-    "bench": "lcodec bench my-corpus/ --json bench.json --csv bench.csv",
+    "bench": "lcodec bench my-corpus/ --json bench.json --csv bench.csv\n"
+             "  lcodec bench --kind image scanner-7/test/ -m scans.lcmodel",
     "demo": "lcodec demo",
-    "train": "lcodec train station-logs/ -o logs.lcmodel --time-limit 600",
+    "train": "lcodec train station-logs/ -o logs.lcmodel --time-limit 600\n"
+             "  lcodec train --kind image scanner-7/train/ -o scans.lcmodel --time-limit 120",
     "explain": "lcodec explain station-logs/vh07_gateway.log -o vh07-costs.html",
 }
 
@@ -96,6 +98,8 @@ class Progress:
 model_option = click.option("-m", "--model", "model", type=click.Path(dir_okay=False), default=None,
                             help="Model file to use (default: the built-in adaptive model).")
 force_option = click.option("--force", is_flag=True, help="Overwrite an existing output.")
+threads_option = click.option("--threads", type=click.IntRange(1, 64), default=1, show_default=True,
+                              help="Frames decoded side by side (images: one frame each). Same output.")
 quiet_option = click.option("-q", "--quiet", is_flag=True, help="No progress or summary on stderr.")
 
 
@@ -125,10 +129,13 @@ def _read_archive(path: str) -> bytes:
 @model_option
 @click.option("--frame-size", type=click.IntRange(1, 1 << 26), default=1 << 20, show_default=True,
               help="Raw bytes per independently decodable frame.")
+@click.option("--no-pixels", is_flag=True,
+              help="With a pixel model (-m, trained with --kind image): code image files as bytes too "
+                   "(byte-exact), not as pixels.")
 @force_option
 @quiet_option
 @guarded
-def pack(inputs, output, model, frame_size, force, quiet):
+def pack(inputs, output, model, frame_size, no_pixels, force, quiet):
     """Pack files, folders, or '-' (stdin) into one archive.
 
     One file or stdin makes a single-file archive; several inputs or a folder make a
@@ -149,16 +156,17 @@ def pack(inputs, output, model, frame_size, force, quiet):
     if inputs == ("-",):
         data = sys.stdin.buffer.read()
         bar = Progress(len(data), "packing", quiet)
-        blob, stats = api.pack_stats(data, model, frame_size, bar)
+        blob, stats = api.pack_stats(data, model, frame_size, bar, pixels=not no_pixels)
     elif len(inputs) == 1 and os.path.isfile(inputs[0]):
         data = read_input(inputs[0])
         bar = Progress(len(data), "packing", quiet)
-        blob, stats = api.pack_stats(data, model, frame_size, bar)
+        blob, stats = api.pack_stats(data, model, frame_size, bar, pixels=not no_pixels)
     else:
         total = _tree_bytes(inputs)
         bar = Progress(total, "packing", quiet)
         blob, stats = api.pack_paths(list(inputs), model, frame_size, bar,
-                                     on_skip=lambda p: click.echo(f"lcodec: skipped {p} (not a regular file)", err=True))
+                                     on_skip=lambda p: click.echo(f"lcodec: skipped {p} (not a regular file)", err=True),
+                                     pixels=not no_pixels)
     bar.close()
     if output == "-":
         sys.stdout.buffer.write(blob)
@@ -169,6 +177,15 @@ def pack(inputs, output, model, frame_size, force, quiet):
         click.echo(f"{stats.raw_bytes} -> {stats.coded_bytes} bytes, {stats.bits_per_byte:.3f} bits per byte "
                    f"(model NLL {stats.nll_bits / max(stats.raw_bytes, 1):.3f}), {stats.frames} frames, "
                    f"{stats.encode_s:.2f} s", err=True)
+        if stats.images:
+            n = sum(i["samples"] for i in stats.images)
+            kinds = {}
+            for i in stats.images:
+                kinds[i["guarantee"]] = kinds.get(i["guarantee"], 0) + 1
+            click.echo(f"{len(stats.images)} images as pixels ("
+                       + ", ".join(f"{v} {k}" for k, v in sorted(kinds.items())) + "): "
+                       f"{8.0 * sum(i['coded_bytes'] for i in stats.images) / n:.3f} bits per sub-pixel "
+                       f"(headers and metadata included)", err=True)
 
 
 def _tree_bytes(inputs) -> int:
@@ -200,9 +217,10 @@ def _tree_bytes(inputs) -> int:
               help="With --salvage: also write damaged members as NAME.lcodec-damaged, damaged ranges zero-filled.")
 @click.option("--report", "report_path", type=click.Path(dir_okay=False), default=None,
               help="With --salvage: where the JSON report goes (default: OUT.salvage.json).")
+@threads_option
 @quiet_option
 @guarded
-def unpack(archive, output, model, force, salvage_mode, keep_damaged, report_path, quiet):
+def unpack(archive, output, model, force, salvage_mode, keep_damaged, report_path, threads, quiet):
     """Restore an archive: a file, a folder for multi-member archives, or '-' for stdout.
 
     Every frame checksum and the SHA-256 of the content are checked before anything is
@@ -241,9 +259,9 @@ def unpack(archive, output, model, force, salvage_mode, keep_damaged, report_pat
     if multi:
         if output == "-":
             raise UsageError("this archive holds several members; unpack it into a folder, not stdout")
-        api.unpack_to_dir(blob, output, model, force, bar)
+        api.unpack_to_dir(blob, output, model, force, bar, workers=threads)
     else:
-        data = api.unpack(blob, model, bar)
+        data = api.unpack(blob, model, bar, workers=threads)
         if output == "-":
             sys.stdout.buffer.write(data)
             sys.stdout.buffer.flush()
@@ -257,9 +275,10 @@ def unpack(archive, output, model, force, salvage_mode, keep_damaged, report_pat
 @click.option("--against", type=click.Path(exists=True), default=None,
               help="Also compare the decoded content with this original file or folder.")
 @model_option
+@threads_option
 @quiet_option
 @guarded
-def verify(archive, against, model, quiet):
+def verify(archive, against, model, threads, quiet):
     """Decode an archive and check every checksum; exit 0 when exact, 1 when not."""
     from . import api
 
@@ -269,12 +288,16 @@ def verify(archive, against, model, quiet):
     except LcodecError:
         total = 0
     bar = Progress(total, "verifying", quiet)
-    rep = api.verify(blob, model, against, bar)
+    rep = api.verify(blob, model, against, bar, workers=threads)
     bar.close()
     if rep.ok:
         what = f"{rep.members} members, " if rep.members else ""
         extra = f", identical to {against}" if against else ""
         click.echo(f"ok: {what}{rep.content_bytes} bytes in {rep.frames} frames, all checksums match{extra}")
+        if rep.guarantees:
+            click.echo("  " + "; ".join(f"{n} {g}" for g, n in sorted(rep.guarantees.items()))
+                       + " (byte-exact: SHA-256 of the file's bytes; pixel-exact: SHA-256 of its samples "
+                         "and metadata, the file is rebuilt)")
         return
     for p in rep.problems:
         click.echo(f"FAILED: {p}", err=True)
@@ -325,10 +348,18 @@ def info(path, as_json, frames):
         for f in d["frames"]:
             click.echo(f"    #{f['index']}: {f['raw_bytes']} -> {f['coded_bytes']} bytes, {f['method']}, "
                        f"{f['lanes']} lanes, crc32c {f['crc32c']}")
+    imgs = [f["image"] for f in d["frames"] if "image" in f and "rows" in f["image"]]
+    if imgs:
+        n = sum(i["rows"] * i["columns"] * i["channels"] for i in imgs)
+        bits = sum(i["bits_per_subpixel"] * i["rows"] * i["columns"] * i["channels"] for i in imgs)
+        click.echo(f"  images    {len(imgs)} coded as pixels, {n} sub-pixels, {bits / n:.3f} bits per sub-pixel")
+    if d["members"] is None:
+        click.echo(f"  guarantee {d['guarantee']}")
     if d["members"] is not None:
         click.echo(f"  members   {len(d['members'])}")
         for m in d["members"]:
-            click.echo(f"    {m['path']}{'/' if m['folder'] else ''}  {m['bytes']} bytes  mode {m['mode']}")
+            g = "" if m["folder"] else f"  {m['guarantee']}"
+            click.echo(f"    {m['path']}{'/' if m['folder'] else ''}  {m['bytes']} bytes  mode {m['mode']}{g}")
 
 
 @main.command(epilog=_example("bench"))
@@ -341,15 +372,20 @@ def info(path, as_json, frames):
 @click.option("--seed", type=int, default=0, show_default=True, help="Seed of --split.")
 @click.option("--report", "report_dir", type=click.Path(), default=None,
               help="Also write a report folder: index.html, summary.md, the rows, PNG charts (needs matplotlib).")
+@click.option("--kind", type=click.Choice(["bytes", "image"]), default="bytes", show_default=True,
+              help="image: CORPUS_DIR is a folder of test images and -m a pixel model; reports bits per "
+                   "sub-pixel against PNG, WebP, JPEG-LS, JPEG 2000 and JPEG XL (needs imagecodecs).")
 @force_option
 @quiet_option
 @guarded
-def bench(corpus_dir, model, json_out, csv_out, split, seed, report_dir, force, quiet):
+def bench(corpus_dir, model, json_out, csv_out, split, seed, report_dir, kind, force, quiet):
     """Compare lcodec with general compressors on a corpus with train/ and test/ folders.
 
     Every test file is compressed on its own by every codec and round-trip checked.
     The baselines' dictionary (zstd) is trained on train/.
     """
+    if kind == "image":
+        return _bench_images(corpus_dir, model, json_out, csv_out or report_dir or split, force, quiet)
     from . import bench as B
 
     for out in (json_out, csv_out):
@@ -375,6 +411,37 @@ def bench(corpus_dir, model, json_out, csv_out, split, seed, report_dir, force, 
                        force=force)
         if not quiet:
             click.echo(f"report written to {os.path.join(report_dir, 'index.html')}", err=True)
+
+
+def _bench_images(corpus_dir, model, json_out, unsupported, force, quiet):
+    from . import imagebench as IB
+    from .models import resolve
+
+    if unsupported:
+        raise UsageError("--csv, --report and --split go with --kind bytes")
+    if model is None or not getattr(resolve(model), "is_image_model", False):
+        raise UsageError("--kind image needs -m with a pixel model (lcodec train --kind image)")
+    if json_out and os.path.lexists(json_out) and not force:
+        raise UsageError(f"{json_out} exists; pass --force to overwrite it")
+    try:
+        import imagecodecs  # noqa: F401
+    except ImportError:
+        raise UsageError("the image bench needs imagecodecs: pip install -e .[images]") from None
+    rows = []
+    for f in IB.image_files([corpus_dir]):
+        try:
+            rows.append(IB.bench_file(f, model))
+        except UsageError as e:
+            if not quiet:
+                click.echo(f"lcodec: skipped {e}", err=True)
+    if not rows:
+        raise UsageError(f"{corpus_dir} holds no image lcodec codes as pixels")
+    for line in IB.format_rows(rows):
+        click.echo(line)
+    click.echo(f"model file {os.path.getsize(model):,} bytes")
+    if json_out:
+        atomic_write(json_out, json.dumps({"rows": rows, "totals": IB.totals(rows),
+                                           "model_bytes": os.path.getsize(model)}, indent=1).encode(), force=force)
 
 
 @main.command(epilog=_example("explain"))
@@ -429,27 +496,43 @@ def explain(file, model, output, png_out, frame_size, view_bytes, force, quiet):
 @main.command(epilog=_example("train"))
 @click.argument("corpus", nargs=-1, required=True)
 @click.option("-o", "--output", "output", required=True, type=click.Path(dir_okay=False), help="Model file to write.")
-@click.option("--time-limit", type=click.FloatRange(1, 7 * 86400), default=600, show_default=True,
-              help="Stop training after this many seconds (earlier if validation stops improving).")
-@click.option("--preset", default="braid", show_default=True,
-              help="What to train: braid (corpus statistics braided with per-file adaptation; default), "
+@click.option("--kind", type=click.Choice(["bytes", "image"]), default="bytes", show_default=True,
+              help="bytes: a byte model (braid or weft, by --preset) on any files; image: the pixel model "
+                   "(tessel) on image files (PGM/PPM, PNG, NPY, uncompressed TIFF, DICOM).")
+@click.option("--time-limit", type=click.FloatRange(1, 7 * 86400), default=None,
+              help="Stop training after this many seconds (earlier if validation stops improving). "
+                   "Default: 600 for bytes, 120 for images.")
+@click.option("--preset", default=None,
+              help="Byte models: braid (corpus statistics braided with per-file adaptation; the default), "
                    "braid-lean (smaller, faster), or the neural weft presets small and tiny (need torch). "
-                   "Figures in README.md.")
+                   "Images: small (the default) or tiny. Figures in README.md.")
 @click.option("--seed", type=int, default=0, show_default=True, help="Seed of the validation split and the training.")
-@click.option("--max-bytes", type=int, default=None, help="Read at most this many bytes of the corpus.")
+@click.option("--max-bytes", type=int, default=None, help="Read at most this many bytes of the corpus (bytes only).")
+@click.option("--adapt-k", default="2048", show_default=True,
+              help="Images: prior strength K of the per-image adaptive counts (0 = off), or 'auto' to pick it "
+                   "per depth on the validation images.")
 @force_option
 @guarded
-def train(corpus, output, time_limit, preset, seed, max_bytes, force):
+def train(corpus, output, kind, time_limit, preset, seed, max_bytes, adapt_k, force):
     """Train a model on files and folders of one kind; write a model file.
 
     A tenth of the files is held out for validation; progress shows validation bits per
-    byte; the command ends with the exported integer model's validation bits per byte.
-    The weft presets need torch (scripts/setup.sh installs it); packing and unpacking
-    with any model file do not.
+    byte (or per symbol); the command ends with the exported integer model's validation
+    figures. The weft and image presets need torch (scripts/setup.sh installs it); packing
+    and unpacking with any model file do not. With --kind image, images are coded as
+    pixels by `pack -m MODEL` (see README.md, "Images").
     """
     from . import train as T
 
-    T.train(list(corpus), output, time_limit, preset, seed, max_bytes, echo=lambda m: click.echo(m, err=True), force=force)
+    echo = lambda m: click.echo(m, err=True)  # noqa: E731
+    if kind == "image":
+        if max_bytes is not None:
+            raise UsageError("--max-bytes goes with --kind bytes")
+        T.train_image(list(corpus), output, time_limit or 120.0, preset or "small", seed, echo=echo, force=force,
+                      adapt_k=adapt_k)
+    else:
+        T.train(list(corpus), output, time_limit or 600.0, preset or T.DEFAULT_PRESET, seed, max_bytes, echo=echo,
+                force=force)
 
 
 @main.command(epilog=_example("demo"))

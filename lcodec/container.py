@@ -30,7 +30,9 @@ FLAG_MEMBERS = 0x01  # a member table is present (several files / a folder)
 METHOD_STORED = 0
 METHOD_QUEUE = 1  # modelled, constriction range coder
 METHOD_STACK = 2  # modelled, constriction ANS coder
-METHOD_NAMES = {METHOD_STORED: "stored", METHOD_QUEUE: "modelled/queue", METHOD_STACK: "modelled/stack"}
+METHOD_IMAGE = 3  # an image's content, coded by a pixel model (docs/FORMAT.md, "Image frames")
+METHOD_NAMES = {METHOD_STORED: "stored", METHOD_QUEUE: "modelled/queue", METHOD_STACK: "modelled/stack",
+                METHOD_IMAGE: "modelled/image"}
 
 MAX_FRAME_RAW = 1 << 26  # 64 MiB: the most raw bytes one frame may claim
 MAX_CONTENT = 1 << 50

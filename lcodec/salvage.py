@@ -335,6 +335,7 @@ class FrameResult:
     exact: bool = True  # archive_range is the record itself, not only the region it lies in
     data: bytes | None = field(default=None, repr=False)
     placed_by: str = ""  # "header" (walked from it), "end of file", "damaged head before it", "raw lengths"
+    record: bool = False  # an image frame whose content is a pixel record (unpack rebuilds the file)
 
 
 @dataclass
@@ -351,6 +352,7 @@ class MemberResult:
     zero_filled: list = field(default_factory=list)  # byte ranges of the member that are lost
     frames: tuple = ()
     written_as: str | None = None
+    record: bool = False  # data is a pixel record: the file written is rebuilt from it
 
 
 @dataclass
@@ -371,6 +373,7 @@ class Salvage:
     zero_filled: list = field(default_factory=list)
     outputs: list = field(default_factory=list)
     cut_from: int = 0  # where the frames past the end of a cut archive would have begun
+    content_record: bool = False  # the proven content is a pixel record (an image file is rebuilt)
 
     @property
     def ok(self) -> bool:
@@ -472,6 +475,25 @@ def _choose_model(hints: Hints | None, header: str, model, problems: list):
     return m, identity_text(m.identity) + " (assumed)"
 
 
+def _is_record(fr) -> bool:
+    from .api import image_guarantee
+    try:
+        return image_guarantee(fr) == "pixel-exact"
+    except DataError:
+        return False
+
+
+def _rebuilt(data: bytes, record: bool) -> bytes:
+    """What to write for recovered content: a pixel record becomes its image file again."""
+    if not record:
+        return data
+    from .images import rebuild
+    try:
+        return rebuild(data)
+    except (ValueError, KeyError, TypeError):
+        raise DataError("a recovered pixel record cannot be rebuilt into an image file") from None
+
+
 def _decode(model, fr, progress) -> tuple[bytes | None, str]:
     from .api import _decode_frame
 
@@ -524,7 +546,8 @@ def salvage(blob, model=None, progress=None) -> Salvage:
                     fr = placed[i]
                     data, why = _decode(m, fr, progress)
                     frames[i] = FrameResult(i, "good" if data is not None else "damaged", why,
-                                            (fr.offset, _end(fr)), True, data, fr.placed_by)
+                                            (fr.offset, _end(fr)), True, data, fr.placed_by,
+                                            data is not None and _is_record(fr))
                     continue
                 j = bisect.bisect_left(order, i)
                 a = _end(placed[order[j - 1]]) if j > 0 else hints.end
@@ -600,6 +623,7 @@ def _assemble(res: Salvage, hints: Hints) -> None:
         if all_good:
             if C.sha256(data) == hints.content_sha256:
                 res.content = data
+                res.content_record = lay.n == 1 and res.frames[0].record
                 return
             res.problems.append("SHA-256 of the decoded content does not match the header: nothing is proven good "
                                 "(every frame passed its CRC-32C)")
@@ -630,6 +654,7 @@ def _assemble(res: Salvage, hints: Hints) -> None:
             data, zeros, all_good = _zero_filled(res, idxs, lambda i: lay.member_range(i)[1:])
             if all_good and C.sha256(data) == mem.sha256:
                 r.status, r.data = "recovered", data
+                r.record = len(idxs) == 1 and res.frames[idxs.start].record
                 continue
             if all_good:
                 r.reason = "SHA-256 of the decoded bytes does not match (every frame passed its CRC-32C)"
@@ -681,7 +706,7 @@ def salvage_to(blob, output: str, model=None, keep_damaged: bool = False, force:
         if res.members is not None:
             _write_members(res, output, keep_damaged)
         elif res.content is not None:
-            atomic_write(output, res.content, force=force)
+            atomic_write(output, _rebuilt(res.content, res.content_record), force=force)
             res.outputs.append(output)
         elif keep_damaged and res.partial is not None:
             atomic_write(damaged_path, res.partial, force=force)
@@ -717,7 +742,7 @@ def _write_members(res: Salvage, out_dir: str, keep_damaged: bool) -> None:
     taken = {r.path for r in res.members}
     for r in res.members:
         if r.status == "recovered":
-            todo.append((r, r.path, None if r.is_dir else r.data))
+            todo.append((r, r.path, None if r.is_dir else _rebuilt(r.data, r.record)))
         elif keep_damaged and not r.is_dir and r.partial is not None:
             if r.path + DAMAGED_SUFFIX in taken:  # a member of that name exists: never overwrite it
                 r.reason += f"; not written as {r.path + DAMAGED_SUFFIX} (a member has that name)"

@@ -98,7 +98,7 @@ def _build(torch, cfg):
     class Net(nn.Module):
         def __init__(self):
             super().__init__()
-            self.emb = nn.Embedding(257, E)
+            self.emb = nn.Embedding(cfg.get("emb_rows", 257), E)
             self.l1 = nn.Linear(W * E, H)
             self.l2 = nn.Linear(H, 256)
             self.register_buffer("h_max", torch.tensor(4.0))
@@ -292,3 +292,210 @@ def train(corpus: list[str], out: str, time_limit: float = 600.0, preset: str = 
     echo(f"exported integer model: validation {int_bpb:.4f} bits per byte (float QAT {float_bpb:.4f}); "
          f"{os.path.getsize(out):,} bytes, sha256 {sha[:16]}... -> {out}")
     return {"sha256": sha, "integer_bpb": int_bpb, "float_bpb": float_bpb, "curve": curve, "meta": meta}
+
+
+# -- pixel models (lcodec train --kind image) ---------------------------------------------------
+IMAGE_PRESETS = {
+    # name: embed per slot, hidden, batch, learning rate (figures in DEVELOPERS.md)
+    "small": dict(embed=8, hidden=128, batch=2048, lr=3e-3),
+    "tiny": dict(embed=2, hidden=16, batch=512, lr=5e-3),  # for tests
+}
+
+
+ADAPT_K = 2048  # prior strength of the adaptive counts (figures in DEVELOPERS.md)
+ADAPT_GRID = (0, 256, 1024, 4096, 16384)
+
+
+def choose_adapt(model, val_images: dict, echo=print) -> dict:
+    """Prior strength K of the adaptive counts, per depth: the value of ADAPT_GRID with the
+    fewest bits on the validation images (whole images through the encoder's pass)."""
+    out = {}
+    for deep, imgs in val_images.items():
+        roles = ("r16h", "r16l") if deep else ("r8",)
+        best = None
+        for K in ADAPT_GRID:
+            model.adapt = {r: K for r in roles}
+            bits = 0.0
+            for v in imgs:
+                for syms, tab in model.teacher_tables(v, deep):
+                    bits += float(-np.log2(tab[np.arange(len(syms)), syms] / tab.sum(1)).sum())
+            n = sum(v.size for v in imgs)
+            echo(f"  adaptive counts K={K}: {bits / n:.4f} bits per sample on the "
+                 f"{'16' if deep else '8'}-bit validation images")
+            if best is None or bits < best[1]:
+                best = (K, bits)
+        out.update({r: best[0] for r in roles})
+    model.adapt = {}
+    return out
+
+
+def read_images(paths: list[str], echo=print) -> list[tuple[str, np.ndarray]]:
+    """Samples of every image lcodec models under the given files/folders (others skipped)."""
+    from .images import read_samples
+
+    out = []
+    for name, data in read_corpus(paths):
+        v = read_samples(data)
+        if v is None:
+            echo(f"  skipped {name}: not an image lcodec codes as pixels")
+            continue
+        out.append((name, v))
+    if not out:
+        raise UsageError("the training folder holds no image lcodec codes as pixels "
+                         "(PGM/PPM, NPY, PNG, uncompressed TIFF or DICOM)")
+    return out
+
+
+def train_image(corpus: list[str], out: str, time_limit: float = 120.0, preset: str = "small",
+                seed: int = 0, echo=print, force: bool = False, chan_shift: int = 1, adapt_k="2048") -> dict:
+    """Fit a tessel pixel model: one network per role present in the corpus (8-bit samples;
+    16-bit high and low bytes), quantisation-aware, then export and measure it."""
+    try:
+        import torch
+    except ImportError:
+        raise UsageError("training needs torch: run scripts/setup.sh (installs torch==2.13.0)") from None
+    from .models.tessel import EMB_ROWS, N_SLOTS, Tessel, raster_features
+
+    if preset not in IMAGE_PRESETS:
+        raise UsageError(f"unknown preset {preset!r} (have: {', '.join(IMAGE_PRESETS)})")
+    if str(adapt_k) != "auto" and not (str(adapt_k).isdigit() and 0 <= int(adapt_k) <= 1 << 16):
+        raise UsageError("--adapt-k must be 0..65536 or 'auto'")
+    if os.path.lexists(out) and not force:
+        raise UsageError(f"{out} exists; pass --force to overwrite it")
+    cfg = dict(IMAGE_PRESETS[preset], window=N_SLOTS, emb_rows=EMB_ROWS)
+    t_start = time.perf_counter()
+    np.random.seed(seed)
+    torch.manual_seed(seed)
+    rng = np.random.default_rng(seed)
+    imgs = read_images(corpus, echo)
+    groups = {}
+    for name, v in imgs:
+        groups.setdefault(v.dtype == np.uint16, []).append((name, v))
+    data = {}  # role -> (train idx, train syms, val idx, val syms)
+    summary, val_images = {}, {}
+    for deep, items in groups.items():
+        order = list(range(len(items)))
+        random.Random(seed).shuffle(order)
+        n_val = max(1, len(items) // 10) if len(items) > 1 else 0
+        val_ids = set(order[:n_val])
+        parts = {"train": [], "val": []}
+        for i, (name, v) in enumerate(items):
+            if n_val:
+                parts["val" if i in val_ids else "train"].append(v)
+            else:  # one image: its last eighth of rows is the validation region
+                cut = max(1, v.shape[0] * 7 // 8)
+                parts["train"].append(v[:cut])
+                parts["val"].append(v[cut:] if cut < v.shape[0] else v)
+        feats = {k: [raster_features(np.ascontiguousarray(v), chan_shift) for v in vs] for k, vs in parts.items()}
+        roles = ("r16h", "r16l") if deep else ("r8",)
+        for j, role in enumerate(roles):
+            got = {}
+            for k, fl in feats.items():
+                idx = np.concatenate([f[0][f[2] == (j + 1 if deep else 0)] for f in fl])
+                sym = np.concatenate([f[1][f[2] == (j + 1 if deep else 0)] for f in fl])
+                got[k] = (idx, sym)
+            data[role] = got["train"] + got["val"]
+        val_images[deep] = parts["val"]
+        summary["16-bit" if deep else "8-bit"] = {
+            "train_images": [os.path.basename(items[i][0]) for i in range(len(items)) if i not in val_ids],
+            "validation_images": [os.path.basename(items[i][0]) for i in sorted(val_ids)] or "last eighth of rows",
+            "train_samples": int(sum(v.size for v in parts["train"])),
+        }
+    for k, s in summary.items():
+        echo(f"training tessel/{preset} ({k}) on {s['train_samples']:,} samples of "
+             f"{len(s['train_images'])} images; validating on {s['validation_images']}; "
+             f"time limit {time_limit:.0f} s")
+    nets = {r: _build(torch, cfg) for r in data}
+    opts = {r: torch.optim.Adam(nets[r].parameters(), lr=cfg["lr"]) for r in data}
+    val = {}
+    for r, (ti, ts, vi, vs) in data.items():
+        sel = np.sort(rng.permutation(len(vs))[:50_000])
+        val[r] = (torch.from_numpy(vi[sel].astype(np.int64)), torch.from_numpy(vs[sel].astype(np.int64)))
+    log2e = 1 / math.log(2)
+    best = {r: math.inf for r in data}
+    best_state = {r: None for r in data}
+    curve, step, bad = [], 0, 0
+    last_eval = time.perf_counter()
+    run = {r: [0.0, 0] for r in data}
+    while True:
+        for r, net in nets.items():
+            net.train()
+            ti, ts = data[r][0], data[r][1]
+            b = rng.integers(0, len(ts), size=cfg["batch"])
+            loss = torch.nn.functional.cross_entropy(net(torch.from_numpy(ti[b].astype(np.int64))),
+                                                     torch.from_numpy(ts[b].astype(np.int64)))
+            opts[r].zero_grad()
+            loss.backward()
+            opts[r].step()
+            run[r][0] += float(loss.detach()) * log2e
+            run[r][1] += 1
+        step += 1
+        now = time.perf_counter()
+        elapsed = now - t_start
+        if now - last_eval >= max(5.0, min(30.0, time_limit / 20)) or elapsed >= time_limit:
+            point = {"seconds": round(elapsed, 1), "step": step}
+            improved = False
+            for r, net in nets.items():
+                net.eval()
+                with torch.no_grad():
+                    vb = float(torch.nn.functional.cross_entropy(net(val[r][0]), val[r][1])) * log2e
+                point[r] = {"train_bits": run[r][0] / max(run[r][1], 1), "val_bits": vb}
+                run[r] = [0.0, 0]
+                if vb < best[r] - 1e-3:
+                    best[r], improved = vb, True
+                    best_state[r] = {k: v.clone() for k, v in net.state_dict().items()}
+            curve.append(point)
+            echo(f"  {elapsed:6.0f} s  step {step:7d}  " + "  ".join(
+                f"{r}: train {point[r]['train_bits']:.3f} validation {point[r]['val_bits']:.3f}" for r in nets)
+                + " bits per symbol")
+            last_eval = now
+            bad = 0 if improved else bad + 1
+            if elapsed >= time_limit or bad >= 4:
+                if bad >= 4:
+                    echo("  validation stopped improving")
+                break
+    params = {"embed": cfg["embed"], "hidden": cfg["hidden"], "chan_shift": chan_shift, "roles": {}, "bytes": "o6m"}
+    arrays = {}
+    for r, net in nets.items():
+        if best_state[r] is not None:
+            net.load_state_dict(best_state[r])
+        net.eval()
+        p, a = export(net, cfg)
+        params["roles"][r] = {k: p[k] for k in ("m1", "s1", "mo", "so")}
+        for k in ("emb", "w1", "b1", "w2", "b2"):
+            arrays[f"{r}.{k}"] = a[k]
+        arrays["lut"] = a["lut"]
+    model = Tessel(params, arrays)
+    if str(adapt_k) == "auto":  # per depth, the grid value best on the validation images
+        params["adapt"] = choose_adapt(model, val_images, echo)
+    else:
+        params["adapt"] = {r: int(adapt_k) for r in nets}
+    model = Tessel(params, arrays)
+    result = {}
+    for r in nets:
+        vi, vs = data[r][2], data[r][3]
+        bits = 0.0
+        for i in range(0, len(vs), 8192):
+            tab = model.role_tables(r, vi[i:i + 8192])
+            s_ = vs[i:i + 8192]
+            bits += float(-np.log2(tab[np.arange(len(s_)), s_] / tab.sum(1)).sum())
+        with torch.no_grad():
+            fl = 0.0
+            for i in range(0, len(vs), 8192):
+                fl += float(torch.nn.functional.cross_entropy(
+                    nets[r](torch.from_numpy(vi[i:i + 8192].astype(np.int64))),
+                    torch.from_numpy(vs[i:i + 8192].astype(np.int64)), reduction="sum")) * log2e
+        result[r] = {"symbols": int(len(vs)), "integer_bits": round(bits / len(vs), 4),
+                     "float_qat_bits": round(fl / len(vs), 4)}
+    meta = {
+        "lcodec_version": __version__, "kind": "image", "preset": preset, "seed": seed,
+        "quantisation": "int8 weights and embeddings, uint7 hidden activations, softmax on a 1/32-nat grid (lut)",
+        "training": {"seconds": round(time.perf_counter() - t_start, 1), "steps": step, "sets": summary,
+                     "corpus": [os.path.abspath(c) for c in corpus][:20]},
+        "validation_bits_per_symbol": result, "learning_curve": curve,
+    }
+    sha = modelfile.dump(out, {"name": "tessel", "params": params}, arrays, **meta)
+    for r, x in result.items():
+        echo(f"exported {r}: validation {x['integer_bits']:.4f} bits per symbol (float QAT {x['float_qat_bits']:.4f})")
+    echo(f"model {os.path.getsize(out):,} bytes, sha256 {sha[:16]}... -> {out}")
+    return {"sha256": sha, "validation": result, "curve": curve, "meta": meta}

@@ -52,7 +52,7 @@ def golden_braid():
     from lcodec import train as T
 
     mpath = os.path.join(HERE, "braid-tiny.lcmodel")
-    arc, orig = os.path.join(HERE, "braid-v1-text.lcodec"), os.path.join(HERE, "braid-v1-text.orig")
+    arc, orig = os.path.join(HERE, "braid-v2-text.lcodec"), os.path.join(HERE, "braid-v2-text.orig")
     if os.path.exists(arc):
         print(f"keep {arc}")
         return
@@ -70,6 +70,57 @@ def golden_braid():
     print(f"wrote {arc}")
 
 
+def golden_tessel():
+    """A tiny trained pixel model (8- and 16-bit networks) and three image containers made
+    with it: an 8-bit PGM (byte-exact), a PNG with a text chunk (pixel-exact) and pydicom's
+    16-bit MR_small.dcm (byte-exact). Needs torch, scikit-image and pydicom."""
+    import io
+    import shutil
+    import tempfile
+    import warnings
+
+    import numpy as np
+    import skimage.data as skd
+    from PIL import Image, PngImagePlugin
+    from pydicom.data import get_testdata_file
+
+    from lcodec import train as T
+
+    mpath = os.path.join(HERE, "tessel-tiny.lcmodel")
+    names = ["tessel-v1-pgm", "tessel-v1-png", "tessel-v1-dicom16"]
+    if all(os.path.exists(os.path.join(HERE, n + ".lcodec")) for n in names):
+        print("keep tessel-v1-*")
+        return
+    warnings.simplefilter("ignore")
+    if not os.path.exists(mpath):
+        with tempfile.TemporaryDirectory() as d:
+            for n in ("brick", "grass", "clock", "text"):
+                a = getattr(skd, n)()[:96, :96]
+                with open(os.path.join(d, n + ".pgm"), "wb") as f:
+                    f.write(b"P5\n96 96\n255\n" + a.tobytes())
+            for n in ("moon", "camera"):
+                a = getattr(skd, n)()[:96, :96].astype("<u2") * 4
+                np.save(os.path.join(d, n + "16.npy"), a)
+            T.train_image([d], mpath, time_limit=25, preset="tiny", seed=0, echo=print)
+    cam = skd.camera()[100:132, 200:240]
+    pgm = b"P5\n# bay-3 plate 1\n40 32\n255\n" + cam.tobytes()
+    info = PngImagePlugin.PngInfo()
+    info.add_text("Station", "kestrel-ridge scanner 2")
+    buf = io.BytesIO()
+    Image.fromarray(skd.coins()[50:80, 60:100]).save(buf, "PNG", pnginfo=info)
+    dcm = open(get_testdata_file("MR_small.dcm"), "rb").read()
+    for name, data in zip(names, (pgm, buf.getvalue(), dcm)):
+        arc, orig = os.path.join(HERE, name + ".lcodec"), os.path.join(HERE, name + ".orig")
+        if os.path.exists(arc):
+            print(f"keep {arc}")
+            continue
+        with open(orig, "wb") as f:
+            f.write(data)
+        with open(arc, "wb") as f:
+            f.write(lcodec.pack(data, model=mpath))
+        print(f"wrote {arc}")
+
+
 def main():
     os.makedirs(HERE, exist_ok=True)
     vectors = {"strata-v1-text": sample_text(1, 20_000), "strata-v1-binary": bytes(random.Random(2).randbytes(3000)) + bytes(range(256)) * 8}
@@ -85,6 +136,7 @@ def main():
         print(f"wrote {arc}")
     golden_weft()
     golden_braid()
+    golden_tessel()
 
 
 if __name__ == "__main__":

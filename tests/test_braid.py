@@ -161,8 +161,8 @@ def test_hostile_model_files_are_refused(tiny, tmp_path, damage):
 
 def test_golden_model_and_container():
     model = os.path.join(GOLDEN, "braid-tiny.lcmodel")
-    blob = open(os.path.join(GOLDEN, "braid-v1-text.lcodec"), "rb").read()
-    orig = open(os.path.join(GOLDEN, "braid-v1-text.orig"), "rb").read()
+    blob = open(os.path.join(GOLDEN, "braid-v2-text.lcodec"), "rb").read()
+    orig = open(os.path.join(GOLDEN, "braid-v2-text.orig"), "rb").read()
     assert lcodec.unpack(blob, model=model) == orig
     assert lcodec.pack(orig, model=model, frame_size=4096) == blob
 

@@ -13,12 +13,13 @@ from .. import modelfile
 from .strata import Strata
 from .weft import Weft
 from .braid import Braid
+from .tessel import Tessel
 
 BUILTIN = {"strata": Strata}  # models an archive can name without a model file
-ARCHITECTURES = {"strata": Strata, "weft": Weft, "braid": Braid}  # what a model file may hold
+ARCHITECTURES = {"strata": Strata, "weft": Weft, "braid": Braid, "tessel": Tessel}  # what a model file may hold
 
 
-NAMED_IN_IDENTITY = {"weft"}
+NAMED_IN_IDENTITY = {"weft", "tessel"}  # (tessel's golden archives were made with the name too)
 
 
 class Loaded:
@@ -44,6 +45,15 @@ class Loaded:
 
     def stepper(self, *a, **k):
         return self.inner.stepper(*a, **k)
+
+    def __getattr__(self, name):  # image coding entry points of a pixel model (tessel)
+        if name in ("teacher_tables", "step_decode", "has_depth", "role_tables", "set_backend"):
+            return getattr(self.inner, name)
+        raise AttributeError(name)
+
+    @property
+    def is_image_model(self) -> bool:
+        return hasattr(self.inner, "step_decode")
 
     def lanes_for(self, n: int):
         f = getattr(self.inner, "lanes_for", None)

@@ -1,0 +1,491 @@
+"""`tessel`: the learned pixel model. Integer-exact inference over a causal neighbourhood.
+
+A network of the masked-autoencoder family (Germain et al., 2015: the distribution of
+sample i depends only on samples before i) whose inputs are, by construction, only
+samples already coded. For each sub-pixel (row r, column c, channel ch):
+
+    pred   the median edge predictor on W, N, NW (published as part of LOCO-I), for
+           channel ch > 0 plus the residual of channel ch-1 of the same pixel
+           (chan_shift), clamped to the sample range
+    slots  15 integer contexts, each quantised to 63 levels (`_q`: sign and magnitude in
+           half-octaves): N-NW, NW-W, NE-N, W-WW, NN-N, NNE-NE, NEE-NE, the residuals
+           of W, N, NW, NE and WW, the residuals of channels ch-1 and ch-2 of this pixel,
+           and for the low byte of a 16-bit sample the high byte just coded (256 levels)
+    symbol (x - pred) mod 256 for 8-bit samples; for 16-bit samples
+           s = (x - pred + 128) mod 65536 split into the high byte, then the low byte
+           (conditioned on the high byte through the last slot)
+
+Each role (8-bit sample, 16-bit high byte, 16-bit low byte) has its own network with
+weft's layout and kernels (lcodec/models/weft.py): int8 embeddings per slot level, one
+hidden layer, ReLU requantised to 0..127, int8 output weights, a softmax through the
+exponential table. Both products run in float32 on integers with every partial sum
+below 2**24 (bounds checked at load: 127*127*terms < 2**24).
+
+Order: a wavefront. Pixel (r, c) is coded at step t = c + DELAY*r; within a step, the
+sub-symbols in turn (channel, then high/low byte), and for each, the active rows in
+order. Every neighbour above reaches at most 2 columns right (NEE, NNE), so with DELAY
+= 3 everything a pixel needs is decoded in an earlier step: the wavefront loses no
+context at all (decoding in parallel over rows costs no bits).
+
+The encoder computes every table in one teacher-forced pass (all samples known); the
+decoder, one wavefront step at a time. Both call the same numba kernels on the same
+integers, so their tables agree bit for bit.
+"""
+from __future__ import annotations
+
+import numpy as np
+from numba import njit
+
+from .weft import BACKENDS
+from .strata import Strata
+
+Q = 63  # levels per slot
+QMID = 31
+N_SLOTS = 15
+HI_SLOT = 14
+EMB_ROWS = HI_SLOT * Q + 256
+DELAY = 3  # wavefront: row r runs DELAY columns behind row r-1 (neighbours reach c+2)
+ROLES = ("r8", "r16h", "r16l")
+MAX_SAMPLES = 1 << 24  # samples in one image frame (the decoder holds 8 bytes per sample); larger: bytes
+CHUNK = 8192  # symbols per teacher-pass batch
+HI_OFFSET = 128  # 16-bit residuals are offset so that -128..127 all have high byte 0
+FLAG_BIG_ENDIAN, FLAG_SIGNED = 1, 2
+PAYLOAD_VERSION = 1
+N_CLASSES = 16  # activity classes of the adaptive counts
+COUNT_LIMIT = 4096  # a context's counts are halved past this total, to keep adapting
+CTX_BASE = {"r8": 0, "r16h": N_CLASSES, "r16l": 2 * N_CLASSES}  # rows of the count table
+N_CTX = 6 * N_CLASSES  # r8 16, r16h 16, r16l 16 x 4 high-byte classes
+
+
+@njit(cache=True, nogil=True)
+def _q(d):
+    """Quantise a signed difference: exact below 4, then two levels per octave, 31 at most."""
+    a = d if d >= 0 else -d
+    if a < 4:
+        lv = a
+    else:
+        b = 0
+        x = a
+        while x:
+            b += 1
+            x >>= 1
+        lv = 2 * (b - 1) + ((a >> (b - 2)) & 1)
+        if lv > QMID:
+            lv = QMID
+    return QMID + lv if d >= 0 else QMID - lv
+
+
+@njit(cache=True, nogil=True)
+def _context(v, e, r, c, ch, cols, maxv, shift, idx):
+    """Prediction and the 14 neighbourhood slots (as embedding rows) of sub-pixel (r, c, ch).
+    Reads only samples coded before it (rows above up to column c+2, this row left of c,
+    channels before ch of this pixel)."""
+    if c > 0:
+        W = v[r, c - 1, ch]
+    elif r > 0:
+        W = v[r - 1, c, ch]
+    else:
+        W = 0
+    WW = v[r, c - 2, ch] if c > 1 else W
+    N = v[r - 1, c, ch] if r > 0 else W
+    NW = v[r - 1, c - 1, ch] if (r > 0 and c > 0) else N
+    NE = v[r - 1, c + 1, ch] if (r > 0 and c + 1 < cols) else N
+    NEE = v[r - 1, c + 2, ch] if (r > 0 and c + 2 < cols) else NE
+    NN = v[r - 2, c, ch] if r > 1 else N
+    NNE = v[r - 2, c + 1, ch] if (r > 1 and c + 1 < cols) else NE
+    eW = e[r, c - 1, ch] if c > 0 else 0
+    eWW = e[r, c - 2, ch] if c > 1 else 0
+    eN = e[r - 1, c, ch] if r > 0 else 0
+    eNW = e[r - 1, c - 1, ch] if (r > 0 and c > 0) else 0
+    eNE = e[r - 1, c + 1, ch] if (r > 0 and c + 1 < cols) else 0
+    mn = min(N, W)
+    mx = max(N, W)
+    if NW >= mx:
+        p = mn
+    elif NW <= mn:
+        p = mx
+    else:
+        p = N + W - NW
+    e1 = e[r, c, ch - 1] if ch >= 1 else 0
+    e2 = e[r, c, ch - 2] if ch >= 2 else 0
+    if shift:
+        p += e1
+        p = min(max(p, 0), maxv)
+    idx[0] = 0 * Q + _q(N - NW)
+    idx[1] = 1 * Q + _q(NW - W)
+    idx[2] = 2 * Q + _q(NE - N)
+    idx[3] = 3 * Q + _q(W - WW)
+    idx[4] = 4 * Q + _q(NN - N)
+    idx[5] = 5 * Q + _q(NNE - NE)
+    idx[6] = 6 * Q + _q(NEE - NE)
+    idx[7] = 7 * Q + _q(eW)
+    idx[8] = 8 * Q + _q(eN)
+    idx[9] = 9 * Q + _q(eNW)
+    idx[10] = 10 * Q + _q(eNE)
+    idx[11] = 11 * Q + _q(eWW)
+    idx[12] = 12 * Q + _q(e1)
+    idx[13] = 13 * Q + _q(e2)
+    # activity class of the adaptive counts: bit length of a local gradient/residual sum
+    a = abs(N - NW) + abs(NW - W) + abs(NE - N) + abs(eW) + abs(eN)
+    b = 0
+    while a:
+        b += 1
+        a >>= 1
+    idx[HI_SLOT] = min(b, N_CLASSES - 1)
+    return p
+
+
+@njit(cache=True, nogil=True)
+def _hib(hi):
+    """Class of a 16-bit high byte for the low byte's adaptive counts."""
+    if hi == 0:
+        return 0
+    if hi == 255:
+        return 1
+    return 2 if hi == 1 else 3
+
+
+@njit(cache=True, nogil=True)
+def _mix(tab, ctx, K, counts, out):
+    """out = the network's table (normalised to about 2**16) times K, plus 2**16 times the
+    adaptive counts of each row's context, plus 1: p = (K q + n) / (K + N). Integers
+    throughout: q = tab * inv >> 24 with inv = 2**40 // sum(tab), and tab <= sum, so the
+    product stays below 2**40; every out entry stays below 2**45 (exact in float64)."""
+    for i in range(tab.shape[0]):
+        tot = np.int64(0)
+        for j in range(256):
+            tot += np.int64(tab[i, j])
+        inv = (np.int64(1) << 40) // tot
+        row = ctx[i]
+        for j in range(256):
+            nq = (np.int64(tab[i, j]) * inv) >> 24
+            out[i, j] = np.float64(nq * K + (np.int64(counts[row, j]) << 16) + 1)
+
+
+@njit(cache=True, nogil=True)
+def _update(ctx, syms, counts, tots):
+    for i in range(ctx.shape[0]):
+        row = ctx[i]
+        counts[row, syms[i]] += 1
+        tots[row] += 1
+        if tots[row] > COUNT_LIMIT:
+            t = 0
+            for j in range(256):
+                counts[row, j] >>= 1
+                t += counts[row, j]
+            tots[row] = t
+
+
+@njit(cache=True, nogil=True)
+def _mix_chunk(tab, ctx, syms, gid, Ks, counts, tots, out):
+    """The encoder's side of the adaptive counts: group by group (one wavefront step and
+    sub-symbol, as the decoder sees them), every table from the state before the group,
+    then the group's symbols counted in lane order."""
+    n = tab.shape[0]
+    i = 0
+    while i < n:
+        j = i
+        while j < n and gid[j] == gid[i]:
+            j += 1
+        K = Ks[i]
+        if K > 0:
+            _mix(tab[i:j], ctx[i:j], K, counts, out[i:j])
+            _update(ctx[i:j], syms[i:j], counts, tots)
+        else:
+            out[i:j] = tab[i:j]
+        i = j
+
+
+@njit(cache=True, nogil=True)
+def _teacher(v, deep, shift, e, idx, syms, preds, ctx):
+    """Every sub-symbol of a known image, in raster order (row, column, channel, byte):
+    embedding rows, symbols; fills the residual plane e as it goes."""
+    rows, cols, C = v.shape
+    maxv = 65535 if deep else 255
+    P = 2 if deep else 1
+    tmp = np.empty(N_SLOTS, np.int64)
+    k = 0
+    for r in range(rows):
+        for c in range(cols):
+            for ch in range(C):
+                p = _context(v, e, r, c, ch, cols, maxv, shift, tmp)
+                x = v[r, c, ch]
+                e[r, c, ch] = x - p
+                if deep:
+                    s = (x - p + HI_OFFSET) & 0xFFFF
+                    hi = s >> 8
+                    for j in range(N_SLOTS - 1):
+                        idx[k, j] = tmp[j]
+                        idx[k + 1, j] = tmp[j]
+                    idx[k, HI_SLOT] = HI_SLOT * Q
+                    idx[k + 1, HI_SLOT] = HI_SLOT * Q + hi
+                    syms[k] = hi
+                    syms[k + 1] = s & 0xFF
+                    ctx[k] = N_CLASSES + tmp[HI_SLOT]
+                    ctx[k + 1] = 2 * N_CLASSES + tmp[HI_SLOT] * 4 + _hib(hi)
+                else:
+                    for j in range(N_SLOTS - 1):
+                        idx[k, j] = tmp[j]
+                    idx[k, HI_SLOT] = HI_SLOT * Q
+                    syms[k] = (x - p) & 0xFF
+                    ctx[k] = tmp[HI_SLOT]
+                preds[k // P] = p
+                k += P
+    return k
+
+
+@njit(cache=True, nogil=True)
+def _gather(v, e, r0, r1, t, ch, shift, deep, idx, preds, cls):
+    """Contexts of channel ch of the pixels on wavefront step t, rows r0..r1-1."""
+    cols = v.shape[1]
+    maxv = 65535 if deep else 255
+    tmp = np.empty(N_SLOTS, np.int64)
+    for i in range(r1 - r0):
+        r = r0 + i
+        c = t - DELAY * r
+        preds[i] = _context(v, e, r, c, ch, cols, maxv, shift, tmp)
+        for j in range(N_SLOTS - 1):
+            idx[i, j] = tmp[j]
+        idx[i, HI_SLOT] = HI_SLOT * Q
+        cls[i] = tmp[HI_SLOT]
+
+
+@njit(cache=True, nogil=True)
+def _apply(v, e, r0, r1, t, ch, deep, preds, hi, lo):
+    for i in range(r1 - r0):
+        r = r0 + i
+        c = t - DELAY * r
+        p = preds[i]
+        if deep:
+            x = (p + ((hi[i] << 8) | lo[i]) - HI_OFFSET) & 0xFFFF
+        else:
+            x = (p + lo[i]) & 0xFF
+        v[r, c, ch] = x
+        e[r, c, ch] = x - p
+
+
+def wavefront_rows(t: int, rows: int, cols: int) -> tuple[int, int]:
+    """Rows r0..r1-1 whose pixel c = t - DELAY*r lies in 0..cols-1."""
+    r0 = max(0, -(-(t - cols + 1) // DELAY))
+    r1 = min(rows, t // DELAY + 1)
+    return r0, max(r0, r1)
+
+
+def coding_order(rows: int, cols: int, C: int, P: int) -> np.ndarray:
+    """Raster sub-symbol indices in coding order: step t, then sub-symbol, then row."""
+    r, c, sub = np.meshgrid(np.arange(rows), np.arange(cols), np.arange(C * P), indexing="ij")
+    t = c + DELAY * r
+    order = np.lexsort((r.ravel(), sub.ravel(), t.ravel()))
+    return order  # raster index = ((r*cols + c)*C + ch)*P + part = position in (r, c, sub) ravel
+
+
+def check_net(params: dict, arrays: dict, prefix: str) -> None:
+    E, H = params["embed"], params["hidden"]
+    want = {"emb": ((EMB_ROWS, E), np.int8), "w1": ((N_SLOTS * E, H), np.int8), "b1": ((H,), np.int32),
+            "w2": ((H, 256), np.int8), "b2": ((256,), np.int32)}
+    for name, (shape, dt) in want.items():
+        a = arrays.get(prefix + name)
+        if a is None or tuple(a.shape) != shape or a.dtype != dt:
+            raise ValueError(f"array {prefix}{name} must be {np.dtype(dt).name} {shape}")
+    b1, b2 = arrays[prefix + "b1"], arrays[prefix + "b2"]
+    if int(np.abs(b1).max(initial=0)) >= 1 << 24 or int(np.abs(b2).max(initial=0)) >= 1 << 24:
+        raise ValueError("biases out of range")
+
+
+def raster_features(v: np.ndarray, shift: int, with_ctx: bool = False):
+    """(embedding rows (n, N_SLOTS), symbols (n,), roles (n,): 0 r8, 1 r16h, 2 r16l) of every
+    sub-symbol of samples v (rows, cols, channels; uint8 or uint16), in raster order."""
+    rows, cols, C = v.shape
+    deep = v.dtype == np.uint16
+    P = 2 if deep else 1
+    n = rows * cols * C * P
+    vi = np.ascontiguousarray(v, np.int32)
+    e = np.zeros_like(vi)
+    idx = np.empty((n, N_SLOTS), np.int16)
+    syms = np.empty(n, np.int32)
+    preds = np.empty(rows * cols * C, np.int64)
+    ctx = np.empty(n, np.int16)
+    _teacher(vi, deep, shift, e, idx, syms, preds, ctx)
+    roles = np.tile(np.array([1, 2], np.int8), n // 2) if deep else np.zeros(n, np.int8)
+    if with_ctx:
+        return idx, syms, roles, ctx
+    return idx, syms, roles
+
+
+class Tessel:
+    name = "tessel"
+    kind = "learned"
+    coder = "queue"  # byte mode (non-image content) goes through the built-in strata model
+
+    def __init__(self, params: dict, arrays: dict, backend: str = "numpy"):
+        p = params
+        if not isinstance(p, dict) or not {"embed", "hidden", "chan_shift", "roles", "bytes"} <= set(p) <= {
+                "embed", "hidden", "chan_shift", "roles", "bytes", "adapt"}:
+            raise ValueError("tessel needs embed, hidden, chan_shift, roles and bytes (and optionally adapt)")
+        adapt = p.get("adapt", {})
+        if not isinstance(adapt, dict) or not set(adapt) <= set(p["roles"]) or not all(
+                type(k) is int and 0 <= k <= 1 << 16 for k in adapt.values()):
+            raise ValueError("adapt maps roles to integer prior strengths 0..65536")
+        self.adapt = dict(adapt)
+        E, H = p["embed"], p["hidden"]
+        if not all(type(x) is int and x >= 1 for x in (E, H)):
+            raise ValueError("embed and hidden must be positive integers")
+        # exactness: |x|, |w1| <= 127 over N_SLOTS*E terms; 0 <= h <= 127, |w2| <= 127 over H terms
+        if 127 * 127 * N_SLOTS * E >= 1 << 24 or 127 * 127 * H >= 1 << 24:
+            raise ValueError("slots*embed and hidden must keep 127*127*terms below 2**24")
+        if p["chan_shift"] not in (0, 1) or type(p["chan_shift"]) is not int:
+            raise ValueError("chan_shift must be 0 or 1")
+        if p["bytes"] != "o6m":
+            raise ValueError("bytes must be 'o6m' (the built-in strata preset)")
+        roles = p["roles"]
+        if not isinstance(roles, dict) or not roles or not set(roles) <= set(ROLES):
+            raise ValueError(f"roles must be a non-empty subset of {ROLES}")
+        if ("r16h" in roles) != ("r16l" in roles):
+            raise ValueError("roles r16h and r16l come together")
+        lut = arrays.get("lut")
+        if lut is None or lut.ndim != 1 or not 2 <= len(lut) <= 1 << 16 or lut.dtype != np.int32:
+            raise ValueError("array lut must be int32 of length 2..65536")
+        if int(lut.min()) < 1 or int(lut.max()) > 1 << 24:
+            raise ValueError("lut values must be 1..2**24")
+        self.role_params = {}
+        for role, rp in roles.items():
+            if not isinstance(rp, dict) or set(rp) != {"m1", "s1", "mo", "so"} or not all(type(x) is int for x in rp.values()):
+                raise ValueError(f"role {role} needs integer m1, s1, mo, so")
+            for k in ("m1", "mo"):
+                if not 0 < rp[k] < 1 << 31:
+                    raise ValueError(f"{role}.{k} out of range")
+            for k in ("s1", "so"):
+                if not 1 <= rp[k] <= 40:
+                    raise ValueError(f"{role}.{k} out of range")
+            check_net(p, arrays, role + ".")
+            self.role_params[role] = dict(rp, window=N_SLOTS, embed=E, hidden=H)
+        self.params = p
+        self.arrays = arrays
+        self.shift = int(p["chan_shift"])
+        self.bytes_model = Strata()  # preset o6m: side bytes and byte-mode frames
+        self.set_backend(backend)
+
+    @classmethod
+    def from_params(cls, params: dict, arrays: dict | None = None) -> "Tessel":
+        if arrays is None:
+            raise ValueError("tessel needs its arrays (a model file)")
+        return cls(params, arrays)
+
+    def set_backend(self, backend: str) -> None:
+        if backend not in BACKENDS:
+            raise ValueError(f"unknown backend {backend!r} (have: {', '.join(BACKENDS)})")
+        self.backend = backend
+        self.kernels = {}
+        for role, rp in self.role_params.items():
+            arr = {k: self.arrays[role + "." + k] for k in ("emb", "w1", "b1", "w2", "b2")}
+            arr["lut"] = self.arrays["lut"]
+            self.kernels[role] = BACKENDS[backend](rp, arr)
+
+    def has_depth(self, deep: bool) -> bool:
+        return ("r16h" in self.kernels) if deep else ("r8" in self.kernels)
+
+    # -- byte mode: the model protocol, through strata -------------------------------------
+    def teacher_chunks(self, *a, **k):
+        return self.bytes_model.teacher_chunks(*a, **k)
+
+    def stepper(self, *a, **k):
+        return self.bytes_model.stepper(*a, **k)
+
+    # -- pixels ----------------------------------------------------------------------------
+    def role_tables(self, role: str, idx: np.ndarray) -> np.ndarray:
+        return self.kernels[role].tables(idx)
+
+    def teacher(self, v: np.ndarray):
+        """(embedding rows, symbols, roles) of every sub-symbol in raster order."""
+        return raster_features(v, self.shift)
+
+    def teacher_tables(self, v: np.ndarray, deep: bool):
+        """Yield (symbols, tables) in coding order, chunk by chunk (the encoder's pass).
+        Chunks end on wavefront groups (one step's sub-symbol), where the adaptive counts
+        are updated."""
+        rows, cols, C = v.shape
+        P = 2 if deep else 1
+        vv = v.astype(np.uint16) if deep else v.astype(np.uint8)
+        idx, syms, roles, ctx = raster_features(vv, self.shift, with_ctx=True)
+        order = coding_order(rows, cols, C, P)
+        names = ("r16h", "r16l") if deep else ("r8",)
+        K = np.array([self.adapt.get(r, 0) for r in ROLES], np.int64)
+        # group id of each coded symbol: (step, sub-symbol); raster index -> (r, c, sub)
+        sub = order % (C * P)
+        pix = order // (C * P)
+        gid = ((pix % cols) + DELAY * (pix // cols)) * (C * P) + sub
+        bounds = np.flatnonzero(np.diff(gid)) + 1
+        counts = np.zeros((N_CTX, 256), np.int32)
+        tots = np.zeros(N_CTX, np.int64)
+        ends, last = [], 0
+        for b in bounds.tolist() + [len(order)]:  # chunks of whole groups, about CHUNK symbols
+            if b - last >= CHUNK or b == len(order):
+                ends.append(b)
+                last = b
+        i = 0
+        for j in ends:
+            o = order[i:j]
+            ci, cs = idx[o], syms[o]
+            tab = np.empty((len(o), 256), np.float64)
+            if deep:
+                part = roles[o] - 1
+                for q, role in enumerate(names):
+                    sel = np.nonzero(part == q)[0]
+                    if len(sel):
+                        tab[sel] = self.role_tables(role, ci[sel])
+            else:
+                tab[:] = self.role_tables("r8", ci)
+            if K.any():
+                out = np.empty_like(tab)
+                _mix_chunk(tab, ctx[o].astype(np.int64), cs, gid[i:j], K[roles[o]], counts, tots, out)
+                tab = out
+            yield cs, tab
+            i = j
+
+    def step_decode(self, rows: int, cols: int, C: int, deep: bool, decode, record=None) -> np.ndarray:
+        """The decoder's pass: wavefront steps; `decode(tables) -> symbols` is the entropy
+        decoder. Returns the samples (rows, cols, C)."""
+        from threadpoolctl import threadpool_limits
+
+        v = np.zeros((rows, cols, C), np.int32)  # int32: samples and residuals are below 2**17
+        e = np.zeros_like(v)
+        cap = min(rows, cols // DELAY + 2)
+        idx = np.empty((cap, N_SLOTS), np.int16)
+        preds = np.empty(cap, np.int64)
+        cls = np.empty(cap, np.int64)
+        zero = np.zeros(cap, np.int64)
+        counts = np.zeros((N_CTX, 256), np.int32)
+        tots = np.zeros(N_CTX, np.int64)
+        mixed = np.empty((cap, 256), np.float64)
+        n_steps = cols + DELAY * (rows - 1)
+
+        def table(role, m, ctx):
+            tab = self.role_tables(role, idx[:m])
+            K = self.adapt.get(role, 0)
+            if K:
+                _mix(tab, ctx, K, counts, mixed[:m])
+                tab = mixed[:m]
+            if record is not None:
+                record.append(tab.copy())
+            syms = np.asarray(decode(tab), np.int64)
+            if K:
+                _update(ctx, syms, counts, tots)
+            return syms
+
+        with threadpool_limits(limits=1, user_api="blas"):  # small products: one BLAS thread is faster
+            for t in range(n_steps):
+                r0, r1 = wavefront_rows(t, rows, cols)
+                m = r1 - r0
+                if m <= 0:
+                    continue
+                for ch in range(C):
+                    _gather(v, e, r0, r1, t, ch, self.shift, deep, idx, preds, cls)
+                    if deep:
+                        hi = table("r16h", m, N_CLASSES + cls[:m])
+                        idx[:m, HI_SLOT] = HI_SLOT * Q + hi
+                        hib = np.where(hi == 0, 0, np.where(hi == 255, 1, np.where(hi == 1, 2, 3)))
+                        lo = table("r16l", m, 2 * N_CLASSES + cls[:m] * 4 + hib)
+                    else:
+                        hi, lo = zero, table("r8", m, cls[:m].copy())
+                    _apply(v, e, r0, r1, t, ch, deep, preds, hi, lo)
+        return v

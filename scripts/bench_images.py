@@ -1,0 +1,133 @@
+#!/usr/bin/env python3
+"""The pixel model's targets (issue "Pixel models"), measured in one run.
+
+Data (all shipped inside packages, no download):
+  8-bit grey, train: scikit-image's brick, grass, gravel, cell, clock, microaneurysms,
+      text, and grey versions (Pillow's "L" conversion) of astronaut, chelsea, coffee,
+      immunohistochemistry;
+  8-bit grey, test: camera, moon, coins, page (PGM files written from skimage.data);
+  16-bit, train: pydicom's J2K_pixelrep_mismatch.dcm, JPEG2000.dcm and 693_J2KI.dcm,
+      decoded with imagecodecs (the last two were lossy-compressed, so they are smoother
+      than raw scans), saved as NPY;
+  16-bit, test: pydicom's CT_small.dcm, MR_small.dcm (16 bits stored) and
+      examples_overlay.dcm (12 bits stored), packed as the DICOM files they are.
+
+Targets:
+  8-bit grey test total <= 0.90 x JPEG XL lossless effort 9;
+  16-bit medical test total smaller than JPEG-LS and JPEG 2000 reversible;
+  decode >= 200,000 pixels per second on 2 cores (the 8-bit test archive, 2 threads).
+
+    python scripts/bench_images.py [--time-limit 600] [--model M] [--json bench-out/images.json]
+
+Without --model it trains one (lcodec train --kind image on both training sets).
+Timing figures are lower bounds when other work shares the machine: the load is printed.
+"""
+import argparse
+import io
+import json
+import os
+import shutil
+import sys
+import tempfile
+import time
+import warnings
+
+sys.path.insert(0, os.path.join(os.path.dirname(__file__), ".."))
+
+import numpy as np  # noqa: E402
+
+from lcodec import api, imagebench as IB  # noqa: E402
+
+TRAIN8 = ["brick", "grass", "gravel", "cell", "clock", "microaneurysms", "text"]
+TRAIN8_COLOUR = ["astronaut", "chelsea", "coffee", "immunohistochemistry"]
+TEST8 = ["camera", "moon", "coins", "page"]
+TRAIN16 = ["J2K_pixelrep_mismatch.dcm", "JPEG2000.dcm", "693_J2KI.dcm"]
+TEST16 = ["CT_small.dcm", "MR_small.dcm", "examples_overlay.dcm"]
+
+
+def make_sets(root):
+    import imagecodecs
+    import pydicom
+    import skimage.data as skd
+    from PIL import Image
+    from pydicom.data import get_testdata_file
+    from pydicom.encaps import generate_frames
+
+    warnings.simplefilter("ignore")
+    dirs = {k: os.path.join(root, k) for k in ("train", "test8", "test16")}
+    for d in dirs.values():
+        os.makedirs(d, exist_ok=True)
+    for n in TRAIN8:
+        Image.fromarray(getattr(skd, n)()).save(os.path.join(dirs["train"], n + ".pgm"))
+    for n in TRAIN8_COLOUR:
+        Image.fromarray(getattr(skd, n)()).convert("L").save(os.path.join(dirs["train"], n + "_grey.pgm"))
+    for n in TEST8:
+        Image.fromarray(getattr(skd, n)()).save(os.path.join(dirs["test8"], n + ".pgm"))
+    for n in TRAIN16:
+        ds = pydicom.dcmread(get_testdata_file(n))
+        a = imagecodecs.jpeg2k_decode(next(generate_frames(ds.PixelData, number_of_frames=1)))
+        np.save(os.path.join(dirs["train"], n[:-4] + ".npy"), a)
+    for n in TEST16:
+        shutil.copy(get_testdata_file(n), os.path.join(dirs["test16"], n))
+    return dirs
+
+
+def main():
+    ap = argparse.ArgumentParser(description=__doc__.split("\n")[0])
+    ap.add_argument("--time-limit", type=float, default=600)
+    ap.add_argument("--model", default=None, help="use this pixel model instead of training one")
+    ap.add_argument("--json", default="bench-out/images.json")
+    ap.add_argument("--keep", default=None, help="keep the data sets and the model in this folder")
+    args = ap.parse_args()
+    root = args.keep or tempfile.mkdtemp(prefix="lcodec-images-")
+    dirs = make_sets(root)
+    model = args.model
+    if model is None:
+        from lcodec.train import train_image
+        model = os.path.join(root, "images.lcmodel")
+        train_image([dirs["train"]], model, time_limit=args.time_limit, force=True)
+    msize = os.path.getsize(model)
+    load = os.getloadavg()
+    out = {"model": os.path.abspath(model), "model_bytes": msize, "load_before": load}
+    lines = []
+    for key, d in (("grey8", dirs["test8"]), ("medical16", dirs["test16"])):
+        rows = [IB.bench_file(f, model) for f in IB.image_files([d])]
+        print(f"\n== {key}: {d}")
+        for line in IB.format_rows(rows):
+            print(line)
+        out[key] = {"rows": rows, "totals": IB.totals(rows)}
+    # decode speed: the 8-bit test images in one archive, frames on 2 threads
+    blob, st = api.pack_paths([dirs["test8"]], model=model)
+    n = sum(i["samples"] for i in st.images)
+    speed = {}
+    for w in (1, 2):
+        t0 = time.perf_counter()
+        api.decode(blob, model, workers=w)
+        speed[w] = n / (time.perf_counter() - t0)
+    out["decode_pixels_per_s"] = speed
+    out["load_after"] = os.getloadavg()
+    t8, t16 = out["grey8"]["totals"], out["medical16"]["totals"]
+    r8 = t8["lcodec"] / t8["jpegxl"]
+    lines.append(f"{'MET' if r8 <= 0.90 else 'MISSED'}: 8-bit grey total {t8['lcodec']:.3f} bits per sub-pixel = "
+                 f"{r8:.3f} x JPEG XL effort 9 ({t8['jpegxl']:.3f}); target <= 0.90 (model file {msize:,} bytes)")
+    for c in ("jpegls", "jpeg2000"):
+        ok = t16["lcodec"] < t16[c]
+        lines.append(f"{'MET' if ok else 'MISSED'}: 16-bit medical total {t16['lcodec']:.3f} (whole archives; "
+                     f"pixels alone {t16['lcodec_pixels']:.3f}) vs {c} {t16[c]:.3f} = {t16['lcodec'] / t16[c]:.3f} x; "
+                     f"target < 1 (model file {msize:,} bytes)")
+    lines.append(f"{'MET' if speed[2] >= 200_000 else 'MISSED'}: decode {speed[2]:,.0f} pixels/s with 2 threads "
+                 f"({speed[1]:,.0f} with 1); target >= 200,000 on 2 cores (load {load[0]:.1f} before, "
+                 f"{out['load_after'][0]:.1f} after: a lower bound when the machine is shared)")
+    print()
+    for line in lines:
+        print(line)
+    out["targets"] = lines
+    if args.json:
+        os.makedirs(os.path.dirname(os.path.abspath(args.json)), exist_ok=True)
+        with open(args.json, "w") as f:
+            json.dump(out, f, indent=1)
+        print(f"\nwrote {args.json}")
+
+
+if __name__ == "__main__":
+    main()

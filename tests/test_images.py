@@ -1,0 +1,638 @@
+"""Images: round trips for every input format, decoded pixels checked against the readers
+of the originals (Pillow, numpy, tifffile, pydicom, imagecodecs), the causal property of
+the pixel model, parallel pass == step pass across backends and thread settings, damaged
+image archives, and the committed golden pixel model + containers."""
+import hashlib
+import io
+import os
+import subprocess
+import sys
+import warnings
+import zlib
+
+import numpy as np
+import pytest
+
+import lcodec
+from lcodec import api
+from lcodec.errors import DataError, ModelError
+from lcodec.images import analyse, read_record, rebuild
+from lcodec.models import load_model
+from lcodec.models.tessel import EMB_ROWS, N_SLOTS, Tessel, coding_order
+from lcodec.pixels import decode_image_frame, encode_image_frame, region_values
+
+PIL = pytest.importorskip("PIL.Image", reason="Pillow is needed (pip install -e .[test])")
+skdata = pytest.importorskip("skimage.data", reason="scikit-image is needed for its bundled sample images")
+tifffile = pytest.importorskip("tifffile")
+pydicom = pytest.importorskip("pydicom")
+
+GOLDEN = os.path.join(os.path.dirname(__file__), "golden")
+LUT = np.maximum(1, np.round((1 << 20) * np.exp(-np.arange(768) / 32))).astype(np.int32)
+
+
+def random_tessel(seed=0, E=4, H=24, roles=("r8", "r16h", "r16l"), shift=1, adapt=64):
+    """An untrained pixel model: random integer weights over output biases shaped like a
+    two-sided geometric law around residual 0, so that it compresses images (enough to
+    exercise every path, stored frames aside)."""
+    rng = np.random.default_rng(seed)
+    arrays, rp = {"lut": LUT}, {}
+    s = np.arange(256)
+    peak = {"r8": -np.minimum(s, 256 - s) * 3000, "r16h": -np.minimum(s, 256 - s) * 30000,
+            "r16l": -np.abs(s - 128) * 600}
+    for r in roles:
+        arrays[r + ".emb"] = rng.integers(-127, 128, (EMB_ROWS, E)).astype(np.int8)
+        arrays[r + ".w1"] = rng.integers(-127, 128, (N_SLOTS * E, H)).astype(np.int8)
+        arrays[r + ".b1"] = rng.integers(-5000, 5000, H).astype(np.int32)
+        arrays[r + ".w2"] = rng.integers(-8, 9, (H, 256)).astype(np.int8)
+        arrays[r + ".b2"] = (peak[r] + rng.integers(-2000, 2000, 256)).astype(np.int32)
+        rp[r] = {"m1": 1 << 10, "s1": 20, "mo": 1 << 12, "so": 20}
+    params = {"embed": E, "hidden": H, "chan_shift": shift, "roles": rp, "bytes": "o6m"}
+    if adapt is not None:
+        params["adapt"] = {r: adapt for r in roles}
+    return Tessel(params, arrays)
+
+
+@pytest.fixture(scope="module")
+def model_file(tmp_path_factory):
+    from lcodec import modelfile
+    m = random_tessel()
+    p = str(tmp_path_factory.mktemp("m") / "rand.lcmodel")
+    modelfile.dump(p, {"name": "tessel", "params": m.params}, m.arrays)
+    return p
+
+
+def _sample(name, rows=24, cols=30):
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        return np.ascontiguousarray(getattr(skdata, name)()[:rows, :cols])
+
+
+def _dicom(name):
+    from pydicom.data import get_testdata_file
+    p = get_testdata_file(name)
+    if p is None or not os.path.exists(p):
+        pytest.skip(f"pydicom test file {name} is not bundled (needs a download)")
+    return p
+
+
+def _roundtrip(data, model_file):
+    blob = lcodec.pack(data, model=model_file)
+    inf = lcodec.info(blob)
+    return blob, inf, lcodec.unpack(blob, model=model_file)
+
+
+# -- byte-exact formats -------------------------------------------------------------------------
+def _pgm(a, maxval=None):
+    if a.ndim == 2:
+        magic, body = b"P5", a
+    else:
+        magic, body = b"P6", a
+    maxval = maxval or (255 if a.dtype == np.uint8 else 65535)
+    raw = body.astype(">u2").tobytes() if a.dtype == np.uint16 else body.tobytes()
+    return magic + b"\n# invented scanner bay-3\n%d %d\n%d\n" % (a.shape[1], a.shape[0], maxval) + raw
+
+
+@pytest.mark.parametrize("kind", ["pgm8", "ppm8", "pgm16", "pgm-trailing"])
+def test_pnm_round_trip_byte_exact(kind, model_file, tmp_path):
+    if kind == "ppm8":
+        a = _sample("astronaut", 17, 23)
+    elif kind == "pgm16":
+        a = (_sample("camera").astype(np.uint16) * 257 + 3)
+    else:
+        a = _sample("camera")
+    data = _pgm(a) + (b"trailing bytes after the raster" if kind == "pgm-trailing" else b"")
+    blob, inf, out = _roundtrip(data, model_file)
+    assert out == data
+    assert inf["frames"][0]["method"] == "modelled/image" and inf["guarantee"] == "byte-exact"
+    if kind != "pgm-trailing":  # reference reader: Pillow
+        p = tmp_path / "x.pnm"
+        p.write_bytes(out)
+        ref = np.asarray(PIL.open(io.BytesIO(data)))
+        got = np.asarray(PIL.open(p))
+        assert np.array_equal(got, ref)
+        if kind != "pgm16":
+            assert np.array_equal(got, a)
+
+
+@pytest.mark.parametrize("dtype", ["u1", "<u2", ">u2", "<i2", "rgb"])
+def test_npy_round_trip_byte_exact(dtype, model_file):
+    if dtype == "rgb":
+        a = _sample("chelsea", 15, 19)
+    else:
+        a = _sample("coins").astype(np.int32) * (1 if dtype == "u1" else 211) - (3000 if dtype == "<i2" else 0)
+        a = a.astype(dtype)
+    buf = io.BytesIO()
+    np.save(buf, a)
+    data = buf.getvalue()
+    blob, inf, out = _roundtrip(data, model_file)
+    assert out == data and inf["frames"][0]["method"] == "modelled/image"
+    got = np.load(io.BytesIO(out))  # reference reader: numpy
+    assert got.dtype == a.dtype and np.array_equal(got, a)
+
+
+@pytest.mark.parametrize("kind", ["u8", "u16", "rgb", "bigendian16"])
+def test_tiff_uncompressed_round_trip_byte_exact(kind, model_file):
+    a = {"u8": _sample("text"), "u16": _sample("moon").astype(np.uint16) * 64,
+         "rgb": _sample("coffee", 14, 21), "bigendian16": _sample("moon").astype(np.uint16) * 3}[kind]
+    buf = io.BytesIO()
+    tifffile.imwrite(buf, a, byteorder=">" if kind == "bigendian16" else "<", description="bay-3 plate 7")
+    data = buf.getvalue()
+    blob, inf, out = _roundtrip(data, model_file)
+    assert out == data and inf["frames"][0]["method"] == "modelled/image"
+    assert np.array_equal(tifffile.imread(io.BytesIO(out)), a)  # reference reader: tifffile
+    if kind == "u8":
+        assert np.array_equal(np.asarray(PIL.open(io.BytesIO(out))), a)  # and Pillow
+
+
+@pytest.mark.parametrize("kind", ["zlib", "lzw-int16", "zlib-rgb-predictor", "packbits-u16", "zlib-planar"])
+def test_compressed_tiff_round_trip_pixel_exact(kind, model_file):
+    comp = kind.split("-")[0]
+    a = {"zlib": _sample("camera"), "lzw-int16": _sample("moon").astype(np.int16) - 500,
+         "zlib-rgb-predictor": _sample("astronaut", 14, 19), "packbits-u16": _sample("coins").astype(np.uint16) * 200,
+         "zlib-planar": _sample("astronaut", 14, 19)}[kind]
+    kw = {"predictor": 2} if "predictor" in kind else {}
+    src = np.moveaxis(a, -1, 0) if "planar" in kind else a
+    if "planar" in kind:
+        kw["planarconfig"] = "separate"
+        kw["photometric"] = "rgb"
+    buf = io.BytesIO()
+    tifffile.imwrite(buf, src, compression=comp, description="bay-3 plate 7", resolution=(300, 300),
+                     software="scanner-7 fw 2", **kw)
+    data = buf.getvalue()
+    blob, inf, out = _roundtrip(data, model_file)
+    assert inf["guarantee"] == "pixel-exact" and inf["frames"][0]["method"] == "modelled/image"
+    with tifffile.TiffFile(io.BytesIO(out)) as t, tifffile.TiffFile(io.BytesIO(data)) as o:  # reference: tifffile
+        p, q = t.pages[0], o.pages[0]
+        assert np.array_equal(p.asarray(), q.asarray()) and p.asarray().dtype == q.asarray().dtype
+        assert p.compression == q.compression and p.description == "bay-3 plate 7"
+        assert p.tags["Software"].value == "scanner-7 fw 2"
+        assert p.tags["XResolution"].value == q.tags["XResolution"].value
+    assert analyse(out).content == analyse(data).content
+
+
+def test_lossy_or_multipage_tiff_is_coded_as_bytes(model_file):
+    for kw in ({"compression": "jpeg"}, {}):
+        buf = io.BytesIO()
+        if kw:
+            tifffile.imwrite(buf, _sample("camera", 32, 32), **kw)
+        else:
+            tifffile.imwrite(buf, np.stack([_sample("camera", 16, 16)] * 2), compression="zlib")
+        data = buf.getvalue()
+        blob, inf, out = _roundtrip(data, model_file)
+        assert out == data and inf["frames"][0]["method"] != "modelled/image"
+
+
+@pytest.mark.parametrize("name", ["CT_small.dcm", "MR_small.dcm", "MR_small_bigendian.dcm", "examples_overlay.dcm"])
+def test_dicom_round_trip_byte_exact(name, model_file):
+    """12- and 16-bit DICOM (pydicom's bundled test files), little- and big-endian."""
+    path = _dicom(name)
+    data = open(path, "rb").read()
+    ref = pydicom.dcmread(path)
+    blob, inf, out = _roundtrip(data, model_file)
+    assert out == data
+    assert inf["frames"][0]["method"] == "modelled/image"
+    assert inf["frames"][0]["image"]["bits_per_sample"] == 16
+    got = pydicom.dcmread(io.BytesIO(out))  # reference reader: pydicom
+    assert np.array_equal(got.pixel_array, ref.pixel_array)
+    if name == "examples_overlay.dcm":
+        assert int(ref.BitsStored) == 12
+
+
+def test_dicom_layout_is_the_pixel_data_pydicom_reads(model_file):
+    data = open(_dicom("CT_small.dcm"), "rb").read()
+    info = analyse(data)
+    ds = pydicom.dcmread(io.BytesIO(data))
+    v = region_values(info.content, info.layout)
+    assert np.array_equal(v[:, :, 0].astype(np.uint16) ^ 0x8000, ds.pixel_array.astype(np.int16).view(np.uint16))
+
+
+# -- pixel-exact PNG ----------------------------------------------------------------------------
+def _png(a, mode=None, text=True):
+    from PIL import PngImagePlugin
+    im = PIL.fromarray(a, mode) if mode else PIL.fromarray(a)
+    info = PngImagePlugin.PngInfo()
+    if text:
+        info.add_text("Station", "kestrel-ridge scanner 2")
+    buf = io.BytesIO()
+    im.save(buf, "PNG", pnginfo=info, optimize=True)
+    return buf.getvalue()
+
+
+@pytest.mark.parametrize("kind", ["L", "RGB", "RGBA", "I;16", "P"])
+def test_png_round_trip_pixel_exact(kind, model_file):
+    if kind == "L":
+        a, data = _sample("camera"), None
+    elif kind == "RGB":
+        a = _sample("astronaut", 18, 25)
+    elif kind == "RGBA":
+        a = np.dstack([_sample("astronaut", 18, 25), _sample("camera", 18, 25)])
+    elif kind == "I;16":
+        a = _sample("moon").astype(np.uint16) * 250
+    else:
+        a = _sample("coins") // 16
+    if kind == "I;16":
+        import imagecodecs
+        data = imagecodecs.png_encode(a)
+    elif kind == "P":
+        im = PIL.fromarray(a.astype(np.uint8), "L").convert("P")
+        im.putpalette([i % 256 for i in range(768)])
+        buf = io.BytesIO()
+        im.save(buf, "PNG")
+        data = buf.getvalue()
+    else:
+        data = _png(a)
+    blob, inf, out = _roundtrip(data, model_file)
+    assert inf["guarantee"] == "pixel-exact" and inf["frames"][0]["method"] == "modelled/image"
+    if kind == "I;16":
+        import imagecodecs  # reference reader for 16-bit PNG: imagecodecs
+        assert np.array_equal(imagecodecs.png_decode(out), imagecodecs.png_decode(data))
+    else:  # reference reader: Pillow (same mode, same samples, same palette)
+        ref, got = PIL.open(io.BytesIO(data)), PIL.open(io.BytesIO(out))
+        assert ref.mode == got.mode and np.array_equal(np.asarray(got), np.asarray(ref))
+        if kind == "P":
+            assert ref.getpalette() == got.getpalette()
+        if kind in ("L", "RGB", "RGBA"):
+            assert got.text == ref.text == {"Station": "kestrel-ridge scanner 2"}
+    # the content is the pixel record: verify checks it against the original file
+    rep = api.verify(blob, model=model_file)
+    assert rep.ok and rep.guarantees == {"pixel-exact image": 1}
+    # unpacking again and re-packing gives the same record (same pixels, same chunks)
+    assert analyse(out).content == analyse(data).content
+
+
+def test_png_pixel_record_fields():
+    data = _png(_sample("camera"))
+    meta, extra, pix = read_record(analyse(data).content)
+    assert meta["format"] == "png" and meta["color_type"] == 0 and meta["bit_depth"] == 8
+    assert b"tEXt" in extra and np.array_equal(pix[:, :, 0], _sample("camera"))
+    assert zlib.decompress  # rebuild uses zlib: the output is a valid PNG Pillow reads
+    assert np.array_equal(np.asarray(PIL.open(io.BytesIO(rebuild(analyse(data).content)))), _sample("camera"))
+
+
+def test_png_whose_image_data_is_too_long_is_bytes():
+    """IDAT inflating past what IHDR allows (here 1 MB for a 2 x 2 image) is not inflated
+    further and not turned into a record (PNG chunk layout: ISO/IEC 15948)."""
+    import struct as st
+
+    def chunk(t, b):
+        return st.pack(">I", len(b)) + t + b + st.pack(">I", zlib.crc32(t + b))
+    png = (b"\x89PNG\r\n\x1a\n" + chunk(b"IHDR", st.pack(">IIBBBBB", 2, 2, 8, 0, 0, 0, 0))
+           + chunk(b"IDAT", zlib.compress(bytes(1 << 20))) + chunk(b"IEND", b""))
+    assert analyse(png) is None
+    good = (b"\x89PNG\r\n\x1a\n" + chunk(b"IHDR", st.pack(">IIBBBBB", 2, 2, 8, 0, 0, 0, 0))
+            + chunk(b"IDAT", zlib.compress(bytes(6))) + chunk(b"IEND", b""))
+    assert analyse(good).guarantee == "pixel-exact"
+    assert np.array_equal(np.asarray(PIL.open(io.BytesIO(good))), np.zeros((2, 2), np.uint8))
+
+
+def test_one_bit_png_is_coded_as_bytes(model_file):
+    buf = io.BytesIO()
+    PIL.fromarray(_sample("camera") > 100).save(buf, "PNG")  # bit depth 1: not turned into a record
+    data = buf.getvalue()
+    assert data[24] == 1  # IHDR bit depth (PNG specification: byte 24 of the file)
+    blob, inf, out = _roundtrip(data, model_file)
+    assert out == data and inf["frames"][0]["method"] != "modelled/image"
+
+
+# -- folders, byte mode, fallbacks, verify --------------------------------------------------------
+def _folder(tmp_path):
+    d = tmp_path / "plates"
+    d.mkdir()
+    (d / "a.pgm").write_bytes(_pgm(_sample("camera")))
+    (d / "b.png").write_bytes(_png(_sample("coins")))
+    (d / "c.dcm").write_bytes(open(_dicom("MR_small.dcm"), "rb").read())
+    (d / "notes.txt").write_bytes(b"plate log, bay 3\n" * 20)
+    return d
+
+
+def test_folder_round_trip_and_guarantees(model_file, tmp_path):
+    d = _folder(tmp_path)
+    blob, stats = api.pack_paths([str(d)], model=model_file)
+    assert len(stats.images) == 3
+    g = {m["path"]: m["guarantee"] for m in lcodec.info(blob)["members"]}
+    assert g == {"plates": "byte-exact", "plates/a.pgm": "byte-exact", "plates/b.png": "pixel-exact",
+                 "plates/c.dcm": "byte-exact", "plates/notes.txt": "byte-exact"}
+    out = tmp_path / "out"
+    lcodec.unpack_to_dir(blob, str(out), model=model_file)
+    for n in ("a.pgm", "c.dcm", "notes.txt"):
+        assert (out / "plates" / n).read_bytes() == (d / n).read_bytes()
+    assert np.array_equal(np.asarray(PIL.open(out / "plates" / "b.png")), _sample("coins"))
+    rep = api.verify(blob, model=model_file, against=str(d))
+    assert rep.ok, rep.problems
+    # a changed pixel in the original is found by verify --against (pixel-exact member)
+    a = _sample("coins").copy()
+    a[3, 4] ^= 1
+    (d / "b.png").write_bytes(_png(a))
+    assert not api.verify(blob, model=model_file, against=str(d)).ok
+
+
+def test_a_file_that_is_a_pixel_record_stays_bytes(model_file):
+    """Only a PNG becomes a pixel record; a file that happens to be one is coded as its bytes."""
+    rec = analyse(_png(_sample("coins"))).content
+    assert analyse(rec) is None
+    blob = lcodec.pack(rec, model=model_file)
+    assert lcodec.info(blob)["guarantee"] == "byte-exact" and lcodec.unpack(blob, model=model_file) == rec
+
+
+def test_salvage_rebuilds_pixel_exact_members(model_file, tmp_path):
+    from lcodec import salvage as S
+    d = _folder(tmp_path)
+    blob, _ = api.pack_paths([str(d)], model=model_file)
+    inf = lcodec.info(blob)
+    names = [m["path"] for m in inf["members"] if not m["folder"]]
+    k = names.index("plates/a.pgm")  # damage the PGM's frame (frames follow the member order)
+    fr = inf["frames"][k]
+    end = inf["archive_bytes"] - sum(f["coded_bytes"] + 16 for f in inf["frames"][k + 1:])
+    bad = bytearray(blob)
+    bad[end - 40] ^= 0xFF  # inside the PGM frame's coded words (16+ bytes of head per later record)
+    assert not api.verify(bytes(bad), model=model_file).ok
+    out = tmp_path / "saved"
+    res = S.salvage_to(bytes(bad), str(out), model_file, False, False, None)
+    status = {m.path: m.status for m in res.members}
+    assert status["plates/a.pgm"] == "lost" and status["plates/b.png"] == "recovered"
+    assert np.array_equal(np.asarray(PIL.open(out / "plates" / "b.png")), _sample("coins"))
+    assert (out / "plates" / "c.dcm").read_bytes() == (d / "c.dcm").read_bytes()
+    assert fr["method"] == "modelled/image"
+
+
+def test_force_byte_mode(model_file, tmp_path):
+    d = _folder(tmp_path)
+    blob, stats = api.pack_paths([str(d)], model=model_file, pixels=False)
+    assert not stats.images
+    assert all(f["method"] != "modelled/image" for f in lcodec.info(blob)["frames"])
+    out = tmp_path / "out"
+    lcodec.unpack_to_dir(blob, str(out), model=model_file)
+    for n in ("a.pgm", "b.png", "c.dcm"):
+        assert (out / "plates" / n).read_bytes() == (d / n).read_bytes()
+
+
+def test_depth_without_a_network_is_coded_as_bytes(tmp_path):
+    from lcodec import modelfile
+    m = random_tessel(roles=("r8",))
+    p = str(tmp_path / "m8.lcmodel")
+    modelfile.dump(p, {"name": "tessel", "params": m.params}, m.arrays)
+    data = open(_dicom("MR_small.dcm"), "rb").read()
+    blob = lcodec.pack(data, model=p)
+    assert lcodec.info(blob)["frames"][0]["method"] != "modelled/image"
+    assert lcodec.unpack(blob, model=p) == data
+
+
+def test_wrong_or_missing_model_is_a_clear_error(model_file, tmp_path):
+    blob = lcodec.pack(_pgm(_sample("camera")), model=model_file)
+    with pytest.raises(ModelError, match="needs the tessel model file"):
+        lcodec.unpack(blob)
+    from lcodec import modelfile
+    other = random_tessel(seed=5)
+    p = str(tmp_path / "other.lcmodel")
+    modelfile.dump(p, {"name": "tessel", "params": other.params}, other.arrays)
+    with pytest.raises(ModelError, match="wrong model"):
+        lcodec.unpack(blob, model=p)
+
+
+def test_damaged_image_archive_is_refused(model_file, tmp_path):
+    data = _pgm(_sample("camera", 40, 40))
+    blob = bytearray(lcodec.pack(data, model=model_file))
+    fr = lcodec.info(bytes(blob))["frames"][0]
+    assert fr["method"] == "modelled/image"
+    for pos in (len(blob) - 30, len(blob) - fr["coded_bytes"] + 2):  # coded words; the descriptor
+        bad = bytearray(blob)
+        bad[pos] ^= 0x10
+        with pytest.raises(DataError):
+            lcodec.unpack(bytes(bad), model=model_file)
+        rep = api.verify(bytes(bad), model=model_file)
+        assert not rep.ok
+    with pytest.raises(DataError):
+        lcodec.unpack(bytes(blob[:-7]), model=model_file)
+    # through the CLI: exit 1, a message, no traceback, no output file
+    bad = bytearray(blob)
+    bad[len(blob) - 30] ^= 0x10
+    (tmp_path / "bad.lcodec").write_bytes(bytes(bad))
+    r = subprocess.run([sys.executable, "-m", "lcodec", "unpack", str(tmp_path / "bad.lcodec"), "-o",
+                        str(tmp_path / "x.pgm"), "-m", model_file], capture_output=True, text=True,
+                       env=dict(os.environ, PYTHONPATH=os.getcwd()))
+    assert r.returncode == 1 and "Traceback" not in r.stderr and "damaged" in r.stderr
+    assert not (tmp_path / "x.pgm").exists()
+
+
+GOOD = b"\x01\x00\x01\x01\x01\x01\x00"  # version 1, offset 0, 1 x 1 x 1 sample of 1 byte, flags 0
+
+
+@pytest.mark.parametrize("payload", [b"", b"\x02" + GOOD[1:], GOOD[:4], b"\x01\x00\x00\x01\x01\x01\x00",
+                                     b"\x01\x00\x01\x01\x05\x01\x00", b"\x01\x00\x01\x01\x01\x03\x00",
+                                     b"\x01\x00\x01\x02\x01\x01\x00", b"\x01\x00\x01\x01\x01\x01\x08",
+                                     b"\x01\x00\x01\x01\x01\x01\x01", b"\x01\x01\x01\x01\x01\x01\x00",
+                                     GOOD + b"abc", b"\x01\x00\xff\xff\xff\xff\xff\xff\xff\xff\x7f\x01\x01\x01\x00"])
+def test_hostile_image_descriptors_are_refused(payload):
+    """Zero rows, 5 channels, 3-byte samples, a region past the content, unknown or
+    8-bit-only-forbidden flags, a prefix past the end, broken words, an over-long varint."""
+    from lcodec.pixels import read_descriptor
+    lay, pos = read_descriptor(GOOD, 1)  # the valid one is accepted
+    assert (lay.rows, lay.cols, pos) == (1, 1, len(GOOD))
+    with pytest.raises(DataError):
+        read_descriptor(payload, 1)
+
+
+def test_mutated_image_archives_never_give_wrong_output(model_file):
+    """Random byte flips anywhere in image archives (byte-exact and pixel-exact): unpack
+    either gives back exactly the original or refuses with an lcodec error."""
+    from lcodec.errors import LcodecError
+    rng = np.random.default_rng(7)
+    for data in (_pgm(_sample("camera", 20, 26)), _png(_sample("coins", 18, 22))):
+        blob = lcodec.pack(data, model=model_file)
+        want = lcodec.unpack(blob, model=model_file)
+        for _ in range(150):
+            bad = bytearray(blob)
+            for pos in rng.integers(0, len(bad), rng.integers(1, 4)):
+                bad[pos] ^= 1 << int(rng.integers(0, 8))
+            try:
+                out = lcodec.unpack(bytes(bad), model=model_file)
+            except LcodecError:
+                continue
+            assert out == want
+
+
+# -- the model: causal property, determinism -----------------------------------------------------
+def _tables(m, v, deep):
+    return np.concatenate([t for _, t in m.teacher_tables(v, deep)])
+
+
+@pytest.mark.parametrize("adapt", [None, 64])
+@pytest.mark.parametrize("kind", ["grey8", "rgb8", "grey16"])
+def test_causal_property(kind, adapt):
+    """Masked-autoencoder property (Germain et al., 2015): the table of every sub-symbol
+    depends only on sub-symbols coded before it. Changing one sample changes no table at
+    or before its own position in coding order, and does change some later table."""
+    m = random_tessel()
+    if kind == "rgb8":
+        v = _sample("astronaut", 6, 8)
+    elif kind == "grey16":
+        v = (_sample("camera", 6, 8).astype(np.uint16) * 251)[:, :, None]
+    else:
+        v = _sample("camera", 7, 9)[:, :, None]
+    deep = v.dtype == np.uint16
+    P = 2 if deep else 1
+    rows, cols, C = v.shape
+    base = _tables(m, v, deep)
+    order = coding_order(rows, cols, C, P)
+    pos = np.empty_like(order)
+    pos[order] = np.arange(len(order))  # raster sub-symbol -> coding position
+    for r in range(rows):
+        for c in range(cols):
+            for ch in range(C):
+                w = v.copy()
+                w[r, c, ch] = (int(w[r, c, ch]) + 77) % (65536 if deep else 256)
+                t = _tables(m, w, deep)
+                first = pos[((r * cols + c) * C + ch) * P]  # its first sub-symbol (high byte)
+                assert np.array_equal(t[:first + 1], base[:first + 1]), (r, c, ch)
+                if r < rows - 1 or c < cols - 1:
+                    assert not np.array_equal(t[first + 1:], base[first + 1:]), (r, c, ch)
+
+
+@pytest.mark.parametrize("adapt", [None, 1, 3000])
+@pytest.mark.parametrize("kind", ["grey8", "rgb8", "grey16", "signed16"])
+def test_parallel_pass_equals_step_pass(kind, adapt):
+    m = random_tessel(adapt=adapt)
+    if kind == "rgb8":
+        a, lay_args = _sample("astronaut", 13, 17), (1, 0)
+    elif kind in ("grey16", "signed16"):
+        a, lay_args = (_sample("moon", 19, 11).astype(np.uint16) * 199), (2, 3 if kind == "signed16" else 0)
+    else:
+        a, lay_args = _sample("camera", 21, 10), (1, 0)
+    if a.ndim == 2:
+        a = a[:, :, None]
+    from lcodec.pixels import Layout, values_region
+    lay = Layout(5, a.shape[0], a.shape[1], a.shape[2], *lay_args)
+    raw = b"head!" + values_region(a, lay) + b"tail"
+    payload, _, _ = encode_image_frame(m, raw, lay)
+    rec = []
+    assert decode_image_frame(m, payload, len(raw), rec) == raw
+    step = np.concatenate(rec)
+    v = region_values(raw, lay)
+    par = _tables(m, v, lay.deep)
+    assert step.dtype == par.dtype == np.float64 and np.array_equal(step, par)
+    assert (par == np.floor(par)).all() and (par >= 1).all()
+    m.set_backend("torch")  # the second backend gives the same integers
+    assert np.array_equal(_tables(m, v, lay.deep), par)
+
+
+SNIPPET = r"""
+import sys, hashlib, lcodec
+data = open(sys.argv[1], 'rb').read()
+print(hashlib.sha256(lcodec.pack(data, model=sys.argv[2])).hexdigest())
+"""
+
+
+def test_same_archive_across_processes_and_thread_settings(model_file, tmp_path):
+    src = tmp_path / "in.dcm"
+    src.write_bytes(open(_dicom("CT_small.dcm"), "rb").read())
+    digests = set()
+    for threads in ("1", "2"):
+        env = dict(os.environ, NUMBA_NUM_THREADS=threads, OMP_NUM_THREADS=threads, OPENBLAS_NUM_THREADS=threads,
+                   PYTHONPATH=os.getcwd())
+        out = subprocess.run([sys.executable, "-c", SNIPPET, str(src), model_file], env=env, capture_output=True,
+                             text=True, check=True)
+        digests.add(out.stdout.strip())
+    digests.add(hashlib.sha256(lcodec.pack(src.read_bytes(), model=model_file)).hexdigest())
+    assert len(digests) == 1
+
+
+def test_chunking_does_not_change_tables(monkeypatch):
+    """The encoder's batches end on wavefront groups; their size changes no table."""
+    import lcodec.models.tessel as T
+    m = random_tessel()
+    v = _sample("camera", 33, 40)[:, :, None]
+    a = _tables(m, v, False)
+    monkeypatch.setattr(T, "CHUNK", 7)
+    assert np.array_equal(_tables(m, v, False), a)
+
+
+def test_adaptive_counts_stay_exact_at_the_limits():
+    """Largest network tables (every entry 2**20) and counts at the halving limit: the
+    mixed table is exact in float64 (below 2**53) and every entry positive."""
+    from lcodec.models.tessel import COUNT_LIMIT, N_CTX, _mix
+    tab = np.full((3, 256), float(1 << 20))
+    tab[1, 5] = 1.0
+    counts = np.zeros((N_CTX, 256), np.int32)
+    counts[0, :] = COUNT_LIMIT
+    out = np.empty_like(tab)
+    _mix(tab, np.zeros(3, np.int64), 1 << 16, counts, out)
+    assert (out >= 1).all() and out.max() < 2 ** 53 and (out == np.floor(out)).all()
+
+
+def test_model_file_round_trip_and_refusals(model_file, tmp_path):
+    m = load_model(model_file)
+    assert m.is_image_model and m.identity["model"] == "tessel"
+    from lcodec import modelfile
+    bad = random_tessel()
+    arrays = dict(bad.arrays)
+    arrays["r8.w1"] = arrays["r8.w1"][:-1]
+    p = str(tmp_path / "bad.lcmodel")
+    modelfile.dump(p, {"name": "tessel", "params": bad.params}, arrays)
+    with pytest.raises(ModelError, match="bad parameters"):
+        load_model(p)
+    params = dict(bad.params, hidden=2000)
+    modelfile.dump(p, {"name": "tessel", "params": params}, bad.arrays)
+    with pytest.raises(ModelError, match="bad parameters"):
+        load_model(p)
+
+
+# -- training and the golden pixel model -----------------------------------------------------------
+def test_train_image_cli(tmp_path):
+    pytest.importorskip("torch")
+    d = tmp_path / "plates"
+    d.mkdir()
+    for i, n in enumerate(("camera", "coins", "text")):
+        (d / f"{n}.pgm").write_bytes(_pgm(_sample(n, 40, 48)))
+    (d / "notes.txt").write_bytes(b"not an image")
+    out = tmp_path / "m.lcmodel"
+    r = subprocess.run([sys.executable, "-m", "lcodec", "train", "--kind", "image", str(d), "-o", str(out),
+                        "--time-limit", "3", "--preset", "tiny"], capture_output=True, text=True,
+                       env=dict(os.environ, PYTHONPATH=os.getcwd()))
+    assert r.returncode == 0, r.stderr
+    assert "skipped" in r.stderr and "exported r8" in r.stderr
+    data = _pgm(_sample("page", 30, 30))
+    blob = lcodec.pack(data, model=str(out))
+    assert lcodec.info(blob)["frames"][0]["method"] == "modelled/image"
+    assert lcodec.unpack(blob, model=str(out)) == data
+
+
+def test_bench_kind_image_cli(model_file, tmp_path):
+    """bench --kind image: every codec round-trip checked, sizes equal a direct call of the
+    library (imagecodecs' JPEG XL here), JSON written."""
+    import json
+    import imagecodecs
+    d = tmp_path / "test"
+    d.mkdir()
+    (d / "a.pgm").write_bytes(_pgm(_sample("camera", 32, 40)))
+    (d / "b.dcm").write_bytes(open(_dicom("MR_small.dcm"), "rb").read())
+    j = tmp_path / "rows.json"
+    r = subprocess.run([sys.executable, "-m", "lcodec", "bench", "--kind", "image", str(d), "-m", model_file,
+                        "--json", str(j)], capture_output=True, text=True, env=dict(os.environ, PYTHONPATH=os.getcwd()))
+    assert r.returncode == 0, r.stderr
+    assert "jpegxl" in r.stdout and "total" in r.stdout
+    rows = {x["file"]: x for x in json.loads(j.read_text())["rows"]}
+    assert rows["a.pgm"]["codecs"]["jpegxl"] == len(imagecodecs.jpegxl_encode(_sample("camera", 32, 40), lossless=True, effort=9))
+    assert rows["b.dcm"]["codecs"]["webp"] is None and rows["b.dcm"]["bits"] == 16
+    r = subprocess.run([sys.executable, "-m", "lcodec", "bench", "--kind", "image", str(d)], capture_output=True,
+                       text=True, env=dict(os.environ, PYTHONPATH=os.getcwd()))
+    assert r.returncode == 2 and "pixel model" in r.stderr
+
+
+GOLDEN_IMAGES = sorted(f[:-7] for f in os.listdir(GOLDEN) if f.startswith("tessel-v1-") and f.endswith(".lcodec"))
+
+
+@pytest.mark.parametrize("name", GOLDEN_IMAGES)
+def test_golden_image_containers_decode_exactly(name):
+    model = os.path.join(GOLDEN, "tessel-tiny.lcmodel")
+    blob = open(os.path.join(GOLDEN, name + ".lcodec"), "rb").read()
+    orig = open(os.path.join(GOLDEN, name + ".orig"), "rb").read()
+    d = api.decode(blob, model=model)
+    assert b"".join(d.frames) == analyse(orig).content  # the content: the file's bytes or its pixel record
+    if lcodec.info(blob)["guarantee"] == "byte-exact":
+        assert lcodec.unpack(blob, model=model) == orig
+    # and today's encoder still writes the same bytes
+    assert lcodec.pack(orig, model=model) == blob
+
+
+def test_golden_image_containers_exist():
+    assert {"tessel-v1-pgm", "tessel-v1-png", "tessel-v1-dicom16"} <= set(GOLDEN_IMAGES)
