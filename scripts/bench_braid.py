@@ -5,7 +5,7 @@ ablation (prior only, adaptive only, mixed) and the presets. Not a test: prints 
 writes JSON, and marks each target MET or MISSED (exit 0 either way, unless something
 fails to round-trip).
 
-    python scripts/bench_braid.py [--out DIR] [--kinds python_stdlib,c_headers,package_data]
+    python scripts/bench_braid.py [--out DIR] [--kinds python_stdlib,c_headers,doc_text,package_data]
                                   [--time-limit S] [--skip-large] [--skip-presets]
 
 Targets:
@@ -182,7 +182,7 @@ def presets(out: str, time_limit: float) -> dict:
 def main() -> int:
     ap = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     ap.add_argument("--out", default="bench-out", help="folder for corpora, models and JSON (default: bench-out)")
-    ap.add_argument("--kinds", default="python_stdlib,c_headers,package_data")
+    ap.add_argument("--kinds", default="python_stdlib,c_headers,doc_text,package_data")
     ap.add_argument("--time-limit", type=float, default=600, help="training time limit per model (seconds)")
     ap.add_argument("--skip-large", action="store_true")
     ap.add_argument("--skip-presets", action="store_true")
