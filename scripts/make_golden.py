@@ -24,50 +24,38 @@ def sample_text(seed: int, n: int) -> bytes:
     return "".join(out).encode()[:n]
 
 
-def golden_weft():
-    """A tiny trained weft model and a container made with it (needs torch)."""
+def golden_learned(kind: str, preset: str, n_files: int, file_bytes: int, seed0: int, data_seed: int,
+                   time_limit: float, container: str):
+    """A tiny model of `kind`, trained on generated log lines, and a container made with it."""
     from lcodec import train as T
 
-    mpath = os.path.join(HERE, "weft-tiny.lcmodel")
-    arc, orig = os.path.join(HERE, "weft-v1-text.lcodec"), os.path.join(HERE, "weft-v1-text.orig")
+    mpath = os.path.join(HERE, f"{kind}-tiny.lcmodel")
+    arc, orig = os.path.join(HERE, container + ".lcodec"), os.path.join(HERE, container + ".orig")
     if os.path.exists(arc):
         print(f"keep {arc}")
         return
     import tempfile
     with tempfile.TemporaryDirectory() as d:
-        for i in range(8):
+        for i in range(n_files):
             with open(os.path.join(d, f"log{i}.txt"), "wb") as f:
-                f.write(sample_text(100 + i, 30_000))
-        T.train([d], mpath, time_limit=20, preset="tiny", seed=0, echo=print)
-    data = sample_text(9, 12_000)
+                f.write(sample_text(seed0 + i, file_bytes))
+        T.train([d], mpath, time_limit=time_limit, preset=preset, seed=0, echo=print)
+    data = sample_text(data_seed, 12_000)
     with open(orig, "wb") as f:
         f.write(data)
     with open(arc, "wb") as f:
         f.write(lcodec.pack(data, model=mpath, frame_size=4096))
     print(f"wrote {arc}")
+
+
+def golden_weft():
+    """The weft (neural) model and container (needs torch)."""
+    golden_learned("weft", "tiny", 8, 30_000, 100, 9, 20, "weft-v1-text")
 
 
 def golden_braid():
-    """A tiny braid model counted from generated log lines, and a container made with it."""
-    from lcodec import train as T
-
-    mpath = os.path.join(HERE, "braid-tiny.lcmodel")
-    arc, orig = os.path.join(HERE, "braid-v2-text.lcodec"), os.path.join(HERE, "braid-v2-text.orig")
-    if os.path.exists(arc):
-        print(f"keep {arc}")
-        return
-    import tempfile
-    with tempfile.TemporaryDirectory() as d:
-        for i in range(10):
-            with open(os.path.join(d, f"log{i}.txt"), "wb") as f:
-                f.write(sample_text(200 + i, 6_000))
-        T.train([d], mpath, time_limit=5, preset="braid-lean", seed=0, echo=print)
-    data = sample_text(19, 12_000)
-    with open(orig, "wb") as f:
-        f.write(data)
-    with open(arc, "wb") as f:
-        f.write(lcodec.pack(data, model=mpath, frame_size=4096))
-    print(f"wrote {arc}")
+    """The braid model (corpus tables) and a version-2 container."""
+    golden_learned("braid", "braid-lean", 10, 6_000, 200, 19, 5, "braid-v2-text")
 
 
 def golden_tessel():
