@@ -63,7 +63,6 @@ def golden_tessel():
     with it: an 8-bit PGM (byte-exact), a PNG with a text chunk (pixel-exact) and pydicom's
     16-bit MR_small.dcm (byte-exact). Needs torch, scikit-image and pydicom."""
     import io
-    import shutil
     import tempfile
     import warnings
 
