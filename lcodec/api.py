@@ -47,9 +47,11 @@ class PackStats:
     raw_bytes: int = 0
     coded_bytes: int = 0
     nll_bits: float = 0.0  # model NLL of the modelled frames, plus 8 bits per stored byte
-    frames: int = 0
+    frames: int = 0  # frames coded (in this run)
     stored_frames: int = 0
     encode_s: float = 0.0
+    kept_frames: int = 0  # a resumed job: frames already coded by the interrupted run
+    kept_bytes: int = 0
 
     @property
     def bits_per_byte(self) -> float:
@@ -107,7 +109,7 @@ class _Plan:
                 if index < self.skip_frames:
                     if self.skip_check:
                         self.skip_check(index, raw)
-                    yield None
+                    yield len(raw)  # kept from an interrupted run: not coded again
                 else:
                     yield raw
                 index += 1
@@ -139,7 +141,8 @@ def _read_frames(src: _Source, frame_size: int):
 
 
 def _frame_items(plans):
-    """("open", plan), ("frame", plan, raw or None), ..., ("close", plan) for each plan."""
+    """("open", plan), ("frame", plan, raw bytes, or the length of a kept frame), ...,
+    ("close", plan) for each plan."""
     for plan in plans:
         yield ("open", plan, None)
         for raw in plan.frames():
@@ -147,21 +150,27 @@ def _frame_items(plans):
         yield ("close", plan, None)
 
 
-def _run_plans(plans, runner, stats: PackStats, on_open, on_record, on_close, progress=None):
+def _run_plans(plans, runner, stats: PackStats, on_open, on_record, on_close, progress=None, on_batch=None):
     """Code every plan's frames with `runner`, in order: on_open(plan) before its first
     record, on_record(plan, record) for each frame, on_close(plan) after its last (the
     plan's SHA-256 fields are final by then)."""
     from . import scale
 
     items = _frame_items(plans)
-    work = scale.batches(items, work_of=lambda it: it[2], size_of=lambda it: len(it[2]) if it[2] is not None else 0)
+    def work_of(it):
+        return it[2] if isinstance(it[2], bytes) else None
+
+    work = scale.batches(items, work_of=work_of, size_of=lambda it: len(it[2]) if isinstance(it[2], bytes) else 0)
     for metas, results in runner.imap(scale.encode_batch, work):
         for (kind, plan, raw), res in zip(metas, results):
             if kind == "open":
                 on_open(plan)
             elif kind == "close":
                 on_close(plan)
-            elif res is not None:
+            elif res is None:
+                stats.kept_frames += 1
+                stats.kept_bytes += raw
+            else:
                 record, nll, stored = res
                 on_record(plan, record)
                 stats.frames += 1
@@ -170,6 +179,8 @@ def _run_plans(plans, runner, stats: PackStats, on_open, on_record, on_close, pr
                 stats.coded_bytes += len(record)
                 if progress:
                     progress(len(raw))
+        if on_batch:
+            on_batch()
 
 
 def _check_frame_size(frame_size: int) -> None:
@@ -577,7 +588,7 @@ class _Journal:
 
 
 JOURNAL_KIND = "lcodec pack journal 1"
-JOURNAL_EVERY_S = 2.0  # how often a resumable job syncs its partial archive and journal
+JOURNAL_EVERY_S = 0.5  # how often a resumable job syncs its partial archive and journal
 
 
 def _write_resumable(f, plan: _Plan, runner, stats: PackStats, journal: _Journal, start: int, progress=None):
@@ -591,7 +602,9 @@ def _write_resumable(f, plan: _Plan, runner, stats: PackStats, journal: _Journal
     def on_record(p, rec):
         f.write(rec)
         done[0] += 1
-        if time.monotonic() - last[0] >= JOURNAL_EVERY_S:
+
+    def on_batch():
+        if time.monotonic() - last[0] >= JOURNAL_EVERY_S and done[0] < p_frames:
             f.flush()
             os.fsync(f.fileno())
             journal.save(done[0], f.tell())
@@ -604,7 +617,8 @@ def _write_resumable(f, plan: _Plan, runner, stats: PackStats, journal: _Journal
         f.write(head)
         f.seek(end)
 
-    _run_plans([plan], runner, stats, on_open, on_record, on_close, progress)
+    p_frames = plan.n_frames
+    _run_plans([plan], runner, stats, on_open, on_record, on_close, progress, on_batch)
     if getattr(journal, "_mm", None) is not None:
         journal._mm.close()
 

@@ -224,9 +224,10 @@ def pack(inputs, output, model, frame_size, jobs, cluster, per_file, resume, for
                             on_skip=lambda p: click.echo(f"lcodec: skipped {p} (not a regular file)", err=True))
     bar.close()
     if not quiet:
+        kept = f" ({stats.kept_frames} more kept from the interrupted run)" if stats.kept_frames else ""
         click.echo(f"{stats.raw_bytes} -> {stats.coded_bytes} bytes, {stats.bits_per_byte:.3f} bits per byte "
-                   f"(model NLL {stats.nll_bits / max(stats.raw_bytes, 1):.3f}), {stats.frames} frames, "
-                   f"{stats.encode_s:.2f} s", err=True)
+                   f"(model NLL {stats.nll_bits / max(stats.raw_bytes - stats.kept_bytes, 1):.3f}), "
+                   f"{stats.frames} frames{kept}, {stats.encode_s:.2f} s", err=True)
 
 
 def _tree_bytes(inputs) -> int:

@@ -29,6 +29,7 @@ from .errors import UsageError
 
 BATCH_BYTES = 1 << 17  # frames per task: up to about this many raw bytes (many small files share a task)
 BATCH_FRAMES = 256
+CONNECT_TIMEOUT_S = 15  # how long --cluster waits for the scheduler
 
 
 @dataclass(frozen=True)
@@ -279,7 +280,7 @@ class ClusterRunner(Runner):
         self.own_client = client is None
         if client is None:
             try:
-                client = distributed.Client(address, timeout="20s", set_as_default=False)
+                client = distributed.Client(address, timeout=f"{CONNECT_TIMEOUT_S}s", set_as_default=False)
             except (OSError, TimeoutError, ValueError) as e:
                 raise UsageError(f"cannot reach the dask scheduler at {address}: {e}") from None
         self.client = client
