@@ -241,17 +241,21 @@ def pack(data: bytes, model=None, frame_size: int = DEFAULT_FRAME_SIZE, progress
     return pack_stats(data, model, frame_size, progress, jobs, cluster)[0]
 
 
-def _plan_inputs(paths: list[str], frame_size: int, identity: dict, on_skip=None) -> _Plan:
+def _plan_inputs(paths: list[str], frame_size: int, identity: dict, on_skip=None, exclude=()) -> _Plan:
     """A plan for files and folders: one regular file alone -> a single-file archive;
     otherwise a member archive. Only sizes and modes are read here (stat)."""
     if len(paths) == 1 and os.path.isfile(paths[0]) and not os.path.islink(paths[0]):
         st = os.stat(paths[0])
         return _Plan([_Source(st.st_size, path=paths[0])], None, frame_size, identity)
-    return _member_plan(paths, frame_size, identity, on_skip)
+    return _member_plan(paths, frame_size, identity, on_skip, exclude)
 
 
-def _member_plan(paths: list[str], frame_size: int, identity: dict, on_skip=None) -> _Plan:
+def _member_plan(paths: list[str], frame_size: int, identity: dict, on_skip=None, exclude=()) -> _Plan:
+    """exclude: absolute paths left out of the listing (a resumable job's own partial
+    archive and journal, when the output lies inside a packed folder)."""
     items, skipped = collect_inputs(list(paths))
+    if exclude:
+        items = [it for it in items if os.path.abspath(it[1]) not in exclude]
     for s in skipped:
         if on_skip:
             on_skip(s)
@@ -315,7 +319,9 @@ def pack_to(paths: list[str], output, model=None, frame_size: int = DEFAULT_FRAM
     _check_frame_size(frame_size)
     t0 = time.perf_counter()
     m = resolve(model)
-    plan = _plan_inputs(list(paths), frame_size, m.identity, on_skip)
+    folder, base = os.path.dirname(os.path.abspath(output)), os.path.basename(output)
+    own = {os.path.join(folder, n) for n in (f".{base}.lcodec-partial", f".{base}.lcodec-journal")}
+    plan = _plan_inputs(list(paths), frame_size, m.identity, on_skip, exclude=own)
     stats = PackStats(raw_bytes=plan.content_size)
     journal = _Journal(output, plan) if resume else None
     out = OutFile(output, force=force, tmp_name=journal.partial_name if journal else None,
@@ -328,11 +334,9 @@ def pack_to(paths: list[str], output, model=None, frame_size: int = DEFAULT_FRAM
                 _write_plan_to(f, plan, r, stats, progress)
             else:
                 _write_resumable(f, plan, r, stats, journal, start, progress)
+        out.commit()
         if journal:
-            out.commit()
             journal.remove()
-        else:
-            out.commit()
     except BaseException:
         if journal:
             out.keep = True  # a resumable job keeps its partial archive and journal

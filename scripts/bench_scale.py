@@ -4,7 +4,7 @@ marks each target MET or MISSED (exit 0 either way, unless an archive differs or
 to round-trip).
 
     python scripts/bench_scale.py [--throughput-mib 16] [--rss-mib 64,512] [--rss-jobs 1]
-                                  [--json FILE] [--skip-rss] [--skip-throughput]
+                                  [--json FILE] [--skip-rss] [--skip-throughput] [--verify-rss]
 
 Targets (issue "Scale"):
   * `--jobs 2` packs at least 1.7 x as fast as `--jobs 1` on 2 cores (same input, same
@@ -132,6 +132,8 @@ def main() -> int:
     ap.add_argument("--rss-mib", default="64,512", help="two sizes in MiB: small,large")
     ap.add_argument("--rss-jobs", type=int, default=1, help="--jobs for the memory runs")
     ap.add_argument("--skip-rss", action="store_true")
+    ap.add_argument("--verify-rss", action="store_true",
+                    help="also verify the memory runs' archives against their inputs (as long again as packing)")
     ap.add_argument("--skip-throughput", action="store_true")
     ap.add_argument("--json", default=None, help="write the figures here")
     ap.add_argument("--workdir", default=None, help="where the generated inputs go (a temporary folder by default)")
@@ -173,7 +175,8 @@ def main() -> int:
                 src = os.path.join(work, f"rss-{size:g}.txt")
                 make_input(src, int(size * MIB), seed=1)
                 r = run_pack(src, os.path.join(work, f"rss-{size:g}.lcodec"), a.rss_jobs)
-                check_round_trip(os.path.join(work, f"rss-{size:g}.lcodec"), src)
+                if a.verify_rss:
+                    check_round_trip(os.path.join(work, f"rss-{size:g}.lcodec"), src)
                 os.unlink(src)
                 os.unlink(os.path.join(work, f"rss-{size:g}.lcodec"))
                 r["mib"] = size
@@ -185,9 +188,12 @@ def main() -> int:
             ratio = runs[1]["peak_rss_mib"] / runs[0]["peak_rss_mib"]
             tratio = (runs[1]["peak_tree_rss_mib"] / runs[0]["peak_tree_rss_mib"]
                       if runs[0]["peak_tree_rss_mib"] else None)
-            res["rss"] = {"runs": runs, "ratio": ratio, "tree_ratio": tratio, "target": 1.2, "met": ratio <= 1.2}
-            print(f"target: peak RSS {large:g} MiB at most 1.2 x {small:g} MiB: {'MET' if ratio <= 1.2 else 'MISSED'} "
-                  f"(x{ratio:.3f}" + (f"; process tree x{tratio:.3f})" if tratio else ")"), flush=True)
+            # with worker processes the figure that counts is the whole tree's (parent + workers)
+            judged = tratio if (a.rss_jobs > 1 and tratio) else ratio
+            res["rss"] = {"runs": runs, "ratio": ratio, "tree_ratio": tratio, "target": 1.2, "met": judged <= 1.2,
+                          "judged_on": "process tree" if judged is tratio else "the lcodec process"}
+            print(f"target: peak RSS {large:g} MiB at most 1.2 x {small:g} MiB: {'MET' if judged <= 1.2 else 'MISSED'} "
+                  f"(lcodec process x{ratio:.3f}" + (f"; process tree x{tratio:.3f})" if tratio else ")"), flush=True)
     finally:
         shutil.rmtree(work, ignore_errors=True)
     res["uptime_end"] = uptime()

@@ -371,3 +371,12 @@ def test_per_file_job_resumes_after_sigkill_without_recoding_finished_members(tr
     for e in fresh["members"]:
         assert (out / e["archive"]).read_bytes() == (tmp_path / "fresh" / e["archive"]).read_bytes()
     assert not any(n.endswith(".lcodec-partial") for _, _, names in os.walk(out) for n in names)
+
+
+def test_a_resumable_job_does_not_pack_its_own_partial_files(tree):
+    (tree / ".site.lcodec.lcodec-partial").write_bytes(b"left by an interrupted run")
+    out = tree / "site.lcodec"
+    api.pack_to([str(tree)], str(out), resume=True)
+    names = [m.path for m in C.read_container(out.read_bytes()).members]
+    assert "station-src/shlex.py" in names and not any("lcodec-partial" in n for n in names)
+    assert not (tree / ".site.lcodec.lcodec-journal").exists()
