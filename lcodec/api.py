@@ -244,7 +244,7 @@ def pack(data: bytes, model=None, frame_size: int = DEFAULT_FRAME_SIZE, progress
 def _plan_inputs(paths: list[str], frame_size: int, identity: dict, on_skip=None, exclude=()) -> _Plan:
     """A plan for files and folders: one regular file alone -> a single-file archive;
     otherwise a member archive. Only sizes and modes are read here (stat)."""
-    if len(paths) == 1 and os.path.isfile(paths[0]) and not os.path.islink(paths[0]):
+    if len(paths) == 1 and os.path.isfile(paths[0]):  # (a link to a file is followed, as before)
         st = os.stat(paths[0])
         return _Plan([_Source(st.st_size, path=paths[0])], None, frame_size, identity)
     return _member_plan(paths, frame_size, identity, on_skip, exclude)
