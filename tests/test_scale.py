@@ -380,3 +380,10 @@ def test_a_resumable_job_does_not_pack_its_own_partial_files(tree):
     names = [m.path for m in C.read_container(out.read_bytes()).members]
     assert "station-src/shlex.py" in names and not any("lcodec-partial" in n for n in names)
     assert not (tree / ".site.lcodec.lcodec-journal").exists()
+
+
+def test_a_link_to_one_file_still_packs_as_that_file(tree, tmp_path):
+    link = tmp_path / "latest.py"
+    link.symlink_to(tree / "shlex.py")
+    api.pack_to([str(link)], str(tmp_path / "l.lcodec"))
+    assert (tmp_path / "l.lcodec").read_bytes() == api.pack((tree / "shlex.py").read_bytes())
