@@ -331,6 +331,7 @@ def pack_to(paths: list[str], output, model=None, frame_size: int = DEFAULT_FRAM
     from . import scale
 
     _check_frame_size(frame_size)
+    t_load = time.perf_counter()  # encode_s counts the model's loading, as before
     m = resolve(model)
     if is_pixel_model(m):
         _image_only(jobs, cluster, resume)
@@ -360,9 +361,7 @@ def pack_to(paths: list[str], output, model=None, frame_size: int = DEFAULT_FRAM
             output.flush()
         return stats
     output = os.fspath(output)
-    _check_frame_size(frame_size)
-    t0 = time.perf_counter()
-    m = resolve(model)
+    t0 = t_load
     folder, base = os.path.dirname(os.path.abspath(output)), os.path.basename(output)
     own = {os.path.join(folder, n) for n in (f".{base}.lcodec-partial", f".{base}.lcodec-journal")}
     plan = _plan_inputs(list(paths), frame_size, m.identity, on_skip, exclude=own)
