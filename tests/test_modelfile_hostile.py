@@ -137,7 +137,7 @@ def test_no_code_can_run_from_a_model_file():
                     assert node.value.id not in ("np", "numpy", "torch", "pickle", "marshal"), (path, node.lineno)
             elif isinstance(node, ast.keyword):
                 assert node.arg != "allow_pickle", (path, node.lineno)
-    assert set(modelfile.DTYPES) == {"u1", "i1", "i2", "u2", "i4", "i8"}  # plain integers only: no object arrays
+    assert set(modelfile.DTYPES) == {"u1", "i1", "i2", "u2", "i4", "u4", "i8"}  # plain integers only: no object arrays
 
 
 def test_crafted_model_files_are_refused(tmp_path):
