@@ -217,7 +217,8 @@ def _image_only(jobs=1, cluster=None, resume: bool = False, per_file: bool = Fal
     used = [name for name, on in (("--jobs", jobs not in (None, 0, 1)), ("--cluster", cluster is not None),
                                   ("--resume", resume), ("--per-file", per_file)) if on]
     if used:
-        raise UsageError(f"{', '.join(used)} work with byte models only; with a pixel model, leave "
+        raise UsageError(f"{', '.join(used)} {'works' if len(used) == 1 else 'work'} with byte models only; "
+                         f"with a pixel model, leave "
                          f"{'it' if len(used) == 1 else 'them'} out (--threads decodes frames side by side)")
 
 
