@@ -15,13 +15,15 @@ import click
 
 from . import __version__
 from .errors import LcodecError, UsageError
-from .fsio import ARCHIVE_EXT, atomic_write, read_input
+from .fsio import ARCHIVE_EXT, atomic_write, map_input, map_stream, read_input
 
 EXAMPLES = {
-    "pack": "lcodec pack station-logs/ -o station-logs" + ARCHIVE_EXT,
+    "pack": "lcodec pack station-logs/ -o station-logs" + ARCHIVE_EXT + " --jobs auto\n"
+            "  lcodec pack station-logs/ -o station-archives/ --per-file --resume\n"
+            "  lcodec pack station-logs/ -o station-logs" + ARCHIVE_EXT + " --cluster tcp://127.0.0.1:8786",
     "unpack": "lcodec unpack station-logs" + ARCHIVE_EXT + " -o restored/\n"
               "  lcodec unpack damaged" + ARCHIVE_EXT + " -o restored/ --salvage --keep-damaged",
-    "verify": "lcodec verify station-logs" + ARCHIVE_EXT + " --against station-logs/",
+    "verify": "lcodec verify station-logs" + ARCHIVE_EXT + " --against station-logs/ --jobs 2",
     "info": "lcodec info station-logs" + ARCHIVE_EXT + " --json",
     "bench": "lcodec bench my-corpus/ --json bench.json --csv bench.csv\n"
              "  lcodec bench --kind image scanner-7/test/ -m scans.lcmodel",
@@ -99,8 +101,36 @@ model_option = click.option("-m", "--model", "model", type=click.Path(dir_okay=F
                             help="Model file to use (default: the built-in adaptive model).")
 force_option = click.option("--force", is_flag=True, help="Overwrite an existing output.")
 threads_option = click.option("--threads", type=click.IntRange(1, 64), default=1, show_default=True,
-                              help="Frames decoded side by side (images: one frame each). Same output.")
+                              help="Frames decoded side by side by threads of this process (images: one "
+                                   "frame each; any model). Same output. --jobs uses worker processes "
+                                   "instead (byte models only); give one or the other.")
 quiet_option = click.option("-q", "--quiet", is_flag=True, help="No progress or summary on stderr.")
+
+
+def _jobs_value(ctx, param, value):
+    if value is None:
+        return None
+    from .scale import parse_jobs
+
+    try:
+        return parse_jobs(value)
+    except UsageError as e:
+        raise click.BadParameter(str(e).replace("--jobs takes", "takes")) from None
+
+
+jobs_option = click.option("-j", "--jobs", "jobs", default=None, callback=_jobs_value, metavar="N",
+                           help="Code frames in N worker processes (0 or 'auto': every core). The archive "
+                                "is the same bytes for any N. Default 1. Byte models only (a pixel model "
+                                "runs in this process).")
+cluster_option = click.option("--cluster", "cluster", default=None, metavar="ADDRESS",
+                              help="Run the coding on an existing dask.distributed cluster, given its "
+                                   "scheduler's address (tcp://HOST:PORT). Same bytes as a local run.")
+
+
+def _where(jobs, cluster):
+    if cluster is not None and jobs not in (None, 1):
+        raise UsageError("give --jobs or --cluster, not both (a cluster's workers decide its parallelism)")
+    return (jobs or 1), cluster
 
 
 @click.group(context_settings={"help_option_names": ["-h", "--help"]})
@@ -116,35 +146,65 @@ def main():
     """
 
 
-def _read_archive(path: str) -> bytes:
+def _read_archive(path: str):
+    """The archive's bytes, mapped rather than read (stdin is spooled to a temporary file)."""
     if path == "-":
-        return sys.stdin.buffer.read()
-    return read_input(path)
+        return map_stream(sys.stdin.buffer)
+    return map_input(path)
 
 
 @main.command(epilog=_example("pack"))
 @click.argument("inputs", nargs=-1, required=True)
 @click.option("-o", "--output", "output", default=None,
-              help=f"Archive to write ('-' for stdout). Default: the single input's name + {ARCHIVE_EXT}.")
+              help=f"Archive to write ('-' for stdout). Default: the single input's name + {ARCHIVE_EXT}. "
+                   f"With --per-file: the folder the archives go to.")
 @model_option
 @click.option("--frame-size", type=click.IntRange(1, 1 << 26), default=1 << 20, show_default=True,
               help="Raw bytes per independently decodable frame.")
+@jobs_option
+@cluster_option
+@click.option("--per-file", is_flag=True,
+              help="Corpus job: one single-file archive per input file, under the -o folder, mirroring "
+                   "the tree, with manifest.json listing every member (sizes, SHA-256, status).")
+@click.option("--resume", is_flag=True,
+              help="Make the job resumable, and continue an interrupted run of the same command: "
+                   "finished frames (one archive) or finished members (--per-file) are not coded again.")
 @click.option("--no-pixels", is_flag=True,
               help="With a pixel model (-m, trained with --kind image): code image files as bytes too "
                    "(byte-exact), not as pixels.")
 @force_option
 @quiet_option
 @guarded
-def pack(inputs, output, model, frame_size, no_pixels, force, quiet):
-    """Pack files, folders, or '-' (stdin) into one archive.
+def pack(inputs, output, model, frame_size, jobs, cluster, per_file, resume, no_pixels, force, quiet):
+    """Pack files, folders, or '-' (stdin) into one archive, or one archive per file.
 
     One file or stdin makes a single-file archive; several inputs or a folder make a
     multi-member archive (paths, sizes, modes and SHA-256 of each member are kept).
+    Frames are read, coded and written as they go: memory does not grow with the input.
     """
     from . import api
 
+    jobs, cluster = _where(jobs, cluster)
     if "-" in inputs and len(inputs) > 1:
         raise UsageError("'-' (stdin) cannot be packed together with other inputs")
+    if per_file:
+        if output is None or output == "-":
+            raise UsageError("--per-file writes one archive per file: give -o with a folder name")
+        if "-" in inputs:
+            raise UsageError("--per-file packs files and folders, not stdin")
+        if any(os.path.abspath(output) == os.path.abspath(i) for i in inputs):
+            raise UsageError("the output folder would be an input")
+        bar = Progress(_tree_bytes(inputs), "packing", quiet)
+        man = api.pack_each(list(inputs), output, model, frame_size, bar, jobs=jobs, cluster=cluster, force=force,
+                            resume=resume,
+                            on_skip=lambda p: click.echo(f"lcodec: skipped {p} (not a regular file)", err=True))
+        bar.close()
+        if not quiet:
+            raw, coded = man["content_bytes"], man["archive_bytes"]
+            click.echo(f"{len(man['members'])} archives ({man['packed']} packed, {man['kept']} kept from an "
+                       f"earlier run): {raw} -> {coded} bytes, {8.0 * coded / max(raw, 1):.3f} bits per byte, "
+                       f"{man['seconds']:.2f} s; manifest {os.path.join(output, api.EACH_MANIFEST)}", err=True)
+        return
     if output is None:
         if inputs[0] == "-" or len(inputs) > 1:
             raise UsageError("give -o/--output when packing stdin or several inputs")
@@ -153,30 +213,33 @@ def pack(inputs, output, model, frame_size, no_pixels, force, quiet):
         raise UsageError(f"{output} exists; pass --force to overwrite it")
     if output != "-" and any(os.path.abspath(output) == os.path.abspath(i) for i in inputs if i != "-"):
         raise UsageError("the output would overwrite an input")
+    if resume and (output == "-" or inputs == ("-",)):
+        raise UsageError("--resume needs files as input and a file as output (not stdin or stdout)")
+    target = sys.stdout.buffer if output == "-" else output
     if inputs == ("-",):
-        data = sys.stdin.buffer.read()
-        bar = Progress(len(data), "packing", quiet)
-        blob, stats = api.pack_stats(data, model, frame_size, bar, pixels=not no_pixels)
-    elif len(inputs) == 1 and os.path.isfile(inputs[0]):
-        data = read_input(inputs[0])
-        bar = Progress(len(data), "packing", quiet)
-        blob, stats = api.pack_stats(data, model, frame_size, bar, pixels=not no_pixels)
+        import tempfile
+
+        with tempfile.TemporaryDirectory() as d:  # spooled: the header needs the size first
+            spool = os.path.join(d, "stdin")
+            with open(spool, "wb") as f:
+                import shutil
+
+                shutil.copyfileobj(sys.stdin.buffer, f, 1 << 20)
+            bar = Progress(os.path.getsize(spool), "packing", quiet)
+            stats = api.pack_to([spool], target, model, frame_size, bar, jobs=jobs, cluster=cluster, force=force,
+                                pixels=not no_pixels)
     else:
-        total = _tree_bytes(inputs)
-        bar = Progress(total, "packing", quiet)
-        blob, stats = api.pack_paths(list(inputs), model, frame_size, bar,
-                                     on_skip=lambda p: click.echo(f"lcodec: skipped {p} (not a regular file)", err=True),
-                                     pixels=not no_pixels)
+        bar = Progress(_tree_bytes(inputs), "packing", quiet)
+        stats = api.pack_to(list(inputs), target, model, frame_size, bar, jobs=jobs, cluster=cluster, force=force,
+                            resume=resume,
+                            on_skip=lambda p: click.echo(f"lcodec: skipped {p} (not a regular file)", err=True),
+                            pixels=not no_pixels)
     bar.close()
-    if output == "-":
-        sys.stdout.buffer.write(blob)
-        sys.stdout.buffer.flush()
-    else:
-        atomic_write(output, blob, force=force)
     if not quiet:
+        kept = f" ({stats.kept_frames} more kept from the interrupted run)" if stats.kept_frames else ""
         click.echo(f"{stats.raw_bytes} -> {stats.coded_bytes} bytes, {stats.bits_per_byte:.3f} bits per byte "
-                   f"(model NLL {stats.nll_bits / max(stats.raw_bytes, 1):.3f}), {stats.frames} frames, "
-                   f"{stats.encode_s:.2f} s", err=True)
+                   f"(model NLL {stats.nll_bits / max(stats.raw_bytes - stats.kept_bytes, 1):.3f}), "
+                   f"{stats.frames} frames{kept}, {stats.encode_s:.2f} s", err=True)
         if stats.images:
             n = sum(i["samples"] for i in stats.images)
             kinds = {}
@@ -218,9 +281,11 @@ def _tree_bytes(inputs) -> int:
 @click.option("--report", "report_path", type=click.Path(dir_okay=False), default=None,
               help="With --salvage: where the JSON report goes (default: OUT.salvage.json).")
 @threads_option
+@jobs_option
+@cluster_option
 @quiet_option
 @guarded
-def unpack(archive, output, model, force, salvage_mode, keep_damaged, report_path, threads, quiet):
+def unpack(archive, output, model, force, salvage_mode, keep_damaged, report_path, threads, jobs, cluster, quiet):
     """Restore an archive: a file, a folder for multi-member archives, or '-' for stdout.
 
     Every frame checksum and the SHA-256 of the content are checked before anything is
@@ -229,6 +294,9 @@ def unpack(archive, output, model, force, salvage_mode, keep_damaged, report_pat
     """
     from . import api
 
+    jobs, cluster = _where(jobs, cluster)
+    if (salvage_mode or keep_damaged or report_path) and (jobs > 1 or cluster or threads > 1):
+        raise UsageError("--salvage runs in one process: leave out --jobs, --cluster and --threads")
     blob = _read_archive(archive)
     if output is None:
         if archive == "-" or not archive.endswith(ARCHIVE_EXT):
@@ -259,14 +327,10 @@ def unpack(archive, output, model, force, salvage_mode, keep_damaged, report_pat
     if multi:
         if output == "-":
             raise UsageError("this archive holds several members; unpack it into a folder, not stdout")
-        api.unpack_to_dir(blob, output, model, force, bar, workers=threads)
+        api.unpack_to_dir(blob, output, model, force, bar, jobs=jobs, cluster=cluster, workers=threads)
     else:
-        data = api.unpack(blob, model, bar, workers=threads)
-        if output == "-":
-            sys.stdout.buffer.write(data)
-            sys.stdout.buffer.flush()
-        else:
-            atomic_write(output, data, force=force)
+        api.unpack_to_file(blob, sys.stdout.buffer if output == "-" else output, model, force, bar,
+                           jobs=jobs, cluster=cluster, workers=threads)
     bar.close()
 
 
@@ -276,19 +340,22 @@ def unpack(archive, output, model, force, salvage_mode, keep_damaged, report_pat
               help="Also compare the decoded content with this original file or folder.")
 @model_option
 @threads_option
+@jobs_option
+@cluster_option
 @quiet_option
 @guarded
-def verify(archive, against, model, threads, quiet):
+def verify(archive, against, model, threads, jobs, cluster, quiet):
     """Decode an archive and check every checksum; exit 0 when exact, 1 when not."""
     from . import api
 
+    jobs, cluster = _where(jobs, cluster)
     blob = _read_archive(archive)
     try:
         total = api.info(blob)["content_bytes"]
     except LcodecError:
         total = 0
     bar = Progress(total, "verifying", quiet)
-    rep = api.verify(blob, model, against, bar, workers=threads)
+    rep = api.verify(blob, model, against, bar, jobs=jobs, cluster=cluster, workers=threads)
     bar.close()
     if rep.ok:
         what = f"{rep.members} members, " if rep.members else ""

@@ -56,6 +56,71 @@ def atomic_write(path: str, data: bytes, force: bool = False, mode: int | None =
         raise
 
 
+class OutFile:
+    """A file written in pieces under a temporary name in the output's folder, synced and
+    renamed into place by `commit()`; `abort()` (or an exception inside `with`) removes it.
+    `tmp_name` fixes the temporary name (a resumable job keeps it between runs; `keep`
+    leaves it on abort so a later run can continue it)."""
+
+    def __init__(self, path: str, force: bool = False, mode: int | None = None, tmp_name: str | None = None,
+                 resume: bool = False):
+        if os.path.lexists(path) and not force:
+            raise UsageError(f"{path} exists; pass --force to overwrite it")
+        if os.path.isdir(path):
+            raise UsageError(f"{path} is a folder; give a file name")
+        self.path, self.mode, self.keep = path, mode, False
+        folder = os.path.dirname(os.path.abspath(path))
+        try:
+            if tmp_name is None:
+                fd, self.tmp = tempfile.mkstemp(prefix="." + os.path.basename(path) + ".", suffix=".part", dir=folder)
+                self.f = os.fdopen(fd, "w+b")
+            else:
+                self.tmp = os.path.join(folder, tmp_name)
+                if resume and os.path.isfile(self.tmp) and not os.path.islink(self.tmp):
+                    self.f = open(self.tmp, "r+b")
+                else:
+                    fd = os.open(self.tmp, os.O_RDWR | os.O_CREAT | os.O_TRUNC | os.O_NOFOLLOW, 0o600)
+                    self.f = os.fdopen(fd, "w+b")
+        except OSError as e:
+            raise _os_error("write into", folder, e) from None
+
+    def __enter__(self):
+        return self
+
+    def __exit__(self, et, ev, tb):
+        if et is None:
+            self.commit()
+        else:
+            self.abort()
+
+    def sync(self) -> None:
+        self.f.flush()
+        os.fsync(self.f.fileno())
+
+    def commit(self) -> None:
+        if self.f is None:
+            return
+        try:
+            self.sync()
+            self.f.close()
+            self.f = None
+            os.chmod(self.tmp, stat.S_IMODE(self.mode) if self.mode is not None else 0o666 & ~_umask())
+            os.replace(self.tmp, self.path)
+        except OSError as e:
+            self.abort()
+            raise _os_error("write", self.path, e) from None
+
+    def abort(self) -> None:
+        if self.f is not None:
+            try:
+                self.f.close()
+            except OSError:
+                pass
+            self.f = None
+        if not self.keep:
+            _remove_quietly(self.tmp)
+
+
 def _remove_quietly(p: str) -> None:
     try:
         if os.path.isdir(p) and not os.path.islink(p):
@@ -76,6 +141,42 @@ def read_input(path: str) -> bytes:
         raise UsageError(f"{path} is a folder") from None
     except OSError as e:
         raise _os_error("read", path, e) from None
+
+
+def map_input(path: str):
+    """A file's bytes without reading them into memory: a read-only mmap (b"" when empty).
+    Pages are read from the file as they are touched and may be dropped again by the
+    kernel, so a large archive costs address space, not memory."""
+    import mmap
+
+    try:
+        with open(path, "rb") as f:
+            size = os.fstat(f.fileno()).st_size
+            if size == 0 or not stat.S_ISREG(os.fstat(f.fileno()).st_mode):
+                return f.read()
+            return mmap.mmap(f.fileno(), 0, access=mmap.ACCESS_READ)
+    except FileNotFoundError:
+        raise UsageError(f"{path}: no such file") from None
+    except IsADirectoryError:
+        raise UsageError(f"{path} is a folder") from None
+    except OSError as e:
+        raise _os_error("read", path, e) from None
+
+
+def map_stream(stream):
+    """A binary stream (stdin) spooled to an unnamed temporary file, then mapped."""
+    import mmap
+    import shutil
+
+    spool = tempfile.TemporaryFile()
+    shutil.copyfileobj(stream, spool, 1 << 20)
+    spool.flush()
+    if spool.tell() == 0:
+        spool.close()
+        return b""
+    mm = mmap.mmap(spool.fileno(), 0, access=mmap.ACCESS_READ)
+    spool.close()  # the mapping keeps the file's pages
+    return mm
 
 
 def safe_member_path(rel: str) -> str:

@@ -636,3 +636,77 @@ def test_golden_image_containers_decode_exactly(name):
 
 def test_golden_image_containers_exist():
     assert {"tessel-v1-pgm", "tessel-v1-png", "tessel-v1-dicom16"} <= set(GOLDEN_IMAGES)
+
+
+# -- pixel models next to the streaming path (merge of scale and pixels) ------------------------
+def _lc(*args):
+    return subprocess.run([sys.executable, "-m", "lcodec", *map(str, args)], capture_output=True, timeout=300)
+
+
+def test_cli_pack_unpack_verify_with_threads(model_file, tmp_path):
+    """The CLI's streaming pack (pack_to) sends a pixel model to the in-memory path: the PNG
+    is a pixel record, rebuilt on unpack (read back with Pillow), with 1 and 2 threads."""
+    d = _folder(tmp_path)
+    arch = tmp_path / "plates.lcodec"
+    r = _lc("pack", d, "-o", arch, "-m", model_file)
+    assert r.returncode == 0, r.stderr
+    assert b"images as pixels" in r.stderr
+    assert arch.read_bytes() == api.pack_paths([str(d)], model=model_file)[0]
+    for threads in ("1", "2"):
+        out = tmp_path / f"out{threads}"
+        r = _lc("unpack", arch, "-o", out, "-m", model_file, "--threads", threads)
+        assert r.returncode == 0, r.stderr
+        for n in ("a.pgm", "c.dcm", "notes.txt"):
+            assert (out / "plates" / n).read_bytes() == (d / n).read_bytes()
+        assert np.array_equal(np.asarray(PIL.open(out / "plates" / "b.png")), _sample("coins"))
+        r = _lc("verify", arch, "-m", model_file, "--against", d, "--threads", threads)
+        assert r.returncode == 0, r.stderr
+        assert b"pixel-exact image" in r.stdout and b"byte-exact image" in r.stdout
+    r = _lc("info", arch)
+    assert r.returncode == 0 and b"pixel-exact" in r.stdout
+    one = tmp_path / "coins.png"
+    one.write_bytes(_png(_sample("coins")))
+    r = _lc("pack", one, "-o", tmp_path / "coins.lcodec", "-m", model_file)
+    assert r.returncode == 0, r.stderr
+    r = _lc("unpack", tmp_path / "coins.lcodec", "-o", tmp_path / "back.png", "-m", model_file)
+    assert r.returncode == 0, r.stderr
+    assert np.array_equal(np.asarray(PIL.open(tmp_path / "back.png")), _sample("coins"))
+
+
+def test_streaming_only_options_are_refused_with_a_pixel_model(model_file, tmp_path):
+    d = _folder(tmp_path)
+    arch = tmp_path / "plates.lcodec"
+    for extra in (["--jobs", "2"], ["--resume"], ["--cluster", "tcp://127.0.0.1:1"]):
+        r = _lc("pack", d, "-o", arch, "-m", model_file, *extra)
+        assert r.returncode == 2 and b"byte models only" in r.stderr and b"Traceback" not in r.stderr, r.stderr
+        assert not arch.exists()
+    r = _lc("pack", d, "-o", tmp_path / "each", "-m", model_file, "--per-file")
+    assert r.returncode == 2 and b"byte models only" in r.stderr, r.stderr
+    arch.write_bytes(api.pack_paths([str(d)], model=model_file)[0])
+    r = _lc("unpack", arch, "-o", tmp_path / "out", "-m", model_file, "--jobs", "2")
+    assert r.returncode == 2 and b"byte models only" in r.stderr and not (tmp_path / "out").exists()
+    r = _lc("verify", arch, "-m", model_file, "--jobs", "2")
+    assert r.returncode == 2 and b"byte models only" in r.stderr
+    from lcodec.errors import UsageError
+    with pytest.raises(UsageError):
+        api.decode_stream(arch.read_bytes(), api._Sink(), model_file)
+
+
+def test_threads_on_byte_archives(tmp_path):
+    """--threads also decodes byte-model archives (threads of one process): same bytes;
+    it does not combine with --jobs."""
+    src = tmp_path / "log.txt"
+    src.write_bytes(b"".join(b"bay %d: plate %d scanned, exposure %d ms\n" % (i % 7, i, 40 + i % 13)
+                             for i in range(6000)))
+    arch = tmp_path / "log.lcodec"
+    assert _lc("pack", src, "-o", arch, "--frame-size", "20000").returncode == 0
+    assert len(lcodec.info(arch.read_bytes())["frames"]) > 4
+    r = _lc("unpack", arch, "-o", tmp_path / "back.txt", "--threads", "3")
+    assert r.returncode == 0, r.stderr
+    assert (tmp_path / "back.txt").read_bytes() == src.read_bytes()
+    r = _lc("verify", arch, "--against", src, "--threads", "2")
+    assert r.returncode == 0, r.stderr
+    assert api.unpack(arch.read_bytes(), workers=2) == src.read_bytes()
+    assert b"".join(api.decode(arch.read_bytes(), workers=2).frames) == src.read_bytes()
+    r = _lc("unpack", arch, "-o", tmp_path / "x.txt", "--threads", "2", "--jobs", "2")
+    assert r.returncode == 2 and b"not both" in r.stderr and not (tmp_path / "x.txt").exists()
