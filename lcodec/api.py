@@ -225,10 +225,6 @@ def _image_only(jobs=1, cluster=None, resume: bool = False, per_file: bool = Fal
 def _pack(pieces: list[bytes], members, model, frame_size: int, progress, jobs: int = 1,
           cluster=None, pixels: bool = True) -> tuple[bytes, PackStats]:
     """In-memory packing (the bytes API)."""
-    import io
-
-    from . import scale
-
     _check_frame_size(frame_size)
     t0 = time.perf_counter()
     m = resolve(model)
@@ -239,7 +235,15 @@ def _pack(pieces: list[bytes], members, model, frame_size: int, progress, jobs: 
         return imagepack._pack(pieces, members, m, frame_size, progress, pixels)
     file_members = [mm for mm in members if not mm.is_dir] if members is not None else [None]
     sources = [_Source(len(p), data=p, member=mm) for p, mm in zip(pieces, file_members)]
-    plan = _Plan(sources, members, frame_size, m.identity)
+    return _pack_plan(_Plan(sources, members, frame_size, m.identity), m, jobs, cluster, progress, t0)
+
+
+def _pack_plan(plan: _Plan, m, jobs: int, cluster, progress, t0: float) -> tuple[bytes, PackStats]:
+    """Code one plan into archive bytes in memory (the bytes API)."""
+    import io
+
+    from . import scale
+
     stats = PackStats(raw_bytes=plan.content_size)
     buf = io.BytesIO()
     with scale.runner(m, jobs, cluster) as r:
@@ -295,10 +299,6 @@ def _member_plan(paths: list[str], frame_size: int, identity: dict, on_skip=None
 def pack_paths(paths: list[str], model=None, frame_size: int = DEFAULT_FRAME_SIZE, progress=None,
                on_skip=None, jobs: int = 1, cluster=None, pixels: bool = True) -> tuple[bytes, PackStats]:
     """Pack files and folders into one multi-member archive; returns (blob, stats)."""
-    import io
-
-    from . import scale
-
     _check_frame_size(frame_size)
     t0 = time.perf_counter()
     m = resolve(model)
@@ -307,15 +307,7 @@ def pack_paths(paths: list[str], model=None, frame_size: int = DEFAULT_FRAME_SIZ
 
         _image_only(jobs, cluster)
         return imagepack.pack_paths(list(paths), m, frame_size, progress, on_skip, pixels)
-    plan = _member_plan(list(paths), frame_size, m.identity, on_skip)
-    stats = PackStats(raw_bytes=plan.content_size)
-    buf = io.BytesIO()
-    with scale.runner(m, jobs, cluster) as r:
-        _write_plan_to(buf, plan, r, stats, progress)
-    blob = buf.getvalue()
-    stats.coded_bytes = len(blob)
-    stats.encode_s = time.perf_counter() - t0
-    return blob, stats
+    return _pack_plan(_member_plan(list(paths), frame_size, m.identity, on_skip), m, jobs, cluster, progress, t0)
 
 
 def pack_to(paths: list[str], output, model=None, frame_size: int = DEFAULT_FRAME_SIZE, progress=None,
@@ -903,22 +895,37 @@ def decode(blob, model=None, progress=None, keep_going: bool = False, workers: i
     workers > 1, frames are decoded by that many threads (the output is the same)."""
     cont = C.read_container(blob)
     m = for_identity(cont.identity, model)
-    if is_pixel_model(m) or workers > 1:
-        from . import imagepack
-
-        return imagepack.decode(blob, m, progress, keep_going, workers)
     _check_member_table(cont)
     out = Decoded(cont, [])
-    for fr in cont.frames:
+
+    def one(fr):
         try:
-            out.frames.append(_decode_frame(m, fr))
+            return _decode_frame(m, fr), None
         except DataError as e:
-            if not keep_going:
-                raise
-            out.frames.append(None)
-            out.problems.append(str(e))
-        if progress:
-            progress(fr.raw_len)
+            return None, e
+
+    if workers > 1 and len(cont.frames) > 1:  # frames are independent: decode them side by side
+        from concurrent.futures import ThreadPoolExecutor
+        pool = ThreadPoolExecutor(workers)
+        results = pool.map(one, cont.frames)
+    else:
+        pool, results = None, map(one, cont.frames)
+    try:
+        for fr, (raw, err) in zip(cont.frames, results):
+            if err is not None:
+                if not keep_going:
+                    raise err
+                out.frames.append(None)
+                out.problems.append(str(err))
+            else:
+                out.frames.append(raw)
+                if fr.method == C.METHOD_IMAGE and image_guarantee(fr) == "pixel-exact":
+                    out.records.add(fr.index)
+            if progress:
+                progress(fr.raw_len)
+    finally:
+        if pool is not None:
+            pool.shutdown(wait=True, cancel_futures=True)
     if cont.members is not None:
         for mem, first, n in out.member_ranges():
             parts = out.frames[first:first + n]

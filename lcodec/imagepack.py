@@ -14,9 +14,9 @@ from . import container as C
 from .coder import encode_frame
 from .errors import DataError, UsageError
 from .fsio import collect_inputs, safe_member_path, _remove_quietly, read_input
-from .models import for_identity, resolve
-from .api import (DEFAULT_FRAME_SIZE, KEPT_MODE_BITS, Decoded, PackStats, VerifyReport, _check_member_table,
-                  _decode_frame, _refuse_links, apply_folder_modes, frame_lanes, image_guarantee)
+from .models import resolve
+from .api import (DEFAULT_FRAME_SIZE, KEPT_MODE_BITS, Decoded, PackStats, VerifyReport, _refuse_links,
+                  apply_folder_modes, decode, frame_lanes)
 
 
 def _encode_pieces(pieces, model, frame_size: int, stats: PackStats, progress=None, images=None) -> list[bytes]:
@@ -137,61 +137,6 @@ def pack_paths(paths: list[str], model=None, frame_size: int = DEFAULT_FRAME_SIZ
 
 
 # -- decoding -----------------------------------------------------------------------------
-
-
-def decode(blob, model=None, progress=None, keep_going: bool = False, workers: int = 1) -> Decoded:
-    """Decode every frame and check every checksum. With keep_going, damaged frames are
-    recorded in `problems` (and left as None) instead of raising at the first one. With
-    workers > 1, frames are decoded by that many threads (the output is the same)."""
-    cont = C.read_container(blob)
-    m = for_identity(cont.identity, model)
-    _check_member_table(cont)
-    out = Decoded(cont, [])
-
-    def one(fr):
-        try:
-            return _decode_frame(m, fr), None
-        except DataError as e:
-            return None, e
-
-    if workers > 1 and len(cont.frames) > 1:  # frames are independent: decode them side by side
-        from concurrent.futures import ThreadPoolExecutor
-        pool = ThreadPoolExecutor(workers)
-        results = pool.map(one, cont.frames)
-    else:
-        pool, results = None, map(one, cont.frames)
-    try:
-        for fr, (raw, err) in zip(cont.frames, results):
-            if err is not None:
-                if not keep_going:
-                    raise err
-                out.frames.append(None)
-                out.problems.append(str(err))
-            else:
-                out.frames.append(raw)
-                if fr.method == C.METHOD_IMAGE and image_guarantee(fr) == "pixel-exact":
-                    out.records.add(fr.index)
-            if progress:
-                progress(fr.raw_len)
-    finally:
-        if pool is not None:
-            pool.shutdown(wait=True, cancel_futures=True)
-    if cont.members is not None:
-        for mem, first, n in out.member_ranges():
-            parts = out.frames[first:first + n]
-            if any(p is None for p in parts):
-                out.problems.append(f"member {mem.path}: damaged (frames {first}..{first + n - 1})")
-            elif C.sha256(b"".join(parts)) != mem.sha256:
-                msg = f"member {mem.path}: SHA-256 of the decoded content does not match"
-                if not keep_going:
-                    raise DataError(msg)
-                out.problems.append(msg)
-    if not out.problems and C.sha256(b"".join(out.frames)) != cont.content_sha256:
-        msg = "SHA-256 of the whole decoded content does not match the header"
-        if not keep_going:
-            raise DataError(msg)
-        out.problems.append(msg)
-    return out
 
 
 def unpack(blob, model=None, progress=None, workers: int = 1) -> bytes:
