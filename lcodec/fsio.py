@@ -131,16 +131,21 @@ def _remove_quietly(p: str) -> None:
         pass
 
 
+def _input_error(path: str, e: OSError) -> Exception:
+    """The message for an input that cannot be read."""
+    if isinstance(e, FileNotFoundError):
+        return UsageError(f"{path}: no such file")
+    if isinstance(e, IsADirectoryError):
+        return UsageError(f"{path} is a folder")
+    return _os_error("read", path, e)
+
+
 def read_input(path: str) -> bytes:
     try:
         with open(path, "rb") as f:
             return f.read()
-    except FileNotFoundError:
-        raise UsageError(f"{path}: no such file") from None
-    except IsADirectoryError:
-        raise UsageError(f"{path} is a folder") from None
     except OSError as e:
-        raise _os_error("read", path, e) from None
+        raise _input_error(path, e) from None
 
 
 def map_input(path: str):
@@ -155,12 +160,8 @@ def map_input(path: str):
             if size == 0 or not stat.S_ISREG(os.fstat(f.fileno()).st_mode):
                 return f.read()
             return mmap.mmap(f.fileno(), 0, access=mmap.ACCESS_READ)
-    except FileNotFoundError:
-        raise UsageError(f"{path}: no such file") from None
-    except IsADirectoryError:
-        raise UsageError(f"{path} is a folder") from None
     except OSError as e:
-        raise _os_error("read", path, e) from None
+        raise _input_error(path, e) from None
 
 
 def map_stream(stream):
