@@ -441,15 +441,9 @@ class Braid:
         (state, mtab), hb = self.new_state(n, len(lengths)), f.hash_bits(n)
         match = self.new_match(data, mtab, lengths)
         start_cells = match[4].copy()
-        n_steps = int(lengths[0]) if len(lengths) else 0
-        nl = len(lengths)
-        syms = np.empty(chunk_steps * nl, np.int32)
-        tab = np.empty((chunk_steps * nl, 256), np.float64)
         try:
-            for t0 in range(0, n_steps, chunk_steps):
-                t1 = min(n_steps, t0 + chunk_steps)
-                k = _teacher(self.corpus, state, match, data, starts, lengths, t0, t1, f.max_order, hb, f._disc, syms, tab)
-                yield syms[:k], tab[:k]
+            yield from S.run_chunks(lengths, chunk_steps, lambda t0, t1, syms, tab: _teacher(
+                self.corpus, state, match, data, starts, lengths, t0, t1, f.max_order, hb, f._disc, syms, tab))
             if match_stats is not None:
                 match_stats += np.maximum(match[4].astype(np.int64) - start_cells, 0)
         finally:

@@ -316,6 +316,18 @@ def _pool_give(state):
         pool["busy"] = False
 
 
+def run_chunks(lengths: np.ndarray, chunk_steps: int, run):
+    """The encoder pass chunk by chunk of steps: run(t0, t1, syms, tab) fills the buffers
+    for steps t0..t1 of every active lane and returns how many rows it wrote."""
+    n_steps = int(lengths[0]) if len(lengths) else 0
+    nl = len(lengths)
+    syms = np.empty(chunk_steps * nl, np.int32)
+    tab = np.empty((chunk_steps * nl, 256), np.float64)
+    for t0 in range(0, n_steps, chunk_steps):
+        k = run(t0, min(n_steps, t0 + chunk_steps), syms, tab)
+        yield syms[:k], tab[:k]
+
+
 # Named parameter sets. A preset, once released, is frozen: archives name it instead of
 # spelling out its parameters (a smaller header), so its meaning may never change.
 PRESETS = {
@@ -426,15 +438,9 @@ class Strata:
         n = int(lengths.sum())
         (state, mtab), hb = self.new_state(n, len(lengths)), self.hash_bits(n)
         match = self.new_match(data, mtab, lengths)
-        n_steps = int(lengths[0]) if len(lengths) else 0
-        nl = len(lengths)
-        syms = np.empty(chunk_steps * nl, np.int32)
-        tab = np.empty((chunk_steps * nl, 256), np.float64)
         try:
-            for t0 in range(0, n_steps, chunk_steps):
-                t1 = min(n_steps, t0 + chunk_steps)
-                k = _teacher(state, match, data, starts, lengths, t0, t1, self.max_order, hb, self._disc, syms, tab)
-                yield syms[:k], tab[:k]
+            yield from run_chunks(lengths, chunk_steps, lambda t0, t1, syms, tab: _teacher(
+                state, match, data, starts, lengths, t0, t1, self.max_order, hb, self._disc, syms, tab))
         finally:
             _pool_give(state)
 
