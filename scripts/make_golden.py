@@ -24,14 +24,27 @@ def sample_text(seed: int, n: int) -> bytes:
     return "".join(out).encode()[:n]
 
 
+def write_vector(name: str, data: bytes, **pack_args) -> None:
+    """Write tests/golden/NAME.orig and NAME.lcodec, unless the container exists already."""
+    arc, orig = os.path.join(HERE, name + ".lcodec"), os.path.join(HERE, name + ".orig")
+    if os.path.exists(arc):
+        print(f"keep {arc}")
+        return
+    with open(orig, "wb") as f:
+        f.write(data)
+    with open(arc, "wb") as f:
+        f.write(lcodec.pack(data, **pack_args))
+    print(f"wrote {arc}")
+
+
 def golden_learned(kind: str, preset: str, n_files: int, file_bytes: int, seed0: int, data_seed: int,
                    time_limit: float, container: str):
     """A tiny model of `kind`, trained on generated log lines, and a container made with it."""
     from lcodec import train as T
 
     mpath = os.path.join(HERE, f"{kind}-tiny.lcmodel")
-    arc, orig = os.path.join(HERE, container + ".lcodec"), os.path.join(HERE, container + ".orig")
-    if os.path.exists(arc):
+    arc = os.path.join(HERE, container + ".lcodec")
+    if os.path.exists(arc):  # (the model is trained only for a new vector)
         print(f"keep {arc}")
         return
     import tempfile
@@ -40,12 +53,7 @@ def golden_learned(kind: str, preset: str, n_files: int, file_bytes: int, seed0:
             with open(os.path.join(d, f"log{i}.txt"), "wb") as f:
                 f.write(sample_text(seed0 + i, file_bytes))
         T.train([d], mpath, time_limit=time_limit, preset=preset, seed=0, echo=print)
-    data = sample_text(data_seed, 12_000)
-    with open(orig, "wb") as f:
-        f.write(data)
-    with open(arc, "wb") as f:
-        f.write(lcodec.pack(data, model=mpath, frame_size=4096))
-    print(f"wrote {arc}")
+    write_vector(container, sample_text(data_seed, 12_000), model=mpath, frame_size=4096)
 
 
 def golden_weft():
@@ -97,30 +105,14 @@ def golden_tessel():
     Image.fromarray(skd.coins()[50:80, 60:100]).save(buf, "PNG", pnginfo=info)
     dcm = open(get_testdata_file("MR_small.dcm"), "rb").read()
     for name, data in zip(names, (pgm, buf.getvalue(), dcm)):
-        arc, orig = os.path.join(HERE, name + ".lcodec"), os.path.join(HERE, name + ".orig")
-        if os.path.exists(arc):
-            print(f"keep {arc}")
-            continue
-        with open(orig, "wb") as f:
-            f.write(data)
-        with open(arc, "wb") as f:
-            f.write(lcodec.pack(data, model=mpath))
-        print(f"wrote {arc}")
+        write_vector(name, data, model=mpath)
 
 
 def main():
     os.makedirs(HERE, exist_ok=True)
     vectors = {"strata-v1-text": sample_text(1, 20_000), "strata-v1-binary": bytes(random.Random(2).randbytes(3000)) + bytes(range(256)) * 8}
     for name, data in vectors.items():
-        arc, orig = os.path.join(HERE, name + ".lcodec"), os.path.join(HERE, name + ".orig")
-        if os.path.exists(arc):
-            print(f"keep {arc}")
-            continue
-        with open(orig, "wb") as f:
-            f.write(data)
-        with open(arc, "wb") as f:
-            f.write(lcodec.pack(data, frame_size=8192))
-        print(f"wrote {arc}")
+        write_vector(name, data, frame_size=8192)
     golden_weft()
     golden_braid()
     golden_tessel()
