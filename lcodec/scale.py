@@ -8,8 +8,9 @@ results back in frame order (DEVELOPERS.md, "Parallel coding").
 A worker builds its model once, from a `ModelSpec`: a built-in model's identity, or a
 model file's bytes (its identity is their SHA-256). Local workers get the spec through
 the pool's initializer; dask workers through a worker plugin registered once per
-client, so the model file travels once per worker, never with each task. Numba state
-is never pickled: a worker compiles (or loads from numba's cache) its own kernels.
+client, so the model file travels once per worker, never with each task. No numba
+state crosses a process: a worker compiles (or loads from numba's cache) its own kernels,
+and a model file's bytes are read by modelfile.parse, which never runs code.
 
 Work and results are plain bytes and tuples:
   encode_batch(key, [raw, ...])        -> [(record bytes, model NLL bits, stored?), ...]
