@@ -21,13 +21,19 @@ import numpy as np
 
 from . import __version__, modelfile
 from .errors import UsageError
-from .models.weft import LUT_STEPS_PER_NAT, PAD, Weft
+from .models.weft import HASH_KEYS, LUT_STEPS_PER_NAT, PAD, Weft, context_rows
 
 PRESETS = {
-    # name: window, embed, hidden, batch, learning rate (figures in DEVELOPERS.md)
+    # name: window, embed, hidden, [hashed contexts: orders, 2**bits rows each, width],
+    # batch, learning rate (figures in DEVELOPERS.md)
+    "weft": dict(window=16, embed=8, hidden=192, hash_orders=[2, 3, 4, 5, 6, 8], hash_bits=18, hash_embed=24,
+                 batch=4096, lr=3e-3),
     "small": dict(window=16, embed=12, hidden=192, batch=1024, lr=3e-3),
     "tiny": dict(window=8, embed=8, hidden=64, batch=512, lr=3e-3),  # for tests
+    "tiny-hashed": dict(window=8, embed=4, hidden=32, hash_orders=[2, 3, 5], hash_bits=10, hash_embed=4,
+                        batch=512, lr=3e-3),  # for tests
 }
+INPUT_SCALE = 1 / 32  # the int8 grid of every embedding value when hashed contexts are on
 DEFAULT_PRESET = "braid"
 LUT_LEN = LUT_STEPS_PER_NAT * 24  # down to exp(-24): below 2**-34, floored at 1 anyway
 
@@ -82,6 +88,7 @@ class Positions:
 def _build(torch, cfg):
     nn = torch.nn
     W, E, H = cfg["window"], cfg["embed"], cfg["hidden"]
+    K, D = len(cfg.get("hash_orders", ())), cfg.get("hash_embed", 0)
 
     class RoundSTE(torch.autograd.Function):
         @staticmethod
@@ -99,21 +106,32 @@ def _build(torch, cfg):
         def __init__(self):
             super().__init__()
             self.emb = nn.Embedding(cfg.get("emb_rows", 257), E)
-            self.l1 = nn.Linear(W * E, H)
+            if K:  # rows no training context reaches stay zero: "nothing known here"
+                self.hemb = nn.Embedding(K << cfg["hash_bits"], D, sparse=True)
+                nn.init.zeros_(self.hemb.weight)
+            self.l1 = nn.Linear(W * E + K * D, H)
             self.l2 = nn.Linear(H, 256)
             self.register_buffer("h_max", torch.tensor(4.0))
             nn.init.normal_(self.emb.weight, std=0.5)
 
         def scales(self):
-            return {"e": self.emb.weight.detach().abs().max() / 127 + 1e-12,
+            # With hashed contexts both embeddings share one fixed grid (their values meet
+            # in one integer product; a max over the large table every step would cost more
+            # than the step).
+            e = INPUT_SCALE if K else self.emb.weight.detach().abs().max() / 127 + 1e-12
+            return {"e": e,
                     "w1": self.l1.weight.detach().abs().max() / 127 + 1e-12,
                     "w2": self.l2.weight.detach().abs().max() / 127 + 1e-12,
                     "h": self.h_max / 127}
 
-        def forward(self, ctx, quant=True):
+        def forward(self, ctx, rows=None, quant=True):
             s = self.scales()
             e = fq(self.emb.weight, s["e"], -127, 127) if quant else self.emb.weight
             x = e[ctx].reshape(len(ctx), -1)
+            if K:
+                he = self.hemb(rows)
+                he = fq(he, s["e"], -127, 127) if quant else he
+                x = torch.cat([x, he.reshape(len(ctx), -1)], dim=1)
             w1 = fq(self.l1.weight, s["w1"], -127, 127) if quant else self.l1.weight
             h = torch.relu(x @ w1.t() + self.l1.bias)
             if self.training:  # track the activation range the integer grid must cover
@@ -131,6 +149,10 @@ def export(net, cfg) -> tuple[dict, dict]:
     """Float QAT network -> integer parameters and arrays of a weft model."""
     s = {k: float(v) for k, v in net.scales().items()}
     emb = np.clip(np.round(net.emb.weight.detach().numpy() / s["e"]), -127, 127).astype(np.int8)
+    extra_params, extra_arrays = {}, {}
+    if cfg.get("hash_orders"):
+        extra_params = {k: cfg[k] for k in HASH_KEYS}
+        extra_arrays["hemb"] = np.clip(np.round(net.hemb.weight.detach().numpy() / s["e"]), -127, 127).astype(np.int8)
     w1 = np.clip(np.round(net.l1.weight.detach().numpy().T / s["w1"]), -127, 127).astype(np.int8)
     w2 = np.clip(np.round(net.l2.weight.detach().numpy().T / s["w2"]), -127, 127).astype(np.int8)
     acc_scale = s["e"] * s["w1"]  # value of one unit of acc
@@ -150,9 +172,9 @@ def export(net, cfg) -> tuple[dict, dict]:
     lut = np.maximum(1, np.round((1 << 20) * np.exp(-np.arange(LUT_LEN) / LUT_STEPS_PER_NAT))).astype(np.int32)
     lim = (1 << 24) - 1
     params = {"window": cfg["window"], "embed": cfg["embed"], "hidden": cfg["hidden"],
-              "m1": max(m1, 1), "s1": s1, "mo": max(mo, 1), "so": so}
+              "m1": max(m1, 1), "s1": s1, "mo": max(mo, 1), "so": so, **extra_params}
     arrays = {"emb": emb, "w1": w1, "b1": np.clip(b1, -lim, lim).astype(np.int32), "w2": w2,
-              "b2": np.clip(b2, -lim, lim).astype(np.int32), "lut": lut}
+              "b2": np.clip(b2, -lim, lim).astype(np.int32), "lut": lut, **extra_arrays}
     return params, arrays
 
 
@@ -226,9 +248,18 @@ def train(corpus: list[str], out: str, time_limit: float = 600.0, preset: str = 
     echo(f"training weft/{preset} on {tr.n:,} bytes ({len(train_files)} files); validating on "
          f"{len(val_idx):,} bytes of {len(val_files)} held-out files; time limit {time_limit:.0f} s")
     net = _build(torch, cfg)
-    opt = torch.optim.Adam(net.parameters(), lr=cfg["lr"])
+    hashed = bool(cfg.get("hash_orders"))
+
+    def inputs(ctx):  # the network's inputs for a batch of context windows
+        rows = torch.from_numpy(context_rows(ctx, cfg["hash_orders"], cfg["hash_bits"])) if hashed else None
+        return torch.from_numpy(ctx), rows
+
+    dense = [p for n, p in net.named_parameters() if not n.startswith("hemb.")]
+    opts = [torch.optim.Adam(dense, lr=cfg["lr"])]
+    if hashed:  # sparse rows: only the rows a batch touched are updated
+        opts.append(torch.optim.SparseAdam([net.hemb.weight], lr=cfg["lr"]))
     vctx, vsym = va.batch(np.sort(rng.permutation(val_idx)[:50_000]))
-    vctx, vsym = torch.from_numpy(vctx), torch.from_numpy(vsym)
+    vin, vsym = inputs(vctx), torch.from_numpy(vsym)
     best, best_state, curve, bad, step = math.inf, None, [], 0, 0
     last_eval = time.perf_counter()
     run_loss, run_n = 0.0, 0
@@ -237,10 +268,17 @@ def train(corpus: list[str], out: str, time_limit: float = 600.0, preset: str = 
         net.train()
         idx = rng.integers(0, tr.n, size=cfg["batch"])
         ctx, sym = tr.batch(idx)
-        loss = torch.nn.functional.cross_entropy(net(torch.from_numpy(ctx)), torch.from_numpy(sym))
-        opt.zero_grad()
+        loss = torch.nn.functional.cross_entropy(net(*inputs(ctx)), torch.from_numpy(sym))
+        # learning rate decays linearly to 5% at the time limit (worth 0.03-0.05 bits per
+        # byte at the end of a 5-minute run, DEVELOPERS.md)
+        frac = max(0.05, 1 - (time.perf_counter() - t_start) / time_limit)
+        for opt in opts:
+            for g in opt.param_groups:
+                g["lr"] = cfg["lr"] * frac
+            opt.zero_grad()
         loss.backward()
-        opt.step()
+        for opt in opts:
+            opt.step()
         run_loss += float(loss.detach()) * log2e
         run_n += 1
         step += 1
@@ -249,7 +287,7 @@ def train(corpus: list[str], out: str, time_limit: float = 600.0, preset: str = 
         if now - last_eval >= max(5.0, min(30.0, time_limit / 20)) or elapsed >= time_limit:
             net.eval()
             with torch.no_grad():
-                vb = float(torch.nn.functional.cross_entropy(net(vctx), vsym)) * log2e
+                vb = float(torch.nn.functional.cross_entropy(net(*vin), vsym)) * log2e
             curve.append({"seconds": round(elapsed, 1), "step": step, "train_bpb": run_loss / run_n, "val_bpb": vb})
             echo(f"  {elapsed:6.0f} s  step {step:7d}  train {run_loss / run_n:.3f}  validation {vb:.3f} bits per byte")
             run_loss, run_n, last_eval = 0.0, 0, now
@@ -272,7 +310,7 @@ def train(corpus: list[str], out: str, time_limit: float = 600.0, preset: str = 
         fl = 0.0
         for i in range(0, len(val_idx), 8192):
             c, s_ = va.batch(val_idx[i:i + 8192])
-            fl += float(torch.nn.functional.cross_entropy(net(torch.from_numpy(c)), torch.from_numpy(s_), reduction="sum")) * log2e
+            fl += float(torch.nn.functional.cross_entropy(net(*inputs(c)), torch.from_numpy(s_), reduction="sum")) * log2e
         float_bpb = fl / len(val_idx)
     meta = {
         "lcodec_version": __version__,

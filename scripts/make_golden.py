@@ -38,11 +38,11 @@ def write_vector(name: str, data: bytes, **pack_args) -> None:
 
 
 def golden_learned(kind: str, preset: str, n_files: int, file_bytes: int, seed0: int, data_seed: int,
-                   time_limit: float, container: str):
+                   time_limit: float, container: str, model_name: str | None = None):
     """A tiny model of `kind`, trained on generated log lines, and a container made with it."""
     from lcodec import train as T
 
-    mpath = os.path.join(HERE, f"{kind}-tiny.lcmodel")
+    mpath = os.path.join(HERE, model_name or f"{kind}-tiny.lcmodel")
     arc = os.path.join(HERE, container + ".lcodec")
     if os.path.exists(arc):  # (the model is trained only for a new vector)
         print(f"keep {arc}")
@@ -59,6 +59,8 @@ def golden_learned(kind: str, preset: str, n_files: int, file_bytes: int, seed0:
 def golden_weft():
     """The weft (neural) model and container (needs torch)."""
     golden_learned("weft", "tiny", 8, 30_000, 100, 9, 20, "weft-v1-text")
+    # with hashed contexts: named by its SHA-256 alone, so a version-2 container
+    golden_learned("weft", "tiny-hashed", 8, 30_000, 300, 29, 15, "weft-v2-hashed", "weft-hashed-tiny.lcmodel")
 
 
 def golden_braid():

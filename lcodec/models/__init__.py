@@ -19,7 +19,8 @@ BUILTIN = {"strata": Strata}  # models an archive can name without a model file
 ARCHITECTURES = {"strata": Strata, "weft": Weft, "braid": Braid, "tessel": Tessel}  # what a model file may hold
 
 
-NAMED_IN_IDENTITY = {"weft", "tessel"}  # (tessel's golden archives were made with the name too)
+NAMED_IN_IDENTITY = {"weft", "tessel"}  # (tessel's golden archives were made with the name too;
+# weft files with hashed contexts came later and are named by their SHA-256 alone)
 
 
 class Loaded:
@@ -36,7 +37,7 @@ class Loaded:
         recorded for weft alone, which shipped that way: its archives must re-encode to the
         same bytes; for the rest it would cost about 25 bytes in every archive."""
         ident = {"model": self.meta["architecture"]["name"], "sha256": self.sha256}
-        if ident["model"] in NAMED_IN_IDENTITY:
+        if ident["model"] in NAMED_IN_IDENTITY and not self.meta["architecture"].get("params", {}).get("hash_orders"):
             ident["file"] = os.path.basename(self.path)
         return ident
 

@@ -4,11 +4,17 @@ An autoregressive MLP over a window of the W previous bytes of a lane (the publi
 masked-autoencoder family: the distribution of byte i depends on bytes before i only,
 here by construction of the window):
 
-    x      = concat(emb[c_{i-W}], ..., emb[c_{i-1}])     int8, W*E values (256 = before the lane)
+    x      = concat(emb[c_{i-W}], ..., emb[c_{i-1}],     int8, W*E values (256 = before the lane)
+                    hemb[row_1], ..., hemb[row_K])       int8, K*D values (hashed contexts, optional)
     acc    = x @ w1 + b1                                 int32
     h      = clamp((acc * m1 + 2**(s1-1)) >> s1, 0, 127) the ReLU and requantisation, integers
     logit  = h @ w2 + b2                                 int32
     freq   = lut[min((max(logit) - logit) * mo + 2**(so-1) >> so, len(lut) - 1)]
+
+Hashed contexts (presets with `hash_orders`): for each order k, row_k picks one of
+2**hash_bits rows of a table of its own by a hash of the last k bytes of the window
+(`context_rows`), so the network sees which longer context it is in, not only the bytes
+(the hashing trick for embeddings; a row no training context reached stays zero).
 
 `lut` (stored in the model file, so no exp() runs at inference) holds
 round(2**20 * exp(-k / 32)), at least 1: the table is a softmax evaluated on a grid of
@@ -27,6 +33,39 @@ from numba import njit
 PAD = 256  # context symbol for positions before the start of a lane
 LUT_STEPS_PER_NAT = 32
 CHUNK_SYMBOLS = 4096
+# hash of a context: h = h * FNV_PRIME + (byte + 1) over the last k bytes, newest first
+# (the 64-bit FNV prime, Fowler-Noll-Vo), then the row is the top bits of h * 2**64/phi
+# (multiplicative hashing, Knuth, TAOCP vol. 3, 6.4). All uint64, wrapping: exact.
+FNV_PRIME = np.uint64(0x100000001B3)
+GOLDEN_MIX = np.uint64(0x9E3779B97F4A7C15)
+HASH_KEYS = ("hash_orders", "hash_bits", "hash_embed")
+
+
+def context_rows(ctx: np.ndarray, orders, bits: int) -> np.ndarray:
+    """Row of every hashed-context table for each context window: (N, K) int64, the rows
+    of table k offset by k * 2**bits (the tables are stored one after the other)."""
+    out = np.empty((len(ctx), len(orders)), np.int64)
+    _context_rows(np.ascontiguousarray(ctx), np.asarray(orders, np.int64), bits, out)
+    return out
+
+
+@njit(cache=True, nogil=True)
+def _context_rows(ctx, orders, bits, out):
+    W = ctx.shape[1]
+    shift = np.uint64(64 - bits)
+    for n in range(ctx.shape[0]):
+        h = np.uint64(0)
+        k = 0
+        for j in range(1, orders[-1] + 1):
+            # uint64 throughout (a uint64 meeting a signed integer would become a float)
+            h = h * FNV_PRIME + (np.uint64(ctx[n, W - j]) + np.uint64(1))
+            if j == orders[k]:
+                out[n, k] = np.int64((h * GOLDEN_MIX) >> shift) + (k << bits)
+                k += 1
+
+
+def input_width(params: dict) -> int:
+    return params["window"] * params["embed"] + len(params.get("hash_orders", ())) * params.get("hash_embed", 0)
 
 
 def check_arrays(params: dict, arrays: dict) -> None:
@@ -36,8 +75,17 @@ def check_arrays(params: dict, arrays: dict) -> None:
     # bound holds for any window, so a hostile file could ask for a window of 10**12.
     if not all(type(v) is int and v >= 1 for v in (W, E, H)):
         raise ValueError("window, embed and hidden must be positive integers")
-    want = {"emb": ((257, E), np.int8), "w1": ((W * E, H), np.int8), "b1": ((H,), np.int32),
+    if "hash_orders" in params:
+        orders, bits, D = params["hash_orders"], params["hash_bits"], params["hash_embed"]
+        if not (isinstance(orders, list) and 1 <= len(orders) <= 16 and all(type(o) is int for o in orders)
+                and orders == sorted(set(orders)) and 1 <= orders[0] and orders[-1] <= W):
+            raise ValueError("hash_orders must be 1-16 increasing orders within the window")
+        if not (type(bits) is int and 8 <= bits <= 24 and type(D) is int and 1 <= D <= 64):
+            raise ValueError("hash_bits must be 8..24 and hash_embed 1..64")
+    want = {"emb": ((257, E), np.int8), "w1": ((input_width(params), H), np.int8), "b1": ((H,), np.int32),
             "w2": ((H, 256), np.int8), "b2": ((256,), np.int32)}
+    if "hash_orders" in params:
+        want["hemb"] = ((len(params["hash_orders"]) << params["hash_bits"], params["hash_embed"]), np.int8)
     for name, (shape, dt) in want.items():
         a = arrays.get(name)
         if a is None or tuple(a.shape) != shape or a.dtype != dt:
@@ -47,9 +95,9 @@ def check_arrays(params: dict, arrays: dict) -> None:
         raise ValueError("array lut must be int32 of length 2..65536")
     if int(lut.min()) < 1 or int(lut.max()) > 1 << 24:
         raise ValueError("lut values must be 1..2**24")
-    # exactness: |x|,|w1| <= 127 with W*E terms; 0 <= h <= 127, |w2| <= 127 with H terms
-    if 127 * 127 * W * E >= 1 << 24 or 127 * 127 * H >= 1 << 24:
-        raise ValueError("window*embed and hidden must keep 127*127*terms below 2**24")
+    # exactness: |x|,|w1| <= 127 with input_width terms; 0 <= h <= 127, |w2| <= 127 with H terms
+    if 127 * 127 * input_width(params) >= 1 << 24 or 127 * 127 * H >= 1 << 24:
+        raise ValueError("the input width and hidden must keep 127*127*terms below 2**24")
     for k in ("m1", "mo"):
         if not 0 < params[k] < 1 << 31:
             raise ValueError(f"{k} out of range")
@@ -95,6 +143,7 @@ class NumpyKernels:
     def __init__(self, params, arrays):
         self.p = params
         self.emb = arrays["emb"]
+        self.hemb = arrays.get("hemb")
         self.w1 = arrays["w1"].astype(np.float32)
         self.b1 = arrays["b1"].astype(np.int64)
         self.w2 = arrays["w2"].astype(np.float32)
@@ -103,8 +152,12 @@ class NumpyKernels:
 
     def tables(self, ctx: np.ndarray) -> np.ndarray:
         p = self.p
-        x = self.emb[ctx].reshape(len(ctx), -1).astype(np.float32)
-        # bound: |x|, |w1| <= 127, window*embed terms: every partial sum < 2**24, exact
+        x = self.emb[ctx].reshape(len(ctx), -1)
+        if self.hemb is not None:
+            rows = context_rows(ctx, p["hash_orders"], p["hash_bits"])
+            x = np.concatenate([x, self.hemb[rows].reshape(len(ctx), -1)], axis=1)
+        x = x.astype(np.float32)
+        # bound: |x|, |w1| <= 127, input_width terms: every partial sum < 2**24, exact
         acc = x @ self.w1
         h = np.empty(acc.shape, np.float32)
         _requant(acc, self.b1, p["m1"], p["s1"], h)
@@ -126,6 +179,7 @@ class TorchKernels:
         self.torch = torch
         self.p = params
         self.emb = torch.from_numpy(arrays["emb"].astype(np.int64))
+        self.hemb = torch.from_numpy(arrays["hemb"]) if "hemb" in arrays else None
         self.w1 = torch.from_numpy(arrays["w1"].astype(np.float32))
         self.b1 = torch.from_numpy(arrays["b1"].astype(np.int64))
         self.w2 = torch.from_numpy(arrays["w2"].astype(np.float32))
@@ -137,6 +191,9 @@ class TorchKernels:
         with t.no_grad():
             c = t.from_numpy(np.ascontiguousarray(ctx, np.int64))
             x = self.emb[c].reshape(len(ctx), -1).to(t.float32)
+            if self.hemb is not None:
+                rows = t.from_numpy(context_rows(ctx, p["hash_orders"], p["hash_bits"]))
+                x = t.cat([x, self.hemb[rows].reshape(len(ctx), -1).to(t.float32)], dim=1)
             acc = (x @ self.w1).to(t.int64) + self.b1  # exact: partial sums < 2**24
             h = t.clamp((acc * p["m1"] + (1 << (p["s1"] - 1))) >> p["s1"], 0, 127).to(t.float32)
             logit = (h @ self.w2).to(t.int64) + self.b2  # exact: partial sums < 2**24
@@ -155,6 +212,10 @@ class Weft:
 
     def __init__(self, params: dict, arrays: dict, backend: str = "numpy"):
         self.params = {k: int(params[k]) for k in ("window", "embed", "hidden", "m1", "s1", "mo", "so")}
+        if any(k in params for k in HASH_KEYS):  # absent from models without hashed contexts
+            if not all(k in params for k in HASH_KEYS):
+                raise ValueError(f"a hashed-context model needs all of {', '.join(HASH_KEYS)}")
+            self.params.update({k: params[k] for k in HASH_KEYS})
         check_arrays(self.params, arrays)
         self.arrays = arrays
         self.window = self.params["window"]
