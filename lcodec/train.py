@@ -26,7 +26,7 @@ from .models.weft import HASH_KEYS, LUT_STEPS_PER_NAT, PAD, Weft, context_rows
 PRESETS = {
     # name: window, embed, hidden, [hashed contexts: orders, 2**bits rows each, width],
     # batch, learning rate (figures in DEVELOPERS.md)
-    "weft": dict(window=16, embed=8, hidden=192, hash_orders=[2, 3, 4, 5, 6, 8], hash_bits=18, hash_embed=24,
+    "weft": dict(window=16, embed=8, hidden=192, hash_orders=[2, 3, 4, 5, 6, 8], hash_bits=17, hash_embed=16,
                  batch=4096, lr=3e-3),
     "small": dict(window=16, embed=12, hidden=192, batch=1024, lr=3e-3),
     "tiny": dict(window=8, embed=8, hidden=64, batch=512, lr=3e-3),  # for tests

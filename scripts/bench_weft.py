@@ -44,7 +44,7 @@ def say(msg: str) -> None:
 def main() -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--out", default="bench-weft-out")
-    ap.add_argument("--time-limit", type=float, default=840.0, help="training seconds (at most 900)")
+    ap.add_argument("--time-limit", type=float, default=480.0, help="training seconds (at most 900)")
     ap.add_argument("--model", help="measure this model file instead of training one")
     ap.add_argument("--preset", default="weft")
     a = ap.parse_args()

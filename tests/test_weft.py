@@ -81,6 +81,16 @@ def test_masked_property(hashed):
     assert m.tables(ctx).shape == (1, 256)
 
 
+@pytest.mark.parametrize("hashed", [False, True])
+def test_chunks_split_over_two_threads_give_the_same_tables(stdlib_text, hashed, monkeypatch):
+    from lcodec.models import weft
+
+    m = random_weft(3, hashed=hashed)
+    a = teacher_tables(m, stdlib_text[:6000], 3)  # chunks of 4096 rows: two threads
+    monkeypatch.setattr(weft, "PAR_MIN_ROWS", 1 << 30)
+    assert np.array_equal(a, teacher_tables(m, stdlib_text[:6000], 3))
+
+
 def test_context_rows_match_the_hash_written_out():
     """context_rows against the hash computed with Python's unbounded integers, mod 2**64
     (reference: the FNV-1 64-bit prime 0x100000001B3 of Fowler, Noll and Vo, and

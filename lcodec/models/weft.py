@@ -135,6 +135,48 @@ def _softmax_lut(lg, b2, mo, so, lut, out):
             out[i, j] = np.float64(lut[min(k, last)])
 
 
+PAR_MIN_ROWS = 1024  # below this, a second thread costs more than it saves
+
+
+def _in_halves(n: int, kernel) -> None:
+    """kernel(a, b) over rows a:b, the two halves in two threads when there are enough
+    rows (the encoder's chunks; never a decoder step). The kernels release the GIL and
+    compute each row on its own, so the integers are the same either way."""
+    global _POOL
+    if n < PAR_MIN_ROWS:
+        kernel(0, n)
+        return
+    if _POOL is None:
+        from concurrent.futures import ThreadPoolExecutor
+
+        _POOL = ThreadPoolExecutor(max_workers=1, thread_name_prefix="weft")
+    mid = n // 2
+    other = _POOL.submit(kernel, 0, mid)
+    kernel(mid, n)
+    other.result()
+
+
+_POOL = None
+
+
+@njit(cache=True, nogil=True)
+def _gather_inputs(ctx, emb, hemb, rows, out):
+    """out[n] = concat(emb[ctx[n, 0]], ..., emb[ctx[n, W-1]], hemb[rows[n, 0]], ...), as float32."""
+    W, E, D = ctx.shape[1], emb.shape[1], hemb.shape[1]
+    for n in range(ctx.shape[0]):
+        c = 0
+        for w in range(W):
+            e = ctx[n, w]
+            for d in range(E):
+                out[n, c] = emb[e, d]
+                c += 1
+        for k in range(rows.shape[1]):
+            r = rows[n, k]
+            for d in range(D):
+                out[n, c] = hemb[r, d]
+                c += 1
+
+
 class NumpyKernels:
     """The integer forward pass with numpy (float32 BLAS on integer values)."""
 
@@ -151,20 +193,22 @@ class NumpyKernels:
         self.lut = arrays["lut"].astype(np.int64)
 
     def tables(self, ctx: np.ndarray) -> np.ndarray:
-        p = self.p
-        x = self.emb[ctx].reshape(len(ctx), -1)
+        p, N = self.p, len(ctx)
         if self.hemb is not None:
+            ctx = np.ascontiguousarray(ctx)
             rows = context_rows(ctx, p["hash_orders"], p["hash_bits"])
-            x = np.concatenate([x, self.hemb[rows].reshape(len(ctx), -1)], axis=1)
-        x = x.astype(np.float32)
+            x = np.empty((N, self.w1.shape[0]), np.float32)
+            _in_halves(N, lambda a, b: _gather_inputs(ctx[a:b], self.emb, self.hemb, rows[a:b], x[a:b]))
+        else:
+            x = self.emb[ctx].reshape(N, -1).astype(np.float32)
         # bound: |x|, |w1| <= 127, input_width terms: every partial sum < 2**24, exact
         acc = x @ self.w1
         h = np.empty(acc.shape, np.float32)
-        _requant(acc, self.b1, p["m1"], p["s1"], h)
+        _in_halves(N, lambda a, b: _requant(acc[a:b], self.b1, p["m1"], p["s1"], h[a:b]))
         # bound: 0 <= h <= 127, |w2| <= 127, hidden terms: every partial sum < 2**24, exact
         lg = h @ self.w2
         out = np.empty(lg.shape, np.float64)
-        _softmax_lut(lg, self.b2, p["mo"], p["so"], self.lut, out)
+        _in_halves(N, lambda a, b: _softmax_lut(lg[a:b], self.b2, p["mo"], p["so"], self.lut, out[a:b]))
         return out
 
 
