@@ -269,8 +269,7 @@ def train(corpus: list[str], out: str, time_limit: float = 600.0, preset: str = 
         idx = rng.integers(0, tr.n, size=cfg["batch"])
         ctx, sym = tr.batch(idx)
         loss = torch.nn.functional.cross_entropy(net(*inputs(ctx)), torch.from_numpy(sym))
-        # learning rate decays linearly to 5% at the time limit (worth 0.03-0.05 bits per
-        # byte at the end of a 5-minute run, DEVELOPERS.md)
+        # learning rate decays linearly to 5% at the time limit
         frac = max(0.05, 1 - (time.perf_counter() - t_start) / time_limit)
         for opt in opts:
             for g in opt.param_groups:
