@@ -332,7 +332,9 @@ def test_one_archive_job_resumes_after_sigkill_with_the_same_bytes(tree, big, tm
 
 
 def test_resume_refuses_a_changed_input(tree, big, tmp_path):
-    (tree / "big.txt").write_bytes(big)
+    # twice the text: one process codes 300 KB in about one journal interval on a quiet
+    # machine, and could finish before the job is caught with 4 frames journalled
+    (tree / "big.txt").write_bytes(big + big[::-1])
     out = tmp_path / "site.lcodec"
     journal = tmp_path / ".site.lcodec.lcodec-journal"
     args = ["pack", tree, "-o", out, "--frame-size", 4096, "--resume"]
