@@ -278,11 +278,12 @@ def _update2(ctx, syms, counts, tots, D, cap, decay, qa, tb, sums):
 
 @njit(cache=True, nogil=True)
 def _mix_chunk(tab, ctx, syms, gid, Ks, counts, tots, mid, ctx2, K2s, counts2, tots2, D, wtab, cap, decay,
-               qa, tb, sums, out):
+               qa, tb, sums, out, blend, D1):
     """The encoder's side of the adaptive counts: group by group (one wavefront step and
     sub-symbol, as the decoder sees them), every table from the state before the group,
     then the group's symbols counted in lane order. Stage 1: the network mixed with the
-    activity counts (K); stage 2: that mixed with the structure counts (K2)."""
+    activity counts (K; with `blend`, weighed against the network alone like stage 2, evidence
+    D1); stage 2: that mixed with the structure counts (K2)."""
     n = tab.shape[0]
     i = 0
     while i < n:
@@ -291,7 +292,10 @@ def _mix_chunk(tab, ctx, syms, gid, Ks, counts, tots, mid, ctx2, K2s, counts2, t
             j += 1
         K = Ks[i]
         K2 = K2s[i]
-        if K > 0:
+        if K > 0 and blend:
+            _mix2(tab[i:j], ctx[i:j], K, counts, D1, wtab, cap, qa[i:j], tb[i:j], sums[i:j], mid[i:j])
+            _update2(ctx[i:j], syms[i:j], counts, tots, D1, cap, decay, qa[i:j], tb[i:j], sums[i:j])
+        elif K > 0:
             _mix(tab[i:j], ctx[i:j], K, counts, mid[i:j])
             _update(ctx[i:j], syms[i:j], counts, tots)
         else:
@@ -441,14 +445,17 @@ class Tessel:
                 type(k) is int and 0 <= k <= 1 << 16 for k in adapt.values()):
             raise ValueError("adapt maps roles to integer prior strengths 0..65536")
         self.adapt = dict(adapt)
-        st = p.get("structure", {"k": {}, "cap": 1, "decay": 0})  # absent: off (files made before it)
-        if (not isinstance(st, dict) or set(st) != {"k", "cap", "decay"} or not isinstance(st["k"], dict)
+        st = p.get("structure", {"k": {}, "cap": 1, "decay": 0, "blend": 0})  # absent: off (older files)
+        if (not isinstance(st, dict) or set(st) != {"k", "cap", "decay", "blend"} or not isinstance(st["k"], dict)
+                or st["blend"] not in (0, 1) or type(st["blend"]) is not int
                 or not set(st["k"]) <= set(p["roles"])
                 or not all(type(k) is int and 0 <= k <= 1 << 16 for k in st["k"].values())
                 or type(st["cap"]) is not int or not 1 <= st["cap"] <= 30
                 or type(st["decay"]) is not int or not 0 <= st["decay"] <= 16):
-            raise ValueError("structure needs k (roles to integer prior strengths 0..65536), cap 1..30, decay 0..16")
+            raise ValueError("structure needs k (roles to integer prior strengths 0..65536), cap 1..30, "
+                             "decay 0..16, blend 0 or 1")
         self.k2 = dict(st["k"])
+        self.blend = st["blend"]
         self.cap, self.decay = st["cap"], st["decay"]
         self.wtab = weight_table(self.cap)
         E, H = p["embed"], p["hidden"]
@@ -545,6 +552,7 @@ class Tessel:
         counts2 = np.zeros((N_SCTX, 256), np.int32)
         tots2 = np.zeros(N_SCTX, np.int64)
         D = np.zeros(N_SCTX, np.int64)
+        D1 = np.zeros(N_CTX, np.int64)
         ends, last = [], 0
         for b in bounds.tolist() + [len(order)]:  # chunks of whole groups, about CHUNK symbols
             if b - last >= CHUNK or b == len(order):
@@ -565,11 +573,11 @@ class Tessel:
                 tab[:] = self.role_tables("r8", ci)
             if K.any() or K2.any():
                 mid, out = np.empty_like(tab), np.empty_like(tab)
-                m2 = len(o) if K2.any() else 0
+                m2 = len(o) if (K2.any() or self.blend) else 0
                 qa, tb = np.empty((m2, 256), np.int64), np.empty((m2, 256), np.int64)
                 _mix_chunk(tab, ctx[o].astype(np.int64), cs, gid[i:j], K[roles[o]], counts, tots, mid,
                            ctx2[o].astype(np.int64), K2[roles[o]], counts2, tots2, D, self.wtab, self.cap,
-                           self.decay, qa, tb, np.empty((m2, 2), np.int64), out)
+                           self.decay, qa, tb, np.empty((m2, 2), np.int64), out, self.blend, D1)
                 tab = out
             yield cs, tab
             i = j
@@ -593,14 +601,19 @@ class Tessel:
         counts2 = np.zeros((N_SCTX, 256), np.int32)
         tots2 = np.zeros(N_SCTX, np.int64)
         D = np.zeros(N_SCTX, np.int64)
+        D1 = np.zeros(N_CTX, np.int64)
         mixed2 = np.empty((cap, 256), np.float64)
+        qa1, tb1, sums1 = np.empty((cap, 256), np.int64), np.empty((cap, 256), np.int64), np.empty((cap, 2), np.int64)
         qa, tb, sums = np.empty((cap, 256), np.int64), np.empty((cap, 256), np.int64), np.empty((cap, 2), np.int64)
         n_steps = cols + DELAY * (rows - 1)
 
         def table(role, m, ctx, ctx2):
             tab = self.role_tables(role, idx[:m])
             K, K2 = self.adapt.get(role, 0), self.k2.get(role, 0)
-            if K:
+            if K and self.blend:
+                _mix2(tab, ctx, K, counts, D1, self.wtab, self.cap, qa1[:m], tb1[:m], sums1[:m], mixed[:m])
+                tab = mixed[:m]
+            elif K:
                 _mix(tab, ctx, K, counts, mixed[:m])
                 tab = mixed[:m]
             if K2:
@@ -609,7 +622,9 @@ class Tessel:
             if record is not None:
                 record.append(tab.copy())
             syms = np.asarray(decode(tab), np.int64)
-            if K:
+            if K and self.blend:
+                _update2(ctx, syms, counts, tots, D1, self.cap, self.decay, qa1[:m], tb1[:m], sums1[:m])
+            elif K:
                 _update(ctx, syms, counts, tots)
             if K2:
                 _update2(ctx2, syms, counts2, tots2, D, self.cap, self.decay, qa[:m], tb[:m], sums[:m])
