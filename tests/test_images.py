@@ -734,6 +734,8 @@ def test_train_image_cli(tmp_path):
                        env=dict(os.environ, PYTHONPATH=os.getcwd()))
     assert r.returncode == 0, r.stderr
     assert "skipped" in r.stderr and "exported r8" in r.stderr
+    params = load_model(str(out)).inner.params  # the defaults: both per-image stages
+    assert params["adapt"] == {"r8": 4096} and params["structure"] == {"k": {"r8": 32}, "cap": 12, "decay": 0, "blend": 1}
     data = _pgm(_sample("page", 30, 30))
     blob = lcodec.pack(data, model=str(out))
     assert lcodec.info(blob)["frames"][0]["method"] == "modelled/image"
