@@ -33,6 +33,9 @@ integers, so their tables agree bit for bit.
 """
 from __future__ import annotations
 
+import threading
+from contextlib import contextmanager
+
 import numpy as np
 from numba import njit
 
@@ -380,6 +383,32 @@ def _apply(v, e, r0, r1, t, ch, deep, preds, hi, lo):
         e[r, c, ch] = x - p
 
 
+_BLAS = {"lock": threading.Lock(), "users": 0, "limits": None}
+
+
+@contextmanager
+def one_blas_thread():
+    """BLAS on one thread while any image is decoded (its products are small: one thread is
+    faster). The limit is process-wide, so it is set by the first decoder to enter and
+    restored by the last to leave: per-call limits in concurrent decoders (`--threads`)
+    restored each other's settings, leaving BLAS on two threads mid-decode and on one
+    thread after it."""
+    from threadpoolctl import threadpool_limits
+
+    with _BLAS["lock"]:
+        if _BLAS["users"] == 0:
+            _BLAS["limits"] = threadpool_limits(limits=1, user_api="blas")
+        _BLAS["users"] += 1
+    try:
+        yield
+    finally:
+        with _BLAS["lock"]:
+            _BLAS["users"] -= 1
+            if _BLAS["users"] == 0:
+                _BLAS["limits"].restore_original_limits()
+                _BLAS["limits"] = None
+
+
 def wavefront_rows(t: int, rows: int, cols: int) -> tuple[int, int]:
     """Rows r0..r1-1 whose pixel c = t - DELAY*r lies in 0..cols-1."""
     r0 = max(0, -(-(t - cols + 1) // DELAY))
@@ -585,8 +614,6 @@ class Tessel:
     def step_decode(self, rows: int, cols: int, C: int, deep: bool, decode, record=None) -> np.ndarray:
         """The decoder's pass: wavefront steps; `decode(tables) -> symbols` is the entropy
         decoder. Returns the samples (rows, cols, C)."""
-        from threadpoolctl import threadpool_limits
-
         v = np.zeros((rows, cols, C), np.int32)  # int32: samples and residuals are below 2**17
         e = np.zeros_like(v)
         cap = min(rows, cols // DELAY + 2)
@@ -630,7 +657,7 @@ class Tessel:
                 _update2(ctx2, syms, counts2, tots2, D, self.cap, self.decay, qa[:m], tb[:m], sums[:m])
             return syms
 
-        with threadpool_limits(limits=1, user_api="blas"):  # small products: one BLAS thread is faster
+        with one_blas_thread():  # small products: one BLAS thread is faster
             for t in range(n_steps):
                 r0, r1 = wavefront_rows(t, rows, cols)
                 m = r1 - r0
