@@ -884,3 +884,57 @@ def test_threads_on_byte_archives(tmp_path):
     assert b"".join(api.decode(arch.read_bytes(), workers=2).frames) == src.read_bytes()
     r = _lc("unpack", arch, "-o", tmp_path / "x.txt", "--threads", "2", "--jobs", "2")
     assert r.returncode == 2 and b"not both" in r.stderr and not (tmp_path / "x.txt").exists()
+
+
+def test_concurrent_decoders_leave_the_blas_setting_as_it_was(model_file, tmp_path):
+    """Decoding image frames in 2 threads sets BLAS to one thread while any decoder runs and
+    restores the process's own setting after the last (threadpoolctl reports it)."""
+    from threadpoolctl import threadpool_info, threadpool_limits
+    d = tmp_path / "plates"
+    d.mkdir()
+    for i, n in enumerate(("camera", "coins", "page", "text")):
+        (d / f"{n}.pgm").write_bytes(_pgm(_sample(n, 20 + 3 * i, 26)))
+    blob, _ = api.pack_paths([str(d)], model=model_file)
+    with threadpool_limits(limits=2, user_api="blas"):
+        before = [i["num_threads"] for i in threadpool_info() if i["user_api"] == "blas"]
+        for _ in range(4):
+            assert len(api.decode(blob, model=model_file, workers=2).frames) >= 4
+            assert [i["num_threads"] for i in threadpool_info() if i["user_api"] == "blas"] == before
+
+
+def test_blas_guard_holds_across_interleaved_decoders():
+    """The interleaving that broke per-call limits: decoder A enters, B enters, A leaves,
+    B is still running (BLAS must stay on one thread), B leaves (the setting from before
+    comes back). threadpoolctl reports the setting."""
+    import threading
+    from threadpoolctl import threadpool_info, threadpool_limits
+    from lcodec.models.tessel import one_blas_thread
+
+    def blas():
+        return [i["num_threads"] for i in threadpool_info() if i["user_api"] == "blas"]
+
+    seen = {}
+    a_in, b_in, a_out = threading.Event(), threading.Event(), threading.Event()
+
+    def dec_a():
+        with one_blas_thread():
+            a_in.set()
+            b_in.wait(10)
+        a_out.set()
+
+    def dec_b():
+        a_in.wait(10)
+        with one_blas_thread():
+            b_in.set()
+            a_out.wait(10)
+            seen["b_after_a_left"] = blas()
+
+    with threadpool_limits(limits=2, user_api="blas"):
+        before = blas()
+        ts = [threading.Thread(target=dec_a), threading.Thread(target=dec_b)]
+        for t in ts:
+            t.start()
+        for t in ts:
+            t.join(20)
+        assert seen["b_after_a_left"] == [1] * len(before)
+        assert blas() == before
