@@ -903,12 +903,13 @@ def test_concurrent_decoders_leave_the_blas_setting_as_it_was(model_file, tmp_pa
 
 
 def test_blas_guard_holds_across_interleaved_decoders():
-    """The interleaving that broke per-call limits: decoder A enters, B enters, A leaves,
-    B is still running (BLAS must stay on one thread), B leaves (the setting from before
-    comes back). threadpoolctl reports the setting."""
+    """The interleaving that broke per-call limits, as `--threads` runs it (the calling thread
+    holds the guard, decoding threads ask for it too): decoder A enters, B enters, A leaves,
+    B is still running (BLAS must stay on one thread), B leaves, the caller leaves (the
+    setting from before comes back). threadpoolctl reports the setting."""
     import threading
     from threadpoolctl import threadpool_info, threadpool_limits
-    from lcodec.models.tessel import one_blas_thread
+    from lcodec.models.tessel import _BLAS, one_blas_thread
 
     def blas():
         return [i["num_threads"] for i in threadpool_info() if i["user_api"] == "blas"]
@@ -928,13 +929,17 @@ def test_blas_guard_holds_across_interleaved_decoders():
             b_in.set()
             a_out.wait(10)
             seen["b_after_a_left"] = blas()
+            seen["users"] = _BLAS["users"]
 
     with threadpool_limits(limits=2, user_api="blas"):
         before = blas()
-        ts = [threading.Thread(target=dec_a), threading.Thread(target=dec_b)]
-        for t in ts:
-            t.start()
-        for t in ts:
-            t.join(20)
-        assert seen["b_after_a_left"] == [1] * len(before)
-        assert blas() == before
+        with one_blas_thread():
+            assert blas() == [1] * len(before)
+            ts = [threading.Thread(target=dec_a), threading.Thread(target=dec_b)]
+            for t in ts:
+                t.start()
+            for t in ts:
+                t.join(20)
+            assert seen == {"b_after_a_left": [1] * len(before), "users": 2}
+            assert blas() == [1] * len(before)
+        assert blas() == before and _BLAS["users"] == 0
