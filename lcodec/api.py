@@ -794,20 +794,26 @@ def _threaded_frames(cont: C.Container, m, workers: int):
         except DataError as e:
             return None, str(e)
 
+    from .models.tessel import one_blas_thread
+
     pool = ThreadPoolExecutor(workers)
     ahead = deque()
     frames = iter(cont.frames)
-    try:
-        for fr in frames:
-            ahead.append((fr, pool.submit(one, fr)))
-            if len(ahead) >= 2 * workers:
+    # BLAS on one thread, set here in the calling thread: a limit set inside a decoding thread
+    # was not always applied (threadpoolctl reported the old setting); decoders' own requests
+    # then only count users
+    with one_blas_thread():
+        try:
+            for fr in frames:
+                ahead.append((fr, pool.submit(one, fr)))
+                if len(ahead) >= 2 * workers:
+                    f0, fut = ahead.popleft()
+                    yield (f0, *fut.result())
+            while ahead:
                 f0, fut = ahead.popleft()
                 yield (f0, *fut.result())
-        while ahead:
-            f0, fut = ahead.popleft()
-            yield (f0, *fut.result())
-    finally:
-        pool.shutdown(wait=True, cancel_futures=True)
+        finally:
+            pool.shutdown(wait=True, cancel_futures=True)
 
 
 def _check_workers(jobs, cluster, workers: int) -> None:

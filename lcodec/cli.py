@@ -576,12 +576,15 @@ def explain(file, model, output, png_out, frame_size, view_bytes, force, quiet):
                    "Images: small (the default) or tiny. Figures in README.md.")
 @click.option("--seed", type=int, default=0, show_default=True, help="Seed of the validation split and the training.")
 @click.option("--max-bytes", type=int, default=None, help="Read at most this many bytes of the corpus (bytes only).")
-@click.option("--adapt-k", default="2048", show_default=True,
+@click.option("--adapt-k", default="4096", show_default=True,
               help="Images: prior strength K of the per-image adaptive counts (0 = off), or 'auto' to pick it "
                    "per depth on the validation images.")
+@click.option("--structure-k", type=click.IntRange(0, 65536), default=32, show_default=True,
+              help="Images: prior strength of the per-image structure counts (position parity, equal neighbours; "
+                   "0 = off, which also turns off the blended first stage).")
 @force_option
 @guarded
-def train(corpus, output, kind, time_limit, preset, seed, max_bytes, adapt_k, force):
+def train(corpus, output, kind, time_limit, preset, seed, max_bytes, adapt_k, structure_k, force):
     """Train a model on files and folders of one kind; write a model file.
 
     A tenth of the files is held out for validation; progress shows validation bits per
@@ -597,7 +600,7 @@ def train(corpus, output, kind, time_limit, preset, seed, max_bytes, adapt_k, fo
         if max_bytes is not None:
             raise UsageError("--max-bytes goes with --kind bytes")
         T.train_image(list(corpus), output, time_limit or 120.0, preset or "small", seed, echo=echo, force=force,
-                      adapt_k=adapt_k)
+                      adapt_k=adapt_k, structure_k=structure_k)
     else:
         T.train(list(corpus), output, time_limit or 600.0, preset or T.DEFAULT_PRESET, seed, max_bytes, echo=echo,
                 force=force)

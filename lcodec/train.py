@@ -339,7 +339,9 @@ IMAGE_PRESETS = {
 }
 
 
-ADAPT_K = 2048  # prior strength of the adaptive counts (figures in DEVELOPERS.md)
+ADAPT_K = 4096  # prior strength of the adaptive counts (figures in DEVELOPERS.md)
+STRUCTURE_K = 32  # prior strength of the structure counts (figures in DEVELOPERS.md)
+STRUCTURE_CAP = 12  # evidence cap of the two-member weights, in bits
 ADAPT_GRID = (0, 256, 1024, 4096, 16384)
 
 
@@ -384,7 +386,8 @@ def read_images(paths: list[str], echo=print) -> list[tuple[str, np.ndarray]]:
 
 
 def train_image(corpus: list[str], out: str, time_limit: float = 120.0, preset: str = "small",
-                seed: int = 0, echo=print, force: bool = False, chan_shift: int = 1, adapt_k="2048") -> dict:
+                seed: int = 0, echo=print, force: bool = False, chan_shift: int = 1, adapt_k=str(ADAPT_K),
+                structure_k: int = STRUCTURE_K) -> dict:
     """Fit a tessel pixel model: one network per role present in the corpus (8-bit samples;
     16-bit high and low bytes), quantisation-aware, then export and measure it."""
     try:
@@ -397,6 +400,8 @@ def train_image(corpus: list[str], out: str, time_limit: float = 120.0, preset: 
         raise UsageError(f"unknown preset {preset!r} (have: {', '.join(IMAGE_PRESETS)})")
     if str(adapt_k) != "auto" and not (str(adapt_k).isdigit() and 0 <= int(adapt_k) <= 1 << 16):
         raise UsageError("--adapt-k must be 0..65536 or 'auto'")
+    if type(structure_k) is not int or not 0 <= structure_k <= 1 << 16:
+        raise UsageError("--structure-k must be 0..65536")
     if os.path.lexists(out) and not force:
         raise UsageError(f"{out} exists; pass --force to overwrite it")
     cfg = dict(IMAGE_PRESETS[preset], window=N_SLOTS, emb_rows=EMB_ROWS)
@@ -502,6 +507,8 @@ def train_image(corpus: list[str], out: str, time_limit: float = 120.0, preset: 
         for k in ("emb", "w1", "b1", "w2", "b2"):
             arrays[f"{r}.{k}"] = a[k]
         arrays["lut"] = a["lut"]
+    if structure_k:  # the second stage (structure counts) and the blended first stage
+        params["structure"] = {"k": {r: structure_k for r in nets}, "cap": STRUCTURE_CAP, "decay": 0, "blend": 1}
     model = Tessel(params, arrays)
     if str(adapt_k) == "auto":  # per depth, the grid value best on the validation images
         params["adapt"] = choose_adapt(model, val_images, echo)

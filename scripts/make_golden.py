@@ -110,6 +110,46 @@ def golden_tessel():
         write_vector(name, data, model=mpath)
 
 
+def golden_tessel_structure():
+    """The tiny pixel model's networks with the per-image evidence of today's `train --kind
+    image` (activity counts K 4096 blended with the network, structure counts k 32) as a
+    second model file, and containers made with it: a 2x pixel-replicated crop of
+    scikit-image's moon (PGM), a Bayer-like mosaic made from its astronaut (PGM) and
+    pydicom's 16-bit MR_small.dcm."""
+    import warnings
+
+    import numpy as np
+    import skimage.data as skd
+    from pydicom.data import get_testdata_file
+
+    from lcodec import modelfile
+
+    mpath = os.path.join(HERE, "tessel-tiny-structure.lcmodel")
+    names = ["tessel-s1-moon2x", "tessel-s1-mosaic", "tessel-s1-dicom16"]
+    if all(os.path.exists(os.path.join(HERE, n + ".lcodec")) for n in names):
+        print("keep tessel-s1-*")
+        return
+    warnings.simplefilter("ignore")
+    if not os.path.exists(mpath):
+        meta, arrays, _ = modelfile.load(os.path.join(HERE, "tessel-tiny.lcmodel"))
+        arch = meta.pop("architecture")
+        meta.pop("arrays")
+        roles = sorted(arch["params"]["roles"])
+        arch["params"]["adapt"] = {r: 4096 for r in roles}
+        arch["params"]["structure"] = {"k": {r: 32 for r in roles}, "cap": 12, "decay": 0, "blend": 1}
+        modelfile.dump(mpath, arch, arrays, **meta)
+    moon = skd.moon()[200:240, 100:148]
+    rgb = skd.astronaut()[100:132, 200:240].astype(np.int32)
+    r, c = np.meshgrid(np.arange(32), np.arange(40), indexing="ij")
+    ch = np.where((r % 2 == 0) & (c % 2 == 0), 0, np.where((r % 2 == 1) & (c % 2 == 1), 2, 1))
+    mosaic = np.take_along_axis(rgb, ch[:, :, None], 2)[:, :, 0].astype(np.uint8)
+    datas = [b"P5\n# bay-3 plate 4, binned 2x2\n48 40\n255\n" + moon.tobytes(),
+             b"P5\n# bay-3 colour sensor, raw mosaic\n40 32\n255\n" + mosaic.tobytes(),
+             open(get_testdata_file("MR_small.dcm"), "rb").read()]
+    for name, data in zip(names, datas):
+        write_vector(name, data, model=mpath)
+
+
 def main():
     os.makedirs(HERE, exist_ok=True)
     vectors = {"strata-v1-text": sample_text(1, 20_000), "strata-v1-binary": bytes(random.Random(2).randbytes(3000)) + bytes(range(256)) * 8}
@@ -118,6 +158,7 @@ def main():
     golden_weft()
     golden_braid()
     golden_tessel()
+    golden_tessel_structure()
 
 
 if __name__ == "__main__":

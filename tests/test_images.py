@@ -30,10 +30,14 @@ GOLDEN = os.path.join(os.path.dirname(__file__), "golden")
 LUT = np.maximum(1, np.round((1 << 20) * np.exp(-np.arange(768) / 32))).astype(np.int32)
 
 
-def random_tessel(seed=0, E=4, H=24, roles=("r8", "r16h", "r16l"), shift=1, adapt=64):
+STRUCT = {"k": 24, "cap": 12, "decay": 0, "blend": 1}  # the second stage (structure counts), blended first stage
+
+
+def random_tessel(seed=0, E=4, H=24, roles=("r8", "r16h", "r16l"), shift=1, adapt=64, structure=None):
     """An untrained pixel model: random integer weights over output biases shaped like a
     two-sided geometric law around residual 0, so that it compresses images (enough to
-    exercise every path, stored frames aside)."""
+    exercise every path, stored frames aside). `structure`: None (off) or STRUCT-like
+    settings with one prior strength k for every role."""
     rng = np.random.default_rng(seed)
     arrays, rp = {"lut": LUT}, {}
     s = np.arange(256)
@@ -49,13 +53,15 @@ def random_tessel(seed=0, E=4, H=24, roles=("r8", "r16h", "r16l"), shift=1, adap
     params = {"embed": E, "hidden": H, "chan_shift": shift, "roles": rp, "bytes": "o6m"}
     if adapt is not None:
         params["adapt"] = {r: adapt for r in roles}
+    if structure is not None:
+        params["structure"] = dict(structure, k={r: structure["k"] for r in roles})
     return Tessel(params, arrays)
 
 
 @pytest.fixture(scope="module")
 def model_file(tmp_path_factory):
     from lcodec import modelfile
-    m = random_tessel()
+    m = random_tessel(structure=STRUCT)
     p = str(tmp_path_factory.mktemp("m") / "rand.lcmodel")
     modelfile.dump(p, {"name": "tessel", "params": m.params}, m.arrays)
     return p
@@ -456,13 +462,19 @@ def _tables(m, v, deep):
     return np.concatenate([t for _, t in m.teacher_tables(v, deep)])
 
 
-@pytest.mark.parametrize("adapt", [None, 64])
+@pytest.mark.parametrize("adapt", [None, 64, "structure", "structure-unblended"])
 @pytest.mark.parametrize("kind", ["grey8", "rgb8", "grey16"])
 def test_causal_property(kind, adapt):
     """Masked-autoencoder property (Germain et al., 2015): the table of every sub-symbol
     depends only on sub-symbols coded before it. Changing one sample changes no table at
-    or before its own position in coding order, and does change some later table."""
-    m = random_tessel()
+    or before its own position in coding order, and does change some later table. With
+    the structure stage too (its counts and weights are updated after each group)."""
+    if adapt == "structure":
+        m = random_tessel(structure=STRUCT)
+    elif adapt == "structure-unblended":
+        m = random_tessel(adapt=None, structure=dict(STRUCT, blend=0, decay=3, cap=4))
+    else:
+        m = random_tessel(adapt=adapt)
     if kind == "rgb8":
         v = _sample("astronaut", 6, 8)
     elif kind == "grey16":
@@ -488,10 +500,17 @@ def test_causal_property(kind, adapt):
                     assert not np.array_equal(t[first + 1:], base[first + 1:]), (r, c, ch)
 
 
-@pytest.mark.parametrize("adapt", [None, 1, 3000])
+@pytest.mark.parametrize("adapt", [None, 1, 3000, "structure", "structure-k1", "structure-unblended"])
 @pytest.mark.parametrize("kind", ["grey8", "rgb8", "grey16", "signed16"])
 def test_parallel_pass_equals_step_pass(kind, adapt):
-    m = random_tessel(adapt=adapt)
+    if adapt == "structure":
+        m = random_tessel(structure=STRUCT)
+    elif adapt == "structure-k1":  # the smallest priors and a short evidence cap
+        m = random_tessel(adapt=1, structure=dict(STRUCT, k=1, cap=1))
+    elif adapt == "structure-unblended":  # no first stage; decayed evidence
+        m = random_tessel(adapt=None, structure=dict(STRUCT, blend=0, decay=2, k=3000))
+    else:
+        m = random_tessel(adapt=adapt)
     if kind == "rgb8":
         a, lay_args = _sample("astronaut", 13, 17), (1, 0)
     elif kind in ("grey16", "signed16"):
@@ -539,11 +558,12 @@ def test_same_archive_across_processes_and_thread_settings(model_file, tmp_path)
 def test_chunking_does_not_change_tables(monkeypatch):
     """The encoder's batches end on wavefront groups; their size changes no table."""
     import lcodec.models.tessel as T
-    m = random_tessel()
-    v = _sample("camera", 33, 40)[:, :, None]
-    a = _tables(m, v, False)
-    monkeypatch.setattr(T, "CHUNK", 7)
-    assert np.array_equal(_tables(m, v, False), a)
+    for m in (random_tessel(), random_tessel(structure=STRUCT)):
+        v = _sample("camera", 33, 40)[:, :, None]
+        a = _tables(m, v, False)
+        monkeypatch.setattr(T, "CHUNK", 7)
+        assert np.array_equal(_tables(m, v, False), a)
+        monkeypatch.setattr(T, "CHUNK", 8192)
 
 
 def test_adaptive_counts_stay_exact_at_the_limits():
@@ -557,6 +577,130 @@ def test_adaptive_counts_stay_exact_at_the_limits():
     out = np.empty_like(tab)
     _mix(tab, np.zeros(3, np.int64), 1 << 16, counts, out)
     assert (out >= 1).all() and out.max() < 2 ** 53 and (out == np.floor(out)).all()
+
+
+def test_structure_stage_stays_exact_at_the_limits():
+    """The second stage at its extremes: first-stage entries near 2**45 (the largest `_mix`
+    writes), one entry 1, the largest prior K2 = 2**16, counts at the halving limit, evidence
+    at both caps: every mixed entry an integer in 1..2**53, and the kept A and B tables match
+    a plain-Python recomputation (Python integers as the reference)."""
+    from lcodec.models.tessel import COUNT_LIMIT, MIX_ONE, N_SCTX, _mix2, weight_table
+    cap = 12
+    wtab = weight_table(cap)
+    tab = np.full((3, 256), float((1 << 45) - 1))
+    tab[1, 5] = 1.0
+    tab[2, :] = np.arange(1, 257)
+    counts = np.zeros((N_SCTX, 256), np.int32)
+    counts[0, :] = COUNT_LIMIT
+    counts[1, 7] = COUNT_LIMIT
+    D = np.zeros(N_SCTX, np.int64)
+    D[0], D[1] = 256 * cap, -256 * cap
+    ctx = np.array([0, 1, 2], np.int64)
+    qa, tb, sums, out = (np.empty((3, 256), np.int64), np.empty((3, 256), np.int64), np.empty((3, 2), np.int64),
+                         np.empty((3, 256)))
+    _mix2(tab, ctx, 1 << 16, counts, D, wtab, cap, qa, tb, sums, out)
+    assert (out >= 1).all() and out.max() < 2 ** 53 and (out == np.floor(out)).all()
+    for i in range(3):
+        t = [int(x) for x in tab[i]]
+        inv = (1 << 44) // sum(t)
+        q = [(x * inv) >> 24 for x in t]
+        b = [(1 << 16) * (x >> 4) + (int(counts[i, j]) << 16) + 1 for j, x in enumerate(q)]
+        assert qa[i].tolist() == q and tb[i].tolist() == b
+        wb = int(wtab[(int(D[i]) >> 4) + 16 * cap])
+        invb = (1 << 44) // sum(b)
+        assert out[i].tolist() == [float((MIX_ONE - wb) * x + wb * ((y * invb) >> 24) + 1) for x, y in zip(q, b)]
+    assert wtab[0] == 1 and wtab[-1] == MIX_ONE - 1  # at the caps, the losing estimate keeps 1/4096
+
+
+def test_log_and_weight_tables_match_their_formulas():
+    """LOG2_TAB[i] = floor(256 log2(1 + i/256)) and the weight table MIX_ONE * 2**d / (1 + 2**d),
+    both built from integers alone, checked against Python's math.log2 / float powers (the
+    floats are the reference here, never inside the coder)."""
+    import math
+    from lcodec.models.tessel import LOG2_TAB, MIX_ONE, _ilog, weight_table
+    for i in range(256):
+        f = 256 * math.log2(1 + i / 256)
+        assert LOG2_TAB[i] == math.floor(f) or abs(f - round(f)) < 1e-9
+    for x in (1, 2, 3, 255, 256, 257, 1000, 65535, 1 << 40, (1 << 53) - 1):
+        assert abs(_ilog(x) / 256 - math.log2(x)) < 2 / 256, x
+    for cap in (1, 12, 30):
+        w = weight_table(cap)
+        assert len(w) == 32 * cap + 1 and w[16 * cap] == MIX_ONE // 2
+        assert (np.diff(w) >= 0).all() and w.min() >= 1 and w.max() <= MIX_ONE - 1
+        for k in range(0, len(w), 7):
+            d = (k - 16 * cap) / 16
+            ref = MIX_ONE / (1 + 2.0 ** -d)
+            assert abs(int(w[k]) - min(max(ref, 1), MIX_ONE - 1)) <= 1, (cap, k)
+
+
+def _moon_upscaled():
+    """scikit-image's moon is a 2x pixel-replicated image: every aligned 2x2 block is constant."""
+    a = _sample("moon", 48, 64)
+    assert (a[:, 1::2] == a[:, 0::2]).all() and (a[1::2] == a[0::2]).all()
+    return a
+
+
+def _mosaic():
+    """A Bayer-like mosaic from scikit-image's astronaut (RGB): R on even rows and columns,
+    B on odd rows and columns, G elsewhere; one sample per position."""
+    rgb = _sample("astronaut", 40, 56).astype(np.int32)
+    r, c = np.meshgrid(np.arange(40), np.arange(56), indexing="ij")
+    ch = np.where((r % 2 == 0) & (c % 2 == 0), 0, np.where((r % 2 == 1) & (c % 2 == 1), 2, 1))
+    return np.take_along_axis(rgb, ch[:, :, None], 2)[:, :, 0].astype(np.uint8)
+
+
+@pytest.mark.parametrize("kind", ["upscaled8", "upscaled16", "mosaic8"])
+def test_upscaled_and_mosaic_images_round_trip(kind, model_file, tmp_path):
+    """A 2x-upscaled image and a Bayer-like mosaic: byte-exact round trip, pixels read back by
+    Pillow (PGM) or numpy (NPY) equal the originals; on the upscaled image the structure stage
+    codes the three copied samples of every 2x2 block far below what the first stage alone needs."""
+    if kind == "mosaic8":
+        a = _mosaic()
+    else:
+        a = _moon_upscaled()
+        if kind == "upscaled16":
+            a = a.astype(np.uint16) * 257
+    if a.dtype == np.uint16:
+        buf = io.BytesIO()
+        np.save(buf, a)
+        data = buf.getvalue()
+    else:
+        data = _pgm(a)
+    blob, inf, out = _roundtrip(data, model_file)
+    assert out == data and inf["frames"][0]["method"] == "modelled/image"
+    if a.dtype == np.uint16:
+        assert np.array_equal(np.load(io.BytesIO(out)), a)  # reference reader: numpy
+    else:
+        assert np.array_equal(np.asarray(PIL.open(io.BytesIO(out))), a)  # reference reader: Pillow
+    if kind != "mosaic8":
+        v = a[:, :, None]
+        deep = a.dtype == np.uint16
+        on = random_tessel(structure=STRUCT)
+        off = random_tessel()
+        P = 2 if deep else 1
+        order = coding_order(a.shape[0], a.shape[1], 1, P)
+        copied = ((np.arange(a.size) // a.shape[1]) % 2 + (np.arange(a.size) % a.shape[1]) % 2 > 0)
+        cost = {}
+        for name, m in (("on", on), ("off", off)):
+            c = np.concatenate([-np.log2(t[np.arange(len(s_)), s_] / t.sum(1)) for s_, t in m.teacher_tables(v, deep)])
+            per_pixel = np.zeros(a.size)
+            np.add.at(per_pixel, order // P, c)
+            cost[name] = (per_pixel[copied].mean(), per_pixel[~copied].mean())
+        # copied samples: far cheaper with the structure stage; the informative quarter: no worse than 10% more
+        assert cost["on"][0] < 0.5 * cost["off"][0] and cost["on"][1] < 1.1 * cost["off"][1], cost
+
+
+def test_structure_params_refused(tmp_path):
+    from lcodec import modelfile
+    m = random_tessel(structure=STRUCT)
+    for bad in ({"k": {"r8": 1}, "cap": 0, "decay": 0, "blend": 1}, {"k": {"r8": 1}, "cap": 12, "decay": 0},
+                {"k": {"r8": -1}, "cap": 12, "decay": 0, "blend": 1}, {"k": {"r9": 1}, "cap": 12, "decay": 0, "blend": 1},
+                {"k": {"r8": 1}, "cap": 12, "decay": 17, "blend": 1}, {"k": {"r8": 1}, "cap": 12, "decay": 0, "blend": 2},
+                {"k": {"r8": 1.5}, "cap": 12, "decay": 0, "blend": 1}, [1, 2]):
+        p = str(tmp_path / "bad.lcmodel")
+        modelfile.dump(p, {"name": "tessel", "params": dict(m.params, structure=bad)}, m.arrays)
+        with pytest.raises(ModelError, match="bad parameters.*structure"):
+            load_model(p)
 
 
 def test_model_file_round_trip_and_refusals(model_file, tmp_path):
@@ -590,6 +734,8 @@ def test_train_image_cli(tmp_path):
                        env=dict(os.environ, PYTHONPATH=os.getcwd()))
     assert r.returncode == 0, r.stderr
     assert "skipped" in r.stderr and "exported r8" in r.stderr
+    params = load_model(str(out)).inner.params  # the defaults: both per-image stages
+    assert params["adapt"] == {"r8": 4096} and params["structure"] == {"k": {"r8": 32}, "cap": 12, "decay": 0, "blend": 1}
     data = _pgm(_sample("page", 30, 30))
     blob = lcodec.pack(data, model=str(out))
     assert lcodec.info(blob)["frames"][0]["method"] == "modelled/image"
@@ -636,6 +782,34 @@ def test_golden_image_containers_decode_exactly(name):
 
 def test_golden_image_containers_exist():
     assert {"tessel-v1-pgm", "tessel-v1-png", "tessel-v1-dicom16"} <= set(GOLDEN_IMAGES)
+    assert {"tessel-s1-moon2x", "tessel-s1-mosaic", "tessel-s1-dicom16"} <= set(GOLDEN_STRUCTURE)
+
+
+GOLDEN_STRUCTURE = sorted(f[:-7] for f in os.listdir(GOLDEN) if f.startswith("tessel-s1-") and f.endswith(".lcodec"))
+
+
+@pytest.mark.parametrize("name", GOLDEN_STRUCTURE)
+def test_golden_structure_containers_decode_exactly(name):
+    """The model file with the structure stage (tessel-tiny-structure.lcmodel: the tiny
+    networks plus activity and structure counts): its containers decode to the original
+    bytes (pixels as pydicom / Pillow read them), as modelled image frames, and today's
+    encoder writes the same bytes, with 1 and 2 decoding threads."""
+    model = os.path.join(GOLDEN, "tessel-tiny-structure.lcmodel")
+    assert load_model(model).inner.params["structure"]["blend"] == 1
+    blob = open(os.path.join(GOLDEN, name + ".lcodec"), "rb").read()
+    orig = open(os.path.join(GOLDEN, name + ".orig"), "rb").read()
+    assert lcodec.info(blob)["frames"][0]["method"] == "modelled/image"
+    assert lcodec.unpack(blob, model=model) == orig
+    assert b"".join(api.decode(blob, model=model, workers=2).frames) == orig
+    assert lcodec.pack(orig, model=model) == blob
+    if name.endswith("dicom16"):  # reference reader: pydicom
+        assert np.array_equal(pydicom.dcmread(io.BytesIO(orig)).pixel_array,
+                              pydicom.dcmread(_dicom("MR_small.dcm")).pixel_array)
+    else:  # reference reader: Pillow
+        want = skdata.moon()[200:240, 100:148] if name.endswith("moon2x") else None
+        got = np.asarray(PIL.open(io.BytesIO(orig)))
+        if want is not None:
+            assert np.array_equal(got, want)
 
 
 # -- pixel models next to the streaming path (merge of scale and pixels) ------------------------
@@ -710,3 +884,62 @@ def test_threads_on_byte_archives(tmp_path):
     assert b"".join(api.decode(arch.read_bytes(), workers=2).frames) == src.read_bytes()
     r = _lc("unpack", arch, "-o", tmp_path / "x.txt", "--threads", "2", "--jobs", "2")
     assert r.returncode == 2 and b"not both" in r.stderr and not (tmp_path / "x.txt").exists()
+
+
+def test_concurrent_decoders_leave_the_blas_setting_as_it_was(model_file, tmp_path):
+    """Decoding image frames in 2 threads sets BLAS to one thread while any decoder runs and
+    restores the process's own setting after the last (threadpoolctl reports it)."""
+    from threadpoolctl import threadpool_info, threadpool_limits
+    d = tmp_path / "plates"
+    d.mkdir()
+    for i, n in enumerate(("camera", "coins", "page", "text")):
+        (d / f"{n}.pgm").write_bytes(_pgm(_sample(n, 20 + 3 * i, 26)))
+    blob, _ = api.pack_paths([str(d)], model=model_file)
+    with threadpool_limits(limits=2, user_api="blas"):
+        before = [i["num_threads"] for i in threadpool_info() if i["user_api"] == "blas"]
+        for _ in range(4):
+            assert len(api.decode(blob, model=model_file, workers=2).frames) >= 4
+            assert [i["num_threads"] for i in threadpool_info() if i["user_api"] == "blas"] == before
+
+
+def test_blas_guard_holds_across_interleaved_decoders():
+    """The interleaving that broke per-call limits, as `--threads` runs it (the calling thread
+    holds the guard, decoding threads ask for it too): decoder A enters, B enters, A leaves,
+    B is still running (BLAS must stay on one thread), B leaves, the caller leaves (the
+    setting from before comes back). threadpoolctl reports the setting."""
+    import threading
+    from threadpoolctl import threadpool_info, threadpool_limits
+    from lcodec.models.tessel import _BLAS, one_blas_thread
+
+    def blas():
+        return [i["num_threads"] for i in threadpool_info() if i["user_api"] == "blas"]
+
+    seen = {}
+    a_in, b_in, a_out = threading.Event(), threading.Event(), threading.Event()
+
+    def dec_a():
+        with one_blas_thread():
+            a_in.set()
+            b_in.wait(10)
+        a_out.set()
+
+    def dec_b():
+        a_in.wait(10)
+        with one_blas_thread():
+            b_in.set()
+            a_out.wait(10)
+            seen["b_after_a_left"] = blas()
+            seen["users"] = _BLAS["users"]
+
+    with threadpool_limits(limits=2, user_api="blas"):
+        before = blas()
+        with one_blas_thread():
+            assert blas() == [1] * len(before)
+            ts = [threading.Thread(target=dec_a), threading.Thread(target=dec_b)]
+            for t in ts:
+                t.start()
+            for t in ts:
+                t.join(20)
+            assert seen == {"b_after_a_left": [1] * len(before), "users": 2}
+            assert blas() == [1] * len(before)
+        assert blas() == before and _BLAS["users"] == 0

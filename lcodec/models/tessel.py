@@ -33,6 +33,9 @@ integers, so their tables agree bit for bit.
 """
 from __future__ import annotations
 
+import threading
+from contextlib import contextmanager
+
 import numpy as np
 from numba import njit
 
@@ -55,6 +58,37 @@ N_CLASSES = 16  # activity classes of the adaptive counts
 COUNT_LIMIT = 4096  # a context's counts are halved past this total, to keep adapting
 CTX_BASE = {"r8": 0, "r16h": N_CLASSES, "r16l": 2 * N_CLASSES}  # rows of the count table
 N_CTX = 6 * N_CLASSES  # r8 16, r16h 16, r16l 16 x 4 high-byte classes
+N_KEYS = 256  # structure keys of the second count table (`_context`)
+SCTX_BASE = {"r8": 0, "r16h": N_KEYS, "r16l": 2 * N_KEYS}
+N_SCTX = 6 * N_KEYS  # r8 256, r16h 256, r16l 256 x 4 high-byte classes
+MIX_ONE = 1 << 12  # the two estimates' weights sum to this
+# LOG2_TAB[i] = floor(256 * log2(1 + i/256)), from integers alone: (256 + i)**256 has bit
+# length 2048 + floor(256 * log2(1 + i/256)) + 1
+LOG2_TAB = np.array([((256 + i) ** 256).bit_length() - 1 - 2048 for i in range(256)], np.int64)
+
+
+def weight_table(cap: int) -> np.ndarray:
+    """Weight of the structure estimate, out of MIX_ONE, for each evidence level m/16 bits
+    (m = -16 cap .. 16 cap): MIX_ONE * 2**d / (1 + 2**d) with d = m/16 (the posterior weight of
+    a two-member Bayesian mixture whose members' code lengths differ by d bits), floored, kept
+    in 1..MIX_ONE-1. Integers only: 2**(f/16) * 2**30 is the integer 16th root of 2**(f + 480)."""
+    root = []
+    for f in range(16):
+        t = 1 << (f + 480)
+        y = 1 << 30
+        step = 1 << 30
+        while step:  # largest y with y**16 <= t (bisection on integers)
+            if (y + step) ** 16 <= t:
+                y += step
+            step >>= 1
+        root.append(y)
+
+    def w(m):
+        if m < 0:
+            return MIX_ONE - w(-m)
+        y = root[m % 16] << (m // 16)
+        return (MIX_ONE * y) // ((1 << 30) + y)
+    return np.array([min(max(w(m), 1), MIX_ONE - 1) for m in range(-16 * cap, 16 * cap + 1)], np.int64)
 
 
 @njit(cache=True, nogil=True)
@@ -132,6 +166,11 @@ def _context(v, e, r, c, ch, cols, maxv, shift, idx):
         b += 1
         a >>= 1
     idx[HI_SLOT] = min(b, N_CLASSES - 1)
+    # structure key of the second count table (8 bits): position parity (Bayer-like mosaics,
+    # binned or pixel-replicated images), which nearby samples are equal, a coarse activity
+    idx[N_SLOTS] = (((r & 1) << 7) | ((c & 1) << 6) | (np.int64(W == NW) << 5) | (np.int64(N == NW) << 4)
+                    | (np.int64(W == WW) << 3) | (np.int64(N == NN) << 2)
+                    | (0 if b == 0 else (1 if b <= 3 else (2 if b <= 6 else 3))))
     return p
 
 
@@ -177,10 +216,77 @@ def _update(ctx, syms, counts, tots):
 
 
 @njit(cache=True, nogil=True)
-def _mix_chunk(tab, ctx, syms, gid, Ks, counts, tots, out):
+def _ilog(x):
+    """floor-ish log2(x) in 1/256 bit for x >= 1: integer part from the bit length, fraction from
+    the 8 bits below the top one (LOG2_TAB). Integers only."""
+    b = 0
+    y = x
+    while y > 1:
+        b += 1
+        y >>= 1
+    f = ((x >> (b - 8)) if b >= 8 else (x << (8 - b))) & 255
+    return b * 256 + LOG2_TAB[f]
+
+
+@njit(cache=True, nogil=True)
+def _mix2(tab, ctx, K2, counts, D, wtab, cap, qa, tb, sums, out):
+    """The second stage: A = tab (the network, or the network mixed with the activity counts;
+    entries below 2**45), B = the structure counts with A as a prior of strength K2, and
+    out = wA * A + wB * B (both normalised to 2**20) + 1, wA + wB = MIX_ONE, wB from the
+    evidence D of the row's structure context (code length of A minus that of B so far).
+    Keeps A (qa), B (tb) and their sums for `_update2`."""
+    for i in range(tab.shape[0]):
+        tot = np.int64(0)
+        for j in range(256):
+            tot += np.int64(tab[i, j])  # < 256 * 2**45 = 2**53
+        inv = (np.int64(1) << 44) // tot
+        sa = np.int64(0)
+        for j in range(256):
+            qa[i, j] = (np.int64(tab[i, j]) * inv) >> 24  # tab * inv <= 2**44 (tab <= tot): qa <= 2**20
+            sa += qa[i, j]
+        row = ctx[i]
+        sb = np.int64(0)
+        for j in range(256):
+            # K2 <= 2**16, qa >> 4 <= 2**16: <= 2**32; counts < 2**13, << 16: < 2**29
+            tb[i, j] = K2 * (qa[i, j] >> 4) + (np.int64(counts[row, j]) << 16) + 1
+            sb += tb[i, j]  # < 256 * 2**33 = 2**41
+        sums[i, 0] = sa + 256
+        sums[i, 1] = sb
+        invb = (np.int64(1) << 44) // sb
+        d = D[row]
+        wb = wtab[(d >> 4) + 16 * cap]  # D in -256 cap .. 256 cap
+        wa = MIX_ONE - wb
+        for j in range(256):
+            qb = (tb[i, j] * invb) >> 24  # tb * invb <= 2**44: qb <= 2**20
+            out[i, j] = np.float64(wa * qa[i, j] + wb * qb + 1)  # <= 2**12 * 2**20 + 1 < 2**53
+
+
+@njit(cache=True, nogil=True)
+def _update2(ctx, syms, counts, tots, D, cap, decay, qa, tb, sums):
+    """After a group: each symbol's code length under A and under B (1/256 bit, `_ilog`) moves
+    its context's evidence D (kept in -256 cap .. 256 cap, optionally decayed by D >> decay),
+    then the symbol is counted, in lane order."""
+    lim = np.int64(256) * cap
+    for i in range(ctx.shape[0]):
+        row = ctx[i]
+        s = syms[i]
+        ca = _ilog(sums[i, 0]) - _ilog(qa[i, s] + 1)
+        cb = _ilog(sums[i, 1]) - _ilog(tb[i, s])
+        d = D[row] + ca - cb
+        if decay > 0:
+            d -= d >> decay
+        D[row] = min(max(d, -lim), lim)
+    _update(ctx, syms, counts, tots)
+
+
+@njit(cache=True, nogil=True)
+def _mix_chunk(tab, ctx, syms, gid, Ks, counts, tots, mid, ctx2, K2s, counts2, tots2, D, wtab, cap, decay,
+               qa, tb, sums, out, blend, D1):
     """The encoder's side of the adaptive counts: group by group (one wavefront step and
     sub-symbol, as the decoder sees them), every table from the state before the group,
-    then the group's symbols counted in lane order."""
+    then the group's symbols counted in lane order. Stage 1: the network mixed with the
+    activity counts (K; with `blend`, weighed against the network alone like stage 2, evidence
+    D1); stage 2: that mixed with the structure counts (K2)."""
     n = tab.shape[0]
     i = 0
     while i < n:
@@ -188,22 +294,31 @@ def _mix_chunk(tab, ctx, syms, gid, Ks, counts, tots, out):
         while j < n and gid[j] == gid[i]:
             j += 1
         K = Ks[i]
-        if K > 0:
-            _mix(tab[i:j], ctx[i:j], K, counts, out[i:j])
+        K2 = K2s[i]
+        if K > 0 and blend:
+            _mix2(tab[i:j], ctx[i:j], K, counts, D1, wtab, cap, qa[i:j], tb[i:j], sums[i:j], mid[i:j])
+            _update2(ctx[i:j], syms[i:j], counts, tots, D1, cap, decay, qa[i:j], tb[i:j], sums[i:j])
+        elif K > 0:
+            _mix(tab[i:j], ctx[i:j], K, counts, mid[i:j])
             _update(ctx[i:j], syms[i:j], counts, tots)
         else:
-            out[i:j] = tab[i:j]
+            mid[i:j] = tab[i:j]
+        if K2 > 0:
+            _mix2(mid[i:j], ctx2[i:j], K2, counts2, D, wtab, cap, qa[i:j], tb[i:j], sums[i:j], out[i:j])
+            _update2(ctx2[i:j], syms[i:j], counts2, tots2, D, cap, decay, qa[i:j], tb[i:j], sums[i:j])
+        else:
+            out[i:j] = mid[i:j]
         i = j
 
 
 @njit(cache=True, nogil=True)
-def _teacher(v, deep, shift, e, idx, syms, preds, ctx):
+def _teacher(v, deep, shift, e, idx, syms, preds, ctx, ctx2):
     """Every sub-symbol of a known image, in raster order (row, column, channel, byte):
     embedding rows, symbols; fills the residual plane e as it goes."""
     rows, cols, C = v.shape
     maxv = 65535 if deep else 255
     P = 2 if deep else 1
-    tmp = np.empty(N_SLOTS, np.int64)
+    tmp = np.empty(N_SLOTS + 1, np.int64)
     k = 0
     for r in range(rows):
         for c in range(cols):
@@ -223,23 +338,26 @@ def _teacher(v, deep, shift, e, idx, syms, preds, ctx):
                     syms[k + 1] = s & 0xFF
                     ctx[k] = N_CLASSES + tmp[HI_SLOT]
                     ctx[k + 1] = 2 * N_CLASSES + tmp[HI_SLOT] * 4 + _hib(hi)
+                    ctx2[k] = N_KEYS + tmp[N_SLOTS]
+                    ctx2[k + 1] = 2 * N_KEYS + tmp[N_SLOTS] * 4 + _hib(hi)
                 else:
                     for j in range(N_SLOTS - 1):
                         idx[k, j] = tmp[j]
                     idx[k, HI_SLOT] = HI_SLOT * Q
                     syms[k] = (x - p) & 0xFF
                     ctx[k] = tmp[HI_SLOT]
+                    ctx2[k] = tmp[N_SLOTS]
                 preds[k // P] = p
                 k += P
     return k
 
 
 @njit(cache=True, nogil=True)
-def _gather(v, e, r0, r1, t, ch, shift, deep, idx, preds, cls):
+def _gather(v, e, r0, r1, t, ch, shift, deep, idx, preds, cls, keys):
     """Contexts of channel ch of the pixels on wavefront step t, rows r0..r1-1."""
     cols = v.shape[1]
     maxv = 65535 if deep else 255
-    tmp = np.empty(N_SLOTS, np.int64)
+    tmp = np.empty(N_SLOTS + 1, np.int64)
     for i in range(r1 - r0):
         r = r0 + i
         c = t - DELAY * r
@@ -248,6 +366,7 @@ def _gather(v, e, r0, r1, t, ch, shift, deep, idx, preds, cls):
             idx[i, j] = tmp[j]
         idx[i, HI_SLOT] = HI_SLOT * Q
         cls[i] = tmp[HI_SLOT]
+        keys[i] = tmp[N_SLOTS]
 
 
 @njit(cache=True, nogil=True)
@@ -262,6 +381,32 @@ def _apply(v, e, r0, r1, t, ch, deep, preds, hi, lo):
             x = (p + lo[i]) & 0xFF
         v[r, c, ch] = x
         e[r, c, ch] = x - p
+
+
+_BLAS = {"lock": threading.Lock(), "users": 0, "limits": None}
+
+
+@contextmanager
+def one_blas_thread():
+    """BLAS on one thread while any image is decoded (its products are small: one thread is
+    faster). The limit is process-wide, so it is set by the first decoder to enter and
+    restored by the last to leave: per-call limits in concurrent decoders (`--threads`)
+    restored each other's settings, leaving BLAS on two threads mid-decode and on one
+    thread after it."""
+    from threadpoolctl import threadpool_limits
+
+    with _BLAS["lock"]:
+        if _BLAS["users"] == 0:
+            _BLAS["limits"] = threadpool_limits(limits=1, user_api="blas")
+        _BLAS["users"] += 1
+    try:
+        yield
+    finally:
+        with _BLAS["lock"]:
+            _BLAS["users"] -= 1
+            if _BLAS["users"] == 0:
+                _BLAS["limits"].restore_original_limits()
+                _BLAS["limits"] = None
 
 
 def wavefront_rows(t: int, rows: int, cols: int) -> tuple[int, int]:
@@ -305,10 +450,11 @@ def raster_features(v: np.ndarray, shift: int, with_ctx: bool = False):
     syms = np.empty(n, np.int32)
     preds = np.empty(rows * cols * C, np.int64)
     ctx = np.empty(n, np.int16)
-    _teacher(vi, deep, shift, e, idx, syms, preds, ctx)
+    ctx2 = np.empty(n, np.int16)
+    _teacher(vi, deep, shift, e, idx, syms, preds, ctx, ctx2)
     roles = np.tile(np.array([1, 2], np.int8), n // 2) if deep else np.zeros(n, np.int8)
     if with_ctx:
-        return idx, syms, roles, ctx
+        return idx, syms, roles, ctx, ctx2
     return idx, syms, roles
 
 
@@ -320,13 +466,27 @@ class Tessel:
     def __init__(self, params: dict, arrays: dict, backend: str = "numpy"):
         p = params
         if not isinstance(p, dict) or not {"embed", "hidden", "chan_shift", "roles", "bytes"} <= set(p) <= {
-                "embed", "hidden", "chan_shift", "roles", "bytes", "adapt"}:
-            raise ValueError("tessel needs embed, hidden, chan_shift, roles and bytes (and optionally adapt)")
+                "embed", "hidden", "chan_shift", "roles", "bytes", "adapt", "structure"}:
+            raise ValueError("tessel needs embed, hidden, chan_shift, roles and bytes "
+                             "(and optionally adapt, structure)")
         adapt = p.get("adapt", {})
         if not isinstance(adapt, dict) or not set(adapt) <= set(p["roles"]) or not all(
                 type(k) is int and 0 <= k <= 1 << 16 for k in adapt.values()):
             raise ValueError("adapt maps roles to integer prior strengths 0..65536")
         self.adapt = dict(adapt)
+        st = p.get("structure", {"k": {}, "cap": 1, "decay": 0, "blend": 0})  # absent: off (older files)
+        if (not isinstance(st, dict) or set(st) != {"k", "cap", "decay", "blend"} or not isinstance(st["k"], dict)
+                or st["blend"] not in (0, 1) or type(st["blend"]) is not int
+                or not set(st["k"]) <= set(p["roles"])
+                or not all(type(k) is int and 0 <= k <= 1 << 16 for k in st["k"].values())
+                or type(st["cap"]) is not int or not 1 <= st["cap"] <= 30
+                or type(st["decay"]) is not int or not 0 <= st["decay"] <= 16):
+            raise ValueError("structure needs k (roles to integer prior strengths 0..65536), cap 1..30, "
+                             "decay 0..16, blend 0 or 1")
+        self.k2 = dict(st["k"])
+        self.blend = st["blend"]
+        self.cap, self.decay = st["cap"], st["decay"]
+        self.wtab = weight_table(self.cap)
         E, H = p["embed"], p["hidden"]
         if not all(type(x) is int and x >= 1 for x in (E, H)):
             raise ValueError("embed and hidden must be positive integers")
@@ -406,10 +566,11 @@ class Tessel:
         rows, cols, C = v.shape
         P = 2 if deep else 1
         vv = v.astype(np.uint16) if deep else v.astype(np.uint8)
-        idx, syms, roles, ctx = raster_features(vv, self.shift, with_ctx=True)
+        idx, syms, roles, ctx, ctx2 = raster_features(vv, self.shift, with_ctx=True)
         order = coding_order(rows, cols, C, P)
         names = ("r16h", "r16l") if deep else ("r8",)
         K = np.array([self.adapt.get(r, 0) for r in ROLES], np.int64)
+        K2 = np.array([self.k2.get(r, 0) for r in ROLES], np.int64)
         # group id of each coded symbol: (step, sub-symbol); raster index -> (r, c, sub)
         sub = order % (C * P)
         pix = order // (C * P)
@@ -417,6 +578,10 @@ class Tessel:
         bounds = np.flatnonzero(np.diff(gid)) + 1
         counts = np.zeros((N_CTX, 256), np.int32)
         tots = np.zeros(N_CTX, np.int64)
+        counts2 = np.zeros((N_SCTX, 256), np.int32)
+        tots2 = np.zeros(N_SCTX, np.int64)
+        D = np.zeros(N_SCTX, np.int64)
+        D1 = np.zeros(N_CTX, np.int64)
         ends, last = [], 0
         for b in bounds.tolist() + [len(order)]:  # chunks of whole groups, about CHUNK symbols
             if b - last >= CHUNK or b == len(order):
@@ -435,9 +600,13 @@ class Tessel:
                         tab[sel] = self.role_tables(role, ci[sel])
             else:
                 tab[:] = self.role_tables("r8", ci)
-            if K.any():
-                out = np.empty_like(tab)
-                _mix_chunk(tab, ctx[o].astype(np.int64), cs, gid[i:j], K[roles[o]], counts, tots, out)
+            if K.any() or K2.any():
+                mid, out = np.empty_like(tab), np.empty_like(tab)
+                m2 = len(o) if (K2.any() or self.blend) else 0
+                qa, tb = np.empty((m2, 256), np.int64), np.empty((m2, 256), np.int64)
+                _mix_chunk(tab, ctx[o].astype(np.int64), cs, gid[i:j], K[roles[o]], counts, tots, mid,
+                           ctx2[o].astype(np.int64), K2[roles[o]], counts2, tots2, D, self.wtab, self.cap,
+                           self.decay, qa, tb, np.empty((m2, 2), np.int64), out, self.blend, D1)
                 tab = out
             yield cs, tab
             i = j
@@ -445,47 +614,63 @@ class Tessel:
     def step_decode(self, rows: int, cols: int, C: int, deep: bool, decode, record=None) -> np.ndarray:
         """The decoder's pass: wavefront steps; `decode(tables) -> symbols` is the entropy
         decoder. Returns the samples (rows, cols, C)."""
-        from threadpoolctl import threadpool_limits
-
         v = np.zeros((rows, cols, C), np.int32)  # int32: samples and residuals are below 2**17
         e = np.zeros_like(v)
         cap = min(rows, cols // DELAY + 2)
         idx = np.empty((cap, N_SLOTS), np.int16)
         preds = np.empty(cap, np.int64)
         cls = np.empty(cap, np.int64)
+        keys = np.empty(cap, np.int64)
         zero = np.zeros(cap, np.int64)
         counts = np.zeros((N_CTX, 256), np.int32)
         tots = np.zeros(N_CTX, np.int64)
         mixed = np.empty((cap, 256), np.float64)
+        counts2 = np.zeros((N_SCTX, 256), np.int32)
+        tots2 = np.zeros(N_SCTX, np.int64)
+        D = np.zeros(N_SCTX, np.int64)
+        D1 = np.zeros(N_CTX, np.int64)
+        mixed2 = np.empty((cap, 256), np.float64)
+        qa1, tb1, sums1 = np.empty((cap, 256), np.int64), np.empty((cap, 256), np.int64), np.empty((cap, 2), np.int64)
+        qa, tb, sums = np.empty((cap, 256), np.int64), np.empty((cap, 256), np.int64), np.empty((cap, 2), np.int64)
         n_steps = cols + DELAY * (rows - 1)
 
-        def table(role, m, ctx):
+        def table(role, m, ctx, ctx2):
             tab = self.role_tables(role, idx[:m])
-            K = self.adapt.get(role, 0)
-            if K:
+            K, K2 = self.adapt.get(role, 0), self.k2.get(role, 0)
+            if K and self.blend:
+                _mix2(tab, ctx, K, counts, D1, self.wtab, self.cap, qa1[:m], tb1[:m], sums1[:m], mixed[:m])
+                tab = mixed[:m]
+            elif K:
                 _mix(tab, ctx, K, counts, mixed[:m])
                 tab = mixed[:m]
+            if K2:
+                _mix2(tab, ctx2, K2, counts2, D, self.wtab, self.cap, qa[:m], tb[:m], sums[:m], mixed2[:m])
+                tab = mixed2[:m]
             if record is not None:
                 record.append(tab.copy())
             syms = np.asarray(decode(tab), np.int64)
-            if K:
+            if K and self.blend:
+                _update2(ctx, syms, counts, tots, D1, self.cap, self.decay, qa1[:m], tb1[:m], sums1[:m])
+            elif K:
                 _update(ctx, syms, counts, tots)
+            if K2:
+                _update2(ctx2, syms, counts2, tots2, D, self.cap, self.decay, qa[:m], tb[:m], sums[:m])
             return syms
 
-        with threadpool_limits(limits=1, user_api="blas"):  # small products: one BLAS thread is faster
+        with one_blas_thread():  # small products: one BLAS thread is faster
             for t in range(n_steps):
                 r0, r1 = wavefront_rows(t, rows, cols)
                 m = r1 - r0
                 if m <= 0:
                     continue
                 for ch in range(C):
-                    _gather(v, e, r0, r1, t, ch, self.shift, deep, idx, preds, cls)
+                    _gather(v, e, r0, r1, t, ch, self.shift, deep, idx, preds, cls, keys)
                     if deep:
-                        hi = table("r16h", m, N_CLASSES + cls[:m])
+                        hi = table("r16h", m, N_CLASSES + cls[:m], N_KEYS + keys[:m])
                         idx[:m, HI_SLOT] = HI_SLOT * Q + hi
                         hib = np.where(hi == 0, 0, np.where(hi == 255, 1, np.where(hi == 1, 2, 3)))
-                        lo = table("r16l", m, 2 * N_CLASSES + cls[:m] * 4 + hib)
+                        lo = table("r16l", m, 2 * N_CLASSES + cls[:m] * 4 + hib, 2 * N_KEYS + keys[:m] * 4 + hib)
                     else:
-                        hi, lo = zero, table("r8", m, cls[:m].copy())
+                        hi, lo = zero, table("r8", m, cls[:m].copy(), keys[:m].copy())
                     _apply(v, e, r0, r1, t, ch, deep, preds, hi, lo)
         return v
