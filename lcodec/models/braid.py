@@ -124,6 +124,97 @@ def _sparse_layer(ent, a, b, disc, p, A):
     return (A * ((esc * inv) >> (INV_BITS - 31))) >> 31
 
 
+# -- learned escape weights (optional: model files with `mix_shift`) ------------------------
+# Each layer's escape share e = E / T is moved in the odds domain by a weight of its class
+# (layer, distinct bytes seen, total count):  e' / (1 - e') = 2**(W / 64) * e / (1 - e),
+# and the layer's own bytes share the rest, 1 - e'. The weights start from the model
+# file's table (zero: the plain chain) and follow the gradient of the coded byte's log
+# probability within the frame (online logistic mixing of each layer against everything
+# below it), in integers: W in 1/2**WFRAC of a table step, clamped to +-WMAX steps.
+WFRAC = 12
+WMAX = 512  # table steps of 1/64 doubling: odds scaled by 2**-8 .. 2**8
+N_LAYER_IDS = 18  # file orders 0..8, corpus orders 0..8
+MIX_CLASSES = N_LAYER_IDS * 16
+LREC = 8  # per recorded layer: kind, slot, entry end, inv, A_own, e', class, order
+
+
+def _odds_table() -> np.ndarray:
+    """M[i + WMAX] = floor(2**16 * 2**(i / 64)) for i in -WMAX..WMAX, from Python integers
+    only: 2**(j / 64) is six nested integer square roots of 2**(64 * 60 + j), and floor
+    sqrt of floor sqrt is floor of the fourth root, so every entry is exact."""
+    from math import isqrt
+
+    root = []
+    for j in range(64):
+        y = 1 << (64 * 60 + j)
+        for _ in range(6):
+            y = isqrt(y)
+        root.append(y)  # floor(2**60 * 2**(j / 64))
+    out = np.empty(2 * WMAX + 1, np.int64)
+    for i in range(-WMAX, WMAX + 1):
+        q, j = divmod(i, 64)
+        out[i + WMAX] = root[j] >> (44 - q)  # 2**(16 + q) * 2**(j / 64), floored: q >= -8, shift <= 52
+    return out
+
+
+ODDS = _odds_table()
+
+
+@njit(cache=True, nogil=True)
+def _mix_class(lid, n1, t):
+    qn = 0 if n1 <= 1 else (1 if n1 == 2 else (2 if n1 <= 5 else 3))
+    qt = 0 if t <= 2 else (1 if t <= 7 else (2 if t <= 31 else 3))
+    return lid * 16 + qn * 4 + qt
+
+
+@njit(cache=True, nogil=True)
+def _mix_escape(mix, rec, esc, tf, inv, A, cls):
+    """The layer's A_own (its bytes' share) and the A left below it, with the class's
+    weight applied to the escape odds; both recorded in rec for the update."""
+    W, odds = mix[0], mix[1]
+    i = W[cls] >> WFRAC
+    i = min(max(i, -WMAX), WMAX)
+    m = odds[i + WMAX]  # 2**8 .. 2**24
+    own = tf - esc  # >= 1: every seen count gives at least 1/F
+    num = esc * m  # esc < 2**21, m <= 2**24: < 2**45
+    den = num + (own << 16)  # < 2**46
+    if num < (np.int64(1) << 31):
+        e31 = (num << 31) // den  # num << 31 < 2**62
+    else:
+        e31 = (num << 17) // (den >> 14)  # num << 17 < 2**62; den >> 14 >= 2**17
+    e31 = min(e31, np.int64(ONE_A))
+    own31 = (own * inv) >> (INV_BITS - 31)  # own * inv < 2**21 * 2**39 / ... < 2**61; >= 2**10
+    A_own = (A * (ONE_A - e31)) // own31  # A * (..) <= 2**62; A_own * w_s <= 2**62 (w_s <= own31)
+    rec[3] = inv
+    rec[4] = A_own
+    rec[5] = e31
+    rec[6] = cls
+    return A_own, (A * e31) >> 31
+
+
+@njit(cache=True, nogil=True)
+def _sparse_layer_mix(ent, a, b, disc, p, A, mix, rec, lid):
+    a1 = np.int64(disc[0])
+    a2 = np.int64(disc[1]) - a1
+    a3 = np.int64(disc[2]) - np.int64(disc[1])
+    t = np.int64(0)
+    esc = np.int64(0)
+    for e in range(a, b):
+        c = np.int64(ent[e] >> 8)
+        t += c
+        esc += a1 + a2 * (c >= 2) + a3 * (c >= 3)
+    if t == 0:
+        return A, False
+    inv = (np.int64(1) << INV_BITS) // (t * F)  # bounds as _sparse_layer
+    A_own, A_below = _mix_escape(mix, rec, esc, t * F, inv, A, _mix_class(lid, b - a, t))
+    for e in range(a, b):
+        c = np.int64(ent[e] >> 8)
+        n = c * F - (a1 + a2 * (c >= 2) + a3 * (c >= 3))
+        w = (n * inv) >> (INV_BITS - 31)
+        p[ent[e] & 0xFF] += (A_own * w) >> (62 - P_BITS)
+    return A_below, True
+
+
 # The file's tables: row r is rows[r, :256] (the counts), rows[r, 256:] (the bytes seen,
 # in the order they came, meta[r, N1] of them) and meta[r] (tag, total, and how many
 # counts are >= 1, 2, 3): three cache lines for the usual row, not seven arrays.
@@ -154,6 +245,75 @@ def _file_layer(fs, r, disc, p, A):
         w = (n * inv) >> (INV_BITS - 31)
         p[s] += (A * w) >> (62 - P_BITS)
     return (A * ((esc * inv) >> (INV_BITS - 31))) >> 31
+
+
+@njit(cache=True, nogil=True)
+def _file_layer_mix(fs, r, disc, p, A, mix, rec, lid):
+    rows, meta = fs[0], fs[1]
+    a1 = np.int64(disc[0])
+    a2 = np.int64(disc[1]) - a1
+    a3 = np.int64(disc[2]) - np.int64(disc[1])
+    n1 = np.int64(meta[r, N1])
+    esc = a1 * n1 + a2 * np.int64(meta[r, N2]) + a3 * np.int64(meta[r, N3])
+    t = np.int64(meta[r, TOT])
+    inv = (np.int64(1) << INV_BITS) // (t * F)  # bounds as _sparse_layer
+    A_own, A_below = _mix_escape(mix, rec, esc, t * F, inv, A, _mix_class(lid, n1, t))
+    for i in range(n1):
+        s = rows[r, 256 + i]
+        c = np.int64(rows[r, s])
+        n = c * F - (a1 + a2 * (c >= 2) + a3 * (c >= 3))
+        w = (n * inv) >> (INV_BITS - 31)
+        p[s] += (A_own * w) >> (62 - P_BITS)
+    return A_below
+
+
+@njit(cache=True, nogil=True)
+def _mix_update(mix, corpus, fs, dfile, b, x):
+    """After lane b coded byte x: each recorded layer's weight moves along the gradient of
+    log P(x) in its escape log-odds, ((1 - e') * below(x) - e' * own(x)) / P(x), where own
+    is the layer's share of P(x) and below everything under it. The rows are read as they
+    were at the prediction (no count changes in between), so encoder and decoder agree."""
+    W, lrec, lcnt, lu, mp = mix[0], mix[2], mix[3], mix[4], mix[5]
+    ent, dcorp = corpus[1], corpus[4]
+    rows = fs[0]
+    nlay = lcnt[b]
+    if nlay == 0:
+        return
+    own = mix[6]
+    total = lu[b]
+    for l in range(nlay):
+        rec = lrec[b, l]
+        k = rec[7]
+        if rec[0] == 1:
+            c = np.int64(rows[rec[1], x])
+            disc = dfile[k]
+        else:
+            c = np.int64(0)
+            for e in range(rec[1], rec[2]):
+                if (ent[e] & 0xFF) == x:
+                    c = np.int64(ent[e] >> 8)
+                    break
+            disc = dcorp[k]
+        v = np.int64(0)
+        if c > 0:
+            n = c * F - (np.int64(disc[0]) + (np.int64(disc[1]) - np.int64(disc[0])) * (c >= 2)
+                         + (np.int64(disc[2]) - np.int64(disc[1])) * (c >= 3))
+            v = (rec[4] * ((n * rec[3]) >> (INV_BITS - 31))) >> (62 - P_BITS)
+        own[l] = v
+        total += v
+    if total <= 0:
+        return
+    shift = mp[0]
+    lim = np.int64(WMAX) << WFRAC
+    below = lu[b]
+    for l in range(nlay - 1, -1, -1):
+        rec = lrec[b, l]
+        e31 = rec[5]
+        # bound: below, own < 2**22 and e31 <= 2**31, so each product < 2**53
+        g = ((ONE_A - e31) * below - e31 * own[l]) // total  # |g| <= 2**31
+        cls = rec[6]
+        W[cls] = min(max(W[cls] + (g >> shift), -lim), lim)
+        below += own[l]
 
 
 @njit(cache=True, nogil=True)
@@ -206,12 +366,16 @@ def _file_update(fs, slots, checks, max_order, sym):
 
 
 @njit(cache=True, nogil=True)
-def _braid_predict(corpus, fstate, hist, slots, checks, max_order, dfile, p):
+def _braid_predict(corpus, fstate, hist, slots, checks, max_order, dfile, p, mix, b):
     """p <- the braided distribution (integers, total about 2**P_BITS), top layer first:
-    at each order the file's own row sits above the corpus row of the same context."""
+    at each order the file's own row sits above the corpus row of the same context.
+    With the escape weights on (mix[5][1] != 0), each layer used is recorded for lane b."""
     slot2, ent, cbase, csize, dcorp, mode, found = corpus
     fmeta = fstate[1]
     use_file = mode[0] == 0
+    use_mix = mix[5][1] != 0
+    lrec = mix[2]
+    nlay = 0
     corder = cbase.shape[0] - 1
     # every order's home slot first: independent loads the processor can overlap
     for k in range(corder + 1):
@@ -225,20 +389,41 @@ def _braid_predict(corpus, fstate, hist, slots, checks, max_order, dfile, p):
         if use_file and k <= max_order:
             r = slots[k]
             if _tag_is(fmeta, r, checks[k]) and fmeta[r, TOT] > 0:
-                A = _file_layer(fstate, r, dfile[k], p, A)
+                if use_mix:
+                    rec = lrec[b, nlay]
+                    rec[0] = 1
+                    rec[1] = r
+                    rec[7] = k
+                    nlay += 1
+                    A = _file_layer_mix(fstate, r, dfile[k], p, A, mix, rec, k)
+                else:
+                    A = _file_layer(fstate, r, dfile[k], p, A)
         if k <= corder:
             j = found[k]
             if j >= 0:
-                A = _sparse_layer(ent, np.int64(slot2[j, 1]), np.int64(slot2[j + 1, 1]), dcorp[k], p, A)
+                a0, b0 = np.int64(slot2[j, 1]), np.int64(slot2[j + 1, 1])
+                if use_mix:
+                    rec = lrec[b, nlay]
+                    rec[0] = 2
+                    rec[1] = a0
+                    rec[2] = b0
+                    rec[7] = k
+                    A, used = _sparse_layer_mix(ent, a0, b0, dcorp[k], p, A, mix, rec, 9 + k)
+                    nlay += 1 if used else 0
+                else:
+                    A = _sparse_layer(ent, a0, b0, dcorp[k], p, A)
         if A == 0:
             break
     u = (A << (P_BITS - 8)) >> 31  # the uniform distribution's share: A / 256 of 2**P_BITS
     for s in range(256):
         p[s] += u
+    if use_mix:
+        mix[3][b] = nlay
+        mix[4][b] = u
 
 
 @njit(cache=True, nogil=True)
-def _teacher(corpus, state, match, data, starts, lengths, t0, t1, max_order, hash_log2, dfile, out_syms, out_tab):
+def _teacher(corpus, state, match, data, starts, lengths, t0, t1, max_order, hash_log2, dfile, out_syms, out_tab, mix):
     """Tables of steps t0..t1 for all active lanes, in coding order, updating state."""
     bases, hist, gen = state[2], state[3], state[4]
     slots = np.empty(max_order + 1, np.int64)
@@ -246,6 +431,7 @@ def _teacher(corpus, state, match, data, starts, lengths, t0, t1, max_order, has
     p = np.empty(256, np.int64)
     nl = lengths.shape[0]
     use_match = match[5][3] > 0 and corpus[5][0] == 0
+    use_mix = mix[5][1] != 0
     i = 0
     for t in range(t0, t1):
         m = 0
@@ -253,11 +439,14 @@ def _teacher(corpus, state, match, data, starts, lengths, t0, t1, max_order, has
             m += 1
         for b in range(m):
             S._row_slots(hist[b], max_order, hash_log2, bases, gen, slots, checks)
-            _braid_predict(corpus, state, hist[b], slots, checks, max_order, dfile, p)
+            _braid_predict(corpus, state, hist[b], slots, checks, max_order, dfile, p, mix, b)
             if use_match:
                 S._match_predict(match, b, p)
             S._emit(p, out_tab[i + b])
             out_syms[i + b] = data[starts[b] + t]
+        if use_mix:  # every lane's weights update before any count changes
+            for b in range(m):
+                _mix_update(mix, corpus, state, dfile, b, np.int64(data[starts[b] + t]))
         for b in range(m):
             sym = data[starts[b] + t]
             S._row_slots(hist[b], max_order, hash_log2, bases, gen, slots, checks)
@@ -270,7 +459,7 @@ def _teacher(corpus, state, match, data, starts, lengths, t0, t1, max_order, has
 
 
 @njit(cache=True, nogil=True)
-def _step(corpus, state, match, starts, syms, t_prev, m_prev, m, max_order, hash_log2, dfile, out_tab, work):
+def _step(corpus, state, match, starts, syms, t_prev, m_prev, m, max_order, hash_log2, dfile, out_tab, work, mix):
     """Decoder step: count the symbols of step t_prev (m_prev lanes), then predict m lanes.
     `work` holds the scratch arrays, made once per frame (a step is too short to allocate)."""
     bases, hist, gen = state[2], state[3], state[4]
@@ -279,6 +468,9 @@ def _step(corpus, state, match, starts, syms, t_prev, m_prev, m, max_order, hash
     use_match = match[5][3] > 0 and corpus[5][0] == 0
     for b in range(m_prev):
         buf[starts[b] + t_prev] = syms[b]
+    if mix[5][1] != 0:
+        for b in range(m_prev):
+            _mix_update(mix, corpus, state, dfile, b, np.int64(syms[b]))
     for b in range(m_prev):
         sym = syms[b]
         S._row_slots(hist[b], max_order, hash_log2, bases, gen, slots, checks)
@@ -288,7 +480,7 @@ def _step(corpus, state, match, starts, syms, t_prev, m_prev, m, max_order, hash
             S._match_update(match, b, starts[b], t_prev, sym, hist[b], gen)
     for b in range(m):
         S._row_slots(hist[b], max_order, hash_log2, bases, gen, slots, checks)
-        _braid_predict(corpus, state, hist[b], slots, checks, max_order, dfile, p)
+        _braid_predict(corpus, state, hist[b], slots, checks, max_order, dfile, p, mix, b)
         if use_match:
             S._match_predict(match, b, p)
         S._emit(p, out_tab[b])
@@ -350,6 +542,11 @@ def check_arrays(params: dict, arrays: dict) -> None:
         if mp.dtype != np.int32 or mp.shape != (cells, 2) or int(mp[:, 1].min()) < 1 \
                 or int(mp[:, 1].max()) > S.MATCH_LIMIT or int(mp[:, 0].min()) < 0 or (mp[:, 0] > mp[:, 1]).any():
             raise ValueError(f"match_prior must be int32 ({cells}, 2) of hits <= trials <= {S.MATCH_LIMIT}, trials >= 1")
+    mi = arrays.get("mix_init")
+    if mi is not None:
+        lim = WMAX << WFRAC
+        if mi.dtype != np.int32 or mi.shape != (MIX_CLASSES,) or int(np.abs(mi).max()) > lim:
+            raise ValueError(f"mix_init must be int32 ({MIX_CLASSES},), each within +-{lim}")
     disc = arrays["corpus_discount"]
     if disc.shape != (C + 1, 3) or not all(1 <= r[0] < F and 1 <= r[1] < 2 * F and 1 <= r[2] < 3 * F for r in disc.tolist()):
         raise ValueError("corpus_discount must hold 3 discounts per order, each below its count")
@@ -366,8 +563,13 @@ class Braid:
         """prior_only: the corpus layers alone (no file layers, no repeat model), for the
         ablation figures; such an object is only ever costed, never used to pack."""
         allowed = {"corpus_order", "max_order", "hash_log2", "discount", "match_min"}
-        if not isinstance(params, dict) or set(params) != allowed:
-            raise ValueError(f"braid needs exactly {', '.join(sorted(allowed))}")
+        optional = {"mix_shift"}  # absent: the plain chain (model files made before it)
+        if not isinstance(params, dict) or not allowed <= set(params) <= allowed | optional:
+            raise ValueError(f"braid needs exactly {', '.join(sorted(allowed))} (and optionally {', '.join(sorted(optional))})")
+        ms = params.get("mix_shift", 0)
+        if type(ms) is not int or not (ms == 0 or 8 <= ms <= 30):
+            raise ValueError("mix_shift must be 0 (off) or 8..30")
+        self.mix_shift = ms
         if type(params["corpus_order"]) is not int or not 0 <= params["corpus_order"] <= 8:
             raise ValueError("corpus_order must be 0..8")
         self.file = S.Strata.from_params({k: params[k] for k in ("max_order", "hash_log2", "discount", "match_min")})
@@ -375,6 +577,7 @@ class Braid:
         check_arrays(params, arrays)
         self.arrays = arrays
         self.match_prior = arrays.get("match_prior")
+        self.mix_init = arrays.get("mix_init")
         sizes = arrays["sizes"]
         bases = np.zeros(len(sizes), np.int64)
         bases[1:] = np.cumsum(sizes)[:-1]
@@ -433,6 +636,18 @@ class Braid:
             match[4][:] = self.match_prior
         return match
 
+    def new_mix(self, n_lanes: int):
+        """The escape weights' state for one frame: weights (from the model file's table, or
+        zero), the odds table, per-lane records of the layers used, and the settings."""
+        on = self.mix_shift != 0
+        W = np.zeros(MIX_CLASSES if on else 1, np.int64)
+        if on and self.mix_init is not None:
+            W[:] = self.mix_init
+        nl = max(n_lanes, 1) if on else 1
+        return (W, ODDS, np.zeros((nl, 2 * N_LAYER_IDS, LREC), np.int64), np.zeros(nl, np.int64),
+                np.zeros(nl, np.int64), np.array([self.mix_shift, 1 if on else 0], np.int64),
+                np.zeros(2 * N_LAYER_IDS, np.int64))
+
     def teacher_chunks(self, data, starts, lengths, chunk_steps: int = 256, match_stats=None):
         """match_stats: an array of the hit-rate cells' shape, to which this frame's
         observations (hits, trials) are added at the end (training uses it)."""
@@ -440,10 +655,11 @@ class Braid:
         n = int(lengths.sum())
         (state, mtab), hb = self.new_state(n, len(lengths)), f.hash_bits(n)
         match = self.new_match(data, mtab, lengths)
+        mix = self.new_mix(len(lengths))
         start_cells = match[4].copy()
         try:
             yield from S.run_chunks(lengths, chunk_steps, lambda t0, t1, syms, tab: _teacher(
-                self.corpus, state, match, data, starts, lengths, t0, t1, f.max_order, hb, f._disc, syms, tab))
+                self.corpus, state, match, data, starts, lengths, t0, t1, f.max_order, hb, f._disc, syms, tab, mix))
             if match_stats is not None:
                 match_stats += np.maximum(match[4].astype(np.int64) - start_cells, 0)
         finally:
@@ -459,10 +675,11 @@ class Braid:
         tab = np.empty((max(len(lengths), 1), 256), np.float64)
         mo, disc, corpus = f.max_order, f._disc, self.corpus
         work = (np.empty(mo + 1, np.int64), np.empty(mo + 1, np.uint64), np.empty(256, np.int64))
+        mix = self.new_mix(len(lengths))
         t = [-1]
 
         def step(prev_syms, m_prev, m):
-            _step(corpus, state, match, starts, prev_syms, t[0], m_prev, m, mo, hl, disc, tab, work)
+            _step(corpus, state, match, starts, prev_syms, t[0], m_prev, m, mo, hl, disc, tab, work, mix)
             t[0] += 1
             return tab[:m]
 
