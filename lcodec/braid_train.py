@@ -82,6 +82,23 @@ def match_prior(model, files: list[bytes]):
     return out
 
 
+def mix_weights(model, files: list[bytes]) -> np.ndarray:
+    """Escape weights for the model file: the online weights carried through `files`, each
+    costed on its own as pack would, from zero; what they end as is where every frame of a
+    new file starts."""
+    from .models.braid import MIX_CLASSES, WFRAC, WMAX
+
+    w = np.zeros(MIX_CLASSES, np.int64)
+    for f in files:
+        x = np.frombuffer(f, np.uint8)
+        if len(x) == 0:
+            continue
+        starts, lengths = lane_layout(len(x), api.frame_lanes(model, len(x)))
+        for _ in model.teacher_chunks(x, starts, lengths, mix_weights=w):
+            pass
+    return np.clip(w, -(WMAX << WFRAC), WMAX << WFRAC).astype(np.int32)
+
+
 def train_braid(files: list[tuple[str, bytes]], corpus: list[str], out: str, time_limit: float, preset: str,
                 seed: int, echo=print) -> dict:
     cfg = PRESETS[preset]
@@ -159,6 +176,17 @@ def train_braid(files: list[tuple[str, bytes]], corpus: list[str], out: str, tim
              f"(without: {best:.4f}){'' if v < best else ', not kept'}")
         if v < best:
             arrays["match_prior"], model, best = prior, with_prior, v
+    if cfg.get("mix_shift"):
+        # the layers' escape weights: on, adapted within each frame, started from the weights
+        # the held-out sample leaves; kept only if the sample's cost falls
+        mixed_params = {**params, "mix_shift": cfg["mix_shift"]}
+        init = mix_weights(Braid(mixed_params, arrays), sample)
+        with_mix = Braid(mixed_params, {**arrays, "mix_init": init})
+        v = _bpb(with_mix, sample)
+        echo(f"  {time.perf_counter() - t_start:6.0f} s  learned escape weights: {v:.4f} (without: {best:.4f})"
+             f"{'' if v < best else ', not kept'}")
+        if v < best:
+            params, arrays["mix_init"], model, best = mixed_params, init, with_mix, v
     val_bpb = _bpb(model, val_files)
     strata_bpb = _bpb(S.Strata(), val_files)
     meta = {

@@ -134,8 +134,32 @@ def _sparse_layer(ent, a, b, disc, p, A):
 WFRAC = 12
 WMAX = 512  # table steps of 1/64 doubling: odds scaled by 2**-8 .. 2**8
 N_LAYER_IDS = 18  # file orders 0..8, corpus orders 0..8
-MIX_CLASSES = N_LAYER_IDS * 16
-LREC = 8  # per recorded layer: kind, slot, entry end, inv, A_own, e', class, order
+COUNT_CLASSES = N_LAYER_IDS * 16  # layer x distinct bytes (4 classes) x total count (4)
+BYTE_CLASSES = 8  # kinds of the byte before: see _byte_class_table
+MIX_CLASSES = COUNT_CLASSES + N_LAYER_IDS * BYTE_CLASSES  # two weights per layer use, summed
+LREC = 9  # per recorded layer: kind, slot, entry end, inv, A_own, e', class, order, class 2
+
+
+def _byte_class_table() -> np.ndarray:
+    """0 newline, 1 space or tab, 2 lower-case letter, 3 upper-case, 4 digit, 5 quote or
+    bracket, 6 other printable ASCII, 7 everything else."""
+    t = np.full(256, 7, np.int64)
+    for c in range(33, 127):
+        t[c] = 6
+    t[ord("\n")], t[ord("\r")] = 0, 0
+    t[ord(" ")], t[ord("\t")] = 1, 1
+    for c in range(ord("a"), ord("z") + 1):
+        t[c] = 2
+    for c in range(ord("A"), ord("Z") + 1):
+        t[c] = 3
+    for c in range(ord("0"), ord("9") + 1):
+        t[c] = 4
+    for c in "\"'()[]{}":
+        t[ord(c)] = 5
+    return t
+
+
+BYTE_CLASS = _byte_class_table()
 
 
 def _odds_table() -> np.ndarray:
@@ -172,7 +196,8 @@ def _mix_escape(mix, rec, esc, tf, inv, A, cls):
     """The layer's A_own (its bytes' share) and the A left below it, with the class's
     weight applied to the escape odds; both recorded in rec for the update."""
     W, odds = mix[0], mix[1]
-    i = W[cls] >> WFRAC
+    cls2 = COUNT_CLASSES + (cls >> 4) * BYTE_CLASSES + rec[8]
+    i = (W[cls] + W[cls2]) >> WFRAC
     i = min(max(i, -WMAX), WMAX)
     m = odds[i + WMAX]  # 2**8 .. 2**24
     own = tf - esc  # >= 1: every seen count gives at least 1/F
@@ -189,6 +214,7 @@ def _mix_escape(mix, rec, esc, tf, inv, A, cls):
     rec[4] = A_own
     rec[5] = e31
     rec[6] = cls
+    rec[8] = cls2
     return A_own, (A * e31) >> 31
 
 
@@ -311,8 +337,8 @@ def _mix_update(mix, corpus, fs, dfile, b, x):
         e31 = rec[5]
         # bound: below, own < 2**22 and e31 <= 2**31, so each product < 2**53
         g = ((ONE_A - e31) * below - e31 * own[l]) // total  # |g| <= 2**31
-        cls = rec[6]
-        W[cls] = min(max(W[cls] + (g >> shift), -lim), lim)
+        for cls in (rec[6], rec[8]):
+            W[cls] = min(max(W[cls] + (g >> shift), -lim), lim)
         below += own[l]
 
 
@@ -375,6 +401,7 @@ def _braid_predict(corpus, fstate, hist, slots, checks, max_order, dfile, p, mix
     use_file = mode[0] == 0
     use_mix = mix[5][1] != 0
     lrec = mix[2]
+    bcls = mix[7][np.int64(hist & np.uint64(0xFF))]
     nlay = 0
     corder = cbase.shape[0] - 1
     # every order's home slot first: independent loads the processor can overlap
@@ -394,6 +421,7 @@ def _braid_predict(corpus, fstate, hist, slots, checks, max_order, dfile, p, mix
                     rec[0] = 1
                     rec[1] = r
                     rec[7] = k
+                    rec[8] = bcls
                     nlay += 1
                     A = _file_layer_mix(fstate, r, dfile[k], p, A, mix, rec, k)
                 else:
@@ -408,6 +436,7 @@ def _braid_predict(corpus, fstate, hist, slots, checks, max_order, dfile, p, mix
                     rec[1] = a0
                     rec[2] = b0
                     rec[7] = k
+                    rec[8] = bcls
                     A, used = _sparse_layer_mix(ent, a0, b0, dcorp[k], p, A, mix, rec, 9 + k)
                     nlay += 1 if used else 0
                 else:
@@ -636,26 +665,32 @@ class Braid:
             match[4][:] = self.match_prior
         return match
 
-    def new_mix(self, n_lanes: int):
+    def new_mix(self, n_lanes: int, weights=None):
         """The escape weights' state for one frame: weights (from the model file's table, or
-        zero), the odds table, per-lane records of the layers used, and the settings."""
+        zero; or `weights` itself, updated in place, when training carries them from file
+        to file), the odds table, per-lane records of the layers used, and the settings."""
         on = self.mix_shift != 0
-        W = np.zeros(MIX_CLASSES if on else 1, np.int64)
-        if on and self.mix_init is not None:
-            W[:] = self.mix_init
+        if on and weights is not None:
+            W = weights
+        else:
+            W = np.zeros(MIX_CLASSES if on else 1, np.int64)
+            if on and self.mix_init is not None:
+                W[:] = self.mix_init
         nl = max(n_lanes, 1) if on else 1
         return (W, ODDS, np.zeros((nl, 2 * N_LAYER_IDS, LREC), np.int64), np.zeros(nl, np.int64),
                 np.zeros(nl, np.int64), np.array([self.mix_shift, 1 if on else 0], np.int64),
-                np.zeros(2 * N_LAYER_IDS, np.int64))
+                np.zeros(2 * N_LAYER_IDS, np.int64), BYTE_CLASS)
 
-    def teacher_chunks(self, data, starts, lengths, chunk_steps: int = 256, match_stats=None):
+    def teacher_chunks(self, data, starts, lengths, chunk_steps: int = 256, match_stats=None, mix_weights=None):
         """match_stats: an array of the hit-rate cells' shape, to which this frame's
-        observations (hits, trials) are added at the end (training uses it)."""
+        observations (hits, trials) are added at the end (training uses it); mix_weights:
+        an int64 array of MIX_CLASSES escape weights the frame starts from and leaves its
+        own in (training carries them from file to file)."""
         f = self.file
         n = int(lengths.sum())
         (state, mtab), hb = self.new_state(n, len(lengths)), f.hash_bits(n)
         match = self.new_match(data, mtab, lengths)
-        mix = self.new_mix(len(lengths))
+        mix = self.new_mix(len(lengths), mix_weights)
         start_cells = match[4].copy()
         try:
             yield from S.run_chunks(lengths, chunk_steps, lambda t0, t1, syms, tab: _teacher(
