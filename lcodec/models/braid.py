@@ -342,6 +342,82 @@ def _mix_update(mix, corpus, fs, dfile, b, x):
         below += own[l]
 
 
+# -- secondary estimation of the favourite byte (optional: model files with `sse_bits`) ---
+# After the repeat model has named its byte e (the repeat's next byte, or the blend's own
+# favourite) and set its probability, a second table recalibrates it: cells keyed by a
+# hash of the last two bytes (2**sse_bits buckets), whether a repeat is being followed,
+# and 32 levels of e's probability hold hit counts; e's probability becomes the average of
+# the repeat model's and the cell's hit rate, the other bytes scaled to fit.
+SSE_LEVELS = 32
+SSE_LIMIT = 1023  # hit counts halved past this, to keep adapting
+
+
+@njit(cache=True, nogil=True)
+def _sse_predict(mix, match, b, hist, p):
+    tab, cellv = mix[8], mix[9]
+    cellv[b] = -1
+    e = match[7][b]
+    total = np.int64(0)
+    for s in range(256):
+        total += p[s]
+    pe = p[e]
+    if total - pe < 1024:
+        return
+    x = ((hist & np.uint64(0xFFFF)) + np.uint64(7)) * _M1
+    x = x ^ (x >> np.uint64(29))
+    x = x * _M2
+    h = np.int64(x >> np.uint64(64 - mix[5][2]))
+    cell = ((h * 2 + (1 if match[2][b] >= 0 else 0)) * SSE_LEVELS) + (pe * SSE_LEVELS) // total
+    cellv[b] = cell
+    st = tab[cell]
+    t2 = (np.int64(st[0]) * total) // np.int64(st[1])  # st[0] <= SSE_LIMIT, total < 2**22
+    target = (pe + t2) >> 1
+    target = min(max(target, np.int64(1)), total - 1024)
+    # bound: as the repeat model's, p[s] < 2**22 and f <= 2**42 / 1024 = 2**32: < 2**54
+    f = ((total - target) << 20) // (total - pe)
+    for s in range(256):
+        p[s] = (p[s] * f) >> 20
+    p[e] = target
+
+
+@njit(cache=True, nogil=True)
+def _sse_update(mix, match, b, sym):
+    cell = mix[9][b]
+    if cell < 0:
+        return
+    st = mix[8][cell]
+    st[0] += 1 if match[7][b] == sym else 0
+    st[1] += 1
+    if st[1] > SSE_LIMIT:
+        st[0] = (st[0] + 1) >> 1
+        st[1] = (st[1] + 1) >> 1
+
+
+# -- lanes with tables of their own (optional: model files with `lane_tables`) ------------
+# Lanes normally share the file's tables. With lane_tables each lane's contexts are its
+# own rows: order 0 and 1 rows per lane, and the lane's number mixed into the hash of the
+# higher orders (the same hashed table, so memory does not grow with lanes).
+@njit(cache=True, nogil=True)
+def _slots(mix, b, hist, max_order, hash_log2, bases, gen, slots, checks):
+    if mix[5][3] == 0:
+        S._row_slots(hist, max_order, hash_log2, bases, gen, slots, checks)
+        return
+    g = gen << np.uint64(32)
+    slots[0] = bases[0] + b
+    checks[0] = g
+    for k in range(1, max_order + 1):
+        if k == 1:
+            slots[k] = bases[k] + 256 * b + np.int64(hist & np.uint64(0xFF))
+            checks[k] = g
+        else:
+            ctx = hist if k >= 8 else hist & np.uint64((1 << (8 * k)) - 1)
+            x = (ctx + np.uint64(k)) * _M1
+            x = x ^ (x >> np.uint64(31)) ^ (np.uint64(b) * SALT)
+            x = x * _M2
+            slots[k] = bases[k] + np.int64(x >> np.uint64(64 - hash_log2))
+            checks[k] = g | ((x >> np.uint64(8)) & np.uint64(0xFFFFFFFF))
+
+
 @njit(cache=True, nogil=True)
 def _file_update(fs, slots, checks, max_order, sym):
     """Count `sym` in the file's rows from the highest order down, stopping below the first
@@ -461,24 +537,30 @@ def _teacher(corpus, state, match, data, starts, lengths, t0, t1, max_order, has
     nl = lengths.shape[0]
     use_match = match[5][3] > 0 and corpus[5][0] == 0
     use_mix = mix[5][1] != 0
+    use_sse = use_match and mix[5][2] != 0
     i = 0
     for t in range(t0, t1):
         m = 0
         while m < nl and lengths[m] > t:
             m += 1
         for b in range(m):
-            S._row_slots(hist[b], max_order, hash_log2, bases, gen, slots, checks)
+            _slots(mix, b, hist[b], max_order, hash_log2, bases, gen, slots, checks)
             _braid_predict(corpus, state, hist[b], slots, checks, max_order, dfile, p, mix, b)
             if use_match:
                 S._match_predict(match, b, p)
+                if use_sse:
+                    _sse_predict(mix, match, b, hist[b], p)
             S._emit(p, out_tab[i + b])
             out_syms[i + b] = data[starts[b] + t]
         if use_mix:  # every lane's weights update before any count changes
             for b in range(m):
                 _mix_update(mix, corpus, state, dfile, b, np.int64(data[starts[b] + t]))
+        if use_sse:
+            for b in range(m):
+                _sse_update(mix, match, b, np.int64(data[starts[b] + t]))
         for b in range(m):
             sym = data[starts[b] + t]
-            S._row_slots(hist[b], max_order, hash_log2, bases, gen, slots, checks)
+            _slots(mix, b, hist[b], max_order, hash_log2, bases, gen, slots, checks)
             _file_update(state, slots, checks, max_order, sym)
             hist[b] = (hist[b] << np.uint64(8)) | np.uint64(sym)
             if use_match:
@@ -500,18 +582,24 @@ def _step(corpus, state, match, starts, syms, t_prev, m_prev, m, max_order, hash
     if mix[5][1] != 0:
         for b in range(m_prev):
             _mix_update(mix, corpus, state, dfile, b, np.int64(syms[b]))
+    use_sse = use_match and mix[5][2] != 0
+    if use_sse:
+        for b in range(m_prev):
+            _sse_update(mix, match, b, np.int64(syms[b]))
     for b in range(m_prev):
         sym = syms[b]
-        S._row_slots(hist[b], max_order, hash_log2, bases, gen, slots, checks)
+        _slots(mix, b, hist[b], max_order, hash_log2, bases, gen, slots, checks)
         _file_update(state, slots, checks, max_order, sym)
         hist[b] = (hist[b] << np.uint64(8)) | np.uint64(sym)
         if use_match:
             S._match_update(match, b, starts[b], t_prev, sym, hist[b], gen)
     for b in range(m):
-        S._row_slots(hist[b], max_order, hash_log2, bases, gen, slots, checks)
+        _slots(mix, b, hist[b], max_order, hash_log2, bases, gen, slots, checks)
         _braid_predict(corpus, state, hist[b], slots, checks, max_order, dfile, p, mix, b)
         if use_match:
             S._match_predict(match, b, p)
+            if use_sse:
+                _sse_predict(mix, match, b, hist[b], p)
         S._emit(p, out_tab[b])
 
 
@@ -592,13 +680,21 @@ class Braid:
         """prior_only: the corpus layers alone (no file layers, no repeat model), for the
         ablation figures; such an object is only ever costed, never used to pack."""
         allowed = {"corpus_order", "max_order", "hash_log2", "discount", "match_min"}
-        optional = {"mix_shift"}  # absent: the plain chain (model files made before it)
+        optional = {"mix_shift", "sse_bits", "lane_tables"}  # absent: the plain chain (model files made before it)
         if not isinstance(params, dict) or not allowed <= set(params) <= allowed | optional:
             raise ValueError(f"braid needs exactly {', '.join(sorted(allowed))} (and optionally {', '.join(sorted(optional))})")
         ms = params.get("mix_shift", 0)
         if type(ms) is not int or not (ms == 0 or 8 <= ms <= 30):
             raise ValueError("mix_shift must be 0 (off) or 8..30")
         self.mix_shift = ms
+        sb = params.get("sse_bits", 0)
+        if type(sb) is not int or not (sb == 0 or 4 <= sb <= 16):
+            raise ValueError("sse_bits must be 0 (off) or 4..16")
+        self.sse_bits = sb
+        lt = params.get("lane_tables", 0)
+        if lt not in (0, 1) or type(lt) is not int:
+            raise ValueError("lane_tables must be 0 or 1")
+        self.lane_tables = lt
         if type(params["corpus_order"]) is not int or not 0 <= params["corpus_order"] <= 8:
             raise ValueError("corpus_order must be 0..8")
         self.file = S.Strata.from_params({k: params[k] for k in ("max_order", "hash_log2", "discount", "match_min")})
@@ -636,7 +732,8 @@ class Braid:
         """The file's tables for one frame (rows as strata sizes them) and its match index."""
         f = self.file
         hashed = 1 << f.hash_bits(n)
-        rows = [1, 256] + [hashed] * (f.max_order - 1)
+        own = max(n_lanes, 1) if self.lane_tables else 1
+        rows = [own, 256 * own] + [hashed] * (f.max_order - 1)
         bases = np.zeros(len(rows), np.int64)
         bases[1:] = np.cumsum(rows)[:-1]
         arrays, gen = _pool_take(int(sum(rows)))
@@ -677,9 +774,13 @@ class Braid:
             if on and self.mix_init is not None:
                 W[:] = self.mix_init
         nl = max(n_lanes, 1) if on else 1
+        cells = (2 << self.sse_bits) * SSE_LEVELS if self.sse_bits else 1
+        sse = np.empty((cells, 2), np.int32)
+        sse[:, 0] = 2 * (np.arange(cells) % SSE_LEVELS) + 1  # each level's midpoint
+        sse[:, 1] = 2 * SSE_LEVELS
         return (W, ODDS, np.zeros((nl, 2 * N_LAYER_IDS, LREC), np.int64), np.zeros(nl, np.int64),
-                np.zeros(nl, np.int64), np.array([self.mix_shift, 1 if on else 0], np.int64),
-                np.zeros(2 * N_LAYER_IDS, np.int64), BYTE_CLASS)
+                np.zeros(nl, np.int64), np.array([self.mix_shift, 1 if on else 0, self.sse_bits, self.lane_tables], np.int64),
+                np.zeros(2 * N_LAYER_IDS, np.int64), BYTE_CLASS, sse, np.full(max(n_lanes, 1), -1, np.int64))
 
     def teacher_chunks(self, data, starts, lengths, chunk_steps: int = 256, match_stats=None, mix_weights=None):
         """match_stats: an array of the hit-rate cells' shape, to which this frame's
