@@ -27,7 +27,9 @@ from .models.braid import Braid
 PRESETS = {
     # corpus orders, fewest sightings of a kept context (orders >= 2), size budget of the
     # tables, and the per-file adaptive half (strata's parameters); figures in README.md
-    "braid": dict(corpus_order=6, min_seen=2, budget=64 << 20,
+    # (mix_shift: the layers' escape weights, adapted within each frame at this rate and
+    # started from the held-out sample's; lane_tables: each lane's contexts its own)
+    "braid": dict(corpus_order=6, min_seen=2, budget=64 << 20, mix_shift=16, lane_tables=1,
                   file=dict(max_order=8, hash_log2=18, discount=[[13, 18, 24]] * 9, match_min=5)),
     "braid-lean": dict(corpus_order=4, min_seen=2, budget=16 << 20, file=dict(S.PRESETS["o6m"])),
 }
@@ -123,6 +125,8 @@ def train_braid(files: list[tuple[str, bytes]], corpus: list[str], out: str, tim
         min_seen *= 2
     params = {"corpus_order": cfg["corpus_order"], **cfg["file"]}
     params["discount"] = [list(r) for r in params["discount"]]
+    if cfg.get("lane_tables"):
+        params["lane_tables"] = 1
     model = Braid(params, arrays)
     # validation sample for the search: whole held-out files, in a seeded order, up to the cap
     rng = random.Random(seed + 1)
