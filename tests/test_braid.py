@@ -75,6 +75,16 @@ def test_round_trip_and_wrong_model(tiny, tmp_path):
         lcodec.unpack(blob, model=other)
 
 
+def test_frames_decoded_in_threads(tiny):
+    """Frames decoded side by side in threads (unpack workers=2) share the corpus tables but
+    not their scratch: each frame's probe results are its own (they were shared once, and
+    frames then decoded each other's contexts)."""
+    data = b"".join(stdlib_file(n) for n in ("calendar.py", "shlex.py", "textwrap.py", "heapq.py"))
+    blob = lcodec.pack(data, model=tiny, frame_size=16_000)
+    for _ in range(3):
+        assert lcodec.unpack(blob, model=tiny, workers=2) == data
+
+
 def test_same_archive_across_processes_and_thread_settings(tiny, tmp_path):
     src = tmp_path / "in.py"
     src.write_bytes(stdlib_file("textwrap.py") * 3)

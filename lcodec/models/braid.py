@@ -136,8 +136,9 @@ WMAX = 512  # table steps of 1/64 doubling: odds scaled by 2**-8 .. 2**8
 N_LAYER_IDS = 18  # file orders 0..8, corpus orders 0..8
 COUNT_CLASSES = N_LAYER_IDS * 16  # layer x distinct bytes (4 classes) x total count (4)
 BYTE_CLASSES = 8  # kinds of the byte before: see _byte_class_table
-MIX_CLASSES = COUNT_CLASSES + N_LAYER_IDS * BYTE_CLASSES  # two weights per layer use, summed
-LREC = 9  # per recorded layer: kind, slot, entry end, inv, A_own, e', class, order, class 2
+BYTE_BASE = COUNT_CLASSES + N_LAYER_IDS * BYTE_CLASSES
+MIX_CLASSES = BYTE_BASE + N_LAYER_IDS * 256  # three weights per layer use, summed
+LREC = 11  # per recorded layer: kind, slot, entry end, inv, A_own, e', class, order, class 2, byte, class 3
 
 
 def _byte_class_table() -> np.ndarray:
@@ -197,7 +198,8 @@ def _mix_escape(mix, rec, esc, tf, inv, A, cls):
     weight applied to the escape odds; both recorded in rec for the update."""
     W, odds = mix[0], mix[1]
     cls2 = COUNT_CLASSES + (cls >> 4) * BYTE_CLASSES + rec[8]
-    i = (W[cls] + W[cls2]) >> WFRAC
+    cls3 = BYTE_BASE + (cls >> 4) * 256 + rec[9]
+    i = (W[cls] + W[cls2] + W[cls3]) >> WFRAC
     i = min(max(i, -WMAX), WMAX)
     m = odds[i + WMAX]  # 2**8 .. 2**24
     own = tf - esc  # >= 1: every seen count gives at least 1/F
@@ -215,6 +217,7 @@ def _mix_escape(mix, rec, esc, tf, inv, A, cls):
     rec[5] = e31
     rec[6] = cls
     rec[8] = cls2
+    rec[10] = cls3
     return A_own, (A * e31) >> 31
 
 
@@ -337,7 +340,7 @@ def _mix_update(mix, corpus, fs, dfile, b, x):
         e31 = rec[5]
         # bound: below, own < 2**22 and e31 <= 2**31, so each product < 2**53
         g = ((ONE_A - e31) * below - e31 * own[l]) // total  # |g| <= 2**31
-        for cls in (rec[6], rec[8]):
+        for cls in (rec[6], rec[8], rec[10]):
             W[cls] = min(max(W[cls] + (g >> shift), -lim), lim)
         below += own[l]
 
@@ -477,7 +480,8 @@ def _braid_predict(corpus, fstate, hist, slots, checks, max_order, dfile, p, mix
     use_file = mode[0] == 0
     use_mix = mix[5][1] != 0
     lrec = mix[2]
-    bcls = mix[7][np.int64(hist & np.uint64(0xFF))]
+    last = np.int64(hist & np.uint64(0xFF))
+    bcls = mix[7][last]
     nlay = 0
     corder = cbase.shape[0] - 1
     # every order's home slot first: independent loads the processor can overlap
@@ -498,6 +502,7 @@ def _braid_predict(corpus, fstate, hist, slots, checks, max_order, dfile, p, mix
                     rec[1] = r
                     rec[7] = k
                     rec[8] = bcls
+                    rec[9] = last
                     nlay += 1
                     A = _file_layer_mix(fstate, r, dfile[k], p, A, mix, rec, k)
                 else:
@@ -513,6 +518,7 @@ def _braid_predict(corpus, fstate, hist, slots, checks, max_order, dfile, p, mix
                     rec[2] = b0
                     rec[7] = k
                     rec[8] = bcls
+                    rec[9] = last
                     A, used = _sparse_layer_mix(ent, a0, b0, dcorp[k], p, A, mix, rec, 9 + k)
                     nlay += 1 if used else 0
                 else:
@@ -762,6 +768,12 @@ class Braid:
             match[4][:] = self.match_prior
         return match
 
+    def frame_corpus(self):
+        """The corpus tables with a scratch array of the frame's own (the probe results): the
+        tables are shared by every thread, the scratch must not be (frames decoded in
+        threads side by side wrote each other's probe results before this)."""
+        return self.corpus[:6] + (np.zeros(len(self.corpus[6]), np.int64),)
+
     def new_mix(self, n_lanes: int, weights=None):
         """The escape weights' state for one frame: weights (from the model file's table, or
         zero; or `weights` itself, updated in place, when training carries them from file
@@ -793,9 +805,10 @@ class Braid:
         match = self.new_match(data, mtab, lengths)
         mix = self.new_mix(len(lengths), mix_weights)
         start_cells = match[4].copy()
+        corpus = self.frame_corpus()
         try:
             yield from S.run_chunks(lengths, chunk_steps, lambda t0, t1, syms, tab: _teacher(
-                self.corpus, state, match, data, starts, lengths, t0, t1, f.max_order, hb, f._disc, syms, tab, mix))
+                corpus, state, match, data, starts, lengths, t0, t1, f.max_order, hb, f._disc, syms, tab, mix))
             if match_stats is not None:
                 match_stats += np.maximum(match[4].astype(np.int64) - start_cells, 0)
         finally:
@@ -809,7 +822,7 @@ class Braid:
         starts = np.zeros(len(lengths), np.int64)
         starts[1:] = np.cumsum(lengths)[:-1]
         tab = np.empty((max(len(lengths), 1), 256), np.float64)
-        mo, disc, corpus = f.max_order, f._disc, self.corpus
+        mo, disc, corpus = f.max_order, f._disc, self.frame_corpus()
         work = (np.empty(mo + 1, np.int64), np.empty(mo + 1, np.uint64), np.empty(256, np.int64))
         mix = self.new_mix(len(lengths))
         t = [-1]
