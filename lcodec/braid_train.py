@@ -127,6 +127,8 @@ def train_braid(files: list[tuple[str, bytes]], corpus: list[str], out: str, tim
     params["discount"] = [list(r) for r in params["discount"]]
     if cfg.get("lane_tables"):
         params["lane_tables"] = 1
+    if cfg.get("mix_shift"):
+        params["mix_shift"] = cfg["mix_shift"]
     model = Braid(params, arrays)
     # validation sample for the search: whole held-out files, in a seeded order, up to the cap
     rng = random.Random(seed + 1)
@@ -181,16 +183,23 @@ def train_braid(files: list[tuple[str, bytes]], corpus: list[str], out: str, tim
         if v < best:
             arrays["match_prior"], model, best = prior, with_prior, v
     if cfg.get("mix_shift"):
-        # the layers' escape weights: on, adapted within each frame, started from the weights
-        # the held-out sample leaves; kept only if the sample's cost falls
-        mixed_params = {**params, "mix_shift": cfg["mix_shift"]}
-        init = mix_weights(Braid(mixed_params, arrays), sample)
-        with_mix = Braid(mixed_params, {**arrays, "mix_init": init})
-        v = _bpb(with_mix, sample)
-        echo(f"  {time.perf_counter() - t_start:6.0f} s  learned escape weights: {v:.4f} (without: {best:.4f})"
-             f"{'' if v < best else ', not kept'}")
+        # the layers' escape weights (on during the search, from zero): started from the
+        # weights the held-out sample leaves, if that lowers the sample's cost; and off
+        # altogether if the plain chain does better
+        init = mix_weights(model, sample)
+        with_init = Braid(params, {**arrays, "mix_init": init})
+        v = _bpb(with_init, sample)
+        echo(f"  {time.perf_counter() - t_start:6.0f} s  escape weights started from the held-out sample's: {v:.4f} "
+             f"(from zero: {best:.4f}){'' if v < best else ', not kept'}")
         if v < best:
-            params, arrays["mix_init"], model, best = mixed_params, init, with_mix, v
+            arrays["mix_init"], model, best = init, with_init, v
+        plain_params = {k: x for k, x in params.items() if k != "mix_shift"}
+        plain = Braid(plain_params, {k: x for k, x in arrays.items() if k != "mix_init"})
+        vp = _bpb(plain, sample)
+        echo(f"  {time.perf_counter() - t_start:6.0f} s  without escape weights: {vp:.4f}{', kept off' if vp < best else ''}")
+        if vp < best:
+            params, model, best = plain_params, plain, vp
+            arrays.pop("mix_init", None)
     val_bpb = _bpb(model, val_files)
     strata_bpb = _bpb(S.Strata(), val_files)
     meta = {

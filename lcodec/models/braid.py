@@ -137,8 +137,12 @@ N_LAYER_IDS = 18  # file orders 0..8, corpus orders 0..8
 COUNT_CLASSES = N_LAYER_IDS * 16  # layer x distinct bytes (4 classes) x total count (4)
 BYTE_CLASSES = 8  # kinds of the byte before: see _byte_class_table
 BYTE_BASE = COUNT_CLASSES + N_LAYER_IDS * BYTE_CLASSES
-MIX_CLASSES = BYTE_BASE + N_LAYER_IDS * 256  # three weights per layer use, summed
-LREC = 11  # per recorded layer: kind, slot, entry end, inv, A_own, e', class, order, class 2, byte, class 3
+AGE_CLASSES = 8  # steps since the file's row last saw its context: < 16, 64, ..., 2**16, more
+AGE_BASE = BYTE_BASE + N_LAYER_IDS * 256
+MIX_CLASSES = AGE_BASE + N_LAYER_IDS * AGE_CLASSES  # four weights per layer use, summed
+LREC = 13  # per recorded layer: kind, slot, entry end, inv, A_own, e', class, order, class 2,
+# byte before, class 3, age class, class 4
+LAST = 6  # meta field of a file row: the lane step at which its context was last seen
 
 
 def _byte_class_table() -> np.ndarray:
@@ -199,7 +203,8 @@ def _mix_escape(mix, rec, esc, tf, inv, A, cls):
     W, odds = mix[0], mix[1]
     cls2 = COUNT_CLASSES + (cls >> 4) * BYTE_CLASSES + rec[8]
     cls3 = BYTE_BASE + (cls >> 4) * 256 + rec[9]
-    i = (W[cls] + W[cls2] + W[cls3]) >> WFRAC
+    cls4 = AGE_BASE + (cls >> 4) * AGE_CLASSES + rec[11]
+    i = (W[cls] + W[cls2] + W[cls3] + W[cls4]) >> WFRAC
     i = min(max(i, -WMAX), WMAX)
     m = odds[i + WMAX]  # 2**8 .. 2**24
     own = tf - esc  # >= 1: every seen count gives at least 1/F
@@ -218,6 +223,7 @@ def _mix_escape(mix, rec, esc, tf, inv, A, cls):
     rec[6] = cls
     rec[8] = cls2
     rec[10] = cls3
+    rec[12] = cls4
     return A_own, (A * e31) >> 31
 
 
@@ -340,7 +346,7 @@ def _mix_update(mix, corpus, fs, dfile, b, x):
         e31 = rec[5]
         # bound: below, own < 2**22 and e31 <= 2**31, so each product < 2**53
         g = ((ONE_A - e31) * below - e31 * own[l]) // total  # |g| <= 2**31
-        for cls in (rec[6], rec[8], rec[10]):
+        for cls in (rec[6], rec[8], rec[10], rec[12]):
             W[cls] = min(max(W[cls] + (g >> shift), -lim), lim)
         below += own[l]
 
@@ -422,7 +428,7 @@ def _slots(mix, b, hist, max_order, hash_log2, bases, gen, slots, checks):
 
 
 @njit(cache=True, nogil=True)
-def _file_update(fs, slots, checks, max_order, sym):
+def _file_update(fs, slots, checks, max_order, sym, now=-1):
     """Count `sym` in the file's rows from the highest order down, stopping below the first
     order that knew it (strata's update exclusion, with its halving at 255). A row left by
     an earlier frame (another generation in its tag) is cleared through its list first."""
@@ -459,6 +465,8 @@ def _file_update(fs, slots, checks, max_order, sym):
             c = rows[r, sym]
         rows[r, sym] = c + 1
         meta[r, TOT] += 1
+        if now >= 0:
+            meta[r, LAST] = np.uint32(now)
         if c == 0:
             rows[r, 256 + meta[r, N1]] = sym
             meta[r, N1] += 1
@@ -467,6 +475,10 @@ def _file_update(fs, slots, checks, max_order, sym):
         elif c == 2:
             meta[r, N3] += 1
         if c != 0:
+            if now >= 0:  # the rows below saw their context too
+                for k2 in range(k - 1, -1, -1):
+                    if _tag_is(meta, slots[k2], checks[k2]):
+                        meta[slots[k2], LAST] = np.uint32(now)
             break
 
 
@@ -482,6 +494,7 @@ def _braid_predict(corpus, fstate, hist, slots, checks, max_order, dfile, p, mix
     lrec = mix[2]
     last = np.int64(hist & np.uint64(0xFF))
     bcls = mix[7][last]
+    now = mix[5][4]
     nlay = 0
     corder = cbase.shape[0] - 1
     # every order's home slot first: independent loads the processor can overlap
@@ -503,6 +516,11 @@ def _braid_predict(corpus, fstate, hist, slots, checks, max_order, dfile, p, mix
                     rec[7] = k
                     rec[8] = bcls
                     rec[9] = last
+                    age = now - np.int64(fmeta[r, LAST])
+                    q = 0
+                    while q < AGE_CLASSES - 1 and age >= (np.int64(16) << (2 * q)):
+                        q += 1
+                    rec[11] = q
                     nlay += 1
                     A = _file_layer_mix(fstate, r, dfile[k], p, A, mix, rec, k)
                 else:
@@ -519,6 +537,7 @@ def _braid_predict(corpus, fstate, hist, slots, checks, max_order, dfile, p, mix
                     rec[7] = k
                     rec[8] = bcls
                     rec[9] = last
+                    rec[11] = 0
                     A, used = _sparse_layer_mix(ent, a0, b0, dcorp[k], p, A, mix, rec, 9 + k)
                     nlay += 1 if used else 0
                 else:
@@ -549,6 +568,7 @@ def _teacher(corpus, state, match, data, starts, lengths, t0, t1, max_order, has
         m = 0
         while m < nl and lengths[m] > t:
             m += 1
+        mix[5][4] = t
         for b in range(m):
             _slots(mix, b, hist[b], max_order, hash_log2, bases, gen, slots, checks)
             _braid_predict(corpus, state, hist[b], slots, checks, max_order, dfile, p, mix, b)
@@ -567,7 +587,7 @@ def _teacher(corpus, state, match, data, starts, lengths, t0, t1, max_order, has
         for b in range(m):
             sym = data[starts[b] + t]
             _slots(mix, b, hist[b], max_order, hash_log2, bases, gen, slots, checks)
-            _file_update(state, slots, checks, max_order, sym)
+            _file_update(state, slots, checks, max_order, sym, t if use_mix else -1)
             hist[b] = (hist[b] << np.uint64(8)) | np.uint64(sym)
             if use_match:
                 S._match_update(match, b, starts[b], t, sym, hist[b], gen)
@@ -595,10 +615,11 @@ def _step(corpus, state, match, starts, syms, t_prev, m_prev, m, max_order, hash
     for b in range(m_prev):
         sym = syms[b]
         _slots(mix, b, hist[b], max_order, hash_log2, bases, gen, slots, checks)
-        _file_update(state, slots, checks, max_order, sym)
+        _file_update(state, slots, checks, max_order, sym, t_prev if mix[5][1] != 0 else -1)
         hist[b] = (hist[b] << np.uint64(8)) | np.uint64(sym)
         if use_match:
             S._match_update(match, b, starts[b], t_prev, sym, hist[b], gen)
+    mix[5][4] = t_prev + 1
     for b in range(m):
         _slots(mix, b, hist[b], max_order, hash_log2, bases, gen, slots, checks)
         _braid_predict(corpus, state, hist[b], slots, checks, max_order, dfile, p, mix, b)
@@ -791,7 +812,7 @@ class Braid:
         sse[:, 0] = 2 * (np.arange(cells) % SSE_LEVELS) + 1  # each level's midpoint
         sse[:, 1] = 2 * SSE_LEVELS
         return (W, ODDS, np.zeros((nl, 2 * N_LAYER_IDS, LREC), np.int64), np.zeros(nl, np.int64),
-                np.zeros(nl, np.int64), np.array([self.mix_shift, 1 if on else 0, self.sse_bits, self.lane_tables], np.int64),
+                np.zeros(nl, np.int64), np.array([self.mix_shift, 1 if on else 0, self.sse_bits, self.lane_tables, 0], np.int64),
                 np.zeros(2 * N_LAYER_IDS, np.int64), BYTE_CLASS, sse, np.full(max(n_lanes, 1), -1, np.int64))
 
     def teacher_chunks(self, data, starts, lengths, chunk_steps: int = 256, match_stats=None, mix_weights=None):
