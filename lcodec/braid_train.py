@@ -28,8 +28,9 @@ PRESETS = {
     # corpus orders, fewest sightings of a kept context (orders >= 2), size budget of the
     # tables, and the per-file adaptive half (strata's parameters); figures in README.md
     # (mix_shift: the layers' escape weights, adapted within each frame at this rate and
-    # started from the held-out sample's; lane_tables: each lane's contexts its own)
-    "braid": dict(corpus_order=6, min_seen=2, budget=64 << 20, mix_shift=16, lane_tables=1,
+    # started from the held-out sample's; lane_tables: each lane's contexts its own;
+    # sse_bits: secondary estimation of the favourite byte, 2**sse_bits context buckets)
+    "braid": dict(corpus_order=6, min_seen=2, budget=64 << 20, mix_shift=16, lane_tables=1, sse_bits=10,
                   file=dict(max_order=8, hash_log2=18, discount=[[13, 18, 24]] * 9, match_min=5)),
     "braid-lean": dict(corpus_order=4, min_seen=2, budget=16 << 20, file=dict(S.PRESETS["o6m"])),
 }
@@ -129,6 +130,8 @@ def train_braid(files: list[tuple[str, bytes]], corpus: list[str], out: str, tim
         params["lane_tables"] = 1
     if cfg.get("mix_shift"):
         params["mix_shift"] = cfg["mix_shift"]
+    if cfg.get("sse_bits"):
+        params["sse_bits"] = cfg["sse_bits"]
     model = Braid(params, arrays)
     # validation sample for the search: whole held-out files, in a seeded order, up to the cap
     rng = random.Random(seed + 1)
