@@ -177,6 +177,22 @@ def test_golden_model_and_container():
     assert lcodec.pack(orig, model=model, frame_size=4096) == blob
 
 
+def test_golden_mixed_model_and_container():
+    """The default preset since the escape weights (made by scripts/make_golden.py): its
+    parameters name every new part, and the container (first frame in two lanes) still
+    decodes and re-encodes byte for byte."""
+    from lcodec.container import read_container
+
+    model = os.path.join(GOLDEN, "braid-mixed-tiny.lcmodel")
+    blob = open(os.path.join(GOLDEN, "braid-v2-mixed.lcodec"), "rb").read()
+    orig = open(os.path.join(GOLDEN, "braid-v2-mixed.orig"), "rb").read()
+    p = modelfile.load(model)[0]["architecture"]["params"]
+    assert p["mix_shift"] == 16 and p["lane_tables"] == 1 and p["sse_bits"] == 10
+    assert read_container(blob).frames[0].lanes == 2
+    assert lcodec.unpack(blob, model=model) == orig
+    assert lcodec.pack(orig, model=model, frame_size=140_000) == blob
+
+
 def test_train_cli_default_preset_is_braid(tmp_path):
     corpus = tmp_path / "corpus"
     corpus.mkdir()
