@@ -27,7 +27,10 @@ from .models.braid import Braid
 PRESETS = {
     # corpus orders, fewest sightings of a kept context (orders >= 2), size budget of the
     # tables, and the per-file adaptive half (strata's parameters); figures in README.md
-    "braid": dict(corpus_order=6, min_seen=2, budget=64 << 20,
+    # (mix_shift: the layers' escape weights, adapted within each frame at this rate and
+    # started from the held-out sample's; lane_tables: each lane's contexts its own;
+    # sse_bits: secondary estimation of the favourite byte, 2**sse_bits context buckets)
+    "braid": dict(corpus_order=6, min_seen=2, budget=64 << 20, mix_shift=16, lane_tables=1, sse_bits=10,
                   file=dict(max_order=8, hash_log2=18, discount=[[13, 18, 24]] * 9, match_min=5)),
     "braid-lean": dict(corpus_order=4, min_seen=2, budget=16 << 20, file=dict(S.PRESETS["o6m"])),
 }
@@ -82,6 +85,23 @@ def match_prior(model, files: list[bytes]):
     return out
 
 
+def mix_weights(model, files: list[bytes]) -> np.ndarray:
+    """Escape weights for the model file: the online weights carried through `files`, each
+    costed on its own as pack would, from zero; what they end as is where every frame of a
+    new file starts."""
+    from .models.braid import MIX_CLASSES, WFRAC, WMAX
+
+    w = np.zeros(MIX_CLASSES, np.int64)
+    for f in files:
+        x = np.frombuffer(f, np.uint8)
+        if len(x) == 0:
+            continue
+        starts, lengths = lane_layout(len(x), api.frame_lanes(model, len(x)))
+        for _ in model.teacher_chunks(x, starts, lengths, mix_weights=w):
+            pass
+    return np.clip(w, -(WMAX << WFRAC), WMAX << WFRAC).astype(np.int32)
+
+
 def train_braid(files: list[tuple[str, bytes]], corpus: list[str], out: str, time_limit: float, preset: str,
                 seed: int, echo=print) -> dict:
     cfg = PRESETS[preset]
@@ -106,6 +126,12 @@ def train_braid(files: list[tuple[str, bytes]], corpus: list[str], out: str, tim
         min_seen *= 2
     params = {"corpus_order": cfg["corpus_order"], **cfg["file"]}
     params["discount"] = [list(r) for r in params["discount"]]
+    if cfg.get("lane_tables"):
+        params["lane_tables"] = 1
+    if cfg.get("mix_shift"):
+        params["mix_shift"] = cfg["mix_shift"]
+    if cfg.get("sse_bits"):
+        params["sse_bits"] = cfg["sse_bits"]
     model = Braid(params, arrays)
     # validation sample for the search: whole held-out files, in a seeded order, up to the cap
     rng = random.Random(seed + 1)
@@ -159,6 +185,24 @@ def train_braid(files: list[tuple[str, bytes]], corpus: list[str], out: str, tim
              f"(without: {best:.4f}){'' if v < best else ', not kept'}")
         if v < best:
             arrays["match_prior"], model, best = prior, with_prior, v
+    if cfg.get("mix_shift"):
+        # the layers' escape weights (on during the search, from zero): started from the
+        # weights the held-out sample leaves, if that lowers the sample's cost; and off
+        # altogether if the plain chain does better
+        init = mix_weights(model, sample)
+        with_init = Braid(params, {**arrays, "mix_init": init})
+        v = _bpb(with_init, sample)
+        echo(f"  {time.perf_counter() - t_start:6.0f} s  escape weights started from the held-out sample's: {v:.4f} "
+             f"(from zero: {best:.4f}){'' if v < best else ', not kept'}")
+        if v < best:
+            arrays["mix_init"], model, best = init, with_init, v
+        plain_params = {k: x for k, x in params.items() if k != "mix_shift"}
+        plain = Braid(plain_params, {k: x for k, x in arrays.items() if k != "mix_init"})
+        vp = _bpb(plain, sample)
+        echo(f"  {time.perf_counter() - t_start:6.0f} s  without escape weights: {vp:.4f}{', kept off' if vp < best else ''}")
+        if vp < best:
+            params, model, best = plain_params, plain, vp
+            arrays.pop("mix_init", None)
     val_bpb = _bpb(model, val_files)
     strata_bpb = _bpb(S.Strata(), val_files)
     meta = {

@@ -68,6 +68,27 @@ def golden_braid():
     golden_learned("braid", "braid-lean", 10, 6_000, 200, 19, 5, "braid-v2-text")
 
 
+def golden_braid_mixed():
+    """A braid model of the current default preset (escape weights with a fitted starting
+    table, lanes with their own tables) and a version-2 container whose first frame has
+    two lanes."""
+    mpath = os.path.join(HERE, "braid-mixed-tiny.lcmodel")
+    arc = os.path.join(HERE, "braid-v2-mixed.lcodec")
+    if os.path.exists(arc):
+        print(f"keep {arc}")
+        return
+    import tempfile
+
+    from lcodec import train as T
+
+    with tempfile.TemporaryDirectory() as d:
+        for i in range(8):
+            with open(os.path.join(d, f"log{i}.txt"), "wb") as f:
+                f.write(sample_text(500 + i, 5_000))
+        T.train([d], mpath, time_limit=5, preset="braid", seed=0, echo=print)
+    write_vector("braid-v2-mixed", sample_text(59, 150_000), model=mpath, frame_size=140_000)
+
+
 def golden_tessel():
     """A tiny trained pixel model (8- and 16-bit networks) and three image containers made
     with it: an 8-bit PGM (byte-exact), a PNG with a text chunk (pixel-exact) and pydicom's
@@ -157,6 +178,7 @@ def main():
         write_vector(name, data, frame_size=8192)
     golden_weft()
     golden_braid()
+    golden_braid_mixed()
     golden_tessel()
     golden_tessel_structure()
 

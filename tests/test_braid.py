@@ -75,6 +75,16 @@ def test_round_trip_and_wrong_model(tiny, tmp_path):
         lcodec.unpack(blob, model=other)
 
 
+def test_frames_decoded_in_threads(tiny):
+    """Frames decoded side by side in threads (unpack workers=2) share the corpus tables but
+    not their scratch: each frame's probe results are its own (they were shared once, and
+    frames then decoded each other's contexts)."""
+    data = b"".join(stdlib_file(n) for n in ("calendar.py", "shlex.py", "textwrap.py", "heapq.py"))
+    blob = lcodec.pack(data, model=tiny, frame_size=16_000)
+    for _ in range(3):
+        assert lcodec.unpack(blob, model=tiny, workers=2) == data
+
+
 def test_same_archive_across_processes_and_thread_settings(tiny, tmp_path):
     src = tmp_path / "in.py"
     src.write_bytes(stdlib_file("textwrap.py") * 3)
@@ -167,6 +177,22 @@ def test_golden_model_and_container():
     assert lcodec.pack(orig, model=model, frame_size=4096) == blob
 
 
+def test_golden_mixed_model_and_container():
+    """The default preset since the escape weights (made by scripts/make_golden.py): its
+    parameters name every new part, and the container (first frame in two lanes) still
+    decodes and re-encodes byte for byte."""
+    from lcodec.container import read_container
+
+    model = os.path.join(GOLDEN, "braid-mixed-tiny.lcmodel")
+    blob = open(os.path.join(GOLDEN, "braid-v2-mixed.lcodec"), "rb").read()
+    orig = open(os.path.join(GOLDEN, "braid-v2-mixed.orig"), "rb").read()
+    p = modelfile.load(model)[0]["architecture"]["params"]
+    assert p["mix_shift"] == 16 and p["lane_tables"] == 1 and p["sse_bits"] == 10
+    assert read_container(blob).frames[0].lanes == 2
+    assert lcodec.unpack(blob, model=model) == orig
+    assert lcodec.pack(orig, model=model, frame_size=140_000) == blob
+
+
 def test_train_cli_default_preset_is_braid(tmp_path):
     corpus = tmp_path / "corpus"
     corpus.mkdir()
@@ -189,3 +215,118 @@ def test_bare_model_object_cannot_pack(tiny):
     meta, arrays, _ = modelfile.load(tiny)
     with pytest.raises(ValueError, match="model file"):
         lcodec.pack(b"some bytes to pack", model=Braid(meta["architecture"]["params"], arrays, prior_only=True))
+
+
+# -- the layers' learned escape weights, secondary estimation and lanes' own tables ------------
+def mixed_params(order, **extra):
+    return {**params(order), "mix_shift": 16, "lane_tables": 1, **extra}
+
+
+@pytest.fixture(scope="module")
+def tiny_mixed(tmp_path_factory):
+    """The tiny model with the escape weights on, started from a table fitted on held-out
+    files (as training writes it), lanes with their own tables and secondary estimation."""
+    from lcodec.braid_train import mix_weights
+
+    files = [stdlib_file(f) for f in CORPUS]
+    arrays = build(files, 4, 2)
+    p = mixed_params(4, sse_bits=8)
+    init = mix_weights(Braid(p, arrays), [stdlib_file(n) for n in HELD_OUT])
+    path = str(tmp_path_factory.mktemp("braidmix") / "tiny-mixed.lcmodel")
+    modelfile.dump(path, {"name": "braid", "params": p}, {**arrays, "mix_init": init})
+    return path
+
+
+def test_odds_table_is_exact():
+    """Every entry is floor(2**16 * 2**(i/64)): checked against Python's float power (the
+    float result is within 1e-9 relative of the true value, far inside one unit here)."""
+    from lcodec.models.braid import ODDS, WMAX
+
+    i = np.arange(-WMAX, WMAX + 1)
+    ref = np.floor(2.0 ** 16 * 2.0 ** (i / 64))
+    assert ODDS.dtype == np.int64 and np.abs(ODDS - ref).max() <= 1
+    assert ODDS[WMAX] == 1 << 16 and ODDS[WMAX + 64] == 1 << 17 and ODDS[0] == 1 << 8  # exact powers of two
+    assert (np.diff(ODDS) > 0).all()
+
+
+def test_mixed_parallel_pass_equals_step_pass(tiny_mixed):
+    m = load_model(tiny_mixed)
+    data = stdlib_file("shlex.py", 30_000)
+    for lanes in (1, 3, 16):
+        a = teacher_tables(m, data, lanes, chunk=53)
+        assert np.array_equal(a, teacher_tables(m, data, lanes))
+        assert np.array_equal(a, step_tables(m, data, lanes)), lanes
+        assert (a == np.floor(a)).all() and (a >= 1).all()
+
+
+def test_escape_weights_move_and_are_integers(tiny_mixed):
+    """The weights a frame leaves differ from where it started (they adapt), are integers
+    within their clamp, and the same frame run twice leaves the same weights."""
+    from lcodec.coder import lane_layout
+    from lcodec.models.braid import MIX_CLASSES, WFRAC, WMAX
+
+    m = load_model(tiny_mixed).inner
+    x = np.frombuffer(stdlib_file("textwrap.py", 20_000), np.uint8)
+    starts, lengths = lane_layout(len(x), 3)
+    runs = []
+    for _ in range(2):
+        w = m.mix_init.astype(np.int64)
+        for _ in m.teacher_chunks(x, starts, lengths, mix_weights=w):
+            pass
+        runs.append(w)
+    assert runs[0].dtype == np.int64 and runs[0].shape == (MIX_CLASSES,)
+    assert np.array_equal(runs[0], runs[1]) and not np.array_equal(runs[0], m.mix_init)
+    assert np.abs(runs[0]).max() <= WMAX << WFRAC
+
+
+def test_mixed_round_trip_threads_and_wrong_model(tiny_mixed, tiny, tmp_path):
+    data = stdlib_file("calendar.py") + stdlib_file("textwrap.py") * 4  # > 128 KiB: several lanes
+    blob = lcodec.pack(data, model=tiny_mixed, frame_size=100_000)
+    assert lcodec.unpack(blob, model=tiny_mixed) == data
+    assert lcodec.unpack(blob, model=tiny_mixed, workers=2) == data
+    with pytest.raises(ModelError, match="wrong model.*sha256"):
+        lcodec.unpack(blob, model=tiny)
+    src = tmp_path / "in.py"
+    src.write_bytes(data)
+    code = ("import sys, hashlib, lcodec; d = open(sys.argv[1], 'rb').read(); "
+            "print(hashlib.sha256(lcodec.pack(d, model=sys.argv[2], frame_size=300000)).hexdigest())")
+    digests = {hashlib.sha256(lcodec.pack(data, model=tiny_mixed, frame_size=300000)).hexdigest()}
+    for threads in ("1", "2"):
+        env = dict(os.environ, NUMBA_NUM_THREADS=threads, OMP_NUM_THREADS=threads)
+        out = subprocess.run([sys.executable, "-c", code, str(src), tiny_mixed], env=env, capture_output=True,
+                             text=True, check=True)
+        digests.add(out.stdout.strip())
+    assert len(digests) == 1
+
+
+def test_mixed_never_worse_than_its_parts(tiny_mixed):
+    """On held-out files the model with escape weights costs at most 1% more than the
+    better of its parts: the plain chain (same tables, weights off) and strata alone."""
+    meta, arrays, _ = modelfile.load(tiny_mixed)
+    mixed = load_model(tiny_mixed)
+    plain = Braid(params(4), {k: v for k, v in arrays.items() if k != "mix_init"})
+    for name in ("calendar.py", "shlex.py", "textwrap.py", "heapq.py"):
+        data = stdlib_file(name)
+        b_mixed, b_plain, b_adapt = nll_bits(mixed, data), nll_bits(plain, data), nll_bits(S.Strata(), data)
+        assert b_mixed <= 1.01 * min(b_plain, b_adapt), (name, b_mixed, b_plain, b_adapt)
+
+
+@pytest.mark.parametrize("damage", ["mix_shift", "sse_bits", "lane_tables", "mix_init_range", "mix_init_shape"])
+def test_hostile_mixed_model_files_are_refused(tiny_mixed, tmp_path, damage):
+    meta, arrays, _ = modelfile.load(tiny_mixed)
+    arch = {"name": "braid", "params": dict(meta["architecture"]["params"])}
+    arrays = {k: v.copy() for k, v in arrays.items()}
+    if damage == "mix_shift":
+        arch["params"]["mix_shift"] = 3
+    elif damage == "sse_bits":
+        arch["params"]["sse_bits"] = 40
+    elif damage == "lane_tables":
+        arch["params"]["lane_tables"] = 2
+    elif damage == "mix_init_range":
+        arrays["mix_init"][5] = 1 << 30
+    else:
+        arrays["mix_init"] = arrays["mix_init"][:-1].copy()
+    bad = str(tmp_path / "bad.lcmodel")
+    modelfile.dump(bad, arch, arrays)
+    with pytest.raises(ModelError, match="bad parameters"):
+        load_model(bad)

@@ -124,6 +124,132 @@ def _sparse_layer(ent, a, b, disc, p, A):
     return (A * ((esc * inv) >> (INV_BITS - 31))) >> 31
 
 
+# -- learned escape weights (optional: model files with `mix_shift`) ------------------------
+# Each layer's escape share e = E / T is moved in the odds domain by a weight of its class
+# (layer, distinct bytes seen, total count):  e' / (1 - e') = 2**(W / 64) * e / (1 - e),
+# and the layer's own bytes share the rest, 1 - e'. The weights start from the model
+# file's table (zero: the plain chain) and follow the gradient of the coded byte's log
+# probability within the frame (online logistic mixing of each layer against everything
+# below it), in integers: W in 1/2**WFRAC of a table step, clamped to +-WMAX steps.
+WFRAC = 12
+WMAX = 512  # table steps of 1/64 doubling: odds scaled by 2**-8 .. 2**8
+N_LAYER_IDS = 18  # file orders 0..8, corpus orders 0..8
+COUNT_CLASSES = N_LAYER_IDS * 16  # layer x distinct bytes (4 classes) x total count (4)
+BYTE_CLASSES = 8  # kinds of the byte before: see _byte_class_table
+BYTE_BASE = COUNT_CLASSES + N_LAYER_IDS * BYTE_CLASSES
+AGE_CLASSES = 8  # steps since the file's row last saw its context: < 16, 64, ..., 2**16, more
+AGE_BASE = BYTE_BASE + N_LAYER_IDS * 256
+MIX_CLASSES = AGE_BASE + N_LAYER_IDS * AGE_CLASSES  # four weights per layer use, summed
+LREC = 13  # per recorded layer: kind, slot, entry end, inv, A_own, e', class, order, class 2,
+# byte before, class 3, age class, class 4
+LAST = 6  # meta field of a file row: the lane step at which its context was last seen
+
+
+def _byte_class_table() -> np.ndarray:
+    """0 newline, 1 space or tab, 2 lower-case letter, 3 upper-case, 4 digit, 5 quote or
+    bracket, 6 other printable ASCII, 7 everything else."""
+    t = np.full(256, 7, np.int64)
+    for c in range(33, 127):
+        t[c] = 6
+    t[ord("\n")], t[ord("\r")] = 0, 0
+    t[ord(" ")], t[ord("\t")] = 1, 1
+    for c in range(ord("a"), ord("z") + 1):
+        t[c] = 2
+    for c in range(ord("A"), ord("Z") + 1):
+        t[c] = 3
+    for c in range(ord("0"), ord("9") + 1):
+        t[c] = 4
+    for c in "\"'()[]{}":
+        t[ord(c)] = 5
+    return t
+
+
+BYTE_CLASS = _byte_class_table()
+
+
+def _odds_table() -> np.ndarray:
+    """M[i + WMAX] = floor(2**16 * 2**(i / 64)) for i in -WMAX..WMAX, from Python integers
+    only: 2**(j / 64) is six nested integer square roots of 2**(64 * 60 + j), and floor
+    sqrt of floor sqrt is floor of the fourth root, so every entry is exact."""
+    from math import isqrt
+
+    root = []
+    for j in range(64):
+        y = 1 << (64 * 60 + j)
+        for _ in range(6):
+            y = isqrt(y)
+        root.append(y)  # floor(2**60 * 2**(j / 64))
+    out = np.empty(2 * WMAX + 1, np.int64)
+    for i in range(-WMAX, WMAX + 1):
+        q, j = divmod(i, 64)
+        out[i + WMAX] = root[j] >> (44 - q)  # 2**(16 + q) * 2**(j / 64), floored: q >= -8, shift <= 52
+    return out
+
+
+ODDS = _odds_table()
+
+
+@njit(cache=True, nogil=True)
+def _mix_class(lid, n1, t):
+    qn = 0 if n1 <= 1 else (1 if n1 == 2 else (2 if n1 <= 5 else 3))
+    qt = 0 if t <= 2 else (1 if t <= 7 else (2 if t <= 31 else 3))
+    return lid * 16 + qn * 4 + qt
+
+
+@njit(cache=True, nogil=True)
+def _mix_escape(mix, rec, esc, tf, inv, A, cls):
+    """The layer's A_own (its bytes' share) and the A left below it, with the class's
+    weight applied to the escape odds; both recorded in rec for the update."""
+    W, odds = mix[0], mix[1]
+    cls2 = COUNT_CLASSES + (cls >> 4) * BYTE_CLASSES + rec[8]
+    cls3 = BYTE_BASE + (cls >> 4) * 256 + rec[9]
+    cls4 = AGE_BASE + (cls >> 4) * AGE_CLASSES + rec[11]
+    i = (W[cls] + W[cls2] + W[cls3] + W[cls4]) >> WFRAC
+    i = min(max(i, -WMAX), WMAX)
+    m = odds[i + WMAX]  # 2**8 .. 2**24
+    own = tf - esc  # >= 1: every seen count gives at least 1/F
+    num = esc * m  # esc < 2**21, m <= 2**24: < 2**45
+    den = num + (own << 16)  # < 2**46
+    if num < (np.int64(1) << 31):
+        e31 = (num << 31) // den  # num << 31 < 2**62
+    else:
+        e31 = (num << 17) // (den >> 14)  # num << 17 < 2**62; den >> 14 >= 2**17
+    e31 = min(e31, np.int64(ONE_A))
+    own31 = (own * inv) >> (INV_BITS - 31)  # own * inv < 2**21 * 2**39 / ... < 2**61; >= 2**10
+    A_own = (A * (ONE_A - e31)) // own31  # A * (..) <= 2**62; A_own * w_s <= 2**62 (w_s <= own31)
+    rec[3] = inv
+    rec[4] = A_own
+    rec[5] = e31
+    rec[6] = cls
+    rec[8] = cls2
+    rec[10] = cls3
+    rec[12] = cls4
+    return A_own, (A * e31) >> 31
+
+
+@njit(cache=True, nogil=True)
+def _sparse_layer_mix(ent, a, b, disc, p, A, mix, rec, lid):
+    a1 = np.int64(disc[0])
+    a2 = np.int64(disc[1]) - a1
+    a3 = np.int64(disc[2]) - np.int64(disc[1])
+    t = np.int64(0)
+    esc = np.int64(0)
+    for e in range(a, b):
+        c = np.int64(ent[e] >> 8)
+        t += c
+        esc += a1 + a2 * (c >= 2) + a3 * (c >= 3)
+    if t == 0:
+        return A, False
+    inv = (np.int64(1) << INV_BITS) // (t * F)  # bounds as _sparse_layer
+    A_own, A_below = _mix_escape(mix, rec, esc, t * F, inv, A, _mix_class(lid, b - a, t))
+    for e in range(a, b):
+        c = np.int64(ent[e] >> 8)
+        n = c * F - (a1 + a2 * (c >= 2) + a3 * (c >= 3))
+        w = (n * inv) >> (INV_BITS - 31)
+        p[ent[e] & 0xFF] += (A_own * w) >> (62 - P_BITS)
+    return A_below, True
+
+
 # The file's tables: row r is rows[r, :256] (the counts), rows[r, 256:] (the bytes seen,
 # in the order they came, meta[r, N1] of them) and meta[r] (tag, total, and how many
 # counts are >= 1, 2, 3): three cache lines for the usual row, not seven arrays.
@@ -157,7 +283,152 @@ def _file_layer(fs, r, disc, p, A):
 
 
 @njit(cache=True, nogil=True)
-def _file_update(fs, slots, checks, max_order, sym):
+def _file_layer_mix(fs, r, disc, p, A, mix, rec, lid):
+    rows, meta = fs[0], fs[1]
+    a1 = np.int64(disc[0])
+    a2 = np.int64(disc[1]) - a1
+    a3 = np.int64(disc[2]) - np.int64(disc[1])
+    n1 = np.int64(meta[r, N1])
+    esc = a1 * n1 + a2 * np.int64(meta[r, N2]) + a3 * np.int64(meta[r, N3])
+    t = np.int64(meta[r, TOT])
+    inv = (np.int64(1) << INV_BITS) // (t * F)  # bounds as _sparse_layer
+    A_own, A_below = _mix_escape(mix, rec, esc, t * F, inv, A, _mix_class(lid, n1, t))
+    for i in range(n1):
+        s = rows[r, 256 + i]
+        c = np.int64(rows[r, s])
+        n = c * F - (a1 + a2 * (c >= 2) + a3 * (c >= 3))
+        w = (n * inv) >> (INV_BITS - 31)
+        p[s] += (A_own * w) >> (62 - P_BITS)
+    return A_below
+
+
+@njit(cache=True, nogil=True)
+def _mix_update(mix, corpus, fs, dfile, b, x):
+    """After lane b coded byte x: each recorded layer's weight moves along the gradient of
+    log P(x) in its escape log-odds, ((1 - e') * below(x) - e' * own(x)) / P(x), where own
+    is the layer's share of P(x) and below everything under it. The rows are read as they
+    were at the prediction (no count changes in between), so encoder and decoder agree."""
+    W, lrec, lcnt, lu, mp = mix[0], mix[2], mix[3], mix[4], mix[5]
+    ent, dcorp = corpus[1], corpus[4]
+    rows = fs[0]
+    nlay = lcnt[b]
+    if nlay == 0:
+        return
+    own = mix[6]
+    total = lu[b]
+    for l in range(nlay):
+        rec = lrec[b, l]
+        k = rec[7]
+        if rec[0] == 1:
+            c = np.int64(rows[rec[1], x])
+            disc = dfile[k]
+        else:
+            c = np.int64(0)
+            for e in range(rec[1], rec[2]):
+                if (ent[e] & 0xFF) == x:
+                    c = np.int64(ent[e] >> 8)
+                    break
+            disc = dcorp[k]
+        v = np.int64(0)
+        if c > 0:
+            n = c * F - (np.int64(disc[0]) + (np.int64(disc[1]) - np.int64(disc[0])) * (c >= 2)
+                         + (np.int64(disc[2]) - np.int64(disc[1])) * (c >= 3))
+            v = (rec[4] * ((n * rec[3]) >> (INV_BITS - 31))) >> (62 - P_BITS)
+        own[l] = v
+        total += v
+    if total <= 0:
+        return
+    shift = mp[0]
+    lim = np.int64(WMAX) << WFRAC
+    below = lu[b]
+    for l in range(nlay - 1, -1, -1):
+        rec = lrec[b, l]
+        e31 = rec[5]
+        # bound: below, own < 2**22 and e31 <= 2**31, so each product < 2**53
+        g = ((ONE_A - e31) * below - e31 * own[l]) // total  # |g| <= 2**31
+        for cls in (rec[6], rec[8], rec[10], rec[12]):
+            W[cls] = min(max(W[cls] + (g >> shift), -lim), lim)
+        below += own[l]
+
+
+# -- secondary estimation of the favourite byte (optional: model files with `sse_bits`) ---
+# After the repeat model has named its byte e (the repeat's next byte, or the blend's own
+# favourite) and set its probability, a second table recalibrates it: cells keyed by a
+# hash of the last two bytes (2**sse_bits buckets), whether a repeat is being followed,
+# and 32 levels of e's probability hold hit counts; e's probability becomes the average of
+# the repeat model's and the cell's hit rate, the other bytes scaled to fit.
+SSE_LEVELS = 32
+SSE_LIMIT = 1023  # hit counts halved past this, to keep adapting
+
+
+@njit(cache=True, nogil=True)
+def _sse_predict(mix, match, b, hist, p):
+    tab, cellv = mix[8], mix[9]
+    cellv[b] = -1
+    e = match[7][b]
+    total = np.int64(0)
+    for s in range(256):
+        total += p[s]
+    pe = p[e]
+    if total - pe < 1024:
+        return
+    x = ((hist & np.uint64(0xFFFF)) + np.uint64(7)) * _M1
+    x = x ^ (x >> np.uint64(29))
+    x = x * _M2
+    h = np.int64(x >> np.uint64(64 - mix[5][2]))
+    cell = ((h * 2 + (1 if match[2][b] >= 0 else 0)) * SSE_LEVELS) + (pe * SSE_LEVELS) // total
+    cellv[b] = cell
+    st = tab[cell]
+    t2 = (np.int64(st[0]) * total) // np.int64(st[1])  # st[0] <= SSE_LIMIT, total < 2**22
+    target = (pe + t2) >> 1
+    target = min(max(target, np.int64(1)), total - 1024)
+    # bound: as the repeat model's, p[s] < 2**22 and f <= 2**42 / 1024 = 2**32: < 2**54
+    f = ((total - target) << 20) // (total - pe)
+    for s in range(256):
+        p[s] = (p[s] * f) >> 20
+    p[e] = target
+
+
+@njit(cache=True, nogil=True)
+def _sse_update(mix, match, b, sym):
+    cell = mix[9][b]
+    if cell < 0:
+        return
+    st = mix[8][cell]
+    st[0] += 1 if match[7][b] == sym else 0
+    st[1] += 1
+    if st[1] > SSE_LIMIT:
+        st[0] = (st[0] + 1) >> 1
+        st[1] = (st[1] + 1) >> 1
+
+
+# -- lanes with tables of their own (optional: model files with `lane_tables`) ------------
+# Lanes normally share the file's tables. With lane_tables each lane's contexts are its
+# own rows: order 0 and 1 rows per lane, and the lane's number mixed into the hash of the
+# higher orders (the same hashed table, so memory does not grow with lanes).
+@njit(cache=True, nogil=True)
+def _slots(mix, b, hist, max_order, hash_log2, bases, gen, slots, checks):
+    if mix[5][3] == 0:
+        S._row_slots(hist, max_order, hash_log2, bases, gen, slots, checks)
+        return
+    g = gen << np.uint64(32)
+    slots[0] = bases[0] + b
+    checks[0] = g
+    for k in range(1, max_order + 1):
+        if k == 1:
+            slots[k] = bases[k] + 256 * b + np.int64(hist & np.uint64(0xFF))
+            checks[k] = g
+        else:
+            ctx = hist if k >= 8 else hist & np.uint64((1 << (8 * k)) - 1)
+            x = (ctx + np.uint64(k)) * _M1
+            x = x ^ (x >> np.uint64(31)) ^ (np.uint64(b) * SALT)
+            x = x * _M2
+            slots[k] = bases[k] + np.int64(x >> np.uint64(64 - hash_log2))
+            checks[k] = g | ((x >> np.uint64(8)) & np.uint64(0xFFFFFFFF))
+
+
+@njit(cache=True, nogil=True)
+def _file_update(fs, slots, checks, max_order, sym, now=-1):
     """Count `sym` in the file's rows from the highest order down, stopping below the first
     order that knew it (strata's update exclusion, with its halving at 255). A row left by
     an earlier frame (another generation in its tag) is cleared through its list first."""
@@ -194,6 +465,8 @@ def _file_update(fs, slots, checks, max_order, sym):
             c = rows[r, sym]
         rows[r, sym] = c + 1
         meta[r, TOT] += 1
+        if now >= 0:
+            meta[r, LAST] = np.uint32(now)
         if c == 0:
             rows[r, 256 + meta[r, N1]] = sym
             meta[r, N1] += 1
@@ -202,16 +475,27 @@ def _file_update(fs, slots, checks, max_order, sym):
         elif c == 2:
             meta[r, N3] += 1
         if c != 0:
+            if now >= 0:  # the rows below saw their context too
+                for k2 in range(k - 1, -1, -1):
+                    if _tag_is(meta, slots[k2], checks[k2]):
+                        meta[slots[k2], LAST] = np.uint32(now)
             break
 
 
 @njit(cache=True, nogil=True)
-def _braid_predict(corpus, fstate, hist, slots, checks, max_order, dfile, p):
+def _braid_predict(corpus, fstate, hist, slots, checks, max_order, dfile, p, mix, b):
     """p <- the braided distribution (integers, total about 2**P_BITS), top layer first:
-    at each order the file's own row sits above the corpus row of the same context."""
+    at each order the file's own row sits above the corpus row of the same context.
+    With the escape weights on (mix[5][1] != 0), each layer used is recorded for lane b."""
     slot2, ent, cbase, csize, dcorp, mode, found = corpus
     fmeta = fstate[1]
     use_file = mode[0] == 0
+    use_mix = mix[5][1] != 0
+    lrec = mix[2]
+    last = np.int64(hist & np.uint64(0xFF))
+    bcls = mix[7][last]
+    now = mix[5][4]
+    nlay = 0
     corder = cbase.shape[0] - 1
     # every order's home slot first: independent loads the processor can overlap
     for k in range(corder + 1):
@@ -225,20 +509,51 @@ def _braid_predict(corpus, fstate, hist, slots, checks, max_order, dfile, p):
         if use_file and k <= max_order:
             r = slots[k]
             if _tag_is(fmeta, r, checks[k]) and fmeta[r, TOT] > 0:
-                A = _file_layer(fstate, r, dfile[k], p, A)
+                if use_mix:
+                    rec = lrec[b, nlay]
+                    rec[0] = 1
+                    rec[1] = r
+                    rec[7] = k
+                    rec[8] = bcls
+                    rec[9] = last
+                    age = now - np.int64(fmeta[r, LAST])
+                    q = 0
+                    while q < AGE_CLASSES - 1 and age >= (np.int64(16) << (2 * q)):
+                        q += 1
+                    rec[11] = q
+                    nlay += 1
+                    A = _file_layer_mix(fstate, r, dfile[k], p, A, mix, rec, k)
+                else:
+                    A = _file_layer(fstate, r, dfile[k], p, A)
         if k <= corder:
             j = found[k]
             if j >= 0:
-                A = _sparse_layer(ent, np.int64(slot2[j, 1]), np.int64(slot2[j + 1, 1]), dcorp[k], p, A)
+                a0, b0 = np.int64(slot2[j, 1]), np.int64(slot2[j + 1, 1])
+                if use_mix:
+                    rec = lrec[b, nlay]
+                    rec[0] = 2
+                    rec[1] = a0
+                    rec[2] = b0
+                    rec[7] = k
+                    rec[8] = bcls
+                    rec[9] = last
+                    rec[11] = 0
+                    A, used = _sparse_layer_mix(ent, a0, b0, dcorp[k], p, A, mix, rec, 9 + k)
+                    nlay += 1 if used else 0
+                else:
+                    A = _sparse_layer(ent, a0, b0, dcorp[k], p, A)
         if A == 0:
             break
     u = (A << (P_BITS - 8)) >> 31  # the uniform distribution's share: A / 256 of 2**P_BITS
     for s in range(256):
         p[s] += u
+    if use_mix:
+        mix[3][b] = nlay
+        mix[4][b] = u
 
 
 @njit(cache=True, nogil=True)
-def _teacher(corpus, state, match, data, starts, lengths, t0, t1, max_order, hash_log2, dfile, out_syms, out_tab):
+def _teacher(corpus, state, match, data, starts, lengths, t0, t1, max_order, hash_log2, dfile, out_syms, out_tab, mix):
     """Tables of steps t0..t1 for all active lanes, in coding order, updating state."""
     bases, hist, gen = state[2], state[3], state[4]
     slots = np.empty(max_order + 1, np.int64)
@@ -246,22 +561,33 @@ def _teacher(corpus, state, match, data, starts, lengths, t0, t1, max_order, has
     p = np.empty(256, np.int64)
     nl = lengths.shape[0]
     use_match = match[5][3] > 0 and corpus[5][0] == 0
+    use_mix = mix[5][1] != 0
+    use_sse = use_match and mix[5][2] != 0
     i = 0
     for t in range(t0, t1):
         m = 0
         while m < nl and lengths[m] > t:
             m += 1
+        mix[5][4] = t
         for b in range(m):
-            S._row_slots(hist[b], max_order, hash_log2, bases, gen, slots, checks)
-            _braid_predict(corpus, state, hist[b], slots, checks, max_order, dfile, p)
+            _slots(mix, b, hist[b], max_order, hash_log2, bases, gen, slots, checks)
+            _braid_predict(corpus, state, hist[b], slots, checks, max_order, dfile, p, mix, b)
             if use_match:
                 S._match_predict(match, b, p)
+                if use_sse:
+                    _sse_predict(mix, match, b, hist[b], p)
             S._emit(p, out_tab[i + b])
             out_syms[i + b] = data[starts[b] + t]
+        if use_mix:  # every lane's weights update before any count changes
+            for b in range(m):
+                _mix_update(mix, corpus, state, dfile, b, np.int64(data[starts[b] + t]))
+        if use_sse:
+            for b in range(m):
+                _sse_update(mix, match, b, np.int64(data[starts[b] + t]))
         for b in range(m):
             sym = data[starts[b] + t]
-            S._row_slots(hist[b], max_order, hash_log2, bases, gen, slots, checks)
-            _file_update(state, slots, checks, max_order, sym)
+            _slots(mix, b, hist[b], max_order, hash_log2, bases, gen, slots, checks)
+            _file_update(state, slots, checks, max_order, sym, t if use_mix else -1)
             hist[b] = (hist[b] << np.uint64(8)) | np.uint64(sym)
             if use_match:
                 S._match_update(match, b, starts[b], t, sym, hist[b], gen)
@@ -270,7 +596,7 @@ def _teacher(corpus, state, match, data, starts, lengths, t0, t1, max_order, has
 
 
 @njit(cache=True, nogil=True)
-def _step(corpus, state, match, starts, syms, t_prev, m_prev, m, max_order, hash_log2, dfile, out_tab, work):
+def _step(corpus, state, match, starts, syms, t_prev, m_prev, m, max_order, hash_log2, dfile, out_tab, work, mix):
     """Decoder step: count the symbols of step t_prev (m_prev lanes), then predict m lanes.
     `work` holds the scratch arrays, made once per frame (a step is too short to allocate)."""
     bases, hist, gen = state[2], state[3], state[4]
@@ -279,18 +605,28 @@ def _step(corpus, state, match, starts, syms, t_prev, m_prev, m, max_order, hash
     use_match = match[5][3] > 0 and corpus[5][0] == 0
     for b in range(m_prev):
         buf[starts[b] + t_prev] = syms[b]
+    if mix[5][1] != 0:
+        for b in range(m_prev):
+            _mix_update(mix, corpus, state, dfile, b, np.int64(syms[b]))
+    use_sse = use_match and mix[5][2] != 0
+    if use_sse:
+        for b in range(m_prev):
+            _sse_update(mix, match, b, np.int64(syms[b]))
     for b in range(m_prev):
         sym = syms[b]
-        S._row_slots(hist[b], max_order, hash_log2, bases, gen, slots, checks)
-        _file_update(state, slots, checks, max_order, sym)
+        _slots(mix, b, hist[b], max_order, hash_log2, bases, gen, slots, checks)
+        _file_update(state, slots, checks, max_order, sym, t_prev if mix[5][1] != 0 else -1)
         hist[b] = (hist[b] << np.uint64(8)) | np.uint64(sym)
         if use_match:
             S._match_update(match, b, starts[b], t_prev, sym, hist[b], gen)
+    mix[5][4] = t_prev + 1
     for b in range(m):
-        S._row_slots(hist[b], max_order, hash_log2, bases, gen, slots, checks)
-        _braid_predict(corpus, state, hist[b], slots, checks, max_order, dfile, p)
+        _slots(mix, b, hist[b], max_order, hash_log2, bases, gen, slots, checks)
+        _braid_predict(corpus, state, hist[b], slots, checks, max_order, dfile, p, mix, b)
         if use_match:
             S._match_predict(match, b, p)
+            if use_sse:
+                _sse_predict(mix, match, b, hist[b], p)
         S._emit(p, out_tab[b])
 
 
@@ -350,6 +686,11 @@ def check_arrays(params: dict, arrays: dict) -> None:
         if mp.dtype != np.int32 or mp.shape != (cells, 2) or int(mp[:, 1].min()) < 1 \
                 or int(mp[:, 1].max()) > S.MATCH_LIMIT or int(mp[:, 0].min()) < 0 or (mp[:, 0] > mp[:, 1]).any():
             raise ValueError(f"match_prior must be int32 ({cells}, 2) of hits <= trials <= {S.MATCH_LIMIT}, trials >= 1")
+    mi = arrays.get("mix_init")
+    if mi is not None:
+        lim = WMAX << WFRAC
+        if mi.dtype != np.int32 or mi.shape != (MIX_CLASSES,) or int(np.abs(mi).max()) > lim:
+            raise ValueError(f"mix_init must be int32 ({MIX_CLASSES},), each within +-{lim}")
     disc = arrays["corpus_discount"]
     if disc.shape != (C + 1, 3) or not all(1 <= r[0] < F and 1 <= r[1] < 2 * F and 1 <= r[2] < 3 * F for r in disc.tolist()):
         raise ValueError("corpus_discount must hold 3 discounts per order, each below its count")
@@ -366,8 +707,21 @@ class Braid:
         """prior_only: the corpus layers alone (no file layers, no repeat model), for the
         ablation figures; such an object is only ever costed, never used to pack."""
         allowed = {"corpus_order", "max_order", "hash_log2", "discount", "match_min"}
-        if not isinstance(params, dict) or set(params) != allowed:
-            raise ValueError(f"braid needs exactly {', '.join(sorted(allowed))}")
+        optional = {"mix_shift", "sse_bits", "lane_tables"}  # absent: the plain chain (model files made before it)
+        if not isinstance(params, dict) or not allowed <= set(params) <= allowed | optional:
+            raise ValueError(f"braid needs exactly {', '.join(sorted(allowed))} (and optionally {', '.join(sorted(optional))})")
+        ms = params.get("mix_shift", 0)
+        if type(ms) is not int or not (ms == 0 or 8 <= ms <= 30):
+            raise ValueError("mix_shift must be 0 (off) or 8..30")
+        self.mix_shift = ms
+        sb = params.get("sse_bits", 0)
+        if type(sb) is not int or not (sb == 0 or 4 <= sb <= 16):
+            raise ValueError("sse_bits must be 0 (off) or 4..16")
+        self.sse_bits = sb
+        lt = params.get("lane_tables", 0)
+        if lt not in (0, 1) or type(lt) is not int:
+            raise ValueError("lane_tables must be 0 or 1")
+        self.lane_tables = lt
         if type(params["corpus_order"]) is not int or not 0 <= params["corpus_order"] <= 8:
             raise ValueError("corpus_order must be 0..8")
         self.file = S.Strata.from_params({k: params[k] for k in ("max_order", "hash_log2", "discount", "match_min")})
@@ -375,6 +729,7 @@ class Braid:
         check_arrays(params, arrays)
         self.arrays = arrays
         self.match_prior = arrays.get("match_prior")
+        self.mix_init = arrays.get("mix_init")
         sizes = arrays["sizes"]
         bases = np.zeros(len(sizes), np.int64)
         bases[1:] = np.cumsum(sizes)[:-1]
@@ -404,7 +759,8 @@ class Braid:
         """The file's tables for one frame (rows as strata sizes them) and its match index."""
         f = self.file
         hashed = 1 << f.hash_bits(n)
-        rows = [1, 256] + [hashed] * (f.max_order - 1)
+        own = max(n_lanes, 1) if self.lane_tables else 1
+        rows = [own, 256 * own] + [hashed] * (f.max_order - 1)
         bases = np.zeros(len(rows), np.int64)
         bases[1:] = np.cumsum(rows)[:-1]
         arrays, gen = _pool_take(int(sum(rows)))
@@ -433,17 +789,47 @@ class Braid:
             match[4][:] = self.match_prior
         return match
 
-    def teacher_chunks(self, data, starts, lengths, chunk_steps: int = 256, match_stats=None):
+    def frame_corpus(self):
+        """The corpus tables with a scratch array of the frame's own (the probe results): the
+        tables are shared by every thread, the scratch must not be (frames decoded in
+        threads side by side wrote each other's probe results before this)."""
+        return self.corpus[:6] + (np.zeros(len(self.corpus[6]), np.int64),)
+
+    def new_mix(self, n_lanes: int, weights=None):
+        """The escape weights' state for one frame: weights (from the model file's table, or
+        zero; or `weights` itself, updated in place, when training carries them from file
+        to file), the odds table, per-lane records of the layers used, and the settings."""
+        on = self.mix_shift != 0
+        if on and weights is not None:
+            W = weights
+        else:
+            W = np.zeros(MIX_CLASSES if on else 1, np.int64)
+            if on and self.mix_init is not None:
+                W[:] = self.mix_init
+        nl = max(n_lanes, 1) if on else 1
+        cells = (2 << self.sse_bits) * SSE_LEVELS if self.sse_bits else 1
+        sse = np.empty((cells, 2), np.int32)
+        sse[:, 0] = 2 * (np.arange(cells) % SSE_LEVELS) + 1  # each level's midpoint
+        sse[:, 1] = 2 * SSE_LEVELS
+        return (W, ODDS, np.zeros((nl, 2 * N_LAYER_IDS, LREC), np.int64), np.zeros(nl, np.int64),
+                np.zeros(nl, np.int64), np.array([self.mix_shift, 1 if on else 0, self.sse_bits, self.lane_tables, 0], np.int64),
+                np.zeros(2 * N_LAYER_IDS, np.int64), BYTE_CLASS, sse, np.full(max(n_lanes, 1), -1, np.int64))
+
+    def teacher_chunks(self, data, starts, lengths, chunk_steps: int = 256, match_stats=None, mix_weights=None):
         """match_stats: an array of the hit-rate cells' shape, to which this frame's
-        observations (hits, trials) are added at the end (training uses it)."""
+        observations (hits, trials) are added at the end (training uses it); mix_weights:
+        an int64 array of MIX_CLASSES escape weights the frame starts from and leaves its
+        own in (training carries them from file to file)."""
         f = self.file
         n = int(lengths.sum())
         (state, mtab), hb = self.new_state(n, len(lengths)), f.hash_bits(n)
         match = self.new_match(data, mtab, lengths)
+        mix = self.new_mix(len(lengths), mix_weights)
         start_cells = match[4].copy()
+        corpus = self.frame_corpus()
         try:
             yield from S.run_chunks(lengths, chunk_steps, lambda t0, t1, syms, tab: _teacher(
-                self.corpus, state, match, data, starts, lengths, t0, t1, f.max_order, hb, f._disc, syms, tab))
+                corpus, state, match, data, starts, lengths, t0, t1, f.max_order, hb, f._disc, syms, tab, mix))
             if match_stats is not None:
                 match_stats += np.maximum(match[4].astype(np.int64) - start_cells, 0)
         finally:
@@ -457,12 +843,13 @@ class Braid:
         starts = np.zeros(len(lengths), np.int64)
         starts[1:] = np.cumsum(lengths)[:-1]
         tab = np.empty((max(len(lengths), 1), 256), np.float64)
-        mo, disc, corpus = f.max_order, f._disc, self.corpus
+        mo, disc, corpus = f.max_order, f._disc, self.frame_corpus()
         work = (np.empty(mo + 1, np.int64), np.empty(mo + 1, np.uint64), np.empty(256, np.int64))
+        mix = self.new_mix(len(lengths))
         t = [-1]
 
         def step(prev_syms, m_prev, m):
-            _step(corpus, state, match, starts, prev_syms, t[0], m_prev, m, mo, hl, disc, tab, work)
+            _step(corpus, state, match, starts, prev_syms, t[0], m_prev, m, mo, hl, disc, tab, work, mix)
             t[0] += 1
             return tab[:m]
 
