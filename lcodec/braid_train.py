@@ -62,16 +62,22 @@ PRIOR_STRENGTH = 32  # trials a learned hit-rate cell starts with (the default's
 PRIOR_MIN_TRIALS = 64  # cells seen fewer times keep the default (no change)
 
 
-def match_prior(model, files: list[bytes]):
-    """Hit-rate cells for the repeat model from `files` (each costed on its own), or None."""
-    stats = np.zeros((S.MATCH_LENGTHS * S.MATCH_LEVELS, 2), np.int64)
+def _run_files(model, files: list[bytes], **collect) -> None:
+    """Run the encoder's pass over each file on its own, as pack lays it out, for what
+    `collect` (match_stats=..., mix_weights=...) gathers along the way."""
     for f in files:
         x = np.frombuffer(f, np.uint8)
         if len(x) == 0:
             continue
         starts, lengths = lane_layout(len(x), api.frame_lanes(model, len(x)))
-        for _ in model.teacher_chunks(x, starts, lengths, match_stats=stats):
+        for _ in model.teacher_chunks(x, starts, lengths, **collect):
             pass
+
+
+def match_prior(model, files: list[bytes]):
+    """Hit-rate cells for the repeat model from `files` (each costed on its own), or None."""
+    stats = np.zeros((S.MATCH_LENGTHS * S.MATCH_LEVELS, 2), np.int64)
+    _run_files(model, files, match_stats=stats)
     if stats[:, 1].max(initial=0) < PRIOR_MIN_TRIALS:
         return None
     cells = np.arange(len(stats))
@@ -92,13 +98,7 @@ def mix_weights(model, files: list[bytes]) -> np.ndarray:
     from .models.braid import MIX_CLASSES, WFRAC, WMAX
 
     w = np.zeros(MIX_CLASSES, np.int64)
-    for f in files:
-        x = np.frombuffer(f, np.uint8)
-        if len(x) == 0:
-            continue
-        starts, lengths = lane_layout(len(x), api.frame_lanes(model, len(x)))
-        for _ in model.teacher_chunks(x, starts, lengths, mix_weights=w):
-            pass
+    _run_files(model, files, mix_weights=w)
     return np.clip(w, -(WMAX << WFRAC), WMAX << WFRAC).astype(np.int32)
 
 

@@ -98,18 +98,25 @@ INV_BITS = 43  # inv = 2**43 // (T * F): at least 2**22 because T * F < 2**21
 
 
 @njit(cache=True, nogil=True)
-def _sparse_layer(ent, a, b, disc, p, A):
-    """Add one stored corpus row's share (entries a..b: byte | count << 8) to p; return
-    the A left below it."""
-    a1 = np.int64(disc[0])
-    a2 = np.int64(disc[1]) - a1
-    a3 = np.int64(disc[2]) - np.int64(disc[1])
+def _row_totals(ent, a, b, a1, a2, a3):
+    """A stored corpus row's total count t and escape mass (sum of its discounts)."""
     t = np.int64(0)
     esc = np.int64(0)
     for e in range(a, b):
         c = np.int64(ent[e] >> 8)
         t += c
         esc += a1 + a2 * (c >= 2) + a3 * (c >= 3)
+    return t, esc
+
+
+@njit(cache=True, nogil=True)
+def _sparse_layer(ent, a, b, disc, p, A):
+    """Add one stored corpus row's share (entries a..b: byte | count << 8) to p; return
+    the A left below it."""
+    a1 = np.int64(disc[0])
+    a2 = np.int64(disc[1]) - a1
+    a3 = np.int64(disc[2]) - np.int64(disc[1])
+    t, esc = _row_totals(ent, a, b, a1, a2, a3)
     if t == 0:
         return A
     # bound: a row has at most 256 entries of counts <= 255, so t * F < 2**21 and
@@ -232,12 +239,7 @@ def _sparse_layer_mix(ent, a, b, disc, p, A, mix, rec, lid):
     a1 = np.int64(disc[0])
     a2 = np.int64(disc[1]) - a1
     a3 = np.int64(disc[2]) - np.int64(disc[1])
-    t = np.int64(0)
-    esc = np.int64(0)
-    for e in range(a, b):
-        c = np.int64(ent[e] >> 8)
-        t += c
-        esc += a1 + a2 * (c >= 2) + a3 * (c >= 3)
+    t, esc = _row_totals(ent, a, b, a1, a2, a3)
     if t == 0:
         return A, False
     inv = (np.int64(1) << INV_BITS) // (t * F)  # bounds as _sparse_layer
