@@ -382,13 +382,7 @@ def _sse_predict(mix, match, b, hist, p):
     cellv[b] = cell
     st = tab[cell]
     t2 = (np.int64(st[0]) * total) // np.int64(st[1])  # st[0] <= SSE_LIMIT, total < 2**22
-    target = (pe + t2) >> 1
-    target = min(max(target, np.int64(1)), total - 1024)
-    # bound: as the repeat model's, p[s] < 2**22 and f <= 2**42 / 1024 = 2**32: < 2**54
-    f = ((total - target) << 20) // (total - pe)
-    for s in range(256):
-        p[s] = (p[s] * f) >> 20
-    p[e] = target
+    S._give_mass(p, e, pe, total, (pe + t2) >> 1)
 
 
 @njit(cache=True, nogil=True)
@@ -396,12 +390,7 @@ def _sse_update(mix, match, b, sym):
     cell = mix[9][b]
     if cell < 0:
         return
-    st = mix[8][cell]
-    st[0] += 1 if match[7][b] == sym else 0
-    st[1] += 1
-    if st[1] > SSE_LIMIT:
-        st[0] = (st[0] + 1) >> 1
-        st[1] = (st[1] + 1) >> 1
+    S._score_cell(mix[8][cell], match[7][b] == sym, SSE_LIMIT)
 
 
 # -- lanes with tables of their own (optional: model files with `lane_tables`) ------------

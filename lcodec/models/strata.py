@@ -174,13 +174,31 @@ def _match_predict(match, b, p):
     cell = (min(mlen[b], MATCH_LENGTHS - 1) if mptr[b] >= 0 else 0) * MATCH_LEVELS + (pe * MATCH_LEVELS) // total
     mcell[b] = cell
     st = mstat[cell]
-    target = (np.int64(st[0]) * total) // np.int64(st[1])
+    _give_mass(p, e, pe, total, (np.int64(st[0]) * total) // np.int64(st[1]))
+
+
+@njit(cache=True, nogil=True)
+def _give_mass(p, e, pe, total, target):
+    """Set byte e's share of the table p (summing to total, e holding pe of it, with
+    total - pe >= 1024) to target, clamped to 1 .. total - 1024, the other bytes scaled
+    to share the rest."""
     target = min(max(target, np.int64(1)), total - 1024)
-    # bound: p[s] <= 2**21 and f <= (2**21 << 20) / 1024 = 2**31, so p[s] * f < 2**52
+    # bound: p[s] < 2**22 for both callers (strata's entries <= 2**21, braid's < 2**22)
+    # and f <= (2**22 << 20) / 1024 = 2**32, so p[s] * f < 2**54
     f = ((total - target) << 20) // (total - pe)
     for s in range(256):
         p[s] = (p[s] * f) >> 20
     p[e] = target
+
+
+@njit(cache=True, nogil=True)
+def _score_cell(st, hit, limit):
+    """A hit-rate cell (hits, trials) after one more trial; both halved past limit."""
+    st[0] += 1 if hit else 0
+    st[1] += 1
+    if st[1] > limit:
+        st[0] = (st[0] + 1) >> 1
+        st[1] = (st[1] + 1) >> 1
 
 
 @njit(cache=True, nogil=True)
@@ -191,12 +209,7 @@ def _match_update(match, b, start, t, sym, hist, gen):
     n, mmin = lay[0], lay[3]
     cur = start + t
     if mcell[b] >= 0:
-        st = mstat[mcell[b]]
-        st[0] += 1 if mpred[b] == sym else 0
-        st[1] += 1
-        if st[1] > MATCH_LIMIT:
-            st[0] = (st[0] + 1) >> 1
-            st[1] = (st[1] + 1) >> 1
+        _score_cell(mstat[mcell[b]], mpred[b] == sym, MATCH_LIMIT)
     if mptr[b] >= 0:
         hit = buf[mptr[b]] == sym
         nxt = mptr[b] + 1
