@@ -582,9 +582,12 @@ def explain(file, model, output, png_out, frame_size, view_bytes, force, quiet):
 @click.option("--structure-k", type=click.IntRange(0, 65536), default=32, show_default=True,
               help="Images: prior strength of the per-image structure counts (position parity, equal neighbours; "
                    "0 = off, which also turns off the blended first stage).")
+@click.option("--law/--no-law", default=True, show_default=True,
+              help="Images: the third stage of 16-bit samples, a two-sided geometric law of the residual whose "
+                   "scale each image learns per activity class (small or noisy scans).")
 @force_option
 @guarded
-def train(corpus, output, kind, time_limit, preset, seed, max_bytes, adapt_k, structure_k, force):
+def train(corpus, output, kind, time_limit, preset, seed, max_bytes, adapt_k, structure_k, law, force):
     """Train a model on files and folders of one kind; write a model file.
 
     A tenth of the files is held out for validation; progress shows validation bits per
@@ -600,7 +603,7 @@ def train(corpus, output, kind, time_limit, preset, seed, max_bytes, adapt_k, st
         if max_bytes is not None:
             raise UsageError("--max-bytes goes with --kind bytes")
         T.train_image(list(corpus), output, time_limit or 120.0, preset or "small", seed, echo=echo, force=force,
-                      adapt_k=adapt_k, structure_k=structure_k)
+                      adapt_k=adapt_k, structure_k=structure_k, law=law)
     else:
         T.train(list(corpus), output, time_limit or 600.0, preset or T.DEFAULT_PRESET, seed, max_bytes, echo=echo,
                 force=force)

@@ -342,6 +342,7 @@ IMAGE_PRESETS = {
 ADAPT_K = 4096  # prior strength of the adaptive counts (figures in DEVELOPERS.md)
 STRUCTURE_K = 32  # prior strength of the structure counts (figures in DEVELOPERS.md)
 STRUCTURE_CAP = 12  # evidence cap of the two-member weights, in bits
+LAW = {"limit": 255, "cap": 12}  # the law stage of 16-bit samples (figures in DEVELOPERS.md)
 ADAPT_GRID = (0, 256, 1024, 4096, 16384)
 
 
@@ -387,7 +388,7 @@ def read_images(paths: list[str], echo=print) -> list[tuple[str, np.ndarray]]:
 
 def train_image(corpus: list[str], out: str, time_limit: float = 120.0, preset: str = "small",
                 seed: int = 0, echo=print, force: bool = False, chan_shift: int = 1, adapt_k=str(ADAPT_K),
-                structure_k: int = STRUCTURE_K) -> dict:
+                structure_k: int = STRUCTURE_K, law: bool = True) -> dict:
     """Fit a tessel pixel model: one network per role present in the corpus (8-bit samples;
     16-bit high and low bytes), quantisation-aware, then export and measure it."""
     try:
@@ -509,6 +510,8 @@ def train_image(corpus: list[str], out: str, time_limit: float = 120.0, preset: 
         arrays["lut"] = a["lut"]
     if structure_k:  # the second stage (structure counts) and the blended first stage
         params["structure"] = {"k": {r: structure_k for r in nets}, "cap": STRUCTURE_CAP, "decay": 0, "blend": 1}
+    if "r16h" in nets and law:  # the third stage of 16-bit samples: a two-sided geometric law
+        params["law"] = dict(LAW)
     model = Tessel(params, arrays)
     if str(adapt_k) == "auto":  # per depth, the grid value best on the validation images
         params["adapt"] = choose_adapt(model, val_images, echo)

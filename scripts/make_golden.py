@@ -171,6 +171,39 @@ def golden_tessel_structure():
         write_vector(name, data, model=mpath)
 
 
+def golden_tessel_law():
+    """The structure model file plus today's law stage of 16-bit samples (`train --kind image`
+    writes limit 255, cap 12) as a third model file, and containers made with it: pydicom's
+    MR_small.dcm (16 bits, noisy) and a signed 16-bit NPY with wide residuals (a crop of
+    scikit-image's camera times -97, plus a fixed pseudo-random texture)."""
+    import io
+    import warnings
+
+    import numpy as np
+    import skimage.data as skd
+    from pydicom.data import get_testdata_file
+
+    from lcodec import modelfile
+
+    mpath = os.path.join(HERE, "tessel-tiny-law.lcmodel")
+    names = ["tessel-l1-dicom16", "tessel-l1-signed16"]
+    if all(os.path.exists(os.path.join(HERE, n + ".lcodec")) for n in names):
+        print("keep tessel-l1-*")
+        return
+    warnings.simplefilter("ignore")
+    if not os.path.exists(mpath):
+        meta, arrays, _ = modelfile.load(os.path.join(HERE, "tessel-tiny-structure.lcmodel"))
+        arch = meta.pop("architecture")
+        meta.pop("arrays")
+        arch["params"]["law"] = {"limit": 255, "cap": 12}
+        modelfile.dump(mpath, arch, arrays, **meta)
+    a = skd.camera()[300:340, 120:168].astype(np.int32) * -97 + np.random.default_rng(5).integers(-300, 300, (40, 48))
+    buf = io.BytesIO()
+    np.save(buf, a.astype("<i2"))
+    for name, data in zip(names, (open(get_testdata_file("MR_small.dcm"), "rb").read(), buf.getvalue())):
+        write_vector(name, data, model=mpath)
+
+
 def main():
     os.makedirs(HERE, exist_ok=True)
     vectors = {"strata-v1-text": sample_text(1, 20_000), "strata-v1-binary": bytes(random.Random(2).randbytes(3000)) + bytes(range(256)) * 8}
@@ -181,6 +214,7 @@ def main():
     golden_braid_mixed()
     golden_tessel()
     golden_tessel_structure()
+    golden_tessel_law()
 
 
 if __name__ == "__main__":

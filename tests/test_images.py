@@ -31,9 +31,10 @@ LUT = np.maximum(1, np.round((1 << 20) * np.exp(-np.arange(768) / 32))).astype(n
 
 
 STRUCT = {"k": 24, "cap": 12, "decay": 0, "blend": 1}  # the second stage (structure counts), blended first stage
+LAW = {"limit": 255, "cap": 12}  # the third stage of 16-bit samples (two-sided geometric law)
 
 
-def random_tessel(seed=0, E=4, H=24, roles=("r8", "r16h", "r16l"), shift=1, adapt=64, structure=None):
+def random_tessel(seed=0, E=4, H=24, roles=("r8", "r16h", "r16l"), shift=1, adapt=64, structure=None, law=None):
     """An untrained pixel model: random integer weights over output biases shaped like a
     two-sided geometric law around residual 0, so that it compresses images (enough to
     exercise every path, stored frames aside). `structure`: None (off) or STRUCT-like
@@ -55,6 +56,8 @@ def random_tessel(seed=0, E=4, H=24, roles=("r8", "r16h", "r16l"), shift=1, adap
         params["adapt"] = {r: adapt for r in roles}
     if structure is not None:
         params["structure"] = dict(structure, k={r: structure["k"] for r in roles})
+    if law is not None:
+        params["law"] = dict(law)
     return Tessel(params, arrays)
 
 
@@ -462,7 +465,7 @@ def _tables(m, v, deep):
     return np.concatenate([t for _, t in m.teacher_tables(v, deep)])
 
 
-@pytest.mark.parametrize("adapt", [None, 64, "structure", "structure-unblended"])
+@pytest.mark.parametrize("adapt", [None, 64, "structure", "structure-unblended", "law"])
 @pytest.mark.parametrize("kind", ["grey8", "rgb8", "grey16"])
 def test_causal_property(kind, adapt):
     """Masked-autoencoder property (Germain et al., 2015): the table of every sub-symbol
@@ -471,6 +474,8 @@ def test_causal_property(kind, adapt):
     the structure stage too (its counts and weights are updated after each group)."""
     if adapt == "structure":
         m = random_tessel(structure=STRUCT)
+    elif adapt == "law":
+        m = random_tessel(structure=STRUCT, law={"limit": 2, "cap": 3})
     elif adapt == "structure-unblended":
         m = random_tessel(adapt=None, structure=dict(STRUCT, blend=0, decay=3, cap=4))
     else:
@@ -500,11 +505,15 @@ def test_causal_property(kind, adapt):
                     assert not np.array_equal(t[first + 1:], base[first + 1:]), (r, c, ch)
 
 
-@pytest.mark.parametrize("adapt", [None, 1, 3000, "structure", "structure-k1", "structure-unblended"])
-@pytest.mark.parametrize("kind", ["grey8", "rgb8", "grey16", "signed16"])
+@pytest.mark.parametrize("adapt", [None, 1, 3000, "structure", "structure-k1", "structure-unblended", "law", "law-alone"])
+@pytest.mark.parametrize("kind", ["grey8", "rgb8", "grey16", "signed16", "rgb16"])
 def test_parallel_pass_equals_step_pass(kind, adapt):
     if adapt == "structure":
         m = random_tessel(structure=STRUCT)
+    elif adapt == "law":  # all three stages
+        m = random_tessel(structure=STRUCT, law=LAW)
+    elif adapt == "law-alone":  # the network and the law only; scales halved every 3 samples
+        m = random_tessel(adapt=None, law={"limit": 3, "cap": 1})
     elif adapt == "structure-k1":  # the smallest priors and a short evidence cap
         m = random_tessel(adapt=1, structure=dict(STRUCT, k=1, cap=1))
     elif adapt == "structure-unblended":  # no first stage; decayed evidence
@@ -515,6 +524,8 @@ def test_parallel_pass_equals_step_pass(kind, adapt):
         a, lay_args = _sample("astronaut", 13, 17), (1, 0)
     elif kind in ("grey16", "signed16"):
         a, lay_args = (_sample("moon", 19, 11).astype(np.uint16) * 199), (2, 3 if kind == "signed16" else 0)
+    elif kind == "rgb16":  # three 16-bit channels: wide residuals, both signs, several blocks
+        a, lay_args = (_sample("astronaut", 9, 12).astype(np.uint16) * 257), (2, 0)
     else:
         a, lay_args = _sample("camera", 21, 10), (1, 0)
     if a.ndim == 2:
@@ -690,6 +701,97 @@ def test_upscaled_and_mosaic_images_round_trip(kind, model_file, tmp_path):
         assert cost["on"][0] < 0.5 * cost["off"][0] and cost["on"][1] < 1.1 * cost["off"][1], cost
 
 
+def test_law_params_refused(tmp_path):
+    from lcodec import modelfile
+    m = random_tessel(law=LAW)
+    for bad in ({"limit": -1, "cap": 12}, {"limit": 255}, {"limit": 255, "cap": 0}, {"limit": 255, "cap": 31},
+                {"limit": (1 << 16) + 1, "cap": 12}, {"limit": 2.5, "cap": 12}, {"limit": 255, "cap": 12, "x": 1}, 7):
+        p = str(tmp_path / "bad.lcmodel")
+        modelfile.dump(p, {"name": "tessel", "params": dict(m.params, law=bad)}, m.arrays)
+        with pytest.raises(ModelError, match="bad parameters.*law"):
+            load_model(p)
+
+
+def test_law_tables_follow_the_two_sided_geometric_law():
+    """Each level's tables, built from integers alone, against the law they stand for,
+    computed here in floats (the reference; floats never reach the coder): the high byte's
+    block masses and the low byte's shape in the centre, rising and falling blocks match
+    P(r) ~ t**|r| with mean |r| = 2t / (1 - t**2) = 2**(L/8) / 16, to the tables' rounding."""
+    import math
+    from lcodec.models.tessel import LAW_MIN_LEVEL, N_LEVELS, law_tables
+    tab = law_tables()
+    assert tab.shape == (4 * N_LEVELS, 256) and tab.dtype == np.int64 and tab.min() >= 1
+    assert (abs(tab.sum(1) - (1 << 20)) <= 256).all()
+    assert law_tables() is tab  # built once per process
+    r = np.arange(-128 - 256 * 128, 128 + 256 * 127)  # every residual of the 256 blocks
+    for L in range(LAW_MIN_LEVEL, N_LEVELS, 9):
+        m = 2 ** (L / 8) / 16
+        t = (math.sqrt(1 + m * m) - 1) / m
+        assert abs(2 * t / (1 - t * t) - m) < 1e-6 * m
+        p = np.exp(np.abs(r) * math.log(t))
+        p /= p.sum()
+        blocks = p.reshape(256, 256).sum(1)  # residual blocks from the most negative up: hi 128..255, 0..127
+        ref_hi = np.concatenate([blocks[128:], blocks[:128]])
+        got_hi = tab[L] / tab[L].sum()
+        big = ref_hi > 1e-4
+        assert np.allclose(got_hi[big], ref_hi[big], rtol=2e-3, atol=3e-6), L
+        for k, blk in ((1, 128), (2, 129), (3, 127)):  # centre (hi 0), hi 1 (rising residuals), hi 255
+            ref = p.reshape(256, 256)[blk]
+            ref = ref / ref.sum()
+            got = tab[k * N_LEVELS + L] / tab[k * N_LEVELS + L].sum()
+            assert np.allclose(got, ref, rtol=2e-3, atol=3e-6), (L, k)
+
+
+def test_law_stage_stays_exact_at_the_limits():
+    """`_mix_law` with stage-2 entries near their largest (2**32) and near 1, law rows at both
+    ends of the scale, evidence at both caps: integers in 1..2**53, equal to a plain-Python
+    recomputation (Python integers as the reference)."""
+    from lcodec.models.tessel import MIX_ONE, N_CTX, N_LEVELS, _mix_law, law_tables, weight_table
+    cap = 12
+    wtab, law = weight_table(cap), law_tables()
+    tab = np.full((3, 256), float((1 << 45) - 1))
+    tab[1, :] = 1.0
+    tab[2, :] = np.arange(1, 257) * float(1 << 24)
+    ctx = np.array([0, 1, 2], np.int64)
+    lrow = np.array([N_LEVELS - 1, 16, 3 * N_LEVELS + 50], np.int64)
+    D = np.zeros(N_CTX, np.int64)
+    D[0], D[1] = 256 * cap, -256 * cap
+    qa, tb, sums, out = (np.empty((3, 256), np.int64), np.empty((3, 256), np.int64), np.empty((3, 2), np.int64),
+                         np.empty((3, 256)))
+    _mix_law(tab, ctx, lrow, law, D, wtab, cap, qa, tb, sums, out)
+    assert (out >= 1).all() and out.max() < 2 ** 53 and (out == np.floor(out)).all()
+    for i in range(3):
+        t = [int(x) for x in tab[i]]
+        inv = (1 << 44) // sum(t)
+        q = [(x * inv) >> 24 for x in t]
+        b = [int(x) for x in law[lrow[i]]]
+        wb = int(wtab[(int(D[i]) >> 4) + 16 * cap])
+        invb = (1 << 44) // sum(b)
+        assert qa[i].tolist() == q and tb[i].tolist() == b and sums[i].tolist() == [sum(q) + 256, sum(b)]
+        assert out[i].tolist() == [float((MIX_ONE - wb) * x + wb * ((y * invb) >> 24) + 1) for x, y in zip(q, b)]
+
+
+def test_law_stage_learns_a_small_noisy_scan(model_file, tmp_path):
+    """pydicom's MR_small (64 x 64, 16 bits, residuals around 80 wide): the law stage learns its
+    noise from a few hundred samples, which count tables of 256 symbols cannot; the archive
+    round-trips byte-exact and pydicom reads the samples back unchanged."""
+    import pydicom
+    data = open(_dicom("MR_small.dcm"), "rb").read()
+    v = pydicom.dcmread(io.BytesIO(data)).pixel_array.astype(np.uint16)[:, :, None]
+    bits = {}
+    for name, law in (("off", None), ("on", LAW)):
+        m = random_tessel(structure=STRUCT, law=law)
+        bits[name] = sum(float(-np.log2(t[np.arange(len(s_)), s_] / t.sum(1)).sum()) for s_, t in m.teacher_tables(v, True))
+    assert bits["on"] < 0.9 * bits["off"], bits
+    from lcodec import modelfile
+    p = str(tmp_path / "law.lcmodel")
+    m = random_tessel(structure=STRUCT, law=LAW)
+    modelfile.dump(p, {"name": "tessel", "params": m.params}, m.arrays)
+    blob = lcodec.pack(data, model=p)
+    out = lcodec.unpack(blob, model=p)
+    assert out == data and np.array_equal(pydicom.dcmread(io.BytesIO(out)).pixel_array, v[:, :, 0])
+
+
 def test_structure_params_refused(tmp_path):
     from lcodec import modelfile
     m = random_tessel(structure=STRUCT)
@@ -736,10 +838,38 @@ def test_train_image_cli(tmp_path):
     assert "skipped" in r.stderr and "exported r8" in r.stderr
     params = load_model(str(out)).inner.params  # the defaults: both per-image stages
     assert params["adapt"] == {"r8": 4096} and params["structure"] == {"k": {"r8": 32}, "cap": 12, "decay": 0, "blend": 1}
+    assert "law" not in params  # the law stage is for 16-bit samples only
     data = _pgm(_sample("page", 30, 30))
     blob = lcodec.pack(data, model=str(out))
     assert lcodec.info(blob)["frames"][0]["method"] == "modelled/image"
     assert lcodec.unpack(blob, model=str(out)) == data
+
+
+@pytest.mark.parametrize("flag", [None, "--no-law"])
+def test_train_image_cli_16bit_law_stage(flag, tmp_path):
+    """16-bit training images: the model carries the law stage unless --no-law; a 16-bit
+    NPY packed with it round-trips and numpy reads the samples back."""
+    pytest.importorskip("torch")
+    d = tmp_path / "scans"
+    d.mkdir()
+    for n in ("camera", "coins"):
+        a = _sample(n, 40, 48).astype(np.uint16) * 37 + 900
+        buf = io.BytesIO()
+        np.save(buf, a)
+        (d / f"{n}.npy").write_bytes(buf.getvalue())
+    out = tmp_path / "m.lcmodel"
+    cmd = [sys.executable, "-m", "lcodec", "train", "--kind", "image", str(d), "-o", str(out), "--time-limit", "3",
+           "--preset", "tiny"] + ([flag] if flag else [])
+    r = subprocess.run(cmd, capture_output=True, text=True, env=dict(os.environ, PYTHONPATH=os.getcwd()))
+    assert r.returncode == 0, r.stderr
+    params = load_model(str(out)).inner.params
+    assert params.get("law") == (None if flag else {"limit": 255, "cap": 12})
+    a = _sample("page", 30, 30).astype(np.uint16) * 41
+    buf = io.BytesIO()
+    np.save(buf, a)
+    blob = lcodec.pack(buf.getvalue(), model=str(out))
+    assert lcodec.info(blob)["frames"][0]["method"] == "modelled/image"
+    assert np.array_equal(np.load(io.BytesIO(lcodec.unpack(blob, model=str(out)))), a)
 
 
 def test_bench_kind_image_cli(model_file, tmp_path):
@@ -759,6 +889,21 @@ def test_bench_kind_image_cli(model_file, tmp_path):
     rows = {x["file"]: x for x in json.loads(j.read_text())["rows"]}
     assert rows["a.pgm"]["codecs"]["jpegxl"] == len(imagecodecs.jpegxl_encode(_sample("camera", 32, 40), lossless=True, effort=9))
     assert rows["b.dcm"]["codecs"]["webp"] is None and rows["b.dcm"]["bits"] == 16
+    # the file's other bytes (for the whole-file comparison): everything but the pixel data
+    # element's value, as pydicom reads it; xz -9e of them, never more than their raw size
+    import lzma
+    import pydicom
+    raw = open(_dicom("MR_small.dcm"), "rb").read()
+    pv = pydicom.dcmread(_dicom("MR_small.dcm")).PixelData
+    i = raw.rfind(pv)
+    side = raw[:i] + raw[i + len(pv):]
+    assert rows["b.dcm"]["side_bytes"] == len(side)
+    assert rows["b.dcm"]["side_xz_bytes"] == len(lzma.compress(side, preset=9 | lzma.PRESET_EXTREME))
+    assert 0 < rows["a.pgm"]["side_xz_bytes"] == rows["a.pgm"]["side_bytes"] < 64  # a PGM header: raw is smaller
+    tot = json.loads(j.read_text())["totals"]
+    n = sum(x["subpixels"] for x in rows.values())
+    side_bits = 8 * sum(x["side_xz_bytes"] for x in rows.values()) / n
+    assert abs(tot["jpeg2000+xz_side"] - tot["jpeg2000"] - side_bits) < 1e-9
     r = subprocess.run([sys.executable, "-m", "lcodec", "bench", "--kind", "image", str(d)], capture_output=True,
                        text=True, env=dict(os.environ, PYTHONPATH=os.getcwd()))
     assert r.returncode == 2 and "pixel model" in r.stderr
@@ -786,6 +931,36 @@ def test_golden_image_containers_exist():
 
 
 GOLDEN_STRUCTURE = sorted(f[:-7] for f in os.listdir(GOLDEN) if f.startswith("tessel-s1-") and f.endswith(".lcodec"))
+
+
+GOLDEN_LAW = sorted(f[:-7] for f in os.listdir(GOLDEN) if f.startswith("tessel-l1-") and f.endswith(".lcodec"))
+
+
+def test_golden_law_vectors_exist():
+    assert GOLDEN_LAW == ["tessel-l1-dicom16", "tessel-l1-signed16"]
+
+
+@pytest.mark.parametrize("name", GOLDEN_LAW)
+def test_golden_law_containers_decode_exactly(name):
+    """The model file with the law stage (tessel-tiny-law.lcmodel): its 16-bit containers
+    decode to the original bytes (samples as pydicom / numpy read them), as modelled image
+    frames, with 1 and 2 decoding threads, and today's encoder writes the same bytes; the
+    law stage makes MR_small's archive smaller than the structure model's golden one."""
+    model = os.path.join(GOLDEN, "tessel-tiny-law.lcmodel")
+    assert load_model(model).inner.params["law"] == {"limit": 255, "cap": 12}
+    blob = open(os.path.join(GOLDEN, name + ".lcodec"), "rb").read()
+    orig = open(os.path.join(GOLDEN, name + ".orig"), "rb").read()
+    assert lcodec.info(blob)["frames"][0]["method"] == "modelled/image"
+    assert lcodec.unpack(blob, model=model) == orig
+    assert b"".join(api.decode(blob, model=model, workers=2).frames) == orig
+    assert lcodec.pack(orig, model=model) == blob
+    if name.endswith("dicom16"):  # reference reader: pydicom
+        assert np.array_equal(pydicom.dcmread(io.BytesIO(orig)).pixel_array,
+                              pydicom.dcmread(_dicom("MR_small.dcm")).pixel_array)
+        assert len(blob) < 0.9 * os.path.getsize(os.path.join(GOLDEN, "tessel-s1-dicom16.lcodec"))
+    else:  # reference reader: numpy
+        want = skdata.camera()[300:340, 120:168].astype(np.int32) * -97 + np.random.default_rng(5).integers(-300, 300, (40, 48))
+        assert np.array_equal(np.load(io.BytesIO(orig)), want.astype("<i2"))
 
 
 @pytest.mark.parametrize("name", GOLDEN_STRUCTURE)

@@ -33,6 +33,7 @@ integers, so their tables agree bit for bit.
 """
 from __future__ import annotations
 
+import math
 import threading
 from contextlib import contextmanager
 
@@ -62,6 +63,8 @@ N_KEYS = 256  # structure keys of the second count table (`_context`)
 SCTX_BASE = {"r8": 0, "r16h": N_KEYS, "r16l": 2 * N_KEYS}
 N_SCTX = 6 * N_KEYS  # r8 256, r16h 256, r16l 256 x 4 high-byte classes
 MIX_ONE = 1 << 12  # the two estimates' weights sum to this
+N_LEVELS = 160  # scale levels of the law stage: mean |residual| 2**(L/8) / 16 (1/16 .. ~58,000)
+LAW_MIN_LEVEL = 16  # the smallest scale used: mean 1/4
 # LOG2_TAB[i] = floor(256 * log2(1 + i/256)), from integers alone: (256 + i)**256 has bit
 # length 2048 + floor(256 * log2(1 + i/256)) + 1
 LOG2_TAB = np.array([((256 + i) ** 256).bit_length() - 1 - 2048 for i in range(256)], np.int64)
@@ -229,6 +232,32 @@ def _ilog(x):
 
 
 @njit(cache=True, nogil=True)
+def _norm_row(tab, i, qa):
+    """qa[i] = row i of tab normalised to about 2**20 (tab entries below 2**45); returns the
+    row's sum plus 256 (the +1 of every mixed entry, for the code length under A)."""
+    tot = np.int64(0)
+    for j in range(256):
+        tot += np.int64(tab[i, j])  # < 256 * 2**45 = 2**53
+    inv = (np.int64(1) << 44) // tot
+    sa = np.int64(0)
+    for j in range(256):
+        qa[i, j] = (np.int64(tab[i, j]) * inv) >> 24  # tab * inv <= 2**44 (tab <= tot): qa <= 2**20
+        sa += qa[i, j]
+    return sa + 256
+
+
+@njit(cache=True, nogil=True)
+def _weigh_row(qa, tb, i, sb, wb, out):
+    """out[i] = (MIX_ONE - wb) * qa[i] + wb * (tb[i] normalised to 2**20) + 1, sb = sum of tb[i]
+    (below 2**44 / max(tb) * 2**44: tb * invb <= 2**44)."""
+    invb = (np.int64(1) << 44) // sb
+    wa = MIX_ONE - wb
+    for j in range(256):
+        qb = (tb[i, j] * invb) >> 24  # tb * invb <= 2**44: qb <= 2**20
+        out[i, j] = np.float64(wa * qa[i, j] + wb * qb + 1)  # <= 2**12 * 2**20 + 1 < 2**53
+
+
+@njit(cache=True, nogil=True)
 def _mix2(tab, ctx, K2, counts, D, wtab, cap, qa, tb, sums, out):
     """The second stage: A = tab (the network, or the network mixed with the activity counts;
     entries below 2**45), B = the structure counts with A as a prior of strength K2, and
@@ -236,36 +265,21 @@ def _mix2(tab, ctx, K2, counts, D, wtab, cap, qa, tb, sums, out):
     evidence D of the row's structure context (code length of A minus that of B so far).
     Keeps A (qa), B (tb) and their sums for `_update2`."""
     for i in range(tab.shape[0]):
-        tot = np.int64(0)
-        for j in range(256):
-            tot += np.int64(tab[i, j])  # < 256 * 2**45 = 2**53
-        inv = (np.int64(1) << 44) // tot
-        sa = np.int64(0)
-        for j in range(256):
-            qa[i, j] = (np.int64(tab[i, j]) * inv) >> 24  # tab * inv <= 2**44 (tab <= tot): qa <= 2**20
-            sa += qa[i, j]
+        sums[i, 0] = _norm_row(tab, i, qa)
         row = ctx[i]
         sb = np.int64(0)
         for j in range(256):
             # K2 <= 2**16, qa >> 4 <= 2**16: <= 2**32; counts < 2**13, << 16: < 2**29
             tb[i, j] = K2 * (qa[i, j] >> 4) + (np.int64(counts[row, j]) << 16) + 1
             sb += tb[i, j]  # < 256 * 2**33 = 2**41
-        sums[i, 0] = sa + 256
         sums[i, 1] = sb
-        invb = (np.int64(1) << 44) // sb
-        d = D[row]
-        wb = wtab[(d >> 4) + 16 * cap]  # D in -256 cap .. 256 cap
-        wa = MIX_ONE - wb
-        for j in range(256):
-            qb = (tb[i, j] * invb) >> 24  # tb * invb <= 2**44: qb <= 2**20
-            out[i, j] = np.float64(wa * qa[i, j] + wb * qb + 1)  # <= 2**12 * 2**20 + 1 < 2**53
+        _weigh_row(qa, tb, i, sb, wtab[(D[row] >> 4) + 16 * cap], out)  # D in -256 cap .. 256 cap
 
 
 @njit(cache=True, nogil=True)
-def _update2(ctx, syms, counts, tots, D, cap, decay, qa, tb, sums):
+def _evidence(ctx, syms, D, cap, decay, qa, tb, sums):
     """After a group: each symbol's code length under A and under B (1/256 bit, `_ilog`) moves
-    its context's evidence D (kept in -256 cap .. 256 cap, optionally decayed by D >> decay),
-    then the symbol is counted, in lane order."""
+    its context's evidence D (kept in -256 cap .. 256 cap, optionally decayed by D >> decay)."""
     lim = np.int64(256) * cap
     for i in range(ctx.shape[0]):
         row = ctx[i]
@@ -276,17 +290,127 @@ def _update2(ctx, syms, counts, tots, D, cap, decay, qa, tb, sums):
         if decay > 0:
             d -= d >> decay
         D[row] = min(max(d, -lim), lim)
+
+
+@njit(cache=True, nogil=True)
+def _update2(ctx, syms, counts, tots, D, cap, decay, qa, tb, sums):
+    """After a group: the evidence (`_evidence`), then the symbols counted, in lane order."""
+    _evidence(ctx, syms, D, cap, decay, qa, tb, sums)
     _update(ctx, syms, counts, tots)
+
+
+# -- the law stage (16-bit samples): a two-sided geometric law of the residual ---------------
+@njit(cache=True, nogil=True)
+def _law_rows(cls, his, A, Nc, lrow):
+    """Row of the law table for each sub-symbol: the scale level L from its activity class's
+    mean |residual| so far (with the class itself as one prior observation: mean 2**(c-1)),
+    L = floor(8 log2(16 mean)) in LAW_MIN_LEVEL..N_LEVELS-1; his[i] < 0: a high byte (rows
+    0..N_LEVELS-1), else the low byte under high byte his[i]: the centre block (hi 0), a block
+    of positive residuals (1..127: the law falls with the low byte) or of negative ones."""
+    for i in range(cls.shape[0]):
+        c = cls[i]
+        est = ((A[c] + (np.int64(1) << max(c - 1, 0))) << 4) // (Nc[c] + 1)
+        L = min(max(_ilog(max(est, np.int64(1))) >> 5, LAW_MIN_LEVEL), N_LEVELS - 1)
+        h = his[i]
+        if h < 0:
+            lrow[i] = L
+        else:
+            lrow[i] = (1 + (0 if h == 0 else (1 if h < 128 else 2))) * N_LEVELS + L
+
+
+@njit(cache=True, nogil=True)
+def _mix_law(tab, ctx, lrow, law, D, wtab, cap, qa, tb, sums, out):
+    """The law stage: A = tab (what the stages before gave), B = the law table's row lrow,
+    weighed like `_mix2` by the evidence D of the row's context (role, activity class)."""
+    for i in range(tab.shape[0]):
+        sums[i, 0] = _norm_row(tab, i, qa)
+        sb = np.int64(0)
+        for j in range(256):
+            tb[i, j] = law[lrow[i], j]  # 1 .. 2**20 + 1
+            sb += tb[i, j]
+        sums[i, 1] = sb
+        _weigh_row(qa, tb, i, sb, wtab[(D[ctx[i]] >> 4) + 16 * cap], out)
+
+
+@njit(cache=True, nogil=True)
+def _law_count(cls, his, los, A, Nc, limit):
+    """After a low-byte group: each sample's |residual| (the 16-bit symbol unwrapped to
+    -32768..32767 around the offset) joins its class's sum; halved past `limit` samples."""
+    for i in range(cls.shape[0]):
+        r = ((his[i] << 8) | los[i]) - HI_OFFSET
+        if r >= 32768:
+            r -= 65536
+        c = cls[i]
+        A[c] += r if r >= 0 else -r
+        Nc[c] += 1
+        if Nc[c] > limit:
+            A[c] >>= 1
+            Nc[c] >>= 1
+
+
+def _root8() -> list:
+    """floor(2**(f/8) * 2**30), f = 0..7: the largest y with y**8 <= 2**(f + 240) (integers)."""
+    out = []
+    for f in range(8):
+        t, y, step = 1 << (f + 240), 1 << 30, 1 << 30
+        while step:
+            if (y + step) ** 8 <= t:
+                y += step
+            step >>= 1
+        out.append(y)
+    return out
+
+
+_LAW = []
+
+
+def law_tables() -> np.ndarray:
+    """The law stage's tables, (4 N_LEVELS, 256) int64, from integers alone (built once per
+    process). Level L: mean |residual| m = 2**(L/8) / 16 and the two-sided geometric law
+    P(r) ~ t**|r| with t = (sqrt(1 + m**2) - 1) / m, whose mean |r| is 2t / (1 - t**2) = m
+    (fixed point 2**30, every product floored). Rows 0..N_LEVELS-1: the high byte (the mass
+    of each block of 256 residuals); then the low byte in the centre block, in a block of
+    positive residuals (t**lo) and of negative ones (t**(255 - lo)). Each row scaled to sum
+    about 2**20, every entry at least 1."""
+    if _LAW:
+        return _LAW[0]
+    one = 1 << 30
+    root = _root8()
+    out = np.empty((4 * N_LEVELS, 256), np.int64)
+    for L in range(N_LEVELS):
+        M = (root[L % 8] << (L // 8)) >> 4  # the mean in fixed point
+        t = ((math.isqrt(one * one + M * M) - one) << 30) // M
+        pw = [one]
+        for _ in range(256):
+            pw.append(pw[-1] * t >> 30)
+        centre = [pw[abs(j - 128)] for j in range(256)]
+        falling = pw[:256]
+        S = sum(falling)
+        hi = [sum(centre)] + [0] * 255
+        T, U, G = pw[128], pw[129], pw[256]
+        for h in range(1, 128):  # residuals 256h-128 .. 256h+127
+            hi[h] = T * S >> 30
+            T = T * G >> 30
+        for j in range(1, 129):  # block 256-j: residuals -256j-128 .. -256j+127
+            hi[256 - j] = U * S >> 30
+            U = U * G >> 30
+        for k, row in enumerate((hi, centre, falling, falling[::-1])):
+            tot = sum(row)
+            out[k * N_LEVELS + L] = [x * (1 << 20) // tot + 1 for x in row]
+    _LAW.append(out)
+    return out
 
 
 @njit(cache=True, nogil=True)
 def _mix_chunk(tab, ctx, syms, gid, Ks, counts, tots, mid, ctx2, K2s, counts2, tots2, D, wtab, cap, decay,
-               qa, tb, sums, out, blend, D1):
+               qa, tb, sums, out, blend, D1, limit, lcls, lhi, lrow, law, A, Nc, D3, wtab3, cap3, out3):
     """The encoder's side of the adaptive counts: group by group (one wavefront step and
     sub-symbol, as the decoder sees them), every table from the state before the group,
     then the group's symbols counted in lane order. Stage 1: the network mixed with the
     activity counts (K; with `blend`, weighed against the network alone like stage 2, evidence
-    D1); stage 2: that mixed with the structure counts (K2)."""
+    D1); stage 2: that mixed with the structure counts (K2); with `limit` > 0 (16-bit samples
+    only), stage 3: that weighed against the law (evidence D3), whose scales learn from each
+    low-byte group (lhi >= 0: the high byte of the same sample) once it is coded."""
     n = tab.shape[0]
     i = 0
     while i < n:
@@ -308,6 +432,12 @@ def _mix_chunk(tab, ctx, syms, gid, Ks, counts, tots, mid, ctx2, K2s, counts2, t
             _update2(ctx2[i:j], syms[i:j], counts2, tots2, D, cap, decay, qa[i:j], tb[i:j], sums[i:j])
         else:
             out[i:j] = mid[i:j]
+        if limit > 0:
+            _law_rows(lcls[i:j], lhi[i:j], A, Nc, lrow[i:j])
+            _mix_law(out[i:j], ctx[i:j], lrow[i:j], law, D3, wtab3, cap3, qa[i:j], tb[i:j], sums[i:j], out3[i:j])
+            _evidence(ctx[i:j], syms[i:j], D3, cap3, 0, qa[i:j], tb[i:j], sums[i:j])
+            if lhi[i] >= 0:
+                _law_count(lcls[i:j], lhi[i:j], syms[i:j], A, Nc, limit)
         i = j
 
 
@@ -466,9 +596,9 @@ class Tessel:
     def __init__(self, params: dict, arrays: dict, backend: str = "numpy"):
         p = params
         if not isinstance(p, dict) or not {"embed", "hidden", "chan_shift", "roles", "bytes"} <= set(p) <= {
-                "embed", "hidden", "chan_shift", "roles", "bytes", "adapt", "structure"}:
+                "embed", "hidden", "chan_shift", "roles", "bytes", "adapt", "structure", "law"}:
             raise ValueError("tessel needs embed, hidden, chan_shift, roles and bytes "
-                             "(and optionally adapt, structure)")
+                             "(and optionally adapt, structure, law)")
         adapt = p.get("adapt", {})
         if not isinstance(adapt, dict) or not set(adapt) <= set(p["roles"]) or not all(
                 type(k) is int and 0 <= k <= 1 << 16 for k in adapt.values()):
@@ -487,6 +617,13 @@ class Tessel:
         self.blend = st["blend"]
         self.cap, self.decay = st["cap"], st["decay"]
         self.wtab = weight_table(self.cap)
+        law = p.get("law", {"limit": 0, "cap": 1})  # absent: off (older files)
+        if (not isinstance(law, dict) or set(law) != {"limit", "cap"} or type(law["limit"]) is not int
+                or not 0 <= law["limit"] <= 1 << 16 or type(law["cap"]) is not int or not 1 <= law["cap"] <= 30):
+            raise ValueError("law needs limit (samples per class before halving, 0 = off, at most 65536) "
+                             "and cap 1..30")
+        self.law_limit, self.law_cap = law["limit"], law["cap"]
+        self.law_wtab = weight_table(self.law_cap)
         E, H = p["embed"], p["hidden"]
         if not all(type(x) is int and x >= 1 for x in (E, H)):
             raise ValueError("embed and hidden must be positive integers")
@@ -582,6 +719,18 @@ class Tessel:
         tots2 = np.zeros(N_SCTX, np.int64)
         D = np.zeros(N_SCTX, np.int64)
         D1 = np.zeros(N_CTX, np.int64)
+        # the law stage (16-bit samples): each symbol's activity class, and for a low byte the
+        # high byte of its sample (-1 for a high byte); scale sums and evidence per image
+        limit = self.law_limit if deep else 0
+        law = law_tables() if limit else np.zeros((1, 256), np.int64)
+        lcls = np.zeros(len(syms), np.int64)
+        lhi = np.full(len(syms), -1, np.int64)
+        if deep:  # raster order: high byte, low byte of each sample; contexts as `_teacher` sets them
+            lcls[0::2] = ctx[0::2].astype(np.int64) - N_CLASSES
+            lcls[1::2] = (ctx[1::2].astype(np.int64) - 2 * N_CLASSES) >> 2
+            lhi[1::2] = syms[0::2]
+        lrow = np.empty(len(syms), np.int64)
+        A, Nc, D3 = np.zeros(N_CLASSES, np.int64), np.zeros(N_CLASSES, np.int64), np.zeros(N_CTX, np.int64)
         ends, last = [], 0
         for b in bounds.tolist() + [len(order)]:  # chunks of whole groups, about CHUNK symbols
             if b - last >= CHUNK or b == len(order):
@@ -600,14 +749,16 @@ class Tessel:
                         tab[sel] = self.role_tables(role, ci[sel])
             else:
                 tab[:] = self.role_tables("r8", ci)
-            if K.any() or K2.any():
+            if K.any() or K2.any() or limit:
                 mid, out = np.empty_like(tab), np.empty_like(tab)
-                m2 = len(o) if (K2.any() or self.blend) else 0
+                m2 = len(o) if (K2.any() or self.blend or limit) else 0
                 qa, tb = np.empty((m2, 256), np.int64), np.empty((m2, 256), np.int64)
+                out3 = np.empty_like(tab) if limit else out
                 _mix_chunk(tab, ctx[o].astype(np.int64), cs, gid[i:j], K[roles[o]], counts, tots, mid,
                            ctx2[o].astype(np.int64), K2[roles[o]], counts2, tots2, D, self.wtab, self.cap,
-                           self.decay, qa, tb, np.empty((m2, 2), np.int64), out, self.blend, D1)
-                tab = out
+                           self.decay, qa, tb, np.empty((m2, 2), np.int64), out, self.blend, D1,
+                           limit, lcls[o], lhi[o], lrow[:len(o)], law, A, Nc, D3, self.law_wtab, self.law_cap, out3)
+                tab = out3
             yield cs, tab
             i = j
 
@@ -632,9 +783,16 @@ class Tessel:
         mixed2 = np.empty((cap, 256), np.float64)
         qa1, tb1, sums1 = np.empty((cap, 256), np.int64), np.empty((cap, 256), np.int64), np.empty((cap, 2), np.int64)
         qa, tb, sums = np.empty((cap, 256), np.int64), np.empty((cap, 256), np.int64), np.empty((cap, 2), np.int64)
+        limit = self.law_limit if deep else 0
+        law = law_tables() if limit else None
+        A, Nc, D3 = np.zeros(N_CLASSES, np.int64), np.zeros(N_CLASSES, np.int64), np.zeros(N_CTX, np.int64)
+        lrow = np.empty(cap, np.int64)
+        mixed3 = np.empty((cap, 256), np.float64)
+        qa3, tb3, sums3 = np.empty((cap, 256), np.int64), np.empty((cap, 256), np.int64), np.empty((cap, 2), np.int64)
+        no_hi = np.full(cap, -1, np.int64)
         n_steps = cols + DELAY * (rows - 1)
 
-        def table(role, m, ctx, ctx2):
+        def table(role, m, ctx, ctx2, his=None):
             tab = self.role_tables(role, idx[:m])
             K, K2 = self.adapt.get(role, 0), self.k2.get(role, 0)
             if K and self.blend:
@@ -646,6 +804,11 @@ class Tessel:
             if K2:
                 _mix2(tab, ctx2, K2, counts2, D, self.wtab, self.cap, qa[:m], tb[:m], sums[:m], mixed2[:m])
                 tab = mixed2[:m]
+            if limit:
+                _law_rows(cls[:m], no_hi[:m] if his is None else his, A, Nc, lrow[:m])
+                _mix_law(tab, ctx, lrow[:m], law, D3, self.law_wtab, self.law_cap, qa3[:m], tb3[:m], sums3[:m],
+                         mixed3[:m])
+                tab = mixed3[:m]
             if record is not None:
                 record.append(tab.copy())
             syms = np.asarray(decode(tab), np.int64)
@@ -655,6 +818,10 @@ class Tessel:
                 _update(ctx, syms, counts, tots)
             if K2:
                 _update2(ctx2, syms, counts2, tots2, D, self.cap, self.decay, qa[:m], tb[:m], sums[:m])
+            if limit:
+                _evidence(ctx, syms, D3, self.law_cap, 0, qa3[:m], tb3[:m], sums3[:m])
+                if his is not None:
+                    _law_count(cls[:m], his, syms, A, Nc, limit)
             return syms
 
         with one_blas_thread():  # small products: one BLAS thread is faster
@@ -669,7 +836,8 @@ class Tessel:
                         hi = table("r16h", m, N_CLASSES + cls[:m], N_KEYS + keys[:m])
                         idx[:m, HI_SLOT] = HI_SLOT * Q + hi
                         hib = np.where(hi == 0, 0, np.where(hi == 255, 1, np.where(hi == 1, 2, 3)))
-                        lo = table("r16l", m, 2 * N_CLASSES + cls[:m] * 4 + hib, 2 * N_KEYS + keys[:m] * 4 + hib)
+                        lo = table("r16l", m, 2 * N_CLASSES + cls[:m] * 4 + hib, 2 * N_KEYS + keys[:m] * 4 + hib,
+                                   hi.astype(np.int64))
                     else:
                         hi, lo = zero, table("r8", m, cls[:m].copy(), keys[:m].copy())
                     _apply(v, e, r0, r1, t, ch, deep, preds, hi, lo)
