@@ -799,9 +799,7 @@ def _threaded_frames(cont: C.Container, m, workers: int):
     pool = ThreadPoolExecutor(workers)
     ahead = deque()
     frames = iter(cont.frames)
-    # BLAS on one thread, set here in the calling thread: a limit set inside a decoding thread
-    # was not always applied (threadpoolctl reported the old setting); decoders' own requests
-    # then only count users
+    # BLAS on one thread, set here in the calling thread too (kept for the process: tessel)
     with one_blas_thread():
         try:
             for fr in frames:
@@ -912,6 +910,9 @@ def decode(blob, model=None, progress=None, keep_going: bool = False, workers: i
 
     if workers > 1 and len(cont.frames) > 1:  # frames are independent: decode them side by side
         from concurrent.futures import ThreadPoolExecutor
+        from .models.tessel import limit_blas
+        limit_blas()  # in the calling thread too: a limit asked in a worker thread alone was
+        # not always what the other threads saw (threadpoolctl reported the old setting)
         pool = ThreadPoolExecutor(workers)
         results = pool.map(one, cont.frames)
     else:

@@ -11,11 +11,18 @@ import json
 import os
 import sys
 
-import click
+# BLAS on one thread unless the user says otherwise, set before numpy loads (the first
+# lcodec module that imports it follows): the pixel model's products are small, and two
+# BLAS threads only fight lcodec's own workers for the cores (packing the image bench's
+# 8-bit test set took 9.5 s with two and 6.2-6.6 s with one, load about 3; DEVELOPERS.md,
+# "Decoding threads"). Training uses torch's own thread pool, which this leaves alone.
+os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
 
-from . import __version__
-from .errors import LcodecError, UsageError
-from .fsio import ARCHIVE_EXT, atomic_write, map_input, map_stream, read_input
+import click  # noqa: E402
+
+from . import __version__  # noqa: E402
+from .errors import LcodecError, UsageError  # noqa: E402
+from .fsio import ARCHIVE_EXT, atomic_write, map_input, map_stream, read_input  # noqa: E402
 
 EXAMPLES = {
     "pack": "lcodec pack station-logs/ -o station-logs" + ARCHIVE_EXT + " --jobs auto\n"

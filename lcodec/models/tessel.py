@@ -513,30 +513,28 @@ def _apply(v, e, r0, r1, t, ch, deep, preds, hi, lo):
         e[r, c, ch] = x - p
 
 
-_BLAS = {"lock": threading.Lock(), "users": 0, "limits": None}
+_BLAS = {"lock": threading.Lock()}
+
+
+def limit_blas() -> None:
+    """BLAS on one thread from the first image decoded on, for the rest of the process (the
+    products are small: one thread is faster). The setting is process-wide and deliberately
+    not restored: restoring it after each decode made OpenBLAS change its thread count back
+    and forth, and a decode in 2 threads after such a change ran at 4,800-16,000 pixels per
+    second against 274,000-283,000 with the limit kept (load about 3; DEVELOPERS.md,
+    "Decoding threads"). Asked on every call (about 0.4 ms), so that a BLAS library loaded
+    since the last call is limited too."""
+    from threadpoolctl import threadpool_limits
+
+    with _BLAS["lock"]:
+        threadpool_limits(limits=1, user_api="blas")
 
 
 @contextmanager
 def one_blas_thread():
-    """BLAS on one thread while any image is decoded (its products are small: one thread is
-    faster). The limit is process-wide, so it is set by the first decoder to enter and
-    restored by the last to leave: per-call limits in concurrent decoders (`--threads`)
-    restored each other's settings, leaving BLAS on two threads mid-decode and on one
-    thread after it."""
-    from threadpoolctl import threadpool_limits
-
-    with _BLAS["lock"]:
-        if _BLAS["users"] == 0:
-            _BLAS["limits"] = threadpool_limits(limits=1, user_api="blas")
-        _BLAS["users"] += 1
-    try:
-        yield
-    finally:
-        with _BLAS["lock"]:
-            _BLAS["users"] -= 1
-            if _BLAS["users"] == 0:
-                _BLAS["limits"].restore_original_limits()
-                _BLAS["limits"] = None
+    """`limit_blas` around a decode (kept after it)."""
+    limit_blas()
+    yield
 
 
 def wavefront_rows(t: int, rows: int, cols: int) -> tuple[int, int]:
