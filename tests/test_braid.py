@@ -193,6 +193,23 @@ def test_golden_mixed_model_and_container():
     assert lcodec.pack(orig, model=model, frame_size=140_000) == blob
 
 
+def test_golden_fork_model_and_container():
+    """The default preset since the tree refinement (made by scripts/make_golden.py): its
+    parameters name the refinement, and the container (first frame in two lanes) still
+    decodes and re-encodes byte for byte; decoding it in two threads agrees."""
+    from lcodec.container import read_container
+
+    model = os.path.join(GOLDEN, "braid-fork-tiny.lcmodel")
+    blob = open(os.path.join(GOLDEN, "braid-v2-fork.lcodec"), "rb").read()
+    orig = open(os.path.join(GOLDEN, "braid-v2-fork.orig"), "rb").read()
+    p = modelfile.load(model)[0]["architecture"]["params"]
+    assert (p["fork_shift"], p["fork_mix_shift"], p["fork_cut"]) == (3, 15, 7) and p["mix_shift"] == 16
+    assert read_container(blob).frames[0].lanes == 2
+    assert lcodec.unpack(blob, model=model) == orig
+    assert lcodec.unpack(blob, model=model, workers=2) == orig
+    assert lcodec.pack(orig, model=model, frame_size=140_000) == blob
+
+
 def test_train_cli_default_preset_is_braid(tmp_path):
     corpus = tmp_path / "corpus"
     corpus.mkdir()
@@ -333,7 +350,7 @@ def test_hostile_mixed_model_files_are_refused(tiny_mixed, tmp_path, damage):
 
 
 # -- refinement on the byte's binary tree (model parameters fork_*) ----------------------------
-FORK = {"fork_shift": 3, "fork_mix_shift": 15, "fork_cut": 10}
+FORK = {"fork_shift": 3, "fork_mix_shift": 15, "fork_cut": 10}  # (the preset cuts at 7; 10 refines more nodes)
 
 
 @pytest.fixture(scope="module")
@@ -525,6 +542,7 @@ def test_fork_arithmetic_matches_python_integers():
         for u in range(FORK_TABLES):
             c = fork[7][0][u]
             fork[0][c * 256:(c + 1) * 256] = rng.choice([0, 1, FORK_ONE - 1, FORK_ONE, 777, 40000], (256, FORK_POINTS))
+            fork[1][c * 256:(c + 1) * 256] = 1  # (rows are otherwise set to the grid when first read)
         tabrows = [fork[0][c * 256:(c + 1) * 256].copy() for c in fork[7][0]]
         wts = fork[11].copy()
         ref, pos, xin, pout = _py_fork_predict(FORK_STRETCH, p, 10, tabrows, wts)

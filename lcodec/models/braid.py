@@ -446,7 +446,7 @@ def _fork_tables():
     target[1:] = (q[1:] << 30) // (FORK_ONE - q[1:])  # < 2**46
     st = np.clip(np.searchsorted(o30, target, side="right") - 1 - FORK_LIM, -FORK_LIM, FORK_LIM)
     sq = np.clip((o30 << 16) // (o30 + (1 << 30)), 1, FORK_ONE - 1)  # o30 < 2**43: < 2**59
-    return st.astype(np.int32), sq[::FORK_STEP].astype(np.int32).copy(), sq
+    return st.astype(np.int16), sq[::FORK_STEP].astype(np.int32).copy(), sq
 
 
 FORK_STRETCH, FORK_GRID, FORK_SQUASH = _fork_tables()
@@ -479,13 +479,6 @@ def _fork_predict(fork, b, hist, p, buf, cur):
     cx[0] = np.int64(c1)
     cx[1] = 256 + _fork_hash(hist & np.uint64(0xFFFF), np.uint64(11))
     cx[2] = 256 + (1 << FORK_HASH_BITS) + _fork_hash((above << np.uint64(8)) | c1, np.uint64(23))
-    for u in range(FORK_TABLES):
-        c = cx[u]
-        if ready[c] == 0:  # a context's rows are set to the grid's shares when first used
-            ready[c] = 1
-            for n in range(256):
-                for j in range(FORK_POINTS):
-                    tab[c * 256 + n, j] = grid[j]
     for s in range(256):
         sub[256 + s] = p[s] + 1
     for n in range(255, 0, -1):
@@ -527,8 +520,13 @@ def _fork_predict(fork, b, hist, p, buf, cur):
         xs[0] = i - FORK_LIM
         dot = ws[0] * xs[0]
         for u in range(FORK_TABLES):
-            row = tab[cx[u] * 256 + n]
-            r = (np.int64(row[j]) * (64 - w) + np.int64(row[j + 1]) * w) >> 6  # rows < 2**16
+            ri = cx[u] * 256 + n
+            row = tab[ri]
+            if ready[ri] == 0:  # a row is set to the grid's shares when first read
+                ready[ri] = 1
+                for g in range(FORK_POINTS):
+                    row[g] = grid[g]
+            r = (np.int64(row[j]) * (64 - w) + np.int64(row[j + 1]) * w) >> 6  # rows <= 2**16
             r = min(max(r, np.int64(1)), np.int64(FORK_ONE - 1))
             xs[u + 1] = np.int64(st[r])
             dot += ws[u + 1] * xs[u + 1]  # |w| <= 2**20, |x| <= FORK_LIM < 2**10: < 2**30 each
@@ -1015,8 +1013,8 @@ class Braid:
 
     def new_fork(self, n_lanes: int):
         """The tree refinement's state for one frame: the context tables (FORK_CTX contexts
-        x 256 nodes x FORK_POINTS shares, int32; a context's rows are filled when first
-        used, so untouched memory is never written), which contexts are filled, the
+        x 256 nodes x FORK_POINTS shares, int32; a row is filled when first read, so
+        untouched memory is never written), which rows are filled, the
         constant tables, the settings, per-lane records for the update, and the mixer
         weights (one set per node)."""
         if self.fork is None:
@@ -1027,7 +1025,7 @@ class Braid:
                     np.zeros((256, FORK_INPUTS), np.int64), np.zeros(512, np.int64), np.zeros(256, np.int64),
                     np.zeros(256, np.int64))
         nl = max(n_lanes, 1)
-        return (np.empty((FORK_CTX * 256, FORK_POINTS), np.int32), np.zeros(FORK_CTX, np.uint8), FORK_GRID,
+        return (np.empty((FORK_CTX * 256, FORK_POINTS), np.int32), np.zeros(FORK_CTX * 256, np.uint8), FORK_GRID,
                 FORK_STRETCH, FORK_SQUASH, np.array(self.fork, np.int64),
                 np.full((nl, 2), -1, np.int64), np.zeros((nl, FORK_TABLES), np.int64), np.zeros((nl, 256), np.int64),
                 np.zeros((nl, 256, FORK_INPUTS), np.int64), np.zeros((nl, 256), np.int64),
