@@ -399,7 +399,7 @@ def _sse_update(mix, match, b, sym):
 # far gives q = R / (L + R), the upper half's share from the subtree sums. q's log odds,
 # on a grid of FORK_STEP steps per doubling, pick the place in three adaptive tables,
 # each keyed by a context and the node, that hold a share per grid point (interpolated
-# between the two nearest): context 1 the byte before, 2 a hash of the two bytes before,
+# between the two nearest): context 1 the byte before, 2 a hash of the three bytes before,
 # 3 a hash of the byte before and the byte above (the same column of the previous line).
 # A mixer per node weighs the log odds of q and of the three tables' shares (logistic
 # mixing, learned online); the bytes' masses are the products of the mixed shares along
@@ -477,7 +477,7 @@ def _fork_predict(fork, b, hist, p, buf, cur):
         above = np.uint64(buf[line[1] + col])
     c1 = hist & np.uint64(0xFF)
     cx[0] = np.int64(c1)
-    cx[1] = 256 + _fork_hash(hist & np.uint64(0xFFFF), np.uint64(11))
+    cx[1] = 256 + _fork_hash(hist & np.uint64(0xFFFFFF), np.uint64(11))
     cx[2] = 256 + (1 << FORK_HASH_BITS) + _fork_hash((above << np.uint64(8)) | c1, np.uint64(23))
     for s in range(256):
         sub[256 + s] = p[s] + 1
