@@ -916,7 +916,7 @@ class Braid:
         if fork != [None] * 3:
             if any(type(v) is not int for v in fork) or not (1 <= fork[0] <= 10 and 10 <= fork[1] <= 24 and 1 <= fork[2] <= 22):
                 raise ValueError("fork_shift (1..10), fork_mix_shift (10..24) and fork_cut (1..22) go together")
-        self.fork = fork if fork[0] is not None else None
+        self.fork = fork if fork[0] is not None and not prior_only else None  # the prior alone: no adaptation
         if type(params["corpus_order"]) is not int or not 0 <= params["corpus_order"] <= 8:
             raise ValueError("corpus_order must be 0..8")
         self.file = S.Strata.from_params({k: params[k] for k in ("max_order", "hash_log2", "discount", "match_min")})
