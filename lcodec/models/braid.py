@@ -414,7 +414,7 @@ FORK_LIM = FORK_RANGE * FORK_STEP  # log odds clamped to +-FORK_LIM steps
 FORK_ONE = 1 << 16  # shares in 16 fraction bits
 FORK_MASS = 1 << 22  # the refined distribution's total (before each byte's + 1 in _emit)
 FORK_HASH_BITS = 12  # buckets of the two hashed contexts
-FORK_CTX = 256 + 2 * (1 << FORK_HASH_BITS)  # contexts: byte before, two bytes, byte above
+FORK_CTX = 256 + 2 * (1 << FORK_HASH_BITS)  # contexts: byte before, three bytes hashed, byte above
 FORK_TABLES = 3
 FORK_INPUTS = FORK_TABLES + 1
 FORK_WMAX = 1 << 20  # mixer weights in 16 fraction bits, clamped to +-16
@@ -423,7 +423,7 @@ FORK_W0 = 1 << 14  # every weight starts at 1/4 (the inputs' average log odds)
 
 def _fork_tables():
     """FORK_STRETCH[q] (q = 0..FORK_ONE-1): the largest i in -FORK_LIM..FORK_LIM with
-    o30[i] <= floor(2**30 * q / (FORK_ONE - q)) (FORK_LIM- for q = 0), where o30[i] =
+    o30[i] <= floor(2**30 * q / (FORK_ONE - q)) (-FORK_LIM for q = 0), where o30[i] =
     floor(2**30 * 2**(i / 64)) from nested integer square roots (as _odds_table): q's log2
     odds in 1/64 steps, floored. FORK_GRID[j]: the share at table grid point j (odds
     2**(j - FORK_RANGE)), FORK_SQUASH[i + FORK_LIM]: the share at log odds step i, both
