@@ -29,8 +29,11 @@ PRESETS = {
     # tables, and the per-file adaptive half (strata's parameters); figures in README.md
     # (mix_shift: the layers' escape weights, adapted within each frame at this rate and
     # started from the held-out sample's; lane_tables: each lane's contexts its own;
-    # sse_bits: secondary estimation of the favourite byte, 2**sse_bits context buckets)
+    # sse_bits: secondary estimation of the favourite byte, 2**sse_bits context buckets;
+    # fork: the refinement on the byte's binary tree, its tables' and mixer's rates and
+    # the mass below which a subtree is left as it is)
     "braid": dict(corpus_order=6, min_seen=2, budget=64 << 20, mix_shift=16, lane_tables=1, sse_bits=10,
+                  fork=dict(fork_shift=3, fork_mix_shift=15, fork_cut=7),
                   file=dict(max_order=8, hash_log2=18, discount=[[13, 18, 24]] * 9, match_min=5)),
     "braid-lean": dict(corpus_order=4, min_seen=2, budget=16 << 20, file=dict(S.PRESETS["o6m"])),
 }
@@ -203,6 +206,16 @@ def train_braid(files: list[tuple[str, bytes]], corpus: list[str], out: str, tim
         if vp < best:
             params, model, best = plain_params, plain, vp
             arrays.pop("mix_init", None)
+    if cfg.get("fork"):
+        # the refinement on the byte's binary tree (adapts within each frame, nothing fitted):
+        # kept if it lowers the held-out sample's cost
+        fork_params = {**params, **cfg["fork"]}
+        forked = Braid(fork_params, arrays)
+        vf = _bpb(forked, sample)
+        echo(f"  {time.perf_counter() - t_start:6.0f} s  with the tree refinement: {vf:.4f} "
+             f"(without: {best:.4f}){'' if vf < best else ', not kept'}")
+        if vf < best:
+            params, model, best = fork_params, forked, vf
     val_bpb = _bpb(model, val_files)
     strata_bpb = _bpb(S.Strata(), val_files)
     meta = {

@@ -89,6 +89,27 @@ def golden_braid_mixed():
     write_vector("braid-v2-mixed", sample_text(59, 150_000), model=mpath, frame_size=140_000)
 
 
+def golden_braid_fork():
+    """The default preset since the tree refinement: braid-mixed-tiny.lcmodel's tables and
+    parameters with the refinement's three parameters added (the preset's values), and a
+    version-2 container of text with indented lines (so the column context is exercised)
+    whose first frame has two lanes."""
+    from lcodec import modelfile
+    from lcodec.braid_train import PRESETS
+
+    mpath = os.path.join(HERE, "braid-fork-tiny.lcmodel")
+    arc = os.path.join(HERE, "braid-v2-fork.lcodec")
+    if os.path.exists(arc):
+        print(f"keep {arc}")
+        return
+    meta, arrays, _ = modelfile.load(os.path.join(HERE, "braid-mixed-tiny.lcmodel"))
+    params = {**meta["architecture"]["params"], **PRESETS["braid"]["fork"]}
+    modelfile.dump(mpath, {"name": "braid", "params": params}, arrays)
+    text = sample_text(61, 150_000).decode("latin-1").splitlines()
+    data = "\n".join(("    " * (i % 4)) + line for i, line in enumerate(text)).encode("latin-1")[:150_000]
+    write_vector("braid-v2-fork", data, model=mpath, frame_size=140_000)
+
+
 def golden_tessel():
     """A tiny trained pixel model (8- and 16-bit networks) and three image containers made
     with it: an 8-bit PGM (byte-exact), a PNG with a text chunk (pixel-exact) and pydicom's
@@ -212,6 +233,7 @@ def main():
     golden_weft()
     golden_braid()
     golden_braid_mixed()
+    golden_braid_fork()
     golden_tessel()
     golden_tessel_structure()
     golden_tessel_law()

@@ -193,6 +193,23 @@ def test_golden_mixed_model_and_container():
     assert lcodec.pack(orig, model=model, frame_size=140_000) == blob
 
 
+def test_golden_fork_model_and_container():
+    """The default preset since the tree refinement (made by scripts/make_golden.py): its
+    parameters name the refinement, and the container (first frame in two lanes) still
+    decodes and re-encodes byte for byte; decoding it in two threads agrees."""
+    from lcodec.container import read_container
+
+    model = os.path.join(GOLDEN, "braid-fork-tiny.lcmodel")
+    blob = open(os.path.join(GOLDEN, "braid-v2-fork.lcodec"), "rb").read()
+    orig = open(os.path.join(GOLDEN, "braid-v2-fork.orig"), "rb").read()
+    p = modelfile.load(model)[0]["architecture"]["params"]
+    assert (p["fork_shift"], p["fork_mix_shift"], p["fork_cut"]) == (3, 15, 7) and p["mix_shift"] == 16
+    assert read_container(blob).frames[0].lanes == 2
+    assert lcodec.unpack(blob, model=model) == orig
+    assert lcodec.unpack(blob, model=model, workers=2) == orig
+    assert lcodec.pack(orig, model=model, frame_size=140_000) == blob
+
+
 def test_train_cli_default_preset_is_braid(tmp_path):
     corpus = tmp_path / "corpus"
     corpus.mkdir()
@@ -328,5 +345,248 @@ def test_hostile_mixed_model_files_are_refused(tiny_mixed, tmp_path, damage):
         arrays["mix_init"] = arrays["mix_init"][:-1].copy()
     bad = str(tmp_path / "bad.lcmodel")
     modelfile.dump(bad, arch, arrays)
+    with pytest.raises(ModelError, match="bad parameters"):
+        load_model(bad)
+
+
+# -- refinement on the byte's binary tree (model parameters fork_*) ----------------------------
+FORK = {"fork_shift": 3, "fork_mix_shift": 15, "fork_cut": 10}  # (the preset cuts at 7; 10 refines more nodes)
+
+
+@pytest.fixture(scope="module")
+def tiny_fork(tmp_path_factory, tiny_mixed):
+    """tiny_mixed with the tree refinement on."""
+    meta, arrays, _ = modelfile.load(tiny_mixed)
+    path = str(tmp_path_factory.mktemp("braidfork") / "tiny-fork.lcmodel")
+    modelfile.dump(path, {"name": "braid", "params": {**meta["architecture"]["params"], **FORK}}, arrays)
+    return path
+
+
+def test_fork_parallel_pass_equals_step_pass(tiny_fork):
+    m = load_model(tiny_fork)
+    data = stdlib_file("shlex.py", 30_000)
+    for lanes in (1, 3, 16):
+        a = teacher_tables(m, data, lanes, chunk=53)
+        assert np.array_equal(a, teacher_tables(m, data, lanes))
+        assert np.array_equal(a, step_tables(m, data, lanes)), lanes
+        assert (a == np.floor(a)).all() and (a >= 1).all()
+
+
+def test_fork_tables_depend_only_on_earlier_bytes(tiny_fork):
+    m = load_model(tiny_fork)
+    data = bytearray(stdlib_file("textwrap.py", 3000))
+    a = teacher_tables(m, bytes(data), 1)
+    data[1500:] = bytes(reversed(data[1500:]))
+    b = teacher_tables(m, bytes(data), 1)
+    assert np.array_equal(a[:1501], b[:1501])
+
+
+def test_fork_round_trip_threads_and_processes(tiny_fork, tiny_mixed, tmp_path):
+    data = stdlib_file("calendar.py") + stdlib_file("textwrap.py") * 4  # > 128 KiB: several lanes
+    blob = lcodec.pack(data, model=tiny_fork, frame_size=100_000)
+    assert lcodec.unpack(blob, model=tiny_fork) == data
+    assert lcodec.unpack(blob, model=tiny_fork, workers=2) == data
+    assert blob != lcodec.pack(data, model=tiny_mixed, frame_size=100_000)  # the refinement is on
+    src = tmp_path / "in.py"
+    src.write_bytes(data)
+    code = ("import sys, hashlib, lcodec; d = open(sys.argv[1], 'rb').read(); "
+            "print(hashlib.sha256(lcodec.pack(d, model=sys.argv[2], frame_size=300000)).hexdigest())")
+    digests = {hashlib.sha256(lcodec.pack(data, model=tiny_fork, frame_size=300000)).hexdigest()}
+    for threads in ("1", "2"):
+        env = dict(os.environ, NUMBA_NUM_THREADS=threads, OMP_NUM_THREADS=threads)
+        out = subprocess.run([sys.executable, "-c", code, str(src), tiny_fork], env=env, capture_output=True,
+                             text=True, check=True)
+        digests.add(out.stdout.strip())
+    assert len(digests) == 1
+
+
+def test_fork_never_worse_than_without(tiny_fork, tiny_mixed):
+    """On held-out files the refinement costs at most 1% more than the same model without
+    it and than strata alone."""
+    on, off = load_model(tiny_fork), load_model(tiny_mixed)
+    for name in ("calendar.py", "shlex.py", "textwrap.py", "heapq.py"):
+        data = stdlib_file(name)
+        b_on, b_off, b_adapt = nll_bits(on, data), nll_bits(off, data), nll_bits(S.Strata(), data)
+        assert b_on <= 1.01 * min(b_off, b_adapt), (name, b_on, b_off, b_adapt)
+
+
+def _fork_reference_tables():
+    """The constant tables from their definitions, in Python integers only."""
+    from math import isqrt
+
+    from lcodec.models.braid import FORK_LIM, FORK_ONE
+
+    def o30(i):
+        q, j = divmod(i, 64)
+        y = 1 << (64 * 60 + j)
+        for _ in range(6):
+            y = isqrt(y)
+        return y >> (30 - q)
+
+    odds = [o30(i) for i in range(-FORK_LIM, FORK_LIM + 1)]
+    sq = [min(max((o << 16) // (o + (1 << 30)), 1), FORK_ONE - 1) for o in odds]
+    return odds, sq
+
+
+def test_fork_constant_tables_are_exact():
+    """FORK_STRETCH and FORK_SQUASH against their definitions in Python integers (every
+    entry of the squash; the stretch at its limits, every 97th q and around every grid
+    point), and against floats within one step."""
+    from lcodec.models.braid import FORK_GRID, FORK_LIM, FORK_ONE, FORK_SQUASH, FORK_STEP, FORK_STRETCH
+
+    odds, sq = _fork_reference_tables()
+    assert FORK_SQUASH.tolist() == sq and FORK_GRID.tolist() == sq[::FORK_STEP]
+
+    def stretch(q):
+        if q == 0:
+            return -FORK_LIM
+        t = (q << 30) // (FORK_ONE - q)
+        best = -FORK_LIM
+        for k, o in enumerate(odds):  # the largest step whose odds are <= t
+            if o <= t:
+                best = k - FORK_LIM
+        return best
+
+    qs = sorted({0, 1, 2, 3, FORK_ONE // 2 - 1, FORK_ONE // 2, FORK_ONE // 2 + 1, FORK_ONE - 2, FORK_ONE - 1,
+                 *range(5, FORK_ONE, 97), *(s + d for s in sq for d in (-1, 0, 1) if 0 <= s + d < FORK_ONE)})
+    assert all(int(FORK_STRETCH[q]) == stretch(q) for q in qs)
+    q = np.arange(1, FORK_ONE)
+    ref = np.clip(np.floor(64 * np.log2(q / (FORK_ONE - q))), -FORK_LIM, FORK_LIM)
+    assert np.abs(FORK_STRETCH[1:] - ref).max() <= 1 and (np.diff(FORK_STRETCH) >= 0).all()
+
+
+def _py_fork_predict(st, p, cut_shift, tabrows, wts):
+    """The refinement of one distribution in Python integers: tabrows[u][n] is table u's
+    row for node n (the lane's contexts), wts[n] the node's mixer weights."""
+    from lcodec.models.braid import FORK_LIM, FORK_MASS, FORK_ONE, FORK_POINTS, FORK_SQUASH
+
+    sub = [0] * 512
+    for s in range(256):
+        sub[256 + s] = int(p[s]) + 1
+    for n in range(255, 0, -1):
+        sub[n] = sub[2 * n] + sub[2 * n + 1]
+    out = [int(v) for v in p]
+    mass = {1: FORK_MASS}
+    pos, xin, pout = {}, {}, {}
+    cut = FORK_MASS >> cut_shift
+    for n in range(1, 256):
+        if n not in mass:
+            continue
+        m = mass[n]
+        if m < cut:
+            d = n.bit_length() - 1
+            span = 256 >> d
+            s0 = n * span - 256
+            fac = (m << 24) // sub[n]
+            for s in range(s0, s0 + span):
+                out[s] = ((out[s] + 1) * fac) >> 24
+            continue
+        q = min(max((sub[2 * n + 1] << 16) // (sub[2 * n] + sub[2 * n + 1]), 1), FORK_ONE - 1)
+        i = int(st[q]) + FORK_LIM
+        pos[n] = i
+        j, w = i >> 6, i & 63
+        if j >= FORK_POINTS - 1:
+            j, w = FORK_POINTS - 2, 64
+        xs = [i - FORK_LIM]
+        for rows in tabrows:
+            row = rows[n]
+            r = min(max((int(row[j]) * (64 - w) + int(row[j + 1]) * w) >> 6, 1), FORK_ONE - 1)
+            xs.append(int(st[r]))
+        dot = sum(int(a) * b for a, b in zip(wts[n], xs))
+        f = int(FORK_SQUASH[min(max(dot >> 16, -FORK_LIM), FORK_LIM) + FORK_LIM])
+        xin[n], pout[n] = xs, f
+        hi = (m * f) >> 16
+        if n < 128:
+            mass[2 * n], mass[2 * n + 1] = m - hi, hi
+        else:
+            out[2 * n - 256], out[2 * n - 255] = m - hi, hi
+    return out, pos, xin, pout
+
+
+def test_fork_arithmetic_matches_python_integers():
+    """_fork_predict and _fork_update against a Python-integer reimplementation, on
+    distributions at the limits (one byte holding nearly all of 2**22, every byte at its
+    largest, all zero, two bytes) and random ones, with trained-looking tables and mixer
+    weights at their clamps; the kernel's state after the update is compared too."""
+    from lcodec.models.braid import (FORK_INPUTS, FORK_LIM, FORK_ONE, FORK_POINTS, FORK_STRETCH, FORK_TABLES,
+                                     FORK_WMAX, _fork_predict, _fork_update)
+
+    rng = np.random.default_rng(5)
+    arrays = build([b"abc abd abe\n" * 40], 2, 2)
+    p0 = {**params(2), **FORK}
+    m = Braid(p0, arrays)
+    cases = []
+    big = np.zeros(256, np.int64)
+    big[65] = (1 << 22) - 300
+    cases.append(big)
+    cases.append(np.full(256, (1 << 14) - 1, np.int64))  # 256 * 2**14 = 2**22
+    cases.append(np.zeros(256, np.int64))
+    two = np.zeros(256, np.int64)
+    two[0], two[255] = 1 << 21, (1 << 21) - 1
+    cases.append(two)
+    for _ in range(12):
+        v = rng.integers(0, 1 << 14, 256) * (rng.random(256) < rng.random())
+        v[rng.integers(0, 256)] += rng.integers(0, 1 << 21)
+        cases.append(v.astype(np.int64))
+    for k, p in enumerate(cases):
+        fork = m.new_fork(1)
+        for n in range(256):  # weights at and beyond nothing: some at the clamps
+            fork[11][n] = rng.choice([-FORK_WMAX, FORK_WMAX, 1 << 14, -(1 << 12), 1 << 16], FORK_INPUTS)
+        hist = np.uint64(int(rng.integers(0, 1 << 62)))
+        buf = np.frombuffer(b"x = 1\n    y = 2\n   ", np.uint8).copy()
+        cur = len(buf) - 1
+        fork[6][0] = (6, 0)  # line starts: the current line at 6, the one before at 0
+        pk = p.copy()
+        # set the tables of the contexts this byte will read to extreme and random shares
+        _fork_predict(fork, 0, hist, pk.copy(), buf, cur)
+        for u in range(FORK_TABLES):
+            c = fork[7][0][u]
+            fork[0][c * 256:(c + 1) * 256] = rng.choice([0, 1, FORK_ONE - 1, FORK_ONE, 777, 40000], (256, FORK_POINTS))
+            fork[1][c * 256:(c + 1) * 256] = 1  # (rows are otherwise set to the grid when first read)
+        tabrows = [fork[0][c * 256:(c + 1) * 256].copy() for c in fork[7][0]]
+        wts = fork[11].copy()
+        ref, pos, xin, pout = _py_fork_predict(FORK_STRETCH, p, 10, tabrows, wts)
+        _fork_predict(fork, 0, hist, pk, buf, cur)
+        assert pk.tolist() == ref, k
+        sym = int(rng.integers(0, 256)) if k % 2 else int(np.argmax(p))
+        _fork_update(fork, 0, np.int64(sym), cur)
+        # the update in Python integers
+        n = 1
+        for bit in range(7, -1, -1):
+            if n not in pos:
+                break
+            y = (sym >> bit) & 1
+            tgt = y << 16
+            i = pos[n]
+            j, w = i >> 6, i & 63
+            if j >= FORK_POINTS - 1:
+                j, w = FORK_POINTS - 2, 64
+            for rows in tabrows:
+                row = rows[n]
+                row[j] = int(row[j]) + (((tgt - int(row[j])) * (64 - w)) >> 9)
+                row[j + 1] = int(row[j + 1]) + (((tgt - int(row[j + 1])) * w) >> 9)
+            err = tgt - pout[n]
+            wts[n] = [min(max(int(a) + ((x * err) >> 15), -FORK_WMAX), FORK_WMAX) for a, x in zip(wts[n], xin[n])]
+            n = 2 * n + y
+        for u, c in enumerate(fork[7][0]):
+            assert np.array_equal(fork[0][c * 256:(c + 1) * 256], tabrows[u]), (k, u)
+        assert np.array_equal(fork[11], wts), k
+        assert FORK_LIM < 1 << 10
+
+
+@pytest.mark.parametrize("damage", ["partial", "shift", "cut", "kind"])
+def test_hostile_fork_parameters_are_refused(tiny_fork, tmp_path, damage):
+    meta, arrays, _ = modelfile.load(tiny_fork)
+    p = dict(meta["architecture"]["params"])
+    if damage == "partial":
+        del p["fork_cut"]
+    elif damage == "shift":
+        p["fork_shift"] = 0
+    elif damage == "cut":
+        p["fork_cut"] = 40
+    else:
+        p["fork_mix_shift"] = 15.0
+    bad = str(tmp_path / "bad.lcmodel")
+    modelfile.dump(bad, {"name": "braid", "params": p}, arrays)
     with pytest.raises(ModelError, match="bad parameters"):
         load_model(bad)

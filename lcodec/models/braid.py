@@ -393,6 +393,193 @@ def _sse_update(mix, match, b, sym):
     S._score_cell(mix[8][cell], match[7][b] == sym, SSE_LIMIT)
 
 
+# -- refinement on the byte's binary tree (optional: model files with `fork_shift`) --------
+# The byte is read as eight binary choices, top bit first; node n (1..255) of the tree
+# splits its subtree's mass between its two halves. For each node the distribution so
+# far gives q = R / (L + R), the upper half's share from the subtree sums. q's log odds,
+# on a grid of FORK_STEP steps per doubling, pick the place in three adaptive tables,
+# each keyed by a context and the node, that hold a share per grid point (interpolated
+# between the two nearest): context 1 the byte before, 2 a hash of the three bytes before,
+# 3 a hash of the byte before and the byte above (the same column of the previous line).
+# A mixer per node weighs the log odds of q and of the three tables' shares (logistic
+# mixing, learned online); the bytes' masses are the products of the mixed shares along
+# their paths. Nodes whose subtree holds less than FORK_MASS >> fork_cut keep their
+# bytes' proportions (nothing is read or learned there). After each byte, the nodes on its
+# path that were refined move their tables' two grid points toward the coded bit (rate
+# 2**-fork_shift) and their mixer weights along the gradient (2**-fork_mix_shift).
+FORK_STEP = 64  # grid resolution of log2 odds: 1/64 of a doubling (as ODDS)
+FORK_RANGE = 12  # table grid points every doubling from odds 2**-12 to 2**12
+FORK_POINTS = 2 * FORK_RANGE + 1
+FORK_LIM = FORK_RANGE * FORK_STEP  # log odds clamped to +-FORK_LIM steps
+FORK_ONE = 1 << 16  # shares in 16 fraction bits
+FORK_MASS = 1 << 22  # the refined distribution's total (before each byte's + 1 in _emit)
+FORK_HASH_BITS = 12  # buckets of the two hashed contexts
+FORK_CTX = 256 + 2 * (1 << FORK_HASH_BITS)  # contexts: byte before, three bytes hashed, byte above
+FORK_TABLES = 3
+FORK_INPUTS = FORK_TABLES + 1
+FORK_WMAX = 1 << 20  # mixer weights in 16 fraction bits, clamped to +-16
+FORK_W0 = 1 << 14  # every weight starts at 1/4 (the inputs' average log odds)
+
+
+def _fork_tables():
+    """FORK_STRETCH[q] (q = 0..FORK_ONE-1): the largest i in -FORK_LIM..FORK_LIM with
+    o30[i] <= floor(2**30 * q / (FORK_ONE - q)) (-FORK_LIM for q = 0), where o30[i] =
+    floor(2**30 * 2**(i / 64)) from nested integer square roots (as _odds_table): q's log2
+    odds in 1/64 steps, floored. FORK_GRID[j]: the share at table grid point j (odds
+    2**(j - FORK_RANGE)), FORK_SQUASH[i + FORK_LIM]: the share at log odds step i, both
+    floor(FORK_ONE * o30 / (o30 + 2**30)) clamped to 1..FORK_ONE-1. Python integers and
+    integer numpy only: identical everywhere."""
+    from math import isqrt
+
+    root = []
+    for j in range(64):
+        y = 1 << (64 * 60 + j)
+        for _ in range(6):
+            y = isqrt(y)
+        root.append(y)  # floor(2**60 * 2**(j / 64))
+    o30 = np.empty(2 * FORK_LIM + 1, np.int64)
+    for i in range(-FORK_LIM, FORK_LIM + 1):
+        q, j = divmod(i, 64)
+        o30[i + FORK_LIM] = root[j] >> (30 - q)  # q = -12..12: shift 18..42
+    q = np.arange(FORK_ONE, dtype=np.int64)
+    target = np.zeros(FORK_ONE, np.int64)
+    target[1:] = (q[1:] << 30) // (FORK_ONE - q[1:])  # < 2**46
+    st = np.clip(np.searchsorted(o30, target, side="right") - 1 - FORK_LIM, -FORK_LIM, FORK_LIM)
+    sq = np.clip((o30 << 16) // (o30 + (1 << 30)), 1, FORK_ONE - 1)  # o30 < 2**43: < 2**59
+    return st.astype(np.int16), sq[::FORK_STEP].astype(np.int32).copy(), sq
+
+
+FORK_STRETCH, FORK_GRID, FORK_SQUASH = _fork_tables()
+
+
+@njit(cache=True, nogil=True)
+def _fork_hash(x, salt):
+    x = (x + salt) * _M1
+    x = x ^ (x >> np.uint64(29))
+    x = x * _M2
+    return np.int64(x >> np.uint64(64 - FORK_HASH_BITS))
+
+
+@njit(cache=True, nogil=True)
+def _fork_predict(fork, b, hist, p, buf, cur):
+    """p (the distribution so far, total < 2**22) <- the refined distribution (total about
+    FORK_MASS); what lane b's update needs is recorded. buf[cur] is the byte to come: only
+    bytes before it are read."""
+    tab, ready, grid, st, sq, cfg = fork[0], fork[1], fork[2], fork[3], fork[4], fork[5]
+    line, cx, pos, xin, pout = fork[6][b], fork[7][b], fork[8][b], fork[9][b], fork[10][b]
+    wts, sub, mass, act = fork[11], fork[12], fork[13], fork[14]
+    if line[0] < 0:  # the lane's first byte: no line before it
+        line[0] = cur
+        line[1] = cur
+    above = np.uint64(0)
+    col = cur - line[0]
+    if line[1] + col < line[0]:
+        above = np.uint64(buf[line[1] + col])
+    c1 = hist & np.uint64(0xFF)
+    cx[0] = np.int64(c1)
+    cx[1] = 256 + _fork_hash(hist & np.uint64(0xFFFFFF), np.uint64(11))
+    cx[2] = 256 + (1 << FORK_HASH_BITS) + _fork_hash((above << np.uint64(8)) | c1, np.uint64(23))
+    for s in range(256):
+        sub[256 + s] = p[s] + 1
+    for n in range(255, 0, -1):
+        sub[n] = sub[2 * n] + sub[2 * n + 1]  # < 2**23
+    cut = np.int64(FORK_MASS) >> cfg[2]
+    for n in range(2, 256):
+        act[n] = 0
+    act[1] = 1
+    mass[1] = FORK_MASS
+    for n in range(1, 256):
+        pos[n] = -1
+        if act[n] == 0:
+            continue
+        m = mass[n]
+        if m < cut:  # too little mass to matter: the subtree's bytes keep their proportions
+            span = np.int64(1)
+            k = n
+            while k < 256:
+                k *= 2
+                span *= 2
+            s0 = n * span - 256
+            fac = (m << 24) // sub[n]  # m < 2**22: m << 24 < 2**46
+            for s in range(s0, s0 + span):
+                p[s] = ((p[s] + 1) * fac) >> 24  # p[s] + 1 <= sub[n]: product <= m << 24
+            continue
+        L = sub[2 * n]
+        R = sub[2 * n + 1]
+        q = (R << 16) // (L + R)  # R < 2**23: R << 16 < 2**39
+        q = min(max(q, np.int64(1)), np.int64(FORK_ONE - 1))
+        i = np.int64(st[q]) + FORK_LIM  # 0 .. 2 * FORK_LIM
+        pos[n] = i
+        j = i >> 6
+        w = i & 63
+        if j >= FORK_POINTS - 1:
+            j = FORK_POINTS - 2
+            w = 64
+        xs = xin[n]
+        ws = wts[n]
+        xs[0] = i - FORK_LIM
+        dot = ws[0] * xs[0]
+        for u in range(FORK_TABLES):
+            ri = cx[u] * 256 + n
+            row = tab[ri]
+            if ready[ri] == 0:  # a row is set to the grid's shares when first read
+                ready[ri] = 1
+                for g in range(FORK_POINTS):
+                    row[g] = grid[g]
+            r = (np.int64(row[j]) * (64 - w) + np.int64(row[j + 1]) * w) >> 6  # rows <= 2**16
+            r = min(max(r, np.int64(1)), np.int64(FORK_ONE - 1))
+            xs[u + 1] = np.int64(st[r])
+            dot += ws[u + 1] * xs[u + 1]  # |w| <= 2**20, |x| <= FORK_LIM < 2**10: < 2**30 each
+        d = min(max(dot >> 16, np.int64(-FORK_LIM)), np.int64(FORK_LIM))
+        f = np.int64(sq[d + FORK_LIM])  # 1 .. FORK_ONE - 1
+        pout[n] = f
+        hi = (m * f) >> 16  # m <= 2**22: < 2**38
+        if n < 128:
+            mass[2 * n] = m - hi
+            mass[2 * n + 1] = hi
+            act[2 * n] = 1
+            act[2 * n + 1] = 1
+        else:
+            p[2 * n - 256] = m - hi
+            p[2 * n - 255] = hi
+
+
+@njit(cache=True, nogil=True)
+def _fork_update(fork, b, sym, cur):
+    """After lane b coded sym (at buf[cur]): the refined nodes on its path learn."""
+    tab, cfg = fork[0], fork[5]
+    line, cx, pos, xin, pout, wts = fork[6][b], fork[7][b], fork[8][b], fork[9][b], fork[10][b], fork[11]
+    if sym == 10:
+        line[1] = line[0]
+        line[0] = cur + 1
+    shift = cfg[0] + 6
+    lr = cfg[1]
+    n = 1
+    for k in range(7, -1, -1):
+        i = pos[n]
+        if i < 0:  # not refined: neither are the nodes below it
+            break
+        y = (sym >> k) & 1
+        tgt = np.int64(y) << 16
+        j = i >> 6
+        w = i & 63
+        if j >= FORK_POINTS - 1:
+            j = FORK_POINTS - 2
+            w = 64
+        for u in range(FORK_TABLES):
+            row = tab[cx[u] * 256 + n]
+            # bound: |tgt - row| <= 2**16, weights <= 64: products <= 2**22; rows stay in 0..2**16
+            row[j] += ((tgt - row[j]) * (64 - w)) >> shift
+            row[j + 1] += ((tgt - row[j + 1]) * w) >> shift
+        err = tgt - pout[n]  # |err| < 2**16
+        ws = wts[n]
+        xs = xin[n]
+        for u in range(FORK_INPUTS):
+            # bound: |x| <= FORK_LIM < 2**10, so |x * err| < 2**26
+            ws[u] = min(max(ws[u] + ((xs[u] * err) >> lr), np.int64(-FORK_WMAX)), np.int64(FORK_WMAX))
+        n = 2 * n + y
+
+
 # -- lanes with tables of their own (optional: model files with `lane_tables`) ------------
 # Lanes normally share the file's tables. With lane_tables each lane's contexts are its
 # own rows: order 0 and 1 rows per lane, and the lane's number mixed into the hash of the
@@ -544,7 +731,7 @@ def _braid_predict(corpus, fstate, hist, slots, checks, max_order, dfile, p, mix
 
 
 @njit(cache=True, nogil=True)
-def _teacher(corpus, state, match, data, starts, lengths, t0, t1, max_order, hash_log2, dfile, out_syms, out_tab, mix):
+def _teacher(corpus, state, match, data, starts, lengths, t0, t1, max_order, hash_log2, dfile, out_syms, out_tab, mix, fork):
     """Tables of steps t0..t1 for all active lanes, in coding order, updating state."""
     bases, hist, gen = state[2], state[3], state[4]
     slots = np.empty(max_order + 1, np.int64)
@@ -554,6 +741,7 @@ def _teacher(corpus, state, match, data, starts, lengths, t0, t1, max_order, has
     use_match = match[5][3] > 0 and corpus[5][0] == 0
     use_mix = mix[5][1] != 0
     use_sse = use_match and mix[5][2] != 0
+    use_fork = fork[5][0] != 0
     i = 0
     for t in range(t0, t1):
         m = 0
@@ -567,6 +755,8 @@ def _teacher(corpus, state, match, data, starts, lengths, t0, t1, max_order, has
                 S._match_predict(match, b, p)
                 if use_sse:
                     _sse_predict(mix, match, b, hist[b], p)
+            if use_fork:
+                _fork_predict(fork, b, hist[b], p, data, starts[b] + t)
             S._emit(p, out_tab[i + b])
             out_syms[i + b] = data[starts[b] + t]
         if use_mix:  # every lane's weights update before any count changes
@@ -575,6 +765,9 @@ def _teacher(corpus, state, match, data, starts, lengths, t0, t1, max_order, has
         if use_sse:
             for b in range(m):
                 _sse_update(mix, match, b, np.int64(data[starts[b] + t]))
+        if use_fork:
+            for b in range(m):
+                _fork_update(fork, b, np.int64(data[starts[b] + t]), starts[b] + t)
         for b in range(m):
             sym = data[starts[b] + t]
             _slots(mix, b, hist[b], max_order, hash_log2, bases, gen, slots, checks)
@@ -587,7 +780,7 @@ def _teacher(corpus, state, match, data, starts, lengths, t0, t1, max_order, has
 
 
 @njit(cache=True, nogil=True)
-def _step(corpus, state, match, starts, syms, t_prev, m_prev, m, max_order, hash_log2, dfile, out_tab, work, mix):
+def _step(corpus, state, match, starts, syms, t_prev, m_prev, m, max_order, hash_log2, dfile, out_tab, work, mix, fork):
     """Decoder step: count the symbols of step t_prev (m_prev lanes), then predict m lanes.
     `work` holds the scratch arrays, made once per frame (a step is too short to allocate)."""
     bases, hist, gen = state[2], state[3], state[4]
@@ -603,6 +796,10 @@ def _step(corpus, state, match, starts, syms, t_prev, m_prev, m, max_order, hash
     if use_sse:
         for b in range(m_prev):
             _sse_update(mix, match, b, np.int64(syms[b]))
+    use_fork = fork[5][0] != 0
+    if use_fork:  # before any count changes, like the escape weights (it reads none of them)
+        for b in range(m_prev):
+            _fork_update(fork, b, np.int64(syms[b]), starts[b] + t_prev)
     for b in range(m_prev):
         sym = syms[b]
         _slots(mix, b, hist[b], max_order, hash_log2, bases, gen, slots, checks)
@@ -618,6 +815,8 @@ def _step(corpus, state, match, starts, syms, t_prev, m_prev, m, max_order, hash
             S._match_predict(match, b, p)
             if use_sse:
                 _sse_predict(mix, match, b, hist[b], p)
+        if use_fork:
+            _fork_predict(fork, b, hist[b], p, buf, starts[b] + t_prev + 1)
         S._emit(p, out_tab[b])
 
 
@@ -698,7 +897,7 @@ class Braid:
         """prior_only: the corpus layers alone (no file layers, no repeat model), for the
         ablation figures; such an object is only ever costed, never used to pack."""
         allowed = {"corpus_order", "max_order", "hash_log2", "discount", "match_min"}
-        optional = {"mix_shift", "sse_bits", "lane_tables"}  # absent: the plain chain (model files made before it)
+        optional = {"mix_shift", "sse_bits", "lane_tables", "fork_shift", "fork_mix_shift", "fork_cut"}  # absent: the plain chain (model files made before it)
         if not isinstance(params, dict) or not allowed <= set(params) <= allowed | optional:
             raise ValueError(f"braid needs exactly {', '.join(sorted(allowed))} (and optionally {', '.join(sorted(optional))})")
         ms = params.get("mix_shift", 0)
@@ -713,6 +912,11 @@ class Braid:
         if lt not in (0, 1) or type(lt) is not int:
             raise ValueError("lane_tables must be 0 or 1")
         self.lane_tables = lt
+        fork = [params.get(k) for k in ("fork_shift", "fork_mix_shift", "fork_cut")]
+        if fork != [None] * 3:
+            if any(type(v) is not int for v in fork) or not (1 <= fork[0] <= 10 and 10 <= fork[1] <= 24 and 1 <= fork[2] <= 22):
+                raise ValueError("fork_shift (1..10), fork_mix_shift (10..24) and fork_cut (1..22) go together")
+        self.fork = fork if fork[0] is not None and not prior_only else None  # the prior alone: no adaptation
         if type(params["corpus_order"]) is not int or not 0 <= params["corpus_order"] <= 8:
             raise ValueError("corpus_order must be 0..8")
         self.file = S.Strata.from_params({k: params[k] for k in ("max_order", "hash_log2", "discount", "match_min")})
@@ -803,8 +1007,30 @@ class Braid:
         sse[:, 0] = 2 * (np.arange(cells) % SSE_LEVELS) + 1  # each level's midpoint
         sse[:, 1] = 2 * SSE_LEVELS
         return (W, ODDS, np.zeros((nl, 2 * N_LAYER_IDS, LREC), np.int64), np.zeros(nl, np.int64),
-                np.zeros(nl, np.int64), np.array([self.mix_shift, 1 if on else 0, self.sse_bits, self.lane_tables, 0], np.int64),
+                np.zeros(nl, np.int64),
+                np.array([self.mix_shift, 1 if on else 0, self.sse_bits, self.lane_tables, 0], np.int64),
                 np.zeros(2 * N_LAYER_IDS, np.int64), BYTE_CLASS, sse, np.full(max(n_lanes, 1), -1, np.int64))
+
+    def new_fork(self, n_lanes: int):
+        """The tree refinement's state for one frame: the context tables (FORK_CTX contexts
+        x 256 nodes x FORK_POINTS shares, int32; a row is filled when first read, so
+        untouched memory is never written), which rows are filled, the
+        constant tables, the settings, per-lane records for the update, and the mixer
+        weights (one set per node)."""
+        if self.fork is None:
+            one = np.zeros((1, 1), np.int32)
+            return (one, np.zeros(1, np.uint8), FORK_GRID, FORK_STRETCH, FORK_SQUASH, np.zeros(3, np.int64),
+                    np.zeros((1, 2), np.int64), np.zeros((1, FORK_TABLES), np.int64), np.zeros((1, 256), np.int64),
+                    np.zeros((1, 256, FORK_INPUTS), np.int64), np.zeros((1, 256), np.int64),
+                    np.zeros((256, FORK_INPUTS), np.int64), np.zeros(512, np.int64), np.zeros(256, np.int64),
+                    np.zeros(256, np.int64))
+        nl = max(n_lanes, 1)
+        return (np.empty((FORK_CTX * 256, FORK_POINTS), np.int32), np.zeros(FORK_CTX * 256, np.uint8), FORK_GRID,
+                FORK_STRETCH, FORK_SQUASH, np.array(self.fork, np.int64),
+                np.full((nl, 2), -1, np.int64), np.zeros((nl, FORK_TABLES), np.int64), np.zeros((nl, 256), np.int64),
+                np.zeros((nl, 256, FORK_INPUTS), np.int64), np.zeros((nl, 256), np.int64),
+                np.full((256, FORK_INPUTS), FORK_W0, np.int64), np.zeros(512, np.int64), np.zeros(256, np.int64),
+                np.zeros(256, np.int64))
 
     def teacher_chunks(self, data, starts, lengths, chunk_steps: int = 256, match_stats=None, mix_weights=None):
         """match_stats: an array of the hit-rate cells' shape, to which this frame's
@@ -816,11 +1042,12 @@ class Braid:
         (state, mtab), hb = self.new_state(n, len(lengths)), f.hash_bits(n)
         match = self.new_match(data, mtab, lengths)
         mix = self.new_mix(len(lengths), mix_weights)
+        fork = self.new_fork(len(lengths))
         start_cells = match[4].copy()
         corpus = self.frame_corpus()
         try:
             yield from S.run_chunks(lengths, chunk_steps, lambda t0, t1, syms, tab: _teacher(
-                corpus, state, match, data, starts, lengths, t0, t1, f.max_order, hb, f._disc, syms, tab, mix))
+                corpus, state, match, data, starts, lengths, t0, t1, f.max_order, hb, f._disc, syms, tab, mix, fork))
             if match_stats is not None:
                 match_stats += np.maximum(match[4].astype(np.int64) - start_cells, 0)
         finally:
@@ -837,10 +1064,11 @@ class Braid:
         mo, disc, corpus = f.max_order, f._disc, self.frame_corpus()
         work = (np.empty(mo + 1, np.int64), np.empty(mo + 1, np.uint64), np.empty(256, np.int64))
         mix = self.new_mix(len(lengths))
+        fork = self.new_fork(len(lengths))
         t = [-1]
 
         def step(prev_syms, m_prev, m):
-            _step(corpus, state, match, starts, prev_syms, t[0], m_prev, m, mo, hl, disc, tab, work, mix)
+            _step(corpus, state, match, starts, prev_syms, t[0], m_prev, m, mo, hl, disc, tab, work, mix, fork)
             t[0] += 1
             return tab[:m]
 
