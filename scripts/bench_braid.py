@@ -6,7 +6,7 @@ writes JSON, and marks each target MET or MISSED (exit 0 either way, unless some
 fails to round-trip).
 
     python scripts/bench_braid.py [--out DIR] [--kinds python_stdlib,c_headers,doc_text,package_data]
-                                  [--time-limit S] [--skip-large] [--skip-presets]
+                                  [--time-limit S] [--skip-large] [--skip-presets] [--large-preset braid-tree]
 
 Targets:
   * per kind, each test file packed on its own: braid's total <= 0.75 x the best of
@@ -105,13 +105,13 @@ def kind_targets(kind: str, out: str, time_limit: float) -> dict:
     return res
 
 
-def large_target(out: str, time_limit: float, frames=(1 << 20,)) -> dict:
+def large_target(out: str, time_limit: float, frames=(1 << 20,), preset: str = "braid") -> dict:
     """A >= 10 MB concatenation of a test split (the standard library with 35% held out)."""
     corpus = os.path.join(out, "python_stdlib-large")
     open_data.materialise("python_stdlib", corpus, test_fraction=0.35)
     data = b"".join(files_of(os.path.join(corpus, "test")))
-    model, meta, train_s = train_model(corpus, out, "braid", time_limit)
-    say(f"\n== one large file: {len(data):,} bytes (the test split of {corpus}, concatenated); "
+    model, meta, train_s = train_model(corpus, out, preset, time_limit)
+    say(f"\n== one large file (preset {preset}): {len(data):,} bytes (the test split of {corpus}, concatenated); "
         f"model {os.path.getsize(model):,} bytes")
     res = {"bytes": len(data), "model_bytes": os.path.getsize(model), "baselines": {}}
     for name in ("xz-9e", "brotli-11-w24", "ppmd-o16"):
@@ -152,13 +152,13 @@ def large_target(out: str, time_limit: float, frames=(1 << 20,)) -> dict:
 
 
 def presets(out: str, time_limit: float) -> dict:
-    """braid against braid-lean on the standard library: size, speed, model size."""
+    """braid against braid-tree and braid-lean on the standard library: size, speed, model size."""
     corpus = os.path.join(out, "python_stdlib")
     tests = files_of(os.path.join(corpus, "test"))
     data = b"".join(tests)
     res = {}
     say("\n== presets (the standard library's test split, each file on its own)")
-    for preset in ("braid", "braid-lean"):
+    for preset in ("braid", "braid-tree", "braid-lean"):
         model, meta, train_s = train_model(corpus, out, preset, time_limit)
         m = load_model(model)
         api.pack(data[:5000], model=m)
@@ -186,12 +186,14 @@ def main() -> int:
     ap.add_argument("--skip-large", action="store_true")
     ap.add_argument("--skip-presets", action="store_true")
     ap.add_argument("--large-frames", default="1", help="frame sizes (MiB, comma-separated) for the large file (default: 1)")
+    ap.add_argument("--large-preset", default="braid", help="preset of the large file's model (default: braid)")
     a = ap.parse_args()
     os.makedirs(a.out, exist_ok=True)
     say(f"load average at start: {os.getloadavg()[0]:.2f}")
     report = {"kinds": [kind_targets(k, a.out, a.time_limit) for k in a.kinds.split(",") if k]}
     if not a.skip_large:
-        report["large"] = large_target(a.out, a.time_limit, tuple(int(x) << 20 for x in a.large_frames.split(",")))
+        report["large"] = large_target(a.out, a.time_limit, tuple(int(x) << 20 for x in a.large_frames.split(",")),
+                                       a.large_preset)
     if not a.skip_presets and "python_stdlib" in a.kinds:
         report["presets"] = presets(a.out, a.time_limit)
     say("\n== summary")

@@ -90,7 +90,7 @@ def golden_braid_mixed():
 
 
 def golden_braid_fork():
-    """The default preset since the tree refinement: braid-mixed-tiny.lcmodel's tables and
+    """The braid-tree preset (braid plus the tree refinement): braid-mixed-tiny.lcmodel's tables and
     parameters with the refinement's three parameters added (the preset's values), and a
     version-2 container of text with indented lines (so the column context is exercised)
     whose first frame has two lanes."""
@@ -103,7 +103,7 @@ def golden_braid_fork():
         print(f"keep {arc}")
         return
     meta, arrays, _ = modelfile.load(os.path.join(HERE, "braid-mixed-tiny.lcmodel"))
-    params = {**meta["architecture"]["params"], **PRESETS["braid"]["fork"]}
+    params = {**meta["architecture"]["params"], **PRESETS["braid-tree"]["fork"]}
     modelfile.dump(mpath, {"name": "braid", "params": params}, arrays)
     text = sample_text(61, 150_000).decode("latin-1").splitlines()
     data = "\n".join(("    " * (i % 4)) + line for i, line in enumerate(text)).encode("latin-1")[:150_000]

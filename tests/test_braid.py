@@ -194,7 +194,7 @@ def test_golden_mixed_model_and_container():
 
 
 def test_golden_fork_model_and_container():
-    """The default preset since the tree refinement (made by scripts/make_golden.py): its
+    """The braid-tree preset (braid plus the tree refinement; made by scripts/make_golden.py): its
     parameters name the refinement, and the container (first frame in two lanes) still
     decodes and re-encodes byte for byte; decoding it in two threads agrees."""
     from lcodec.container import read_container
@@ -222,6 +222,9 @@ def test_train_cli_default_preset_is_braid(tmp_path):
     assert "exported braid model: validation" in r.stderr
     meta, _, _ = modelfile.load(str(out))
     assert meta["architecture"]["name"] == "braid" and meta["validation"]["integer_bpb"] > 0
+    assert "fork_shift" not in meta["architecture"]["params"]  # the tree refinement is preset braid-tree's
+    from lcodec.braid_train import PRESETS
+    assert PRESETS["braid-tree"] == dict(PRESETS["braid"], fork=dict(fork_shift=3, fork_mix_shift=15, fork_cut=7))
     r2 = subprocess.run([sys.executable, "-m", "lcodec", "train", str(corpus), "-o", str(out)], capture_output=True, text=True)
     assert r2.returncode == 2 and "exists" in r2.stderr  # never overwritten without --force
 
