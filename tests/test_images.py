@@ -933,6 +933,18 @@ def test_golden_image_containers_exist():
 GOLDEN_STRUCTURE = sorted(f[:-7] for f in os.listdir(GOLDEN) if f.startswith("tessel-s1-") and f.endswith(".lcodec"))
 
 
+def _golden_image_round_trip(model, name):
+    """A golden image container: one modelled image frame, decoded in 1 and 2 threads to the
+    original bytes, which today's encoder turns into the same container."""
+    blob = open(os.path.join(GOLDEN, name + ".lcodec"), "rb").read()
+    orig = open(os.path.join(GOLDEN, name + ".orig"), "rb").read()
+    assert lcodec.info(blob)["frames"][0]["method"] == "modelled/image"
+    assert lcodec.unpack(blob, model=model) == orig
+    assert b"".join(api.decode(blob, model=model, workers=2).frames) == orig
+    assert lcodec.pack(orig, model=model) == blob
+    return blob, orig
+
+
 GOLDEN_LAW = sorted(f[:-7] for f in os.listdir(GOLDEN) if f.startswith("tessel-l1-") and f.endswith(".lcodec"))
 
 
@@ -948,12 +960,7 @@ def test_golden_law_containers_decode_exactly(name):
     law stage makes MR_small's archive smaller than the structure model's golden one."""
     model = os.path.join(GOLDEN, "tessel-tiny-law.lcmodel")
     assert load_model(model).inner.params["law"] == {"limit": 255, "cap": 12}
-    blob = open(os.path.join(GOLDEN, name + ".lcodec"), "rb").read()
-    orig = open(os.path.join(GOLDEN, name + ".orig"), "rb").read()
-    assert lcodec.info(blob)["frames"][0]["method"] == "modelled/image"
-    assert lcodec.unpack(blob, model=model) == orig
-    assert b"".join(api.decode(blob, model=model, workers=2).frames) == orig
-    assert lcodec.pack(orig, model=model) == blob
+    blob, orig = _golden_image_round_trip(model, name)
     if name.endswith("dicom16"):  # reference reader: pydicom
         assert np.array_equal(pydicom.dcmread(io.BytesIO(orig)).pixel_array,
                               pydicom.dcmread(_dicom("MR_small.dcm")).pixel_array)
@@ -971,12 +978,7 @@ def test_golden_structure_containers_decode_exactly(name):
     encoder writes the same bytes, with 1 and 2 decoding threads."""
     model = os.path.join(GOLDEN, "tessel-tiny-structure.lcmodel")
     assert load_model(model).inner.params["structure"]["blend"] == 1
-    blob = open(os.path.join(GOLDEN, name + ".lcodec"), "rb").read()
-    orig = open(os.path.join(GOLDEN, name + ".orig"), "rb").read()
-    assert lcodec.info(blob)["frames"][0]["method"] == "modelled/image"
-    assert lcodec.unpack(blob, model=model) == orig
-    assert b"".join(api.decode(blob, model=model, workers=2).frames) == orig
-    assert lcodec.pack(orig, model=model) == blob
+    blob, orig = _golden_image_round_trip(model, name)
     if name.endswith("dicom16"):  # reference reader: pydicom
         assert np.array_equal(pydicom.dcmread(io.BytesIO(orig)).pixel_array,
                               pydicom.dcmread(_dicom("MR_small.dcm")).pixel_array)

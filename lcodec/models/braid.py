@@ -174,10 +174,10 @@ def _byte_class_table() -> np.ndarray:
 BYTE_CLASS = _byte_class_table()
 
 
-def _odds_table() -> np.ndarray:
-    """M[i + WMAX] = floor(2**16 * 2**(i / 64)) for i in -WMAX..WMAX, from Python integers
-    only: 2**(j / 64) is six nested integer square roots of 2**(64 * 60 + j), and floor
-    sqrt of floor sqrt is floor of the fourth root, so every entry is exact."""
+def _root64() -> list:
+    """floor(2**60 * 2**(j / 64)) for j = 0..63, from Python integers only: six nested integer
+    square roots of 2**(64 * 60 + j) (floor sqrt of floor sqrt is the floor of the fourth
+    root, and so on), so every entry is exact."""
     from math import isqrt
 
     root = []
@@ -185,7 +185,15 @@ def _odds_table() -> np.ndarray:
         y = 1 << (64 * 60 + j)
         for _ in range(6):
             y = isqrt(y)
-        root.append(y)  # floor(2**60 * 2**(j / 64))
+        root.append(y)
+    return root
+
+
+def _odds_table() -> np.ndarray:
+    """M[i + WMAX] = floor(2**16 * 2**(i / 64)) for i in -WMAX..WMAX, from Python integers
+    only: 2**(j / 64) is six nested integer square roots of 2**(64 * 60 + j), and floor
+    sqrt of floor sqrt is floor of the fourth root, so every entry is exact."""
+    root = _root64()
     out = np.empty(2 * WMAX + 1, np.int64)
     for i in range(-WMAX, WMAX + 1):
         q, j = divmod(i, 64)
@@ -429,14 +437,7 @@ def _fork_tables():
     2**(j - FORK_RANGE)), FORK_SQUASH[i + FORK_LIM]: the share at log odds step i, both
     floor(FORK_ONE * o30 / (o30 + 2**30)) clamped to 1..FORK_ONE-1. Python integers and
     integer numpy only: identical everywhere."""
-    from math import isqrt
-
-    root = []
-    for j in range(64):
-        y = 1 << (64 * 60 + j)
-        for _ in range(6):
-            y = isqrt(y)
-        root.append(y)  # floor(2**60 * 2**(j / 64))
+    root = _root64()
     o30 = np.empty(2 * FORK_LIM + 1, np.int64)
     for i in range(-FORK_LIM, FORK_LIM + 1):
         q, j = divmod(i, 64)
