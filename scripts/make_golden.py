@@ -89,25 +89,32 @@ def golden_braid_mixed():
     write_vector("braid-v2-mixed", sample_text(59, 150_000), model=mpath, frame_size=140_000)
 
 
-def golden_braid_fork():
+def golden_braid_fork(name: str = "fork", fork: dict | None = None, seed: int = 61):
     """The braid-tree preset (braid plus the tree refinement): braid-mixed-tiny.lcmodel's tables and
-    parameters with the refinement's three parameters added (the preset's values), and a
-    version-2 container of text with indented lines (so the column context is exercised)
-    whose first frame has two lanes."""
+    parameters with the refinement's parameters added, and a version-2 container of text
+    with indented lines (so the column context is exercised) whose first frame has two
+    lanes. `fork`: the refinement as first released (braid-fork-tiny, braid-v2-fork) unless
+    given (braid-fork2-tiny, braid-v2-fork2: the preset with its later parts)."""
     from lcodec import modelfile
-    from lcodec.braid_train import PRESETS
+    from lcodec.braid_train import TREE_V1
 
-    mpath = os.path.join(HERE, "braid-fork-tiny.lcmodel")
-    arc = os.path.join(HERE, "braid-v2-fork.lcodec")
+    mpath = os.path.join(HERE, f"braid-{name}-tiny.lcmodel")
+    arc = os.path.join(HERE, f"braid-v2-{name}.lcodec")
     if os.path.exists(arc):
         print(f"keep {arc}")
         return
     meta, arrays, _ = modelfile.load(os.path.join(HERE, "braid-mixed-tiny.lcmodel"))
-    params = {**meta["architecture"]["params"], **PRESETS["braid-tree"]["fork"]}
+    params = {**meta["architecture"]["params"], **(fork or TREE_V1)}
     modelfile.dump(mpath, {"name": "braid", "params": params}, arrays)
-    text = sample_text(61, 150_000).decode("latin-1").splitlines()
+    text = sample_text(seed, 150_000).decode("latin-1").splitlines()
     data = "\n".join(("    " * (i % 4)) + line for i, line in enumerate(text)).encode("latin-1")[:150_000]
-    write_vector("braid-v2-fork", data, model=mpath, frame_size=140_000)
+    write_vector(f"braid-v2-{name}", data, model=mpath, frame_size=140_000)
+
+
+def golden_braid_fork2():
+    from lcodec.braid_train import PRESETS
+
+    golden_braid_fork("fork2", PRESETS["braid-tree"]["fork"], seed=62)
 
 
 def golden_tessel():
@@ -234,6 +241,7 @@ def main():
     golden_braid()
     golden_braid_mixed()
     golden_braid_fork()
+    golden_braid_fork2()
     golden_tessel()
     golden_tessel_structure()
     golden_tessel_law()

@@ -210,6 +210,23 @@ def test_golden_fork_model_and_container():
     assert lcodec.pack(orig, model=model, frame_size=140_000) == blob
 
 
+def test_golden_fork2_model_and_container():
+    """The braid-tree preset with the refinement's later parts (context-picked weight sets,
+    two more inputs, the final stage): the container decodes and re-encodes byte for byte,
+    also in two threads, and is smaller than the first refinement's on the same model."""
+    from lcodec.braid_train import PRESETS
+
+    model = os.path.join(GOLDEN, "braid-fork2-tiny.lcmodel")
+    blob = open(os.path.join(GOLDEN, "braid-v2-fork2.lcodec"), "rb").read()
+    orig = open(os.path.join(GOLDEN, "braid-v2-fork2.orig"), "rb").read()
+    p = modelfile.load(model)[0]["architecture"]["params"]
+    assert {k: p[k] for k in PRESETS["braid-tree"]["fork"]} == PRESETS["braid-tree"]["fork"]
+    assert lcodec.unpack(blob, model=model) == orig
+    assert lcodec.unpack(blob, model=model, workers=2) == orig
+    assert lcodec.pack(orig, model=model, frame_size=140_000) == blob
+    assert len(blob) < len(lcodec.pack(orig, model=os.path.join(GOLDEN, "braid-fork-tiny.lcmodel"), frame_size=140_000))
+
+
 def test_train_cli_default_preset_is_braid(tmp_path):
     corpus = tmp_path / "corpus"
     corpus.mkdir()
@@ -224,7 +241,8 @@ def test_train_cli_default_preset_is_braid(tmp_path):
     assert meta["architecture"]["name"] == "braid" and meta["validation"]["integer_bpb"] > 0
     assert "fork_shift" not in meta["architecture"]["params"]  # the tree refinement is preset braid-tree's
     from lcodec.braid_train import PRESETS
-    assert PRESETS["braid-tree"] == dict(PRESETS["braid"], fork=dict(fork_shift=3, fork_mix_shift=15, fork_cut=7))
+    assert PRESETS["braid-tree"] == dict(PRESETS["braid"], fork=dict(fork_shift=3, fork_mix_shift=15, fork_cut=7,
+                                                                     fork_sets=1, fork_inputs=1, fork_final=6))
     r2 = subprocess.run([sys.executable, "-m", "lcodec", "train", str(corpus), "-o", str(out)], capture_output=True, text=True)
     assert r2.returncode == 2 and "exists" in r2.stderr  # never overwritten without --force
 
@@ -269,9 +287,10 @@ def test_odds_table_is_exact():
     assert (np.diff(ODDS) > 0).all()
 
 
-@pytest.mark.parametrize("which", ["tiny_mixed", "tiny_fork"])
+@pytest.mark.parametrize("which", ["tiny_mixed", "tiny_fork", "tiny_fork2"])
 def test_mixed_and_fork_parallel_pass_equals_step_pass(which, request):
-    """Escape weights (tiny_mixed), and with the tree refinement too (tiny_fork): the
+    """Escape weights (tiny_mixed), and with the tree refinement too (tiny_fork; tiny_fork2
+    with its weight sets, extra inputs and final stage): the
     teacher pass in any chunking equals the decoder's step pass, for 1, 3 and 16 lanes."""
     m = load_model(request.getfixturevalue(which))
     data = stdlib_file("shlex.py", 30_000)
@@ -357,6 +376,7 @@ def test_hostile_mixed_model_files_are_refused(tiny_mixed, tmp_path, damage):
 
 # -- refinement on the byte's binary tree (model parameters fork_*) ----------------------------
 FORK = {"fork_shift": 3, "fork_mix_shift": 15, "fork_cut": 10}  # (the preset cuts at 7; 10 refines more nodes)
+FORK2 = {**FORK, "fork_sets": 1, "fork_inputs": 1, "fork_final": 6}
 
 
 @pytest.fixture(scope="module")
@@ -368,8 +388,18 @@ def tiny_fork(tmp_path_factory, tiny_mixed):
     return path
 
 
-def test_fork_tables_depend_only_on_earlier_bytes(tiny_fork):
-    m = load_model(tiny_fork)
+@pytest.fixture(scope="module")
+def tiny_fork2(tmp_path_factory, tiny_mixed):
+    """tiny_mixed with the tree refinement and all its later parts on."""
+    meta, arrays, _ = modelfile.load(tiny_mixed)
+    path = str(tmp_path_factory.mktemp("braidfork2") / "tiny-fork2.lcmodel")
+    modelfile.dump(path, {"name": "braid", "params": {**meta["architecture"]["params"], **FORK2}}, arrays)
+    return path
+
+
+@pytest.mark.parametrize("which", ["tiny_fork", "tiny_fork2"])
+def test_fork_tables_depend_only_on_earlier_bytes(which, request):
+    m = load_model(request.getfixturevalue(which))
     data = bytearray(stdlib_file("textwrap.py", 3000))
     a = teacher_tables(m, bytes(data), 1)
     data[1500:] = bytes(reversed(data[1500:]))
@@ -377,7 +407,9 @@ def test_fork_tables_depend_only_on_earlier_bytes(tiny_fork):
     assert np.array_equal(a[:1501], b[:1501])
 
 
-def test_fork_round_trip_threads_and_processes(tiny_fork, tiny_mixed, tmp_path):
+@pytest.mark.parametrize("which", ["tiny_fork", "tiny_fork2"])
+def test_fork_round_trip_threads_and_processes(which, request, tiny_mixed, tmp_path):
+    tiny_fork = request.getfixturevalue(which)
     data = stdlib_file("calendar.py") + stdlib_file("textwrap.py") * 4  # > 128 KiB: several lanes
     blob = lcodec.pack(data, model=tiny_fork, frame_size=100_000)
     assert lcodec.unpack(blob, model=tiny_fork) == data
@@ -396,14 +428,20 @@ def test_fork_round_trip_threads_and_processes(tiny_fork, tiny_mixed, tmp_path):
     assert len(digests) == 1
 
 
-def test_fork_never_worse_than_without(tiny_fork, tiny_mixed):
+def test_fork_never_worse_than_without(tiny_fork, tiny_fork2, tiny_mixed):
     """On held-out files the refinement costs at most 1% more than the same model without
-    it and than strata alone."""
-    on, off = load_model(tiny_fork), load_model(tiny_mixed)
+    it and than strata alone; its later parts at most 1% more than the refinement without
+    them (and less in total)."""
+    on, on2, off = load_model(tiny_fork), load_model(tiny_fork2), load_model(tiny_mixed)
+    t1 = t2 = 0.0
     for name in ("calendar.py", "shlex.py", "textwrap.py", "heapq.py"):
         data = stdlib_file(name)
         b_on, b_off, b_adapt = nll_bits(on, data), nll_bits(off, data), nll_bits(S.Strata(), data)
+        b_on2 = nll_bits(on2, data)
         assert b_on <= 1.01 * min(b_off, b_adapt), (name, b_on, b_off, b_adapt)
+        assert b_on2 <= 1.01 * min(b_on, b_off, b_adapt), (name, b_on2, b_on)
+        t1, t2 = t1 + b_on, t2 + b_on2
+    assert t2 < t1
 
 
 def _fork_reference_tables():
@@ -451,19 +489,37 @@ def test_fork_constant_tables_are_exact():
     assert np.abs(FORK_STRETCH[1:] - ref).max() <= 1 and (np.diff(FORK_STRETCH) >= 0).all()
 
 
-def _py_fork_predict(st, p, cut_shift, tabrows, wts):
+def _py_fork_predict(st, p, cut_shift, tabrows, wsum, grid, pre=None, expect=-1, finrows=None):
     """The refinement of one distribution in Python integers: tabrows[u][n] is table u's
-    row for node n (the lane's contexts), wts[n] the node's mixer weights."""
-    from lcodec.models.braid import FORK_LIM, FORK_MASS, FORK_ONE, FORK_POINTS, FORK_SQUASH
+    row for node n (the lane's contexts; stored share + 1, 0 = never read, set to the grid's
+    share + 1 here as the kernel does), wsum[n] the node's mixer weights (the sum of its
+    sets); pre: the distribution before the repeat model (fork_inputs), expect: the
+    repeat's byte or -1, finrows[n]: the final stage's row (fork_final)."""
+    from lcodec.models.braid import FORK_LIM, FORK_MASS, FORK_ONE, FORK_POINTS, FORK_REPEAT_X, FORK_SQUASH
 
-    sub = [0] * 512
-    for s in range(256):
-        sub[256 + s] = int(p[s]) + 1
-    for n in range(255, 0, -1):
-        sub[n] = sub[2 * n] + sub[2 * n + 1]
+    def sums(v):
+        sub = [0] * 512
+        for s in range(256):
+            sub[256 + s] = int(v[s]) + 1
+        for n in range(255, 0, -1):
+            sub[n] = sub[2 * n] + sub[2 * n + 1]
+        return sub
+
+    def read(row, j, w):
+        for g in (j, j + 1):
+            if row[g] == 0:
+                row[g] = int(grid[g]) + 1
+        return min(max(((row[j] - 1) * (64 - w) + (row[j + 1] - 1) * w) >> 6, 1), FORK_ONE - 1)
+
+    def place(i):
+        j, w = i >> 6, i & 63
+        return (FORK_POINTS - 2, 64) if j >= FORK_POINTS - 1 else (j, w)
+
+    sub = sums(p)
+    sub0 = sums(pre) if pre is not None else None
     out = [int(v) for v in p]
     mass = {1: FORK_MASS}
-    pos, xin, pout = {}, {}, {}
+    pos, xin, pout, fpos = {}, {}, {}, {}
     cut = FORK_MASS >> cut_shift
     for n in range(1, 256):
         if n not in mass:
@@ -480,37 +536,45 @@ def _py_fork_predict(st, p, cut_shift, tabrows, wts):
         q = min(max((sub[2 * n + 1] << 16) // (sub[2 * n] + sub[2 * n + 1]), 1), FORK_ONE - 1)
         i = int(st[q]) + FORK_LIM
         pos[n] = i
-        j, w = i >> 6, i & 63
-        if j >= FORK_POINTS - 1:
-            j, w = FORK_POINTS - 2, 64
-        xs = [i - FORK_LIM]
-        for rows in tabrows:
-            row = rows[n]
-            r = min(max((int(row[j]) * (64 - w) + int(row[j + 1]) * w) >> 6, 1), FORK_ONE - 1)
-            xs.append(int(st[r]))
-        dot = sum(int(a) * b for a, b in zip(wts[n], xs))
-        f = int(FORK_SQUASH[min(max(dot >> 16, -FORK_LIM), FORK_LIM) + FORK_LIM])
+        j, w = place(i)
+        xs = [i - FORK_LIM] + [int(st[read(rows[n], j, w)]) for rows in tabrows]
+        if sub0 is not None:
+            q0 = min(max((sub0[2 * n + 1] << 16) // (sub0[2 * n] + sub0[2 * n + 1]), 1), FORK_ONE - 1)
+            dep = n.bit_length() - 1
+            bit = 0
+            if expect >= 0 and (expect + 256) >> (8 - dep) == n:
+                bit = FORK_REPEAT_X if (expect >> (7 - dep)) & 1 else -FORK_REPEAT_X
+            xs += [int(st[q0]), bit]
+        dot = sum(int(a) * b for a, b in zip(wsum[n], xs))
+        d = min(max(dot >> 16, -FORK_LIM), FORK_LIM)
+        f = int(FORK_SQUASH[d + FORK_LIM])
         xin[n], pout[n] = xs, f
+        if finrows is not None:
+            fpos[n] = d + FORK_LIM
+            f = (f + read(finrows[n], *place(d + FORK_LIM))) >> 1
         hi = (m * f) >> 16
         if n < 128:
             mass[2 * n], mass[2 * n + 1] = m - hi, hi
         else:
             out[2 * n - 256], out[2 * n - 255] = m - hi, hi
-    return out, pos, xin, pout
+    return out, pos, xin, pout, fpos
 
 
-def test_fork_arithmetic_matches_python_integers():
+@pytest.mark.parametrize("more", [{}, {"fork_sets": 1, "fork_inputs": 1, "fork_final": 6}])
+def test_fork_arithmetic_matches_python_integers(more):
     """_fork_predict and _fork_update against a Python-integer reimplementation, on
     distributions at the limits (one byte holding nearly all of 2**22, every byte at its
-    largest, all zero, two bytes) and random ones, with trained-looking tables and mixer
-    weights at their clamps; the kernel's state after the update is compared too."""
-    from lcodec.models.braid import (FORK_INPUTS, FORK_LIM, FORK_ONE, FORK_POINTS, FORK_STRETCH, FORK_TABLES,
-                                     FORK_WMAX, _fork_predict, _fork_update)
+    largest, all zero, two bytes) and random ones, with trained-looking and never-read
+    table points and mixer weights at their clamps; the kernel's state after the update
+    is compared too. `more`: the refinement alone, and with its weight sets, extra inputs
+    and final stage."""
+    from lcodec.models.braid import (FORK_GRID, FORK_INPUTS, FORK_LIM, FORK_ONE, FORK_POINTS, FORK_SETS_A,
+                                     FORK_SETS_B, FORK_STRETCH, FORK_TABLES, FORK_WMAX, _fork_predict, _fork_update)
 
     rng = np.random.default_rng(5)
     arrays = build([b"abc abd abe\n" * 40], 2, 2)
-    p0 = {**params(2), **FORK}
-    m = Braid(p0, arrays)
+    m = Braid({**params(2), **FORK, **more}, arrays)
+    full = bool(more)
     cases = []
     big = np.zeros(256, np.int64)
     big[65] = (1 << 22) - 300
@@ -524,25 +588,34 @@ def test_fork_arithmetic_matches_python_integers():
         v = rng.integers(0, 1 << 14, 256) * (rng.random(256) < rng.random())
         v[rng.integers(0, 256)] += rng.integers(0, 1 << 21)
         cases.append(v.astype(np.int64))
+    n_in = FORK_INPUTS if full else FORK_TABLES + 1
     for k, p in enumerate(cases):
         fork = m.new_fork(1)
-        for n in range(256):  # weights at and beyond nothing: some at the clamps
-            fork[11][n] = rng.choice([-FORK_WMAX, FORK_WMAX, 1 << 14, -(1 << 12), 1 << 16], FORK_INPUTS)
+        wts = fork[10]
+        wts[:, :n_in] = rng.choice([-FORK_WMAX, FORK_WMAX, 1 << 14, -(1 << 12), 1 << 16], (len(wts), n_in))
+        sets = [0]
+        if full:
+            sets = [int(rng.integers(0, FORK_SETS_A)) * 256, (FORK_SETS_A + int(rng.integers(0, FORK_SETS_B))) * 256]
+            fork[15][0] = sets
+            fork[14][:] = cases[(k + 5) % len(cases)]  # the distribution before the repeat model
+        expect = int(np.argmax(p)) if k % 3 == 0 else (int(rng.integers(0, 256)) if k % 3 == 1 else -1)
         hist = np.uint64(int(rng.integers(0, 1 << 62)))
         buf = np.frombuffer(b"x = 1\n    y = 2\n   ", np.uint8).copy()
         cur = len(buf) - 1
-        fork[6][0] = (6, 0)  # line starts: the current line at 6, the one before at 0
+        fork[5][0] = (6, 0)  # line starts: the current line at 6, the one before at 0
         pk = p.copy()
-        # set the tables of the contexts this byte will read to extreme and random shares
-        _fork_predict(fork, 0, hist, pk.copy(), buf, cur)
-        for u in range(FORK_TABLES):
-            c = fork[7][0][u]
-            fork[0][c * 256:(c + 1) * 256] = rng.choice([0, 1, FORK_ONE - 1, FORK_ONE, 777, 40000], (256, FORK_POINTS))
-            fork[1][c * 256:(c + 1) * 256] = 1  # (rows are otherwise set to the grid when first read)
-        tabrows = [fork[0][c * 256:(c + 1) * 256].copy() for c in fork[7][0]]
-        wts = fork[11].copy()
-        ref, pos, xin, pout = _py_fork_predict(FORK_STRETCH, p, 10, tabrows, wts)
-        _fork_predict(fork, 0, hist, pk, buf, cur)
+        # set the tables of the contexts this byte will read to extreme, random and unread points
+        _fork_predict(fork, 0, hist, pk.copy(), buf, cur, expect)
+        ctx = list(fork[6][0][:FORK_TABLES + (1 if full else 0)])
+        for c in ctx:
+            fork[0][c * 256:(c + 1) * 256] = rng.choice([0, 1, 2, FORK_ONE, FORK_ONE + 1, 778, 40001], (256, FORK_POINTS))
+        tabrows = [[list(map(int, r)) for r in fork[0][c * 256:(c + 1) * 256]] for c in ctx]
+        finrows = tabrows.pop() if full else None
+        w0 = wts.copy()
+        wsum = [sum(w0[s + n].astype(object) for s in sets)[:n_in].tolist() for n in range(256)]
+        ref, pos, xin, pout, fpos = _py_fork_predict(FORK_STRETCH, p, 10, tabrows, wsum, FORK_GRID,
+                                                     fork[14].copy() if full else None, expect, finrows)
+        _fork_predict(fork, 0, hist, pk, buf, cur, expect)
         assert pk.tolist() == ref, k
         sym = int(rng.integers(0, 256)) if k % 2 else int(np.argmax(p))
         _fork_update(fork, 0, np.int64(sym), cur)
@@ -553,24 +626,32 @@ def test_fork_arithmetic_matches_python_integers():
                 break
             y = (sym >> bit) & 1
             tgt = y << 16
-            i = pos[n]
-            j, w = i >> 6, i & 63
+            j, w = pos[n] >> 6, pos[n] & 63
             if j >= FORK_POINTS - 1:
                 j, w = FORK_POINTS - 2, 64
             for rows in tabrows:
                 row = rows[n]
-                row[j] = int(row[j]) + (((tgt - int(row[j])) * (64 - w)) >> 9)
-                row[j + 1] = int(row[j + 1]) + (((tgt - int(row[j + 1])) * w) >> 9)
+                row[j] += ((tgt - row[j] + 1) * (64 - w)) >> 9
+                row[j + 1] += ((tgt - row[j + 1] + 1) * w) >> 9
+            if finrows is not None:
+                row = finrows[n]
+                j, w = fpos[n] >> 6, fpos[n] & 63
+                if j >= FORK_POINTS - 1:
+                    j, w = FORK_POINTS - 2, 64
+                row[j] += ((tgt - row[j] + 1) * (64 - w)) >> 12
+                row[j + 1] += ((tgt - row[j + 1] + 1) * w) >> 12
             err = tgt - pout[n]
-            wts[n] = [min(max(int(a) + ((x * err) >> 15), -FORK_WMAX), FORK_WMAX) for a, x in zip(wts[n], xin[n])]
+            for s in sets:
+                w0[s + n][:n_in] = [min(max(int(a) + ((x * err) >> 15), -FORK_WMAX), FORK_WMAX)
+                                    for a, x in zip(w0[s + n][:n_in], xin[n])]
             n = 2 * n + y
-        for u, c in enumerate(fork[7][0]):
-            assert np.array_equal(fork[0][c * 256:(c + 1) * 256], tabrows[u]), (k, u)
-        assert np.array_equal(fork[11], wts), k
+        for rows, c in zip(tabrows + ([finrows] if full else []), ctx):
+            assert fork[0][c * 256:(c + 1) * 256].tolist() == rows, (k, c)
+        assert np.array_equal(wts, w0), k
         assert FORK_LIM < 1 << 10
 
 
-@pytest.mark.parametrize("damage", ["partial", "shift", "cut", "kind"])
+@pytest.mark.parametrize("damage", ["partial", "shift", "cut", "kind", "sets", "inputs", "final", "alone"])
 def test_hostile_fork_parameters_are_refused(tiny_fork, tmp_path, damage):
     meta, arrays, _ = modelfile.load(tiny_fork)
     p = dict(meta["architecture"]["params"])
@@ -580,6 +661,16 @@ def test_hostile_fork_parameters_are_refused(tiny_fork, tmp_path, damage):
         p["fork_shift"] = 0
     elif damage == "cut":
         p["fork_cut"] = 40
+    elif damage == "sets":
+        p["fork_sets"] = 2  # would index weight sets that do not exist
+    elif damage == "inputs":
+        p["fork_inputs"] = True
+    elif damage == "final":
+        p["fork_final"] = 11
+    elif damage == "alone":  # the later parts without the refinement
+        for k in ("fork_shift", "fork_mix_shift", "fork_cut"):
+            del p[k]
+        p["fork_final"] = 6
     else:
         p["fork_mix_shift"] = 15.0
     bad = str(tmp_path / "bad.lcmodel")

@@ -415,6 +415,17 @@ def _sse_update(mix, match, b, sym):
 # bytes' proportions (nothing is read or learned there). After each byte, the nodes on its
 # path that were refined move their tables' two grid points toward the coded bit (rate
 # 2**-fork_shift) and their mixer weights along the gradient (2**-fork_mix_shift).
+# Three optional parts on top (each its own model parameter, absent = off):
+# fork_sets: the mixer's weights for a node are the sum of two sets picked by context, one
+#   by the kind of the byte before x the repeat model's state (none, or a repeat followed
+#   for < 12, < 24, >= 24 bytes), one by the layer at the top of the chain (which order,
+#   the file's or the corpus's, had the longest context);
+# fork_inputs: two more mixer inputs, the node's split before the repeat model and the
+#   secondary estimation changed it, and the repeat's expected bit (+-4 doublings, on the
+#   nodes of the repeated byte's path only);
+# fork_final: a final stage keyed by a hash of the two bytes before x node, read at the
+#   mixer's output on the same grid, learning at rate 2**-fork_final; the node's share is
+#   the average of the mixer's and the final stage's.
 FORK_STEP = 64  # grid resolution of log2 odds: 1/64 of a doubling (as ODDS)
 FORK_RANGE = 12  # table grid points every doubling from odds 2**-12 to 2**12
 FORK_POINTS = 2 * FORK_RANGE + 1
@@ -422,9 +433,12 @@ FORK_LIM = FORK_RANGE * FORK_STEP  # log odds clamped to +-FORK_LIM steps
 FORK_ONE = 1 << 16  # shares in 16 fraction bits
 FORK_MASS = 1 << 22  # the refined distribution's total (before each byte's + 1 in _emit)
 FORK_HASH_BITS = 12  # buckets of the two hashed contexts
-FORK_CTX = 256 + 2 * (1 << FORK_HASH_BITS)  # contexts: byte before, three bytes hashed, byte above
+FORK_CTX = 256 + 3 * (1 << FORK_HASH_BITS)  # contexts: byte before, three bytes hashed, byte above, final stage's
 FORK_TABLES = 3
-FORK_INPUTS = FORK_TABLES + 1
+FORK_INPUTS = FORK_TABLES + 3  # q, the tables' shares, q before the repeat model, the repeat's bit
+FORK_SETS_A = 32  # byte class (8) x repeat state (4)
+FORK_SETS_B = 19  # nothing found, the file's order 0..8, the corpus's order 0..8
+FORK_REPEAT_X = 256  # the repeat's expected bit as a mixer input: 4 doublings of odds
 FORK_WMAX = 1 << 20  # mixer weights in 16 fraction bits, clamped to +-16
 FORK_W0 = 1 << 14  # every weight starts at 1/4 (the inputs' average log odds)
 
@@ -462,13 +476,47 @@ def _fork_hash(x, salt):
 
 
 @njit(cache=True, nogil=True)
-def _fork_predict(fork, b, hist, p, buf, cur):
+def _fork_keep(fork, p):
+    """With fork_inputs: keep the distribution as it is before the repeat model."""
+    if fork[4][4] != 0:
+        pre = fork[14]
+        for s in range(256):
+            pre[s] = p[s]
+
+
+@njit(cache=True, nogil=True)
+def _fork_sets(fork, b, hist, mix, match):
+    """With fork_sets: lane b's two weight sets (first rows in fork[10]), recorded."""
+    sel = fork[15][b]
+    if fork[4][3] == 0:
+        sel[0] = 0
+        sel[1] = -1
+        return
+    ml = 0
+    if match[2][b] >= 0:  # a repeat is followed
+        n = match[3][b]
+        ml = 1 if n < 12 else (2 if n < 24 else 3)
+    top = 0
+    if mix[5][1] != 0 and mix[3][b] > 0:  # the first layer the chain used (escape weights on)
+        r = mix[2][b, 0]
+        top = (1 if r[0] == 1 else 10) + min(r[7], 8)
+    sel[0] = (BYTE_CLASS[np.int64(hist & np.uint64(0xFF))] * 4 + ml) * 256
+    sel[1] = (FORK_SETS_A + top) * 256
+
+
+@njit(cache=True, nogil=True)
+def _fork_predict(fork, b, hist, p, buf, cur, expect):
     """p (the distribution so far, total < 2**22) <- the refined distribution (total about
     FORK_MASS); what lane b's update needs is recorded. buf[cur] is the byte to come: only
-    bytes before it are read."""
-    tab, ready, grid, st, sq, cfg = fork[0], fork[1], fork[2], fork[3], fork[4], fork[5]
-    line, cx, pos, xin, pout = fork[6][b], fork[7][b], fork[8][b], fork[9][b], fork[10][b]
-    wts, sub, mass, act = fork[11], fork[12], fork[13], fork[14]
+    bytes before it are read. expect: the byte the repeat model follows, or -1."""
+    tab, grid, st, sq, cfg = fork[0], fork[1], fork[2], fork[3], fork[4]
+    line, cx, pos, xin, pout = fork[5][b], fork[6][b], fork[7][b], fork[8][b], fork[9][b]
+    wts, sub, mass, act = fork[10], fork[11], fork[12], fork[13]
+    pre, sel, fpos, sub0 = fork[14], fork[15][b], fork[16][b], fork[17]
+    n_in = FORK_INPUTS if cfg[4] != 0 else FORK_TABLES + 1
+    two = sel[1] >= 0
+    s1 = sel[0]
+    s2 = sel[1] if two else s1
     if line[0] < 0:  # the lane's first byte: no line before it
         line[0] = cur
         line[1] = cur
@@ -480,17 +528,27 @@ def _fork_predict(fork, b, hist, p, buf, cur):
     cx[0] = np.int64(c1)
     cx[1] = 256 + _fork_hash(hist & np.uint64(0xFFFFFF), np.uint64(11))
     cx[2] = 256 + (1 << FORK_HASH_BITS) + _fork_hash((above << np.uint64(8)) | c1, np.uint64(23))
+    cx[3] = 256 + 2 * (1 << FORK_HASH_BITS) + _fork_hash(hist & np.uint64(0xFFFF), np.uint64(53))
     for s in range(256):
         sub[256 + s] = p[s] + 1
     for n in range(255, 0, -1):
         sub[n] = sub[2 * n] + sub[2 * n + 1]  # < 2**23
+    if cfg[4] != 0:
+        for s in range(256):
+            sub0[256 + s] = pre[s] + 1
+        for n in range(255, 0, -1):
+            sub0[n] = sub0[2 * n] + sub0[2 * n + 1]  # < 2**23
     cut = np.int64(FORK_MASS) >> cfg[2]
     for n in range(2, 256):
         act[n] = 0
     act[1] = 1
     mass[1] = FORK_MASS
+    dep = -1
     for n in range(1, 256):
+        if n & (n - 1) == 0:
+            dep += 1  # n's depth in the tree: 0 at the root, 7 above the bytes
         pos[n] = -1
+        fpos[n] = -1
         if act[n] == 0:
             continue
         m = mass[n]
@@ -516,24 +574,58 @@ def _fork_predict(fork, b, hist, p, buf, cur):
         if j >= FORK_POINTS - 1:
             j = FORK_POINTS - 2
             w = 64
-        xs = xin[n]
-        ws = wts[n]
-        xs[0] = i - FORK_LIM
-        dot = ws[0] * xs[0]
+        a1 = s1 + n
+        a2 = s2 + n
+        xin[n, 0] = i - FORK_LIM
+        if n_in > FORK_TABLES + 1:
+            q0 = (sub0[2 * n + 1] << 16) // (sub0[2 * n] + sub0[2 * n + 1])  # < 2**39
+            q0 = min(max(q0, np.int64(1)), np.int64(FORK_ONE - 1))
+            xin[n, FORK_TABLES + 1] = np.int64(st[q0])
+            xin[n, FORK_TABLES + 2] = 0
+            if expect >= 0 and ((expect + 256) >> (8 - dep)) == n:  # n is on the repeated byte's path
+                xin[n, FORK_TABLES + 2] = FORK_REPEAT_X if (expect >> (7 - dep)) & 1 else -FORK_REPEAT_X
+        dot = (wts[a1, 0] + (wts[a2, 0] if two else 0)) * xin[n, 0]
+        for u in range(FORK_TABLES + 1, n_in):
+            dot += (wts[a1, u] + (wts[a2, u] if two else 0)) * xin[n, u]
         for u in range(FORK_TABLES):
             ri = cx[u] * 256 + n
-            row = tab[ri]
-            if ready[ri] == 0:  # a row is set to the grid's shares when first read
-                ready[ri] = 1
-                for g in range(FORK_POINTS):
-                    row[g] = grid[g]
-            r = (np.int64(row[j]) * (64 - w) + np.int64(row[j + 1]) * w) >> 6  # rows <= 2**16
+            v0 = np.int64(tab[ri, j])
+            if v0 == 0:  # a point never read: the grid's own share (rows store share + 1)
+                v0 = np.int64(grid[j]) + 1
+                tab[ri, j] = v0
+            v1 = np.int64(tab[ri, j + 1])
+            if v1 == 0:
+                v1 = np.int64(grid[j + 1]) + 1
+                tab[ri, j + 1] = v1
+            r = ((v0 - 1) * (64 - w) + (v1 - 1) * w) >> 6  # shares <= 2**16
             r = min(max(r, np.int64(1)), np.int64(FORK_ONE - 1))
-            xs[u + 1] = np.int64(st[r])
-            dot += ws[u + 1] * xs[u + 1]  # |w| <= 2**20, |x| <= FORK_LIM < 2**10: < 2**30 each
+            x = np.int64(st[r])
+            xin[n, u + 1] = x
+            # |w| <= 2**20 (two sets: 2**21), |x| <= FORK_LIM < 2**10: < 2**31 each, 6 inputs < 2**34
+            dot += (wts[a1, u + 1] + (wts[a2, u + 1] if two else 0)) * x
         d = min(max(dot >> 16, np.int64(-FORK_LIM)), np.int64(FORK_LIM))
         f = np.int64(sq[d + FORK_LIM])  # 1 .. FORK_ONE - 1
         pout[n] = f
+        if cfg[5] != 0:  # the final stage, read at the mixer's output
+            ri = cx[3] * 256 + n
+            ia = d + FORK_LIM
+            fpos[n] = ia
+            j = ia >> 6
+            w = ia & 63
+            if j >= FORK_POINTS - 1:
+                j = FORK_POINTS - 2
+                w = 64
+            v0 = np.int64(tab[ri, j])
+            if v0 == 0:
+                v0 = np.int64(grid[j]) + 1
+                tab[ri, j] = v0
+            v1 = np.int64(tab[ri, j + 1])
+            if v1 == 0:
+                v1 = np.int64(grid[j + 1]) + 1
+                tab[ri, j + 1] = v1
+            r = ((v0 - 1) * (64 - w) + (v1 - 1) * w) >> 6  # shares <= 2**16
+            r = min(max(r, np.int64(1)), np.int64(FORK_ONE - 1))
+            f = (f + r) >> 1
         hi = (m * f) >> 16  # m <= 2**22: < 2**38
         if n < 128:
             mass[2 * n] = m - hi
@@ -548,8 +640,11 @@ def _fork_predict(fork, b, hist, p, buf, cur):
 @njit(cache=True, nogil=True)
 def _fork_update(fork, b, sym, cur):
     """After lane b coded sym (at buf[cur]): the refined nodes on its path learn."""
-    tab, cfg = fork[0], fork[5]
-    line, cx, pos, xin, pout, wts = fork[6][b], fork[7][b], fork[8][b], fork[9][b], fork[10][b], fork[11]
+    tab, cfg = fork[0], fork[4]
+    line, cx, pos, xin, pout, wts = fork[5][b], fork[6][b], fork[7][b], fork[8][b], fork[9][b], fork[10]
+    sel, fpos = fork[15][b], fork[16][b]
+    n_in = FORK_INPUTS if cfg[4] != 0 else FORK_TABLES + 1
+    fshift = cfg[5] + 6
     if sym == 10:
         line[1] = line[0]
         line[0] = cur + 1
@@ -568,16 +663,26 @@ def _fork_update(fork, b, sym, cur):
             j = FORK_POINTS - 2
             w = 64
         for u in range(FORK_TABLES):
-            row = tab[cx[u] * 256 + n]
-            # bound: |tgt - row| <= 2**16, weights <= 64: products <= 2**22; rows stay in 0..2**16
-            row[j] += ((tgt - row[j]) * (64 - w)) >> shift
-            row[j + 1] += ((tgt - row[j + 1]) * w) >> shift
-        err = tgt - pout[n]  # |err| < 2**16
-        ws = wts[n]
-        xs = xin[n]
-        for u in range(FORK_INPUTS):
-            # bound: |x| <= FORK_LIM < 2**10, so |x * err| < 2**26
-            ws[u] = min(max(ws[u] + ((xs[u] * err) >> lr), np.int64(-FORK_WMAX)), np.int64(FORK_WMAX))
+            ri = cx[u] * 256 + n
+            # rows store share + 1 (0: never read); |tgt - share| <= 2**16, weights <= 64:
+            # products <= 2**22; shares stay in 0..2**16
+            tab[ri, j] += ((tgt - tab[ri, j] + 1) * (64 - w)) >> shift
+            tab[ri, j + 1] += ((tgt - tab[ri, j + 1] + 1) * w) >> shift
+        if fpos[n] >= 0:  # the final stage's two grid points, like the tables'
+            ri = cx[3] * 256 + n
+            j = fpos[n] >> 6
+            w = fpos[n] & 63
+            if j >= FORK_POINTS - 1:
+                j = FORK_POINTS - 2
+                w = 64
+            tab[ri, j] += ((tgt - tab[ri, j] + 1) * (64 - w)) >> fshift
+            tab[ri, j + 1] += ((tgt - tab[ri, j + 1] + 1) * w) >> fshift
+        err = tgt - pout[n]  # |err| < 2**16: the mixer learns from its own output
+        for k2 in range(2 if sel[1] >= 0 else 1):
+            a = sel[k2] + n
+            for u in range(n_in):
+                # bound: |x| <= FORK_LIM < 2**10, so |x * err| < 2**26
+                wts[a, u] = min(max(wts[a, u] + ((xin[n, u] * err) >> lr), np.int64(-FORK_WMAX)), np.int64(FORK_WMAX))
         n = 2 * n + y
 
 
@@ -742,7 +847,7 @@ def _teacher(corpus, state, match, data, starts, lengths, t0, t1, max_order, has
     use_match = match[5][3] > 0 and corpus[5][0] == 0
     use_mix = mix[5][1] != 0
     use_sse = use_match and mix[5][2] != 0
-    use_fork = fork[5][0] != 0
+    use_fork = fork[4][0] != 0
     i = 0
     for t in range(t0, t1):
         m = 0
@@ -752,12 +857,15 @@ def _teacher(corpus, state, match, data, starts, lengths, t0, t1, max_order, has
         for b in range(m):
             _slots(mix, b, hist[b], max_order, hash_log2, bases, gen, slots, checks)
             _braid_predict(corpus, state, hist[b], slots, checks, max_order, dfile, p, mix, b)
+            if use_fork:
+                _fork_keep(fork, p)
             if use_match:
                 S._match_predict(match, b, p)
                 if use_sse:
                     _sse_predict(mix, match, b, hist[b], p)
             if use_fork:
-                _fork_predict(fork, b, hist[b], p, data, starts[b] + t)
+                _fork_sets(fork, b, hist[b], mix, match)
+                _fork_predict(fork, b, hist[b], p, data, starts[b] + t, match[7][b] if match[2][b] >= 0 else -1)
             S._emit(p, out_tab[i + b])
             out_syms[i + b] = data[starts[b] + t]
         if use_mix:  # every lane's weights update before any count changes
@@ -797,7 +905,7 @@ def _step(corpus, state, match, starts, syms, t_prev, m_prev, m, max_order, hash
     if use_sse:
         for b in range(m_prev):
             _sse_update(mix, match, b, np.int64(syms[b]))
-    use_fork = fork[5][0] != 0
+    use_fork = fork[4][0] != 0
     if use_fork:  # before any count changes, like the escape weights (it reads none of them)
         for b in range(m_prev):
             _fork_update(fork, b, np.int64(syms[b]), starts[b] + t_prev)
@@ -812,12 +920,15 @@ def _step(corpus, state, match, starts, syms, t_prev, m_prev, m, max_order, hash
     for b in range(m):
         _slots(mix, b, hist[b], max_order, hash_log2, bases, gen, slots, checks)
         _braid_predict(corpus, state, hist[b], slots, checks, max_order, dfile, p, mix, b)
+        if use_fork:
+            _fork_keep(fork, p)
         if use_match:
             S._match_predict(match, b, p)
             if use_sse:
                 _sse_predict(mix, match, b, hist[b], p)
         if use_fork:
-            _fork_predict(fork, b, hist[b], p, buf, starts[b] + t_prev + 1)
+            _fork_sets(fork, b, hist[b], mix, match)
+            _fork_predict(fork, b, hist[b], p, buf, starts[b] + t_prev + 1, match[7][b] if match[2][b] >= 0 else -1)
         S._emit(p, out_tab[b])
 
 
@@ -898,7 +1009,8 @@ class Braid:
         """prior_only: the corpus layers alone (no file layers, no repeat model), for the
         ablation figures; such an object is only ever costed, never used to pack."""
         allowed = {"corpus_order", "max_order", "hash_log2", "discount", "match_min"}
-        optional = {"mix_shift", "sse_bits", "lane_tables", "fork_shift", "fork_mix_shift", "fork_cut"}  # absent: the plain chain (model files made before it)
+        optional = {"mix_shift", "sse_bits", "lane_tables", "fork_shift", "fork_mix_shift", "fork_cut",
+                    "fork_sets", "fork_inputs", "fork_final"}  # absent: the plain chain (model files made before it)
         if not isinstance(params, dict) or not allowed <= set(params) <= allowed | optional:
             raise ValueError(f"braid needs exactly {', '.join(sorted(allowed))} (and optionally {', '.join(sorted(optional))})")
         ms = params.get("mix_shift", 0)
@@ -917,7 +1029,13 @@ class Braid:
         if fork != [None] * 3:
             if any(type(v) is not int for v in fork) or not (1 <= fork[0] <= 10 and 10 <= fork[1] <= 24 and 1 <= fork[2] <= 22):
                 raise ValueError("fork_shift (1..10), fork_mix_shift (10..24) and fork_cut (1..22) go together")
-        self.fork = fork if fork[0] is not None and not prior_only else None  # the prior alone: no adaptation
+        more = [params.get(k, 0) for k in ("fork_sets", "fork_inputs", "fork_final")]
+        if any(type(v) is not int for v in more) or more[0] not in (0, 1) or more[1] not in (0, 1) \
+                or not (more[2] == 0 or 1 <= more[2] <= 10):
+            raise ValueError("fork_sets and fork_inputs must be 0 or 1, fork_final 0 (off) or 1..10")
+        if any(more) and fork[0] is None:
+            raise ValueError("fork_sets, fork_inputs and fork_final need fork_shift, fork_mix_shift and fork_cut")
+        self.fork = fork + more if fork[0] is not None and not prior_only else None  # the prior alone: no adaptation
         if type(params["corpus_order"]) is not int or not 0 <= params["corpus_order"] <= 8:
             raise ValueError("corpus_order must be 0..8")
         self.file = S.Strata.from_params({k: params[k] for k in ("max_order", "hash_log2", "discount", "match_min")})
@@ -1014,24 +1132,24 @@ class Braid:
 
     def new_fork(self, n_lanes: int):
         """The tree refinement's state for one frame: the context tables (FORK_CTX contexts
-        x 256 nodes x FORK_POINTS shares, int32; a row is filled when first read, so
-        untouched memory is never written), which rows are filled, the
-        constant tables, the settings, per-lane records for the update, and the mixer
-        weights (one set per node)."""
-        if self.fork is None:
-            one = np.zeros((1, 1), np.int32)
-            return (one, np.zeros(1, np.uint8), FORK_GRID, FORK_STRETCH, FORK_SQUASH, np.zeros(3, np.int64),
-                    np.zeros((1, 2), np.int64), np.zeros((1, FORK_TABLES), np.int64), np.zeros((1, 256), np.int64),
-                    np.zeros((1, 256, FORK_INPUTS), np.int64), np.zeros((1, 256), np.int64),
-                    np.zeros((256, FORK_INPUTS), np.int64), np.zeros(512, np.int64), np.zeros(256, np.int64),
-                    np.zeros(256, np.int64))
-        nl = max(n_lanes, 1)
-        return (np.empty((FORK_CTX * 256, FORK_POINTS), np.int32), np.zeros(FORK_CTX * 256, np.uint8), FORK_GRID,
-                FORK_STRETCH, FORK_SQUASH, np.array(self.fork, np.int64),
-                np.full((nl, 2), -1, np.int64), np.zeros((nl, FORK_TABLES), np.int64), np.zeros((nl, 256), np.int64),
+        x 256 nodes x FORK_POINTS shares + 1, int32, zeroed: a point is set when first read,
+        and a zeroed mapping costs nothing where no context reaches), the constant tables,
+        the settings, per-lane records for the update, the mixer weights (one set per node;
+        with fork_sets FORK_SETS_A + FORK_SETS_B sets, the second kind starting at zero),
+        scratch for the subtree sums, the distribution before the repeat model, and each
+        lane's weight sets and final-stage points."""
+        nl = max(n_lanes, 1) if self.fork is not None else 1
+        cfg = self.fork if self.fork is not None else [0] * 6
+        sets = FORK_SETS_A + FORK_SETS_B if cfg[3] else 1
+        wts = np.zeros((256 * sets, FORK_INPUTS), np.int64)
+        wts[:256 * (FORK_SETS_A if cfg[3] else 1), :FORK_TABLES + 1] = FORK_W0
+        rows = FORK_CTX * 256 if self.fork is not None else 1
+        return (np.zeros((rows, FORK_POINTS), np.int32), FORK_GRID, FORK_STRETCH, FORK_SQUASH, np.array(cfg, np.int64),
+                np.full((nl, 2), -1, np.int64), np.zeros((nl, FORK_TABLES + 1), np.int64), np.zeros((nl, 256), np.int64),
                 np.zeros((nl, 256, FORK_INPUTS), np.int64), np.zeros((nl, 256), np.int64),
-                np.full((256, FORK_INPUTS), FORK_W0, np.int64), np.zeros(512, np.int64), np.zeros(256, np.int64),
-                np.zeros(256, np.int64))
+                wts, np.zeros(512, np.int64), np.zeros(256, np.int64), np.zeros(256, np.int64),
+                np.zeros(256, np.int64), np.tile(np.array([0, -1], np.int64), (nl, 1)),
+                np.zeros((nl, 256), np.int64), np.zeros(512, np.int64))
 
     def teacher_chunks(self, data, starts, lengths, chunk_steps: int = 256, match_stats=None, mix_weights=None):
         """match_stats: an array of the hit-rate cells' shape, to which this frame's
