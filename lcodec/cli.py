@@ -578,7 +578,7 @@ def explain(file, model, output, png_out, frame_size, view_bytes, force, quiet):
                    "Default: 600 for bytes, 120 for images.")
 @click.option("--preset", default=None,
               help="Byte models: braid (corpus statistics braided with per-file adaptation; the default), "
-                   "braid-tree (braid plus a refinement of each byte's binary tree: about 3% smaller, slower to "
+                   "braid-tree (braid plus a refinement of each byte's binary tree: about 4.5% smaller, about a quarter slower to "
                    "decode), braid-lean (smaller, faster), or the neural model weft: preset weft (hashed contexts), small, "
                    "tiny (need torch). "
                    "Images: small (the default) or tiny. Figures in README.md.")
