@@ -171,22 +171,18 @@ def golden_tessel_structure():
     import skimage.data as skd
     from pydicom.data import get_testdata_file
 
-    from lcodec import modelfile
-
     mpath = os.path.join(HERE, "tessel-tiny-structure.lcmodel")
     names = ["tessel-s1-moon2x", "tessel-s1-mosaic", "tessel-s1-dicom16"]
     if all(os.path.exists(os.path.join(HERE, n + ".lcodec")) for n in names):
         print("keep tessel-s1-*")
         return
     warnings.simplefilter("ignore")
-    if not os.path.exists(mpath):
-        meta, arrays, _ = modelfile.load(os.path.join(HERE, "tessel-tiny.lcmodel"))
-        arch = meta.pop("architecture")
-        meta.pop("arrays")
-        roles = sorted(arch["params"]["roles"])
-        arch["params"]["adapt"] = {r: 4096 for r in roles}
-        arch["params"]["structure"] = {"k": {r: 32 for r in roles}, "cap": 12, "decay": 0, "blend": 1}
-        modelfile.dump(mpath, arch, arrays, **meta)
+    def structure(params):
+        roles = sorted(params["roles"])
+        params["adapt"] = {r: 4096 for r in roles}
+        params["structure"] = {"k": {r: 32 for r in roles}, "cap": 12, "decay": 0, "blend": 1}
+
+    derive_tessel("tessel-tiny.lcmodel", mpath, structure)
     moon = skd.moon()[200:240, 100:148]
     rgb = skd.astronaut()[100:132, 200:240].astype(np.int32)
     r, c = np.meshgrid(np.arange(32), np.arange(40), indexing="ij")
@@ -197,6 +193,20 @@ def golden_tessel_structure():
              open(get_testdata_file("MR_small.dcm"), "rb").read()]
     for name, data in zip(names, datas):
         write_vector(name, data, model=mpath)
+
+
+def derive_tessel(src: str, dst: str, edit) -> None:
+    """Write dst (unless it exists): the pixel model file tests/golden/SRC with its
+    parameters changed in place by edit(params), its arrays and other metadata kept."""
+    from lcodec import modelfile
+
+    if os.path.exists(dst):
+        return
+    meta, arrays, _ = modelfile.load(os.path.join(HERE, src))
+    arch = meta.pop("architecture")
+    meta.pop("arrays")
+    edit(arch["params"])
+    modelfile.dump(dst, arch, arrays, **meta)
 
 
 def golden_tessel_law():
@@ -211,20 +221,13 @@ def golden_tessel_law():
     import skimage.data as skd
     from pydicom.data import get_testdata_file
 
-    from lcodec import modelfile
-
     mpath = os.path.join(HERE, "tessel-tiny-law.lcmodel")
     names = ["tessel-l1-dicom16", "tessel-l1-signed16"]
     if all(os.path.exists(os.path.join(HERE, n + ".lcodec")) for n in names):
         print("keep tessel-l1-*")
         return
     warnings.simplefilter("ignore")
-    if not os.path.exists(mpath):
-        meta, arrays, _ = modelfile.load(os.path.join(HERE, "tessel-tiny-structure.lcmodel"))
-        arch = meta.pop("architecture")
-        meta.pop("arrays")
-        arch["params"]["law"] = {"limit": 255, "cap": 12}
-        modelfile.dump(mpath, arch, arrays, **meta)
+    derive_tessel("tessel-tiny-structure.lcmodel", mpath, lambda params: params.update(law={"limit": 255, "cap": 12}))
     a = skd.camera()[300:340, 120:168].astype(np.int32) * -97 + np.random.default_rng(5).integers(-300, 300, (40, 48))
     buf = io.BytesIO()
     np.save(buf, a.astype("<i2"))

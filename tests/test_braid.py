@@ -379,22 +379,24 @@ FORK = {"fork_shift": 3, "fork_mix_shift": 15, "fork_cut": 10}  # (the preset cu
 FORK2 = {**FORK, "fork_sets": 1, "fork_inputs": 1, "fork_final": 6}
 
 
+def _with_params(tmp_path_factory, base: str, name: str, extra: dict) -> str:
+    """The model file `base` with `extra` added to its parameters, written as NAME.lcmodel."""
+    meta, arrays, _ = modelfile.load(base)
+    path = str(tmp_path_factory.mktemp(name) / f"{name}.lcmodel")
+    modelfile.dump(path, {"name": "braid", "params": {**meta["architecture"]["params"], **extra}}, arrays)
+    return path
+
+
 @pytest.fixture(scope="module")
 def tiny_fork(tmp_path_factory, tiny_mixed):
     """tiny_mixed with the tree refinement on."""
-    meta, arrays, _ = modelfile.load(tiny_mixed)
-    path = str(tmp_path_factory.mktemp("braidfork") / "tiny-fork.lcmodel")
-    modelfile.dump(path, {"name": "braid", "params": {**meta["architecture"]["params"], **FORK}}, arrays)
-    return path
+    return _with_params(tmp_path_factory, tiny_mixed, "tiny-fork", FORK)
 
 
 @pytest.fixture(scope="module")
 def tiny_fork2(tmp_path_factory, tiny_mixed):
     """tiny_mixed with the tree refinement and all its later parts on."""
-    meta, arrays, _ = modelfile.load(tiny_mixed)
-    path = str(tmp_path_factory.mktemp("braidfork2") / "tiny-fork2.lcmodel")
-    modelfile.dump(path, {"name": "braid", "params": {**meta["architecture"]["params"], **FORK2}}, arrays)
-    return path
+    return _with_params(tmp_path_factory, tiny_mixed, "tiny-fork2", FORK2)
 
 
 @pytest.mark.parametrize("which", ["tiny_fork", "tiny_fork2"])
