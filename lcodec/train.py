@@ -341,6 +341,23 @@ IMAGE_PRESETS = {
 
 ADAPT_K = 4096  # prior strength of the adaptive counts (figures in DEVELOPERS.md)
 STRUCTURE_K = 32  # prior strength of the structure counts (figures in DEVELOPERS.md)
+AUGMENT_SAMPLES = 1 << 24  # mirrored, flipped and transposed copies join while the training samples stay below this
+
+
+def augmented(images: list, budget: int = AUGMENT_SAMPLES) -> list:
+    """Extra training images: each image mirrored left-right, then each flipped top-bottom,
+    then each transposed, in that order for as long as the samples of the originals and the
+    copies taken stay within `budget` (so a large corpus gets fewer copies, never more
+    memory). The causal neighbourhood is not symmetric, so every copy shows the network
+    contexts the original does not."""
+    left = budget - sum(v.size for v in images)
+    out = []
+    for turn in (lambda v: v[:, ::-1], lambda v: v[::-1], lambda v: v.swapaxes(0, 1)):
+        for v in images:
+            if v.size <= left:
+                out.append(np.ascontiguousarray(turn(v)))
+                left -= v.size
+    return out
 STRUCTURE_CAP = 12  # evidence cap of the two-member weights, in bits
 LAW = {"limit": 255, "cap": 12}  # the law stage of 16-bit samples (figures in DEVELOPERS.md)
 ADAPT_GRID = (0, 256, 1024, 4096, 16384)
@@ -388,9 +405,11 @@ def read_images(paths: list[str], echo=print) -> list[tuple[str, np.ndarray]]:
 
 def train_image(corpus: list[str], out: str, time_limit: float = 120.0, preset: str = "small",
                 seed: int = 0, echo=print, force: bool = False, chan_shift: int = 1, adapt_k=str(ADAPT_K),
-                structure_k: int = STRUCTURE_K, law: bool = True) -> dict:
+                structure_k: int = STRUCTURE_K, law: bool = True, augment: bool = True) -> dict:
     """Fit a tessel pixel model: one network per role present in the corpus (8-bit samples;
-    16-bit high and low bytes), quantisation-aware, then export and measure it."""
+    16-bit high and low bytes), quantisation-aware, then export and measure it. With
+    `augment`, the training images' mirrored, flipped and transposed copies join the
+    training set (`augmented`; never the validation images)."""
     try:
         import torch
     except ImportError:
@@ -429,6 +448,9 @@ def train_image(corpus: list[str], out: str, time_limit: float = 120.0, preset: 
                 cut = max(1, v.shape[0] * 7 // 8)
                 parts["train"].append(v[:cut])
                 parts["val"].append(v[cut:] if cut < v.shape[0] else v)
+        originals = int(sum(v.size for v in parts["train"]))
+        copies = augmented(parts["train"]) if augment else []
+        parts["train"] += copies
         feats = {k: [raster_features(np.ascontiguousarray(v), chan_shift) for v in vs] for k, vs in parts.items()}
         roles = ("r16h", "r16l") if deep else ("r8",)
         for j, role in enumerate(roles):
@@ -443,10 +465,13 @@ def train_image(corpus: list[str], out: str, time_limit: float = 120.0, preset: 
             "train_images": [os.path.basename(items[i][0]) for i in range(len(items)) if i not in val_ids],
             "validation_images": [os.path.basename(items[i][0]) for i in sorted(val_ids)] or "last eighth of rows",
             "train_samples": int(sum(v.size for v in parts["train"])),
+            "augmented_copies": len(copies),
+            "augmented_samples": int(sum(v.size for v in parts["train"])) - originals,
         }
     for k, s in summary.items():
-        echo(f"training tessel/{preset} ({k}) on {s['train_samples']:,} samples of "
-             f"{len(s['train_images'])} images; validating on {s['validation_images']}; "
+        echo(f"training tessel/{preset} ({k}) on {s['train_samples']:,} samples ({len(s['train_images'])} images"
+             + (f" and {s['augmented_copies']} mirrored, flipped or transposed copies" if s["augmented_copies"] else "")
+             + f"); validating on {s['validation_images']}; "
              f"time limit {time_limit:.0f} s")
     nets = {r: _build(torch, cfg) for r in data}
     opts = {r: torch.optim.Adam(nets[r].parameters(), lr=cfg["lr"]) for r in data}

@@ -836,6 +836,7 @@ def test_train_image_cli(tmp_path):
                        env=dict(os.environ, PYTHONPATH=os.getcwd()))
     assert r.returncode == 0, r.stderr
     assert "skipped" in r.stderr and "exported r8" in r.stderr
+    assert "and 6 mirrored, flipped or transposed copies" in r.stderr  # 2 training images, 3 copies each
     params = load_model(str(out)).inner.params  # the defaults: both per-image stages
     assert params["adapt"] == {"r8": 4096} and params["structure"] == {"k": {"r8": 32}, "cap": 12, "decay": 0, "blend": 1}
     assert "law" not in params  # the law stage is for 16-bit samples only
@@ -843,6 +844,23 @@ def test_train_image_cli(tmp_path):
     blob = lcodec.pack(data, model=str(out))
     assert lcodec.info(blob)["frames"][0]["method"] == "modelled/image"
     assert lcodec.unpack(blob, model=str(out)) == data
+
+
+def test_augmented_copies_and_budget():
+    """`augmented`: the copies are exactly numpy's mirror, flip and transpose of each training
+    image, in that order, and never take the training samples past the budget."""
+    from lcodec.train import augmented
+    a = np.arange(2 * 3 * 1, dtype=np.uint8).reshape(2, 3, 1)
+    b = (np.arange(4 * 5 * 3) % 251).astype(np.uint8).reshape(4, 5, 3)
+    got = augmented([a, b])
+    want = [np.fliplr(a), np.fliplr(b), np.flipud(a), np.flipud(b), np.transpose(a, (1, 0, 2)),
+            np.transpose(b, (1, 0, 2))]
+    assert len(got) == len(want) and all(np.array_equal(g, w) and g.flags.c_contiguous for g, w in zip(got, want))
+    # budget 100 samples: originals 66, then a's mirror (6) fits and b's (60) does not; a's flip fits ...
+    small = augmented([a, b], budget=100)
+    assert [g.shape for g in small] == [(2, 3, 1), (2, 3, 1), (3, 2, 1)]
+    assert sum(v.size for v in [a, b] + small) <= 100
+    assert augmented([a, b], budget=66) == [] and augmented([b], budget=10) == []
 
 
 @pytest.mark.parametrize("flag", [None, "--no-law"])
@@ -859,11 +877,15 @@ def test_train_image_cli_16bit_law_stage(flag, tmp_path):
         (d / f"{n}.npy").write_bytes(buf.getvalue())
     out = tmp_path / "m.lcmodel"
     cmd = [sys.executable, "-m", "lcodec", "train", "--kind", "image", str(d), "-o", str(out), "--time-limit", "3",
-           "--preset", "tiny"] + ([flag] if flag else [])
+           "--preset", "tiny"] + ([flag, "--no-augment"] if flag else [])
     r = subprocess.run(cmd, capture_output=True, text=True, env=dict(os.environ, PYTHONPATH=os.getcwd()))
     assert r.returncode == 0, r.stderr
     params = load_model(str(out)).inner.params
     assert params.get("law") == (None if flag else {"limit": 255, "cap": 12})
+    from lcodec import modelfile
+    trained = modelfile.load(str(out))[0]["training"]["sets"]["16-bit"]  # one training image, one validation image
+    assert (trained["augmented_copies"], trained["train_samples"]) == ((0, 40 * 48) if flag else (3, 4 * 40 * 48))
+    assert ("mirrored, flipped or transposed" in r.stderr) == (flag is None)
     a = _sample("page", 30, 30).astype(np.uint16) * 41
     buf = io.BytesIO()
     np.save(buf, a)
