@@ -1251,6 +1251,8 @@ def _frame_info(f: C.Frame) -> dict:
             d["image"] = {"rows": lay.rows, "columns": lay.cols, "channels": lay.channels,
                           "bits_per_sample": 8 * lay.bps, "guarantee": image_guarantee(f),
                           "bits_per_subpixel": 8.0 * f.coded_len / (lay.rows * lay.cols * lay.channels)}
+            if lay.replicated:  # coded: one sample per block; unpack repeats it
+                d["image"]["replicated"] = [lay.rep_rows, lay.rep_cols]
         except DataError as e:
             d["image"] = {"damaged": str(e)}
     return d

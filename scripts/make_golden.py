@@ -195,6 +195,22 @@ def golden_tessel_structure():
         write_vector(name, data, model=mpath)
 
 
+def golden_tessel_replicated():
+    """Containers of exactly block-replicated images (payload version 2: one sample per
+    block coded, the decoder repeats it), made with tessel-tiny-structure.lcmodel: the same
+    2x2-replicated crop of scikit-image's moon as tessel-s1-moon2x (whose version-1
+    container came from before replication was detected), and an RGB PPM of its coffee
+    repeated over blocks of 3 rows x 2 columns."""
+    import numpy as np
+    import skimage.data as skd
+
+    mpath = os.path.join(HERE, "tessel-tiny-structure.lcmodel")
+    moon = skd.moon()[200:240, 100:148]
+    rgb = np.repeat(np.repeat(skd.coffee()[150:162, 250:270], 3, axis=0), 2, axis=1)
+    write_vector("tessel-r2-moon2x", b"P5\n# bay-3 plate 4, binned 2x2\n48 40\n255\n" + moon.tobytes(), model=mpath)
+    write_vector("tessel-r2-rgb3x2", b"P6\n# bay-3 colour plate, zoomed 3x2\n40 36\n255\n" + rgb.tobytes(), model=mpath)
+
+
 def derive_tessel(src: str, dst: str, edit) -> None:
     """Write dst (unless it exists): the pixel model file tests/golden/SRC with its
     parameters changed in place by edit(params), its arrays and other metadata kept."""
@@ -248,6 +264,7 @@ def main():
     golden_tessel()
     golden_tessel_structure()
     golden_tessel_law()
+    golden_tessel_replicated()
 
 
 if __name__ == "__main__":
