@@ -149,7 +149,7 @@ def read_descriptor(payload, raw_len: int) -> tuple[Layout, int]:
     if len(mv) < 1 or mv[0] not in (PAYLOAD_VERSION, REPLICATED_VERSION):
         raise DataError("image frame damaged (unknown image payload version)")
     pos, vals = 1, []
-    for what in range(6 if mv[0] == PAYLOAD_VERSION else 8):  # offset rows cols channels bytes flags [rep_rows rep_cols]
+    for _ in range(6 if mv[0] == PAYLOAD_VERSION else 8):  # offset rows cols channels bytes flags [rep_rows rep_cols]
         x, pos = read_uvarint(mv, pos, "image frame damaged")
         vals.append(x)
     if mv[0] == REPLICATED_VERSION and vals[6:] == [1, 1]:

@@ -342,6 +342,9 @@ IMAGE_PRESETS = {
 ADAPT_K = 4096  # prior strength of the adaptive counts (figures in DEVELOPERS.md)
 STRUCTURE_K = 32  # prior strength of the structure counts (figures in DEVELOPERS.md)
 AUGMENT_SAMPLES = 1 << 24  # mirrored, flipped and transposed copies join while the training samples stay below this
+STRUCTURE_CAP = 12  # evidence cap of the two-member weights, in bits
+LAW = {"limit": 255, "cap": 12}  # the law stage of 16-bit samples (figures in DEVELOPERS.md)
+ADAPT_GRID = (0, 256, 1024, 4096, 16384)
 
 
 def augmented(images: list, budget: int = AUGMENT_SAMPLES) -> list:
@@ -358,9 +361,6 @@ def augmented(images: list, budget: int = AUGMENT_SAMPLES) -> list:
                 out.append(np.ascontiguousarray(turn(v)))
                 left -= v.size
     return out
-STRUCTURE_CAP = 12  # evidence cap of the two-member weights, in bits
-LAW = {"limit": 255, "cap": 12}  # the law stage of 16-bit samples (figures in DEVELOPERS.md)
-ADAPT_GRID = (0, 256, 1024, 4096, 16384)
 
 
 def choose_adapt(model, val_images: dict, echo=print) -> dict:
