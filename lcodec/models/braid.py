@@ -513,6 +513,16 @@ def _fork_move(tab, ri, i, tgt, shift):
     tab[ri, j + 1] += ((tgt - tab[ri, j + 1] + 1) * w) >> shift
 
 
+@njit(cache=True, nogil=True, inline="always")
+def _fork_sums(sub, p):
+    """sub[256 + s] = p[s] + 1 (every byte keeps some mass), sub[n] = the sum over node n's
+    subtree (n = 1..255), for the shares q = R / (L + R)."""
+    for s in range(256):
+        sub[256 + s] = p[s] + 1
+    for n in range(255, 0, -1):
+        sub[n] = sub[2 * n] + sub[2 * n + 1]  # p's total < 2**22: < 2**23
+
+
 @njit(cache=True, nogil=True)
 def _fork_keep(fork, p):
     """With fork_inputs: keep the distribution as it is before the repeat model."""
@@ -567,15 +577,9 @@ def _fork_predict(fork, b, hist, p, buf, cur, expect):
     cx[1] = 256 + _fork_hash(hist & np.uint64(0xFFFFFF), np.uint64(11))
     cx[2] = 256 + (1 << FORK_HASH_BITS) + _fork_hash((above << np.uint64(8)) | c1, np.uint64(23))
     cx[3] = 256 + 2 * (1 << FORK_HASH_BITS) + _fork_hash(hist & np.uint64(0xFFFF), np.uint64(53))
-    for s in range(256):
-        sub[256 + s] = p[s] + 1
-    for n in range(255, 0, -1):
-        sub[n] = sub[2 * n] + sub[2 * n + 1]  # < 2**23
+    _fork_sums(sub, p)
     if cfg[4] != 0:
-        for s in range(256):
-            sub0[256 + s] = pre[s] + 1
-        for n in range(255, 0, -1):
-            sub0[n] = sub0[2 * n] + sub0[2 * n + 1]  # < 2**23
+        _fork_sums(sub0, pre)
     cut = np.int64(FORK_MASS) >> cfg[2]
     for n in range(2, 256):
         act[n] = 0
