@@ -133,3 +133,81 @@ def build(files: list[bytes], corpus_order: int = 6, min_seen: int = 2, discount
         discount = [[13, 18, 24]] * (corpus_order + 1)
     return {"tags": tags, "start": start, "sym": np.concatenate(syms), "cnt": np.concatenate(cnts),
             "sizes": np.array(sizes, np.int64), "corpus_discount": np.array(discount, np.int64)}
+
+
+# -- the corpus memory (model files with `memory`: lcodec/models/recall.py) -----------------
+# The text is deduplicated before it is stored: every file is cut into pieces where a
+# rolling hash of its bytes has its low CHUNK_BITS bits zero (content-defined cut points,
+# so a piece shared by two files is cut the same way in both, wherever it sits), at least
+# CHUNK_MIN and at most CHUNK_MAX bytes long, and a piece whose bytes were already kept is
+# left out. A file that repeats another (a licence, a template) then costs the memory
+# nothing; what is left of it still sits beside the rest of its file.
+CHUNK_BITS = 10  # cut points about every 1 KiB
+CHUNK_MIN = 128
+CHUNK_MAX = 8192
+_GEAR = np.random.Generator(np.random.PCG64(20261204)).integers(0, 2**63, 256, dtype=np.int64).astype(np.uint64)
+
+
+@njit(cache=True)
+def _cuts(data, gear, bits, lo, hi):
+    """End offsets of data's pieces: where the rolling hash (h << 1) + gear[byte] has its low
+    `bits` bits zero, at least lo and at most hi bytes after the last cut."""
+    out = np.empty(data.shape[0] // lo + 2, np.int64)
+    n = 0
+    h = np.uint64(0)
+    mask = np.uint64((1 << bits) - 1)
+    last = 0
+    for i in range(data.shape[0]):
+        h = (h << np.uint64(1)) + gear[data[i]]
+        ln = i + 1 - last
+        if (ln >= lo and (h & mask) == 0) or ln >= hi:
+            out[n] = i + 1
+            n += 1
+            last = i + 1
+            h = np.uint64(0)
+    if last < data.shape[0]:
+        out[n] = data.shape[0]
+        n += 1
+    return out[:n]
+
+
+def memory_text(files: list[bytes], budget: int) -> tuple[np.ndarray, dict]:
+    """The corpus memory: `files`' text with repeated pieces left out, at most `budget` bytes
+    (when the unique text is larger: the most files, evenly spaced across the list, that
+    fit; at least the first file, cut at the budget). Returns (uint8 text, summary figures)."""
+    import hashlib
+
+    seen, kept, total = set(), [], 0
+    for f in files:
+        if not f:
+            continue
+        x = np.frombuffer(f, np.uint8)
+        parts, a = [], 0
+        for b in _cuts(x, _GEAR, CHUNK_BITS, CHUNK_MIN, CHUNK_MAX).tolist():
+            key = hashlib.blake2b(f[a:b], digest_size=16).digest()
+            if key not in seen:
+                seen.add(key)
+                parts.append(f[a:b])
+            a = b
+        if parts:
+            kept.append(b"".join(parts))
+            total += len(kept[-1])
+    unique = total
+    if budget <= 0:
+        kept = []
+    elif total > budget:  # about the most files, evenly spaced, that fit (a binary search on
+        n = len(kept)     # their number); at least the first one, cut
+        def pick(m):
+            return sorted({j * n // m for j in range(m)})
+        lo, hi = 1, n
+        while lo < hi:
+            mid = (lo + hi + 1) // 2
+            if sum(len(kept[i]) for i in pick(mid)) <= budget:
+                lo = mid
+            else:
+                hi = mid - 1
+        kept = [kept[i] for i in pick(lo)]
+    text = b"".join(kept)[:max(budget, 0)]
+    summary = {"files": sum(1 for f in files if f), "bytes": sum(len(f) for f in files), "unique_bytes": unique,
+               "stored_bytes": len(text)}
+    return np.frombuffer(text, np.uint8), summary

@@ -19,11 +19,14 @@ import time
 import numpy as np
 
 from . import __version__, api, modelfile
-from .braid_build import build
+from .braid_build import build, memory_text
 from .coder import lane_layout
+from .models import recall as R
 from .models import strata as S
 from .models.braid import Braid
 
+MEMORY_DEFAULT = 32 << 20  # bytes of training text kept as the corpus memory (`train --memory`)
+RECALL = dict(recall_min=8, recall_long=16)  # the memory's two context lengths (lcodec/models/recall.py)
 PRESETS = {
     # corpus orders, fewest sightings of a kept context (orders >= 2), size budget of the
     # tables, and the per-file adaptive half (strata's parameters); figures in README.md
@@ -33,8 +36,9 @@ PRESETS = {
     # fork: the refinement on the byte's binary tree, its tables' and mixer's rates and
     # the mass below which a subtree is left as it is)
     "braid": dict(corpus_order=6, min_seen=2, budget=64 << 20, mix_shift=16, lane_tables=1, sse_bits=10,
-                  file=dict(max_order=8, hash_log2=18, discount=[[13, 18, 24]] * 9, match_min=5)),
-    "braid-lean": dict(corpus_order=4, min_seen=2, budget=16 << 20, file=dict(S.PRESETS["o6m"])),
+                  file=dict(max_order=8, hash_log2=18, discount=[[13, 18, 24]] * 9, match_min=5),
+                  memory=MEMORY_DEFAULT, recall=RECALL),
+    "braid-lean": dict(corpus_order=4, min_seen=2, budget=16 << 20, file=dict(S.PRESETS["o6m"]), memory=0, recall=RECALL),
 }
 # braid plus the tree refinement (with its context-picked mixer weights, two more inputs and
 # the final stage): about 4.5% smaller, slower to decode (README.md)
@@ -43,6 +47,15 @@ PRESETS["braid-tree"] = dict(PRESETS["braid"], fork=dict(TREE_V1, fork_sets=1, f
 VALIDATION_SAMPLE = 400_000  # bytes of held-out files the discount search costs per trial
 # discount settings tried per order group (sixteenths of a count, for counts 1, 2, >=3)
 CANDIDATES = [[10, 14, 20], [13, 18, 24], [14, 22, 30], [15, 26, 36], [15, 29, 42], [15, 31, 46]]
+
+
+def contents_text(memory_bytes: int) -> str:
+    """What a braid model file holds, in plain words (train's output and `info MODEL`)."""
+    tables = "context counts of the training files (rare strings may still be inferred from them)"
+    if memory_bytes:
+        return (f"{memory_bytes:,} bytes of the training text itself (the corpus memory: anyone with the file "
+                f"can read it; train with --memory 0 to keep none) and {tables}")
+    return f"no training text, only {tables}"
 
 
 def nll_bits(model, data: bytes) -> float:
@@ -97,6 +110,23 @@ def match_prior(model, files: list[bytes]):
     return out
 
 
+def recall_prior(model, files: list[bytes]):
+    """Hit-rate cells for the corpus memory from `files` (each costed on its own), or None."""
+    stats = np.zeros((R.CELLS, 2), np.int64)
+    _run_files(model, files, recall_stats=stats)
+    if stats[:, 1].max(initial=0) < PRIOR_MIN_TRIALS:
+        return None
+    cells = np.arange(R.CELLS)
+    out = np.empty((R.CELLS, 2), np.int32)
+    out[:, 0] = 2 * (cells % R.LEVELS) + 1  # the default: each level's midpoint
+    out[:, 1] = 2 * R.LEVELS
+    seen = stats[:, 1] >= PRIOR_MIN_TRIALS
+    rate = (stats[seen, 0] * PRIOR_STRENGTH + stats[seen, 1] // 2) // np.maximum(stats[seen, 1], 1)
+    out[seen, 0] = np.clip(rate, 1, PRIOR_STRENGTH - 1)
+    out[seen, 1] = PRIOR_STRENGTH
+    return out
+
+
 def mix_weights(model, files: list[bytes]) -> np.ndarray:
     """Escape weights for the model file: the online weights carried through `files`, each
     costed on its own as pack would, from zero; what they end as is where every frame of a
@@ -109,8 +139,10 @@ def mix_weights(model, files: list[bytes]) -> np.ndarray:
 
 
 def train_braid(files: list[tuple[str, bytes]], corpus: list[str], out: str, time_limit: float, preset: str,
-                seed: int, echo=print) -> dict:
+                seed: int, echo=print, memory: int | None = None) -> dict:
+    """memory: bytes of training text the model may keep (None: the preset's default)."""
     cfg = PRESETS[preset]
+    memory = cfg["memory"] if memory is None else int(memory)
     t_start = time.perf_counter()
     order = list(range(len(files)))
     random.Random(seed).shuffle(order)
@@ -209,6 +241,29 @@ def train_braid(files: list[tuple[str, bytes]], corpus: list[str], out: str, tim
         if vp < best:
             params, model, best = plain_params, plain, vp
             arrays.pop("mix_init", None)
+    mem_info = {"budget_bytes": memory, "stored_bytes": 0}
+    if memory > 0:
+        # the corpus memory: the training text itself (deduplicated, up to the budget) and
+        # the predictor that follows earlier occurrences of the current context in it, its
+        # hit-rate cells started from the held-out sample's; kept if it lowers the sample's cost
+        text, summary = memory_text(train_files, memory)
+        mem_info.update(summary, budget_bytes=memory, stored_bytes=0)
+        if len(text):
+            mparams = {**params, **cfg["recall"], "memory_bytes": int(len(text))}
+            marrays = {**arrays, "memory": text}
+            with_mem = Braid(mparams, marrays)
+            prior = recall_prior(with_mem, sample)
+            if prior is not None:
+                marrays["recall_prior"] = prior
+                with_mem = Braid(mparams, marrays)
+            vm = _bpb(with_mem, sample)
+            mem_info["sample_bpb"], mem_info["sample_bpb_without"] = round(vm, 4), round(best, 4)
+            echo(f"  {time.perf_counter() - t_start:6.0f} s  corpus memory, {len(text):,} bytes of training text "
+                 f"({summary['unique_bytes']:,} unique of {summary['bytes']:,}): {vm:.4f} (without: {best:.4f})"
+                 f"{'' if vm < best else ', not kept'}")
+            if vm < best:
+                params, arrays, model, best = mparams, marrays, with_mem, vm
+                mem_info["stored_bytes"] = int(len(text))
     if cfg.get("fork"):
         # the refinement on the byte's binary tree (adapts within each frame, nothing fitted):
         # kept if it lowers the held-out sample's cost
@@ -230,6 +285,8 @@ def train_braid(files: list[tuple[str, bytes]], corpus: list[str], out: str, tim
                      "min_seen": min_seen, "corpus": [os.path.abspath(c) for c in corpus][:20]},
         "validation": {"files": len(val_files), "bytes": int(sum(len(f) for f in val_files)),
                        "integer_bpb": round(val_bpb, 4), "strata_bpb": round(strata_bpb, 4)},
+        "corpus_memory": mem_info,
+        "contents": contents_text(mem_info["stored_bytes"]),
         "learning_curve": curve,
     }
     from .train import write_curve_png
@@ -240,4 +297,5 @@ def train_braid(files: list[tuple[str, bytes]], corpus: list[str], out: str, tim
     sha = modelfile.dump(out, {"name": "braid", "params": params}, arrays, **meta)
     echo(f"exported braid model: validation {val_bpb:.4f} bits per byte (strata alone {strata_bpb:.4f}); "
          f"{os.path.getsize(out):,} bytes, sha256 {sha[:16]}... -> {out}")
+    echo(f"this model file holds {meta['contents']}")
     return {"sha256": sha, "integer_bpb": val_bpb, "strata_bpb": strata_bpb, "curve": curve, "meta": meta}

@@ -13,11 +13,18 @@ Layout (all integers little-endian):
            dtypes and shapes say; nothing may follow the last one
     end-32 32 SHA-256 of everything before it
 A model's identity is the SHA-256 of the whole file; containers record it.
+
+`load` maps the file instead of reading it: the arrays are read-only views of the
+mapping (native little-endian machines copy nothing), so a model's corpus memory or
+tables cost page cache shared by every process that loads the same file, not a copy
+per process.
 """
 from __future__ import annotations
 
 import hashlib
 import json
+import mmap
+import os
 import struct
 
 import numpy as np
@@ -50,28 +57,32 @@ def dump(path: str, architecture: dict, arrays: dict[str, np.ndarray] | None = N
     return hashlib.sha256(body).hexdigest()
 
 
-def parse(blob: bytes, where: str = "model file") -> tuple[dict, dict[str, np.ndarray], str]:
-    """Check and read a model file's bytes: (metadata, arrays, sha256 hex). Raises ModelError."""
+def parse(blob, where: str = "model file") -> tuple[dict, dict[str, np.ndarray], str]:
+    """Check and read a model file's bytes (bytes, or any buffer such as a mapping):
+    (metadata, arrays, sha256 hex). The arrays are views of `blob`. Raises ModelError."""
     def bad(msg):
         raise ModelError(f"{where}: {msg}")
 
-    if len(blob) < 48 or blob[:8] != MAGIC:
+    view = memoryview(blob).cast("B")
+    if len(view) < 48 or bytes(view[:8]) != MAGIC:
         bad("not an lcodec model file (magic bytes do not match)")
-    version, _, mlen = struct.unpack_from("<HHI", blob, 8)
+    version, _, mlen = struct.unpack_from("<HHI", view, 8)
     if version != VERSION:
         bad(f"unsupported model-file version {version} (this lcodec reads version {VERSION})")
-    if hashlib.sha256(blob[:-32]).digest() != blob[-32:]:
+    whole = hashlib.sha256(view[:-32])
+    if whole.digest() != bytes(view[-32:]):
         bad("damaged (its SHA-256 trailer does not match its content)")
-    if mlen > MAX_META or 16 + mlen > len(blob) - 32:
+    whole.update(view[-32:])
+    if mlen > MAX_META or 16 + mlen > len(view) - 32:
         bad("damaged (impossible metadata length)")
     try:
-        meta = json.loads(blob[16:16 + mlen].decode("utf-8"))
+        meta = json.loads(bytes(view[16:16 + mlen]).decode("utf-8"))
         arch = meta["architecture"]
         listing = meta["arrays"]
         assert isinstance(arch, dict) and isinstance(arch["name"], str) and isinstance(listing, list)
     except Exception:
         bad("damaged (metadata is not readable)")
-    arrays, pos, end = {}, 16 + mlen, len(blob) - 32
+    arrays, pos, end = {}, 16 + mlen, len(view) - 32
     for spec in listing:
         try:
             name, code, shape = spec["name"], spec["dtype"], spec["shape"]
@@ -92,17 +103,20 @@ def parse(blob: bytes, where: str = "model file") -> tuple[dict, dict[str, np.nd
         nbytes = int(np.prod(shape, dtype=object)) * dt.itemsize
         if nbytes > MAX_ARRAY_BYTES or pos + nbytes > end:
             bad(f"array {name}: larger than the file holds")
-        arrays[name] = np.frombuffer(blob, dt, count=nbytes // dt.itemsize, offset=pos).reshape(shape).astype(dt.newbyteorder("="))
+        a = np.frombuffer(view, dt, count=nbytes // dt.itemsize, offset=pos).reshape(shape)
+        arrays[name] = a.astype(dt.newbyteorder("="), copy=False)  # a view on little-endian machines
         pos += nbytes
     if pos != end:
         bad("damaged (bytes left over after the arrays)")
-    return meta, arrays, hashlib.sha256(blob).hexdigest()
+    return meta, arrays, whole.hexdigest()
 
 
 def load(path: str) -> tuple[dict, dict[str, np.ndarray], str]:
+    """Map a model file and parse it; the arrays stay views of the (read-only) mapping."""
     try:
         with open(path, "rb") as f:
-            blob = f.read()
-    except OSError as e:
-        raise ModelError(f"cannot read model file {path}: {e.strerror}") from None
+            size = os.fstat(f.fileno()).st_size
+            blob = mmap.mmap(f.fileno(), 0, access=mmap.ACCESS_READ) if size else b""
+    except (OSError, ValueError) as e:
+        raise ModelError(f"cannot read model file {path}: {getattr(e, 'strerror', None) or e}") from None
     return parse(blob, where=f"model file {path}")

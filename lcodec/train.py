@@ -214,13 +214,21 @@ def integer_bpb(model: Weft, pos: Positions, idx: np.ndarray) -> float:
 
 
 def train(corpus: list[str], out: str, time_limit: float = 600.0, preset: str = DEFAULT_PRESET,
-          seed: int = 0, max_bytes: int | None = None, echo=print, force: bool = False) -> dict:
+          seed: int = 0, max_bytes: int | None = None, echo=print, force: bool = False,
+          memory: int | None = None) -> dict:
+    """memory: braid presets only, bytes of training text kept as the corpus memory (None:
+    the preset's default, 0: none)."""
     from . import braid_train
 
     if preset in braid_train.PRESETS:
         if os.path.lexists(out) and not force:
             raise UsageError(f"{out} exists; pass --force to overwrite it")
-        return braid_train.train_braid(read_corpus(corpus, max_bytes), corpus, out, time_limit, preset, seed, echo)
+        if memory is not None and not 0 <= memory <= braid_train.R.MAX_TEXT:
+            raise UsageError(f"--memory must be 0..{braid_train.R.MAX_TEXT:,} bytes")
+        return braid_train.train_braid(read_corpus(corpus, max_bytes), corpus, out, time_limit, preset, seed, echo,
+                                       memory=memory)
+    if memory is not None:
+        raise UsageError(f"--memory goes with the braid presets ({', '.join(braid_train.PRESETS)}), not {preset!r}")
     try:
         import torch
     except ImportError:

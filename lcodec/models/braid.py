@@ -33,6 +33,7 @@ import threading
 import numpy as np
 from numba import njit
 
+from . import recall as R
 from . import strata as S
 
 P_BITS = S.P_BITS
@@ -372,10 +373,12 @@ SSE_LIMIT = 1023  # hit counts halved past this, to keep adapting
 
 
 @njit(cache=True, nogil=True)
-def _sse_predict(mix, match, b, hist, p):
+def _sse_predict(mix, match, b, hist, p, e, followed):
+    """e: the byte to recalibrate (the repeat's, the corpus memory's, or the blend's
+    favourite); followed: 1 when a repeat (in the frame or the memory) names it."""
     tab, cellv = mix[8], mix[9]
     cellv[b] = -1
-    e = match[7][b]
+    mix[10][b] = e
     total = np.int64(0)
     for s in range(256):
         total += p[s]
@@ -386,7 +389,7 @@ def _sse_predict(mix, match, b, hist, p):
     x = x ^ (x >> np.uint64(29))
     x = x * _M2
     h = np.int64(x >> np.uint64(64 - mix[5][2]))
-    cell = ((h * 2 + (1 if match[2][b] >= 0 else 0)) * SSE_LEVELS) + (pe * SSE_LEVELS) // total
+    cell = ((h * 2 + followed) * SSE_LEVELS) + (pe * SSE_LEVELS) // total
     cellv[b] = cell
     st = tab[cell]
     t2 = (np.int64(st[0]) * total) // np.int64(st[1])  # st[0] <= SSE_LIMIT, total < 2**22
@@ -398,7 +401,7 @@ def _sse_update(mix, match, b, sym):
     cell = mix[9][b]
     if cell < 0:
         return
-    S._score_cell(mix[8][cell], match[7][b] == sym, SSE_LIMIT)
+    S._score_cell(mix[8][cell], mix[10][b] == sym, SSE_LIMIT)
 
 
 # -- refinement on the byte's binary tree (optional: model files with `fork_shift`) --------
@@ -830,7 +833,24 @@ def _braid_predict(corpus, fstate, hist, slots, checks, max_order, dfile, p, mix
 
 
 @njit(cache=True, nogil=True)
-def _teacher(corpus, state, match, data, starts, lengths, t0, t1, max_order, hash_log2, dfile, out_syms, out_tab, mix, fork):
+def _after_chain(match, rc, mix, fork, b, hist, p, buf, cur, use_match, use_sse, use_fork):
+    """The stages after the chain, for lane b (buf[cur] is the byte to come): the in-frame
+    repeat model, the corpus memory, secondary estimation, the tree refinement."""
+    if use_match:
+        S._match_predict(match, b, p)
+    rb = match[7][b] if use_match and match[2][b] >= 0 else -1  # the in-frame repeat's byte
+    if use_match and rc.on != 0:
+        R.predict(rc, b, p, rb)
+    e = rb if rb >= 0 else R.expected(rc, b)  # -1 when neither repeat names a byte
+    if use_sse:
+        _sse_predict(mix, match, b, hist, p, e if e >= 0 else match[7][b], 1 if e >= 0 else 0)
+    if use_fork:
+        _fork_sets(fork, b, hist, mix, match)
+        _fork_predict(fork, b, hist, p, buf, cur, e)
+
+
+@njit(cache=True, nogil=True)
+def _teacher(corpus, state, match, data, starts, lengths, t0, t1, max_order, hash_log2, dfile, out_syms, out_tab, mix, fork, rc):
     """Tables of steps t0..t1 for all active lanes, in coding order, updating state."""
     bases, hist, gen = state[2], state[3], state[4]
     slots = np.empty(max_order + 1, np.int64)
@@ -852,13 +872,7 @@ def _teacher(corpus, state, match, data, starts, lengths, t0, t1, max_order, has
             _braid_predict(corpus, state, hist[b], slots, checks, max_order, dfile, p, mix, b)
             if use_fork:
                 _fork_keep(fork, p)
-            if use_match:
-                S._match_predict(match, b, p)
-                if use_sse:
-                    _sse_predict(mix, match, b, hist[b], p)
-            if use_fork:
-                _fork_sets(fork, b, hist[b], mix, match)
-                _fork_predict(fork, b, hist[b], p, data, starts[b] + t, match[7][b] if match[2][b] >= 0 else -1)
+            _after_chain(match, rc, mix, fork, b, hist[b], p, data, starts[b] + t, use_match, use_sse, use_fork)
             S._emit(p, out_tab[i + b])
             out_syms[i + b] = data[starts[b] + t]
         if use_mix:  # every lane's weights update before any count changes
@@ -874,6 +888,8 @@ def _teacher(corpus, state, match, data, starts, lengths, t0, t1, max_order, has
             sym = data[starts[b] + t]
             _slots(mix, b, hist[b], max_order, hash_log2, bases, gen, slots, checks)
             _file_update(state, slots, checks, max_order, sym, t if use_mix else -1)
+            if use_match:
+                R.update(rc, b, data, starts[b], t, np.int64(sym), hist[b])
             hist[b] = (hist[b] << np.uint64(8)) | np.uint64(sym)
             if use_match:
                 S._match_update(match, b, starts[b], t, sym, hist[b], gen)
@@ -882,7 +898,7 @@ def _teacher(corpus, state, match, data, starts, lengths, t0, t1, max_order, has
 
 
 @njit(cache=True, nogil=True)
-def _step(corpus, state, match, starts, syms, t_prev, m_prev, m, max_order, hash_log2, dfile, out_tab, work, mix, fork):
+def _step(corpus, state, match, starts, syms, t_prev, m_prev, m, max_order, hash_log2, dfile, out_tab, work, mix, fork, rc):
     """Decoder step: count the symbols of step t_prev (m_prev lanes), then predict m lanes.
     `work` holds the scratch arrays, made once per frame (a step is too short to allocate)."""
     bases, hist, gen = state[2], state[3], state[4]
@@ -906,6 +922,8 @@ def _step(corpus, state, match, starts, syms, t_prev, m_prev, m, max_order, hash
         sym = syms[b]
         _slots(mix, b, hist[b], max_order, hash_log2, bases, gen, slots, checks)
         _file_update(state, slots, checks, max_order, sym, t_prev if mix[5][1] != 0 else -1)
+        if use_match:
+            R.update(rc, b, buf, starts[b], t_prev, np.int64(sym), hist[b])
         hist[b] = (hist[b] << np.uint64(8)) | np.uint64(sym)
         if use_match:
             S._match_update(match, b, starts[b], t_prev, sym, hist[b], gen)
@@ -915,13 +933,7 @@ def _step(corpus, state, match, starts, syms, t_prev, m_prev, m, max_order, hash
         _braid_predict(corpus, state, hist[b], slots, checks, max_order, dfile, p, mix, b)
         if use_fork:
             _fork_keep(fork, p)
-        if use_match:
-            S._match_predict(match, b, p)
-            if use_sse:
-                _sse_predict(mix, match, b, hist[b], p)
-        if use_fork:
-            _fork_sets(fork, b, hist[b], mix, match)
-            _fork_predict(fork, b, hist[b], p, buf, starts[b] + t_prev + 1, match[7][b] if match[2][b] >= 0 else -1)
+        _after_chain(match, rc, mix, fork, b, hist[b], p, buf, starts[b] + t_prev + 1, use_match, use_sse, use_fork)
         S._emit(p, out_tab[b])
 
 
@@ -949,6 +961,32 @@ def _pool_give(state):
 
 
 # -- the model -----------------------------------------------------------------------------
+def check_memory(params: dict, arrays: dict):
+    """The corpus memory's text and the two indexes built over it, or None when the model
+    has none. The parameters must describe exactly the stored text."""
+    keys = ("recall_min", "recall_long", "memory_bytes")
+    given = [params.get(k) for k in keys]
+    text = arrays.get("memory")
+    if given == [None] * 3 and text is None:
+        if arrays.get("recall_prior") is not None:
+            raise ValueError("recall_prior without a memory")
+        return None
+    if any(type(v) is not int for v in given):
+        raise ValueError("recall_min, recall_long and memory_bytes go together with the array memory")
+    mn, lg, nb = given
+    if not (R.MIN_LEN[0] <= mn <= R.MIN_LEN[1] and R.LONG_LEN[0] <= lg <= R.LONG_LEN[1]):
+        raise ValueError(f"recall_min must be {R.MIN_LEN[0]}..{R.MIN_LEN[1]} and recall_long {R.LONG_LEN[0]}..{R.LONG_LEN[1]}")
+    if text is None or text.dtype != np.uint8 or text.ndim != 1:
+        raise ValueError("memory must be a uint8 array")
+    if not (1 <= nb <= R.MAX_TEXT) or len(text) != nb:
+        raise ValueError(f"memory holds {len(text):,} bytes but the parameters say memory_bytes {nb:,}")
+    pr = arrays.get("recall_prior")
+    if pr is not None and (pr.dtype != np.int32 or pr.shape != (R.CELLS, 2) or int(pr[:, 1].min()) < 1
+                           or int(pr[:, 1].max()) > R.LIMIT or int(pr[:, 0].min()) < 0 or (pr[:, 0] > pr[:, 1]).any()):
+        raise ValueError(f"recall_prior must be int32 ({R.CELLS}, 2) of hits <= trials <= {R.LIMIT}, trials >= 1")
+    return text, R.build_index(text, mn), R.build_index(text, lg)
+
+
 def check_arrays(params: dict, arrays: dict) -> None:
     """Refuse tables that do not fit together (a hostile file must not index out of range)."""
     C = params["corpus_order"]
@@ -1003,7 +1041,7 @@ class Braid:
         ablation figures; such an object is only ever costed, never used to pack."""
         allowed = {"corpus_order", "max_order", "hash_log2", "discount", "match_min"}
         optional = {"mix_shift", "sse_bits", "lane_tables", "fork_shift", "fork_mix_shift", "fork_cut",
-                    "fork_sets", "fork_inputs", "fork_final"}  # absent: the plain chain (model files made before it)
+                    "fork_sets", "fork_inputs", "fork_final", "recall_min", "recall_long", "memory_bytes"}  # absent: the plain chain (model files made before it)
         if not isinstance(params, dict) or not allowed <= set(params) <= allowed | optional:
             raise ValueError(f"braid needs exactly {', '.join(sorted(allowed))} (and optionally {', '.join(sorted(optional))})")
         ms = params.get("mix_shift", 0)
@@ -1035,6 +1073,8 @@ class Braid:
         self.params = dict(params)
         check_arrays(params, arrays)
         self.arrays = arrays
+        self.memory = check_memory(params, arrays)  # (text, short index, long index) or None
+        self.recall_prior = arrays.get("recall_prior") if self.memory is not None else None
         self.match_prior = arrays.get("match_prior")
         self.mix_init = arrays.get("mix_init")
         sizes = arrays["sizes"]
@@ -1121,7 +1161,16 @@ class Braid:
         return (W, ODDS, np.zeros((nl, 2 * N_LAYER_IDS, LREC), np.int64), np.zeros(nl, np.int64),
                 np.zeros(nl, np.int64),
                 np.array([self.mix_shift, 1 if on else 0, self.sse_bits, self.lane_tables, 0], np.int64),
-                np.zeros(2 * N_LAYER_IDS, np.int64), BYTE_CLASS, sse, np.full(max(n_lanes, 1), -1, np.int64))
+                np.zeros(2 * N_LAYER_IDS, np.int64), BYTE_CLASS, sse, np.full(max(n_lanes, 1), -1, np.int64),
+                np.full(max(n_lanes, 1), -1, np.int64))
+
+    def new_recall(self, n_lanes: int) -> R.Recall:
+        """The corpus memory's per-frame state (lanes' followed places, hit-rate cells)."""
+        if self.memory is None:
+            return R.new_state(None, None, None, 4, 9, n_lanes)
+        text, short, long = self.memory
+        return R.new_state(text, short, long, self.params["recall_min"], self.params["recall_long"], n_lanes,
+                           self.recall_prior)
 
     def new_fork(self, n_lanes: int):
         """The tree refinement's state for one frame: the context tables (FORK_CTX contexts
@@ -1144,9 +1193,11 @@ class Braid:
                 np.zeros(256, np.int64), np.tile(np.array([0, -1], np.int64), (nl, 1)),
                 np.zeros((nl, 256), np.int64), np.zeros(512, np.int64))
 
-    def teacher_chunks(self, data, starts, lengths, chunk_steps: int = 256, match_stats=None, mix_weights=None):
+    def teacher_chunks(self, data, starts, lengths, chunk_steps: int = 256, match_stats=None, mix_weights=None,
+                       recall_stats=None):
         """match_stats: an array of the hit-rate cells' shape, to which this frame's
-        observations (hits, trials) are added at the end (training uses it); mix_weights:
+        observations (hits, trials) are added at the end (training uses it); recall_stats
+        the same for the corpus memory's cells; mix_weights:
         an int64 array of MIX_CLASSES escape weights the frame starts from and leaves its
         own in (training carries them from file to file)."""
         f = self.file
@@ -1155,13 +1206,17 @@ class Braid:
         match = self.new_match(data, mtab, lengths)
         mix = self.new_mix(len(lengths), mix_weights)
         fork = self.new_fork(len(lengths))
+        rc = self.new_recall(len(lengths))
         start_cells = match[4].copy()
+        start_recall = rc.cells.copy()
         corpus = self.frame_corpus()
         try:
             yield from S.run_chunks(lengths, chunk_steps, lambda t0, t1, syms, tab: _teacher(
-                corpus, state, match, data, starts, lengths, t0, t1, f.max_order, hb, f._disc, syms, tab, mix, fork))
+                corpus, state, match, data, starts, lengths, t0, t1, f.max_order, hb, f._disc, syms, tab, mix, fork, rc))
             if match_stats is not None:
                 match_stats += np.maximum(match[4].astype(np.int64) - start_cells, 0)
+            if recall_stats is not None:
+                recall_stats += np.maximum(rc.cells.astype(np.int64) - start_recall, 0)
         finally:
             _pool_give(state)
 
@@ -1177,10 +1232,11 @@ class Braid:
         work = (np.empty(mo + 1, np.int64), np.empty(mo + 1, np.uint64), np.empty(256, np.int64))
         mix = self.new_mix(len(lengths))
         fork = self.new_fork(len(lengths))
+        rc = self.new_recall(len(lengths))
         t = [-1]
 
         def step(prev_syms, m_prev, m):
-            _step(corpus, state, match, starts, prev_syms, t[0], m_prev, m, mo, hl, disc, tab, work, mix, fork)
+            _step(corpus, state, match, starts, prev_syms, t[0], m_prev, m, mo, hl, disc, tab, work, mix, fork, rc)
             t[0] += 1
             return tab[:m]
 
