@@ -25,9 +25,11 @@ Rows (one per test file and codec, then one "*TOTAL*" row per codec), keys ROW_K
     nll_bits       the model's negative log-likelihood of the file in bits (lcodec
                    codecs; None for baselines)
     model_bytes    size of the side information the decoder must already have: the
-                   model file (0 for the built-in adaptive model), the zstd dictionary
-                   for zstd-19-dict, else 0. In the total row it is the codec's value,
-                   not a sum (the model is paid for once).
+                   model file (0 for the built-in adaptive model), the trained zstd
+                   dictionary for zstd-19-dict, the raw dictionary (train bytes) for
+                   zstd-19-rawdict, the prime's coded bytes for ppmd-o16-primed, else
+                   0. In the total row it is the codec's value, not a sum (the model is
+                   paid for once).
     note           anything to know about the codec's numbers ("" normally)
 
 The total row sums raw_bytes, coded_bytes, encode_s, decode_s and nll_bits over the
@@ -139,9 +141,10 @@ def _read(path: str) -> bytes:
 
 
 def read_train_sample(paths: Sequence[str], cap: int | None = None) -> list[bytes]:
-    """Read the train files for dictionary training, at most `cap` bytes in all
-    (files picked evenly across the sorted list; the same rule as the trainer's own
-    cap, so nothing is read that it would drop)."""
+    """Read the train files for the baselines' dictionaries and prime, at most `cap`
+    bytes in all (default ZSTD_DICT_SAMPLE_CAP; files picked evenly across the sorted
+    list; the same rule as the baselines' own caps, so nothing is read that they would
+    drop)."""
     from .baselines import ZSTD_DICT_SAMPLE_CAP
 
     cap = ZSTD_DICT_SAMPLE_CAP if cap is None else cap
@@ -286,22 +289,26 @@ def run_bench(corpus_dir: str, lcodec_codecs: Sequence, baselines: Sequence | No
               seed: int = 0) -> list[dict]:
     """Benchmark `lcodec_codecs` and `baselines` on the test files of `corpus_dir`.
 
-    `baselines` None means `baselines.default_baselines` (its zstd dictionary trained
-    on the train files); pass [] for none. `progress`, if given, is called with one
-    line of text per step. `split` (a fraction) treats `corpus_dir` as a flat folder
-    split by `split_flat(corpus_dir, split, seed)`; without it, a corpus lacking a
-    test/ folder is split with the default fraction. Returns the per-file rows
-    followed by the total rows (see the module docstring).
+    `baselines` None means `baselines.default_baselines` (its zstd dictionaries and
+    PPMd prime made from the train files); pass [] for none. `progress`, if given, is
+    called with one line of text per step. `split` (a fraction) treats `corpus_dir` as
+    a flat folder split by `split_flat(corpus_dir, split, seed)`; without it, a corpus
+    lacking a test/ folder is split with the default fraction. Returns the per-file
+    rows followed by the total rows (see the module docstring).
     """
     say = progress or (lambda _msg: None)
     train_paths, tests = _corpus_files(corpus_dir, split, seed, say)
     if not tests:
         raise UsageError(f"no test files found in {corpus_dir}")
     if baselines is None:
-        from .baselines import default_baselines
+        from .baselines import PRIME_BUDGET_BYTES, ZSTD_DICT_SAMPLE_CAP, default_baselines
 
-        say(f"training the baselines' zstd dictionary on {len(train_paths)} train files")
-        baselines = default_baselines(read_train_sample(train_paths))
+        say(f"preparing the baselines from {len(train_paths)} train files: zstd dictionaries (trained, "
+            f"and raw up to {PRIME_BUDGET_BYTES >> 20} MiB), PPMd prime (up to {PRIME_BUDGET_BYTES >> 20} MiB)")
+        train = read_train_sample(train_paths, ZSTD_DICT_SAMPLE_CAP)
+        prime = train if PRIME_BUDGET_BYTES == ZSTD_DICT_SAMPLE_CAP else read_train_sample(
+            train_paths, PRIME_BUDGET_BYTES)
+        baselines = default_baselines(train, prime)
     codecs = [(c, True) for c in lcodec_codecs] + [(b, False) for b in baselines]
     names = [c.name for c, _ in codecs]
     dup = sorted({n for n in names if names.count(n) > 1})

@@ -456,7 +456,10 @@ def bench(corpus_dir, model, json_out, csv_out, split, seed, report_dir, kind, f
     """Compare lcodec with general compressors on a corpus with train/ and test/ folders.
 
     Every test file is compressed on its own by every codec and round-trip checked.
-    The baselines' dictionary (zstd) is trained on train/.
+    Three baselines use train/: zstd-19-dict (a small dictionary trained on it),
+    zstd-19-rawdict (up to 32 MiB of it as a raw dictionary) and ppmd-o16-primed (PPMd
+    order 16 that reads the same bytes before each test file); each row's model bytes
+    is what its decoder must already hold.
     """
     if kind == "image":
         return _bench_images(corpus_dir, model, json_out, csv_out or report_dir or split, force, quiet)

@@ -15,10 +15,12 @@ writes into DIR
     tradeoff.png      size against decode speed, one point per codec
     overhead.png      lcodec: model NLL against coded size per file, with y = x
 
-The model (or dictionary) a codec needs stands beside every ratio (`model_bytes`), as
-bits per byte "counting the model" too: a prior larger than the data it helps is a
-cost. matplotlib (Agg) draws the charts; it is optional (the `bench` extra) and
-imported only here, when a report is asked for.
+The model (or dictionary, or prime) a codec needs stands beside every ratio
+(`model_bytes`), as bits per byte "counting the model" too: a prior larger than the data
+it helps is a cost. The page says in one line what each baseline label is
+(`baselines.DESCRIPTIONS`) and lists each row's note (what a dictionary or prime holds,
+what the timings leave out). matplotlib (Agg) draws the charts; it is optional (the
+`bench` extra) and imported only here, when a report is asked for.
 """
 from __future__ import annotations
 
@@ -36,7 +38,7 @@ from .errors import UsageError
 CHARTS = ("bits_per_byte", "per_file", "tradeoff", "overhead")
 CAPTIONS = {
     "bits_per_byte": "Bits per byte over the whole test split (lower is better). The pale extension "
-                     "adds the model or dictionary the decoder must already have.",
+                     "adds the model, dictionary or prime the decoder must already have.",
     "per_file": "Every test file on its own: raw size against bits per byte. Small files pay for "
                 "headers and for having little context.",
     "tradeoff": "Size against decode speed, one point per codec over the whole test split "
@@ -317,7 +319,15 @@ def totals_table(rows: Sequence[dict]) -> tuple[list[str], list[list[str]], dict
     raw = totals[0]["raw_bytes"] if totals else 0
     notes = [(r["codec"], r["note"]) for r in totals if r.get("note")]
     return head, body, {"n_files": n_files, "raw_bytes": raw, "best": best["codec"] if best else None,
-                        "notes": notes, "totals": totals}
+                        "notes": notes, "legend": baseline_legend(totals), "totals": totals}
+
+
+def baseline_legend(totals: Sequence[dict]) -> list[tuple[str, str]]:
+    """(label, what it is) for every baseline row whose label the project defines."""
+    from .baselines import DESCRIPTIONS
+
+    return [(r["codec"], DESCRIPTIONS[r["codec"]]) for r in totals
+            if r["kind"] == "baseline" and r["codec"] in DESCRIPTIONS]
 
 
 def per_file_table(rows: Sequence[dict]) -> tuple[list[str], list[list[str]], list[int]]:
@@ -365,9 +375,11 @@ def summary_markdown(rows: Sequence[dict], title: str, generated: str) -> str:
            f"by every codec and round-trip checked. Generated {generated}.", ""]
     if info["best"]:
         out += [f"Best baseline: {info['best']}. \"vs best baseline\" is coded size over that codec's coded "
-                "size; \"model bytes\" is what the decoder must already have (model file or dictionary), "
-                "left out of the coded size and put back in the column after it.", ""]
+                "size; \"model bytes\" is what the decoder must already have (model file, dictionary or "
+                "prime), left out of the coded size and put back in the column after it.", ""]
     out += ["## Totals", "", _md_table(head, body), ""]
+    if info["legend"]:
+        out += ["Baselines:", ""] + [f"* {c}: {d}" for c, d in info["legend"]] + [""]
     if info["notes"]:
         out += ["Notes:", ""] + [f"* {c}: {n}" for c, n in info["notes"]] + [""]
     out += ["## Charts", ""]
@@ -437,9 +449,10 @@ def index_html(rows: Sequence[dict], title: str, generated: str, pngs: dict) -> 
         f"<figcaption>{e(CAPTIONS[name])} (<a href=\"{name}.png\">{name}.png</a>)</figcaption></figure>"
         for name in CHARTS if name in pngs)
     notes = "".join(f"<li>{e(c)}: {e(n)}</li>" for c, n in info["notes"])
+    legend = "".join(f"<li>{e(c)}: {e(d)}</li>" for c, d in info["legend"])
     best_line = (f"Best baseline: <b>{e(info['best'])}</b>. &ldquo;vs best baseline&rdquo; is a codec's coded size "
-                 f"over that codec's; &ldquo;model bytes&rdquo; is what the decoder must already have (a model file "
-                 f"or a dictionary), left out of the coded size and put back in the column after it."
+                 f"over that codec's; &ldquo;model bytes&rdquo; is what the decoder must already have (a model file, "
+                 f"a dictionary or a prime), left out of the coded size and put back in the column after it."
                  if info["best"] else "")
     return f"""<!DOCTYPE html>
 <html lang="en"><head><meta charset="utf-8"><title>{e(title)}</title>
@@ -452,6 +465,7 @@ codec and round-trip checked. Generated {e(generated)}.</p>
 <h2>Totals</h2>
 <p class="note">{best_line}</p>
 {table(head, body, lc_rows={t['codec'] for t in lc})}
+{f'<p class="note">Baselines:</p><ul class="note">{legend}</ul>' if legend else ''}
 {f'<p class="note">Notes:</p><ul class="note">{notes}</ul>' if notes else ''}
 <h2>Charts</h2>
 <div class="charts">{figs}</div>

@@ -9,6 +9,7 @@ import bz2
 import csv
 import json
 import lzma
+import math
 import os
 import random
 import sysconfig
@@ -65,8 +66,11 @@ def all_baselines(train):
 
 
 def test_default_and_extra_names(train):
+    assert B.DEFAULT_NAMES == ("zlib-9", "bz2-9", "xz-9e", "zstd-19", "zstd-19-dict", "zstd-19-rawdict",
+                               "brotli-11", "ppmd-o8", "ppmd-o16-primed")
     assert [b.name for b in B.default_baselines(train)] == list(B.DEFAULT_NAMES)
     assert "brotli-11-w24" not in B.DEFAULT_NAMES and "ppmd-o16" not in B.DEFAULT_NAMES
+    assert set(B.DESCRIPTIONS) == set(B.ALL_NAMES)
     with pytest.raises(KeyError):
         B.make_baseline("nonesuch-1")
 
@@ -100,6 +104,32 @@ def test_sizes_equal_direct_library_calls(samples, train, all_baselines):
     for data in samples.values():
         assert len(b["zstd-19-dict"].compress(data)) == len(direct.compress(data))
 
+    # zstandard with the train files joined as a raw-content dictionary, level 19's
+    # settings but a chain log spanning the dictionary and a window for dictionary + input
+    raw = b"".join(train)  # all of it: far below the budget
+    rd = zstandard.ZstdCompressionDict(raw, dict_type=zstandard.DICT_TYPE_RAWCONTENT)
+    lvl = zstandard.ZstdCompressionParameters.from_level(19, source_size=len(raw))
+    for data in samples.values():
+        window = max(10, (len(raw) + len(data) - 1).bit_length())
+        params = zstandard.ZstdCompressionParameters.from_level(
+            19, source_size=len(raw), window_log=window,
+            chain_log=max(lvl.chain_log, math.ceil(math.log2(len(raw))) + 1))
+        blob = b["zstd-19-rawdict"].compress(data)
+        assert blob == zstandard.ZstdCompressor(dict_data=rd, compression_params=params).compress(data)
+        # a default decoder (no raised window limit) given the same raw dictionary decodes it
+        assert zstandard.ZstdDecompressor(dict_data=rd).decompress(blob) == data
+    assert b["zstd-19-rawdict"].model_bytes == len(raw) == len(b["zstd-19-rawdict"].side_data)
+
+    # pyppmd: an order-16 encoder fed the train files then the file, in 16 KiB pieces;
+    # the archive is what it wrote after the prime
+    for data in list(samples.values())[:2]:
+        enc = pyppmd.Ppmd8Encoder(16, B.PPMD_PRIMED_MEM_BYTES)
+        head = b"".join(enc.encode(raw[i:i + 16384]) for i in range(0, len(raw), 16384))
+        tail = b"".join(enc.encode(data[i:i + 16384]) for i in range(0, len(data), 16384)) + enc.flush()
+        assert b["ppmd-o16-primed"].side_data == head
+        assert b["ppmd-o16-primed"].compress(data) == tail
+    assert b["ppmd-o16-primed"].model_bytes == len(head) > 0
+
 
 def test_blobs_decode_with_plain_library_calls(samples, all_baselines):
     data = samples["colorsys.py"] if "colorsys.py" in samples else next(iter(samples.values()))
@@ -126,6 +156,134 @@ def test_every_baseline_round_trips(samples, all_baselines):
     for b in all_baselines.values():
         for data in inputs:
             assert b.decompress(b.compress(data)) == data, (b.name, len(data))
+
+
+# ---- the train split as context: zstd-19-rawdict and ppmd-o16-primed --------------
+
+
+def _echo_of(train):
+    """A test file made of long strings of the train files (2,000 bytes from each of 8)."""
+    return b"".join(t[len(t) // 3: len(t) // 3 + 2000] for t in train[:8])
+
+
+def test_train_split_as_context_pays_on_repeated_strings(train, all_baselines):
+    b = all_baselines
+    data = _echo_of(train)
+    assert len(data) > 10000
+    # what the unprimed configurations of the same libraries make of it
+    assert len(b["zstd-19-rawdict"].compress(data)) < 0.2 * len(b["zstd-19"].compress(data))
+    assert len(b["ppmd-o16-primed"].compress(data)) < 0.2 * len(b["ppmd-o16"].compress(data))
+    for name in ("zstd-19-rawdict", "ppmd-o16-primed"):
+        assert b[name].decompress(b[name].compress(data)) == data
+
+
+def test_model_bytes_are_what_the_decoder_holds(train, all_baselines):
+    raw, n_files = B.prime_text(train)
+    assert raw == b"".join(train) and n_files == len(train)
+    rd, pp = all_baselines["zstd-19-rawdict"], all_baselines["ppmd-o16-primed"]
+    assert rd.side_data == raw and rd.model_bytes == len(raw)
+    assert f"{len(raw):,} bytes of {len(train)} train files" in rd.note
+    # the prime's coded bytes, a plain pyppmd encoder's output for the prime so far
+    assert pp.model_bytes == len(pp.side_data) and 0 < pp.model_bytes < len(raw) // 3
+    assert f"prime: {len(raw):,} bytes" in pp.note and f"coded to {pp.model_bytes:,}" in pp.note
+
+
+def test_primed_archive_decodes_with_a_plain_pyppmd_decoder(samples, train, all_baselines):
+    pp = all_baselines["ppmd-o16-primed"]
+    raw, _ = B.prime_text(train)
+    for data in [_echo_of(train), b"", next(iter(samples.values()))]:
+        archive = pp.compress(data)
+        # pyppmd's one-shot decoder, fed the prime's coded bytes and then the archive
+        out = pyppmd.decompress(pp.side_data + archive, max_order=16, mem_size=B.PPMD_PRIMED_MEM_BYTES)
+        assert out[:len(raw)] == raw and out[len(raw):] == data
+
+
+@pytest.mark.skipif(not B.fork_available(), reason="os.fork is not available here")
+def test_fork_path_and_fallback_give_the_same_archives(samples, train):
+    forked = B.PrimedPpmd(b"".join(train), fork=True)
+    fresh = B.PrimedPpmd(b"".join(train), fork=False)
+    assert forked.forked and not fresh.forked
+    assert forked.prime_out == fresh.prime_out
+    # the parent's decoder stopped short of the prime's end, input still unread
+    assert 0 < forked.decoder_primed < len(forked.prime)
+    rnd = random.Random(3)
+    inputs = [_echo_of(train), b"", b"\x00", rnd.randbytes(40000)] + list(samples.values())[:2]
+    for data in inputs:
+        a, b = forked.compress(data), fresh.compress(data)
+        assert a == b, len(data)
+        assert forked.decompress(b) == data and fresh.decompress(a) == data
+    # the primed coders are untouched by the children: the same archive again
+    assert forked.compress(inputs[0]) == fresh.compress(inputs[0])
+    # the two coder processes end when closed, and a later call says so
+    procs = [forked._enc_proc.proc, forked._dec_proc.proc]
+    forked.close()
+    assert all(p.poll() is not None for p in procs)
+    with pytest.raises(RuntimeError, match="process has ended"):
+        forked.compress(b"abc")
+
+
+def test_primed_ppmd_bad_archive_is_an_error_not_a_hang(train, all_baselines):
+    pp = all_baselines["ppmd-o16-primed"]
+    archive = pp.compress(_echo_of(train))
+    for bad in (archive[:-3], archive[:2], b""):
+        with pytest.raises((RuntimeError, ValueError), match="end mark|Corrupt|differs"):
+            pp.decompress(bad)
+
+
+def test_rawdict_and_prime_without_train_bytes(samples):
+    data = next(iter(samples.values()))
+    for train in ([], [b""]):
+        rd, pp = B.make_baselines(["zstd-19-rawdict", "ppmd-o16-primed"], train)
+        assert rd.model_bytes == 0 and "no dictionary" in rd.note
+        assert pp.model_bytes == 0 and "not primed" in pp.note
+        # plain zstandard level 19; plain pyppmd order 16
+        assert rd.compress(data) == zstandard.ZstdCompressor(level=19).compress(data)
+        assert pp.compress(data) == pyppmd.compress(data, max_order=16, mem_size=B.PPMD_PRIMED_MEM_BYTES)
+        for d in (data, b""):
+            assert rd.decompress(rd.compress(d)) == d and pp.decompress(pp.compress(d)) == d
+    # a prime too short for the parent's decoder to stop early is decoded whole per file
+    rd, pp = B.make_baselines(["zstd-19-rawdict", "ppmd-o16-primed"], [b"tiny"])
+    assert rd.model_bytes == 4
+    for d in (data, b""):
+        assert rd.decompress(rd.compress(d)) == d and pp.decompress(pp.compress(d)) == d
+
+
+def test_prime_budget_follows_the_train_sample_rule(tmp_path, train):
+    paths = []
+    for i, data in enumerate(train):
+        p = tmp_path / f"t{i:02d}.py"
+        p.write_bytes(data)
+        paths.append(str(p))
+    (tmp_path / "t99.py").write_bytes(b"")
+    paths.append(str(tmp_path / "t99.py"))
+    total = sum(map(len, train))
+    for cap in (total + 1, total // 2, total // 7, 5000):
+        read = bench.read_train_sample(paths, cap)
+        raw, _ = B.prime_text(train + [b""], cap)
+        assert raw == b"".join(read) and len(raw) <= cap
+        assert B.prime_text(read, cap)[0] == raw  # applying the budget again changes nothing
+    assert B.PRIME_BUDGET_BYTES == 32 << 20
+
+
+def test_bench_help_names_the_baselines_that_use_train():
+    from lcodec.cli import bench as bench_command
+
+    text = " ".join(bench_command.help.split())
+    for name in ("zstd-19-dict", "zstd-19-rawdict", "ppmd-o16-primed"):
+        assert name in text
+    assert f"up to {B.PRIME_BUDGET_BYTES >> 20} MiB" in text
+
+
+def test_rawdict_parameters_reach_the_whole_dictionary():
+    level19 = zstandard.ZstdCompressionParameters.from_level(19)
+    p = B.zstd_rawdict_params(28 << 20, 100_000)
+    # the binary tree spans 2**(chain_log - 1) positions: all 28 MiB of the dictionary
+    assert p.chain_log == 26 and 2 ** (p.chain_log - 1) >= 28 << 20
+    assert p.window_log == 25 and 2 ** p.window_log >= (28 << 20) + 100_000
+    assert (p.hash_log, p.search_log, p.min_match, p.target_length, p.strategy) == (
+        level19.hash_log, level19.search_log, level19.min_match, level19.target_length, level19.strategy)
+    assert B.zstd_rawdict_params(32 << 20, 200 << 20).window_log == 27  # the default decoder's limit
+    assert B.zstd_rawdict_params(100, 10).window_log == 10
 
 
 def test_dictionary_fallback_on_tiny_train_set(samples):

@@ -59,7 +59,7 @@ def corpus(tmp_path_factory):
 @pytest.fixture(scope="module")
 def bench_rows(corpus):
     train = [_stdlib(n) for n in TRAIN_NAMES]
-    baselines = make_baselines(["zlib-9", "bz2-9", "zstd-19-dict"], train)
+    baselines = make_baselines(["zlib-9", "bz2-9", "zstd-19-dict", "zstd-19-rawdict", "ppmd-o16-primed"], train)
     return B.run_bench(str(corpus), [B.lcodec_codec(None, "lcodec-strata")], baselines=baselines)
 
 
@@ -100,9 +100,14 @@ def test_plotted_bits_per_byte_are_the_totals(report, bench_rows):
     coded = [len(zlib.compress(_stdlib(n), 9)) for n in TEST_NAMES] + [len(zlib.compress(b"", 9))]
     z = next(d for d in data["bits_per_byte"] if d["codec"] == "zlib-9")
     assert z["bits_per_byte"] == pytest.approx(8 * sum(coded) / sum(sizes), rel=1e-12)
-    # the dictionary codec carries its dictionary's size beside its ratio
-    zd = next(d for d in data["bits_per_byte"] if d["codec"] == "zstd-19-dict")
-    assert zd["model_bytes"] > 0 and zd["with_model_bits_per_byte"] > zd["bits_per_byte"]
+    # the dictionary codecs carry their dictionary's size beside their ratio, the primed
+    # PPMd its prime's coded size: the raw dictionary is the train files joined
+    raw = sum(len(_stdlib(n)) for n in TRAIN_NAMES)
+    for codec in ("zstd-19-dict", "zstd-19-rawdict", "ppmd-o16-primed"):
+        zd = next(d for d in data["bits_per_byte"] if d["codec"] == codec)
+        assert zd["model_bytes"] > 0 and zd["with_model_bits_per_byte"] > zd["bits_per_byte"]
+        if codec == "zstd-19-rawdict":
+            assert zd["model_bytes"] == raw
 
 
 def test_plotted_per_file_points_are_the_file_rows(report, bench_rows):
@@ -154,6 +159,27 @@ def test_summary_markdown_has_the_totals_and_model_sizes(report, bench_rows):
         assert cells[4] == f"{t['model_bytes']:,}"
     for c in CHARTS:
         assert f"]({c}.png)" in md
+
+
+def test_pages_say_what_each_baseline_is(report, bench_rows):
+    from lcodec.baselines import DESCRIPTIONS
+
+    out, _ = report
+    md = (out / "summary.md").read_text()
+    page = (out / "index.html").read_text(encoding="utf-8")
+    notes = {r["codec"]: r["note"] for r in bench_rows if r["file"] == B.TOTAL}
+    for codec in ("zlib-9", "bz2-9", "zstd-19-dict", "zstd-19-rawdict", "ppmd-o16-primed"):
+        assert f"* {codec}: {DESCRIPTIONS[codec]}" in md
+        assert f"<li>{codec}: {DESCRIPTIONS[codec]}</li>" in page
+    legend = md.split("Baselines:\n\n", 1)[1].split("\n\n", 1)[0].splitlines()
+    totals = _totals(bench_rows)
+    in_order = sorted(totals, key=lambda c: (totals[c]["coded_bytes"], c))
+    # the baselines only, in the totals' order
+    assert [ln.split(":")[0] for ln in legend] == [f"* {c}" for c in in_order if c != "lcodec-strata"]
+    # the rows that hold train text say how much and what their timings leave out
+    for codec in ("zstd-19-rawdict", "ppmd-o16-primed"):
+        assert "model bytes" in notes[codec] and "not counted" in notes[codec]
+        assert f"* {codec}: {notes[codec]}" in md
 
 
 class _Tags(HTMLParser):
