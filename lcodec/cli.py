@@ -114,6 +114,16 @@ threads_option = click.option("--threads", type=click.IntRange(1, 64), default=1
 quiet_option = click.option("-q", "--quiet", is_flag=True, help="No progress or summary on stderr.")
 
 
+def parse_size(text: str, option: str) -> int:
+    """A byte count written as a whole number with an optional K, M or G (powers of 1024)."""
+    t = str(text).strip().upper().removesuffix("B").removesuffix("I")
+    mult = {"K": 1 << 10, "M": 1 << 20, "G": 1 << 30}.get(t[-1:], 1)
+    digits = t[:-1] if mult > 1 else t
+    if not digits.isdigit():
+        raise UsageError(f"{option} takes a size such as 32M, 512K or 0, not {text!r}")
+    return int(digits) * mult
+
+
 def _jobs_value(ctx, param, value):
     if value is None:
         return None
@@ -393,14 +403,21 @@ def info(path, as_json, frames):
     if blob[:8] == modelfile.MAGIC:
         meta, arrays, sha = modelfile.parse(blob, where=path)
         d = {"model_file": path, "sha256": sha, "bytes": len(blob), **meta}
+        if meta["architecture"]["name"] == "braid":  # what the file holds, in plain words (files made before said nothing)
+            from .braid_train import contents_text
+
+            mem = arrays.get("memory")
+            d["contents"] = contents_text(0 if mem is None else len(mem))
         if as_json:
             click.echo(json.dumps(d, indent=2))
         else:
             click.echo(f"model file {path}: {meta['architecture']['name']}, {len(blob)} bytes, sha256 {sha}")
+            if "contents" in d:
+                click.echo(f"  holds: {d['contents']}")
             for k, v in sorted(meta.items()):
                 if k == "learning_curve" and isinstance(v, list) and len(v) > 4:
                     click.echo(f"  {k}: {len(v)} points, last {json.dumps(v[-1])} (all of them: --json)")
-                elif k != "arrays":
+                elif k not in ("arrays", "contents"):
                     click.echo(f"  {k}: {json.dumps(v)}")
             for a in meta["arrays"]:
                 click.echo(f"  array {a['name']}: {a['dtype']} {a['shape']}")
@@ -587,6 +604,11 @@ def explain(file, model, output, png_out, frame_size, view_bytes, force, quiet):
                    "Images: small (the default) or tiny. Figures in README.md.")
 @click.option("--seed", type=int, default=0, show_default=True, help="Seed of the validation split and the training.")
 @click.option("--max-bytes", type=int, default=None, help="Read at most this many bytes of the corpus (bytes only).")
+@click.option("--memory", "memory", default=None, metavar="SIZE",
+              help="braid presets: how much of the training text the model file keeps as its corpus memory, "
+                   "so that new files can be coded as references to long strings of the old ones (for example "
+                   "64M, 512K, or 0 for none; default 32M, braid-lean 0). The text is stored as it is: anyone "
+                   "with the model file can read it.")
 @click.option("--adapt-k", default="4096", show_default=True,
               help="Images: prior strength K of the per-image adaptive counts (0 = off), or 'auto' to pick it "
                    "per depth on the validation images.")
@@ -601,7 +623,7 @@ def explain(file, model, output, png_out, frame_size, view_bytes, force, quiet):
                    "training samples stay under 16.8 million); decoding costs nothing more.")
 @force_option
 @guarded
-def train(corpus, output, kind, time_limit, preset, seed, max_bytes, adapt_k, structure_k, law, augment, force):
+def train(corpus, output, kind, time_limit, preset, seed, max_bytes, memory, adapt_k, structure_k, law, augment, force):
     """Train a model on files and folders of one kind; write a model file.
 
     A tenth of the files is held out for validation; progress shows validation bits per
@@ -614,13 +636,13 @@ def train(corpus, output, kind, time_limit, preset, seed, max_bytes, adapt_k, st
 
     echo = lambda m: click.echo(m, err=True)  # noqa: E731
     if kind == "image":
-        if max_bytes is not None:
-            raise UsageError("--max-bytes goes with --kind bytes")
+        if max_bytes is not None or memory is not None:
+            raise UsageError("--max-bytes and --memory go with --kind bytes")
         T.train_image(list(corpus), output, time_limit or 120.0, preset or "small", seed, echo=echo, force=force,
                       adapt_k=adapt_k, structure_k=structure_k, law=law, augment=augment)
     else:
         T.train(list(corpus), output, time_limit or 600.0, preset or T.DEFAULT_PRESET, seed, max_bytes, echo=echo,
-                force=force)
+                force=force, memory=None if memory is None else parse_size(memory, "--memory"))
 
 
 @main.command(epilog=_example("demo"))

@@ -3,6 +3,7 @@ predictor against a Python-integer reference, encoder pass == decoder pass with 
 across lane, frame and memory boundaries, round trips, hostile model files, the memory's
 deduplication, and the coded size of verbatim copies against the information in them."""
 import math
+import os
 import random
 
 import numpy as np
@@ -400,3 +401,30 @@ def test_info_and_train_say_what_the_file_holds(tiny_memory, tiny_plain):
     assert out.exit_code == 0 and "bytes of the training text itself" in out.output
     out = CliRunner().invoke(main, ["info", tiny_plain])
     assert out.exit_code == 0 and "no training text" in out.output
+
+
+def test_kernel_cache_forgets_when_a_called_module_changes(tmp_path):
+    """numba keeps a module's compiled kernels while its own source is unchanged; braid's
+    kernels inline recall's and strata's, so their sources are stamped beside braid's cache."""
+    from lcodec.models.kernel_cache import forget_if_changed
+
+    mod, dep = tmp_path / "mod.py", tmp_path / "dep.py"
+    mod.write_text("x = 1\n")
+    dep.write_text("y = 1\n")
+    cache = tmp_path / "__pycache__"
+    cache.mkdir()
+    kept = cache / "mod._kernel-10.py311.nbi"
+    other = cache / "dep._other-3.py311.nbi"
+    kept.write_bytes(b"")
+    other.write_bytes(b"")
+    forget_if_changed(str(mod), [str(dep)])  # no stamp yet: forget, stamp
+    assert not kept.exists() and other.exists()
+    kept.write_bytes(b"")
+    forget_if_changed(str(mod), [str(dep)])  # same sources: keep
+    assert kept.exists()
+    dep.write_text("y = 2\n")
+    forget_if_changed(str(mod), [str(dep)])  # the called module changed: forget
+    assert not kept.exists() and other.exists()
+    import lcodec.models.braid as B
+    stamp = os.path.join(os.path.dirname(B.__file__), "__pycache__", "braid.kernel-deps")
+    assert os.path.exists(stamp)

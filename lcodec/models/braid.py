@@ -35,6 +35,9 @@ from numba import njit
 
 from . import recall as R
 from . import strata as S
+from .kernel_cache import forget_if_changed
+
+forget_if_changed(__file__, [R.__file__, S.__file__])  # kernels here inline those modules' kernels
 
 P_BITS = S.P_BITS
 F = S.F

@@ -38,6 +38,9 @@ import numpy as np
 from numba import njit
 
 from . import strata as S
+from .kernel_cache import forget_if_changed
+
+forget_if_changed(__file__, [S.__file__])  # kernels here inline those modules' kernels
 
 STEP = 2  # positions indexed: every STEP-th, so a repeat is found at most STEP - 1 bytes late
 VERIFY = 48  # bytes compared backwards when a candidate is checked
