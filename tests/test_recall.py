@@ -57,6 +57,23 @@ def py_run_class(n):
     return min(16 + 2 * (k - 4) + ((n >> (k - 1)) & 1), R.RUN_CLASSES - 1)
 
 
+def py_level(pe, total):
+    """16 levels by halvings, from the fractions themselves (exact rationals)."""
+    from fractions import Fraction
+
+    q = Fraction(pe, total)
+    if q >= Fraction(1, 2):
+        rest = 1 - q  # level 8 + j where rest is below 2**-(j + 1) ... at most 15
+        j = 0
+        while j < 7 and rest < Fraction(1, 2 ** (j + 2)):
+            j += 1
+        return 8 + j
+    j = 7  # level j where q >= 2**(j - 8), down to 0
+    while j > 0 and q < Fraction(1, 2 ** (9 - j)):
+        j -= 1
+    return j
+
+
 class PyRecall:
     """The predictor of one lane, in Python integers, written from the module's docstring."""
 
@@ -79,7 +96,7 @@ class PyRecall:
             return p
         agree = 0 if repeat_byte < 0 else (1 if repeat_byte == e else 2)
         cell = ((py_run_class(self.run) * R.AGREE + agree) * R.MISS_CLASSES + min(self.misses, R.MISS_CLASSES - 1)) \
-            * R.LEVELS + pe * R.LEVELS // total
+            * R.LEVELS + py_level(pe, total)
         self.cell = cell
         hits, trials = self.cells[cell]
         target = min(max(hits * total // trials, 1), total - 1024)
@@ -187,6 +204,15 @@ def test_predictor_matches_python_integers(kind, lengths):
     if kind == "repetitive":
         assert followed > 0.6 * len(data)  # the copies are found and followed
         assert recovered > 0  # and some are followed past a miss
+
+
+def test_levels_against_fractions():
+    rng = random.Random(4)
+    cases = [(1, 1 << 20), (1 << 19, 1 << 20), ((1 << 20) - 1, 1 << 20), (3, 8), (1, 4), (3, 4), (7, 8)]
+    cases += [(rng.randrange(1, t), t) for t in (rng.randrange(2, 1 << 22) for _ in range(3000))]
+    for pe, total in cases:
+        assert R.level_of(pe, total) == py_level(pe, total), (pe, total)
+    assert [R.level_of(x, 256) for x in (0, 1, 2, 32, 63, 64, 127, 128, 191, 192, 255)] == [0, 1, 2, 6, 6, 7, 7, 8, 8, 8, 14]
 
 
 def test_run_classes():
