@@ -79,6 +79,8 @@ def _bpb(model, files: list[bytes]) -> float:
 
 PRIOR_STRENGTH = 32  # trials a learned hit-rate cell starts with (the default's too)
 PRIOR_MIN_TRIALS = 64  # cells seen fewer times keep the default (no change)
+RECALL_MIN_TRIALS = 16  # the same for the corpus memory's cells, which start with the trials
+RECALL_PRIOR_CAP = 64  # seen (at most this many: rates near 1 need the resolution)
 
 
 def _run_files(model, files: list[bytes], **collect) -> None:
@@ -116,14 +118,11 @@ def recall_prior(model, files: list[bytes]):
     _run_files(model, files, recall_stats=stats)
     if stats[:, 1].max(initial=0) < PRIOR_MIN_TRIALS:
         return None
-    cells = np.arange(R.CELLS)
-    out = np.empty((R.CELLS, 2), np.int32)
-    out[:, 0] = 2 * (cells % R.LEVELS) + 1  # the default: each level's midpoint
-    out[:, 1] = 2 * R.LEVELS
-    seen = stats[:, 1] >= PRIOR_MIN_TRIALS
-    rate = (stats[seen, 0] * PRIOR_STRENGTH + stats[seen, 1] // 2) // np.maximum(stats[seen, 1], 1)
-    out[seen, 0] = np.clip(rate, 1, PRIOR_STRENGTH - 1)
-    out[seen, 1] = PRIOR_STRENGTH
+    out = np.zeros((R.CELLS, 2), np.int32)  # the default: no trials (no change)
+    seen = stats[:, 1] >= RECALL_MIN_TRIALS
+    trials = np.minimum(stats[seen, 1], RECALL_PRIOR_CAP)  # as many trials as were seen, at most the cap
+    out[seen, 0] = (stats[seen, 0] * trials + stats[seen, 1] // 2) // stats[seen, 1]
+    out[seen, 1] = trials
     return out
 
 

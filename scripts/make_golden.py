@@ -117,6 +117,72 @@ def golden_braid_fork2():
     golden_braid_fork("fork2", PRESETS["braid-tree"]["fork"], seed=62)
 
 
+# Lines that recur from day to day in the stations' logs: what a corpus memory is for.
+RECURRING = [
+    "kestrel-ridge relay 4: link budget recomputed after antenna re-point, margin nominal\n",
+    "mount-orrin housekeeping: battery heater cycle complete, enclosure humidity within limits\n",
+    "vale-of-tess gateway: nightly checksum sweep of the sample archive finished without findings\n",
+    "harrow-peak seismometer: self-test passed (mass centring, calibration coil, digitiser clock)\n",
+    "all stations: time sync against the valley reference within 2 ms, next sync in 6 h\n",
+]
+
+
+def recurring_text(seed: int, n: int) -> bytes:
+    """sample_text's lines with, now and then, one of the RECURRING lines between them."""
+    rng = random.Random(seed + 7)
+    out = []
+    for line in sample_text(seed, n).decode().splitlines(keepends=True):
+        out.append(line)
+        if rng.random() < 0.15:
+            out.append(rng.choice(RECURRING))
+    return "".join(out).encode()[:n]
+
+
+def golden_braid_memory():
+    """A braid model of the default preset with its corpus memory (the training text
+    itself, lcodec/models/recall.py), trained on log lines of which some recur, and a
+    version-2 container (first frame in two lanes) of new lines of the same kind."""
+    from lcodec import modelfile
+
+    mpath = os.path.join(HERE, "braid-memory-tiny.lcmodel")
+    arc = os.path.join(HERE, "braid-v2-memory.lcodec")
+    if os.path.exists(arc):
+        print(f"keep {arc}")
+        return
+    import tempfile
+
+    from lcodec import train as T
+
+    with tempfile.TemporaryDirectory() as d:
+        for i in range(8):
+            with open(os.path.join(d, f"log{i}.txt"), "wb") as f:
+                f.write(recurring_text(700 + i, 6_000))
+        T.train([d], mpath, time_limit=5, preset="braid", seed=0, echo=print)
+    if "memory" not in modelfile.load(mpath)[1]:
+        raise SystemExit("the memory golden's training did not keep the memory: change its data")
+    write_vector("braid-v2-memory", recurring_text(79, 150_000), model=mpath, frame_size=140_000)
+
+
+def golden_braid_memtree():
+    """The braid-tree preset with a corpus memory: braid-memory-tiny.lcmodel plus the tree
+    refinement's parameters (the repeat byte the refinement is told of may then come from
+    the memory), and a version-2 container of indented lines."""
+    from lcodec import modelfile
+    from lcodec.braid_train import PRESETS
+
+    mpath = os.path.join(HERE, "braid-memtree-tiny.lcmodel")
+    arc = os.path.join(HERE, "braid-v2-memtree.lcodec")
+    if os.path.exists(arc):
+        print(f"keep {arc}")
+        return
+    meta, arrays, _ = modelfile.load(os.path.join(HERE, "braid-memory-tiny.lcmodel"))
+    params = {**meta["architecture"]["params"], **PRESETS["braid-tree"]["fork"]}
+    modelfile.dump(mpath, {"name": "braid", "params": params}, arrays)
+    text = recurring_text(80, 150_000).decode("latin-1").splitlines()
+    data = "\n".join(("    " * (i % 4)) + line for i, line in enumerate(text)).encode("latin-1")[:150_000]
+    write_vector("braid-v2-memtree", data, model=mpath, frame_size=140_000)
+
+
 def golden_tessel():
     """A tiny trained pixel model (8- and 16-bit networks) and three image containers made
     with it: an 8-bit PGM (byte-exact), a PNG with a text chunk (pixel-exact) and pydicom's
@@ -261,6 +327,8 @@ def main():
     golden_braid_mixed()
     golden_braid_fork()
     golden_braid_fork2()
+    golden_braid_memory()
+    golden_braid_memtree()
     golden_tessel()
     golden_tessel_structure()
     golden_tessel_law()

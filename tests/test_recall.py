@@ -82,7 +82,7 @@ class PyRecall:
         self.short, self.sshift = py_index(self.text, min_len)
         self.long, self.lshift = py_index(self.text, long_len)
         self.ptr, self.run, self.misses, self.older = -1, 0, 0, 0
-        self.cells = [[2 * (c % R.LEVELS) + 1, 2 * R.LEVELS] for c in range(R.CELLS)]
+        self.cells = [[0, 0] for _ in range(R.CELLS)]
         self.cell = self.pred = -1
 
     def predict(self, p, repeat_byte):
@@ -99,7 +99,8 @@ class PyRecall:
             * R.LEVELS + py_level(pe, total)
         self.cell = cell
         hits, trials = self.cells[cell]
-        target = min(max(hits * total // trials, 1), total - 1024)
+        k = max(R.SHRINK - trials, 0)
+        target = min(max((hits * total + k * pe) // (trials + k), 1), total - 1024)
         f = ((total - target) << 20) // (total - pe)
         out = [(x * f) >> 20 for x in p]
         out[e] = target
@@ -375,7 +376,8 @@ def test_memory_is_deduplicated_and_budgeted():
 
 
 @pytest.mark.parametrize("damage", ["bytes_mismatch", "no_params", "no_memory", "bad_dtype", "bad_min", "bad_long",
-                                    "prior_shape", "prior_hits", "prior_without_memory", "two_dims"])
+                                    "prior_shape", "prior_hits", "prior_negative", "prior_over_limit",
+                                    "prior_without_memory", "two_dims"])
 def test_hostile_memory_model_files_are_refused(tiny_memory, tmp_path, damage):
     meta, arrays, _ = modelfile.load(tiny_memory)
     p = dict(meta["architecture"]["params"])
@@ -397,6 +399,10 @@ def test_hostile_memory_model_files_are_refused(tiny_memory, tmp_path, damage):
         arrays["recall_prior"] = arrays["recall_prior"][:-1]
     elif damage == "prior_hits":
         arrays["recall_prior"][0] = [50, 40]
+    elif damage == "prior_negative":
+        arrays["recall_prior"][0] = [-1, 40]
+    elif damage == "prior_over_limit":
+        arrays["recall_prior"][0] = [0, R.LIMIT + 1]
     elif damage == "prior_without_memory":
         for k in ("recall_min", "recall_long", "memory_bytes"):
             p.pop(k)
@@ -454,3 +460,26 @@ def test_kernel_cache_forgets_when_a_called_module_changes(tmp_path):
     import lcodec.models.braid as B
     stamp = os.path.join(os.path.dirname(B.__file__), "__pycache__", "braid.kernel-deps")
     assert os.path.exists(stamp)
+
+
+GOLDEN = os.path.join(os.path.dirname(__file__), "golden")
+
+
+@pytest.mark.parametrize("name,model", [("braid-v2-memory", "braid-memory-tiny"), ("braid-v2-memtree", "braid-memtree-tiny")])
+def test_golden_memory_models_and_containers(name, model):
+    """The default preset with a corpus memory, and braid-tree with one (made by
+    scripts/make_golden.py from log lines of which some recur): the containers (first frame
+    in two lanes) decode, also in two threads, and re-encode byte for byte."""
+    from lcodec.container import read_container
+
+    model = os.path.join(GOLDEN, model + ".lcmodel")
+    blob = open(os.path.join(GOLDEN, name + ".lcodec"), "rb").read()
+    orig = open(os.path.join(GOLDEN, name + ".orig"), "rb").read()
+    meta, arrays, _ = modelfile.load(model)
+    p = meta["architecture"]["params"]
+    assert (p["recall_min"], p["recall_long"], p["memory_bytes"]) == (8, 16, len(arrays["memory"]))
+    assert "recall_prior" in arrays
+    assert read_container(blob).frames[0].lanes == 2
+    assert lcodec.unpack(blob, model=model) == orig
+    assert lcodec.unpack(blob, model=model, workers=2) == orig
+    assert lcodec.pack(orig, model=model, frame_size=140_000) == blob

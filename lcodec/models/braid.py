@@ -984,9 +984,9 @@ def check_memory(params: dict, arrays: dict):
     if not (1 <= nb <= R.MAX_TEXT) or len(text) != nb:
         raise ValueError(f"memory holds {len(text):,} bytes but the parameters say memory_bytes {nb:,}")
     pr = arrays.get("recall_prior")
-    if pr is not None and (pr.dtype != np.int32 or pr.shape != (R.CELLS, 2) or int(pr[:, 1].min()) < 1
-                           or int(pr[:, 1].max()) > R.LIMIT or int(pr[:, 0].min()) < 0 or (pr[:, 0] > pr[:, 1]).any()):
-        raise ValueError(f"recall_prior must be int32 ({R.CELLS}, 2) of hits <= trials <= {R.LIMIT}, trials >= 1")
+    if pr is not None and (pr.dtype != np.int32 or pr.shape != (R.CELLS, 2) or int(pr[:, 1].max()) > R.LIMIT
+                           or int(pr[:, 0].min()) < 0 or (pr[:, 0] > pr[:, 1]).any()):
+        raise ValueError(f"recall_prior must be int32 ({R.CELLS}, 2) of 0 <= hits <= trials <= {R.LIMIT}")
     return text, R.build_index(text, mn), R.build_index(text, lg)
 
 

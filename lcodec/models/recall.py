@@ -27,7 +27,10 @@ the hit rate of its cell: (run length in RUN_CLASSES classes, whether the in-fra
 repeat model follows a repeat and names the same byte or another, misses so far,
 and e's probability level in p, by halvings towards 0 and towards 1). Cells count hits and trials in this frame, started
 from the model file's `recall_prior` (fitted on held-out files) or from no change;
-they are shared by a frame's lanes. Everything is an integer; the text and the
+they are shared by a frame's lanes. A cell's estimate is (hits * total + k * pe) /
+(trials + k), k = max(SHRINK - trials, 0): while a cell has seen fewer than SHRINK
+trials, the missing ones count at e's probability before it, so a cell that has seen
+nothing changes nothing. Everything is an integer; the text and the
 indexes are read-only, shared by lanes, frames and threads.
 """
 from __future__ import annotations
@@ -52,6 +55,7 @@ MISS_CLASSES = 4  # misses so far: 0, 1, 2, 3+
 LEVELS = 16  # e's probability in the table before: 16 levels, by halvings (level_of)
 CELLS = RUN_CLASSES * AGREE * MISS_CLASSES * LEVELS
 LIMIT = 4095  # cell counts are halved past this, to keep adapting
+SHRINK = 16  # a cell with fewer trials counts e's probability before it as the missing ones
 MIN_LEN = (4, 8)  # recall_min's range
 LONG_LEN = (9, 16)  # recall_long's range
 MAX_TEXT = (1 << 32) - 2  # positions are uint32, 0 means empty
@@ -120,12 +124,9 @@ Recall = namedtuple("Recall", [
 def new_state(text, short, long, min_len: int, long_len: int, n_lanes: int, prior=None) -> Recall:
     """One frame's state (lanes, cells) over the shared text and indexes; text None: off."""
     nl = max(n_lanes, 1)
-    cells = np.empty((CELLS, 2), np.int32)
+    cells = np.zeros((CELLS, 2), np.int32)  # no trials: no change
     if prior is not None:
         cells[:] = prior
-    else:
-        cells[:, 0] = 2 * (np.arange(CELLS) % LEVELS) + 1  # each level's midpoint: no change
-        cells[:, 1] = 2 * LEVELS
     if text is None:
         text, short, long = np.zeros(1, np.uint8), np.zeros(1, np.uint32), np.zeros(1, np.uint32)
         on, ss, ls = 0, 63, 63
@@ -199,7 +200,11 @@ def predict(rc, b, p, repeat_byte):
         + level_of(pe, total)
     rc.cell[b] = cell
     st = rc.cells[cell]
-    S._give_mass(p, e, pe, total, (np.int64(st[0]) * total) // np.int64(st[1]))  # st[0] <= LIMIT: < 2**35
+    # the cell's hits and trials, and while it has fewer than SHRINK trials the missing ones
+    # at e's probability before it (a cell that has seen nothing changes nothing):
+    # st[0] <= LIMIT, total < 2**22: < 2**35
+    k = max(SHRINK - np.int64(st[1]), np.int64(0))
+    S._give_mass(p, e, pe, total, (np.int64(st[0]) * total + k * pe) // (np.int64(st[1]) + k))
 
 
 @njit(cache=True, nogil=True)
