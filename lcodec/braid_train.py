@@ -275,6 +275,15 @@ def train_braid(files: list[tuple[str, bytes]], corpus: list[str], out: str, tim
             params, model, best = fork_params, forked, vf
     val_bpb = _bpb(model, val_files)
     strata_bpb = _bpb(S.Strata(), val_files)
+    if mem_info["stored_bytes"]:
+        # the held-out files join the memory once they are no longer needed to judge it (the
+        # validation figure above was measured without them): every file the user gave is
+        # text a new file may repeat
+        text, summary = memory_text(train_files + val_files, memory)
+        if len(text) > mem_info["stored_bytes"]:
+            params = {**params, "memory_bytes": int(len(text))}
+            arrays = {**arrays, "memory": text}
+            mem_info.update(summary, stored_bytes=int(len(text)), held_out_files_added=len(val_files))
     meta = {
         "lcodec_version": __version__,
         "preset": preset,

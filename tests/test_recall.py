@@ -483,3 +483,40 @@ def test_golden_memory_models_and_containers(name, model):
     assert lcodec.unpack(blob, model=model) == orig
     assert lcodec.unpack(blob, model=model, workers=2) == orig
     assert lcodec.pack(orig, model=model, frame_size=140_000) == blob
+
+
+def test_train_memory_option(tmp_path):
+    """`lcodec train --memory`: the default keeps the training text (the held-out files joining
+    it at the end), a size caps it, 0 keeps none, and a bad size is a usage error. The
+    files share a long block (a licence header, as source trees do), so the memory pays."""
+    import subprocess
+    import sys
+
+    corpus = tmp_path / "corpus"
+    corpus.mkdir()
+    head = stdlib_file("heapq.py", 3000)
+    for name in CORPUS + ["calendar.py", "shlex.py", "textwrap.py"]:
+        (corpus / name).write_bytes(head + stdlib_file(name, 12_000))
+
+    def train(*extra):
+        out = tmp_path / f"m{len(extra)}{extra[-1] if extra else ''}.lcmodel"
+        r = subprocess.run([sys.executable, "-m", "lcodec", "train", str(corpus), "-o", str(out), "--time-limit", "5",
+                            *extra], capture_output=True, text=True, timeout=600)
+        return r, out
+
+    r, out = train()
+    assert r.returncode == 0, r.stderr
+    assert "bytes of the training text itself" in r.stderr
+    meta, arrays, _ = modelfile.load(str(out))
+    mem = bytes(arrays["memory"])
+    assert meta["corpus_memory"]["held_out_files_added"] == 1 and meta["corpus_memory"]["stored_bytes"] == len(mem)
+    assert all(stdlib_file(n, 12_000)[:2000] in mem for n in CORPUS)  # every file's own text, the held-out one too
+    assert mem.count(head[:2000]) == 1  # the shared block once
+    r, out = train("--memory", "20K")
+    assert r.returncode == 0, r.stderr
+    assert len(modelfile.load(str(out))[1]["memory"]) <= 20 << 10
+    r, out = train("--memory", "0")
+    assert r.returncode == 0 and "no training text" in r.stderr
+    assert "memory" not in modelfile.load(str(out))[1]
+    r, out = train("--memory", "lots")
+    assert r.returncode == 2 and "--memory takes a size" in r.stderr
