@@ -77,16 +77,21 @@ def golden_braid_mixed():
     if os.path.exists(arc):
         print(f"keep {arc}")
         return
+    train_on(mpath, [sample_text(500 + i, 5_000) for i in range(8)], memory=0)  # (made before the memory)
+    write_vector("braid-v2-mixed", sample_text(59, 150_000), model=mpath, frame_size=140_000)
+
+
+def train_on(mpath: str, texts: list, **options) -> None:
+    """Train the default braid preset for 5 s on `texts`, each a file of its own."""
     import tempfile
 
     from lcodec import train as T
 
     with tempfile.TemporaryDirectory() as d:
-        for i in range(8):
+        for i, text in enumerate(texts):
             with open(os.path.join(d, f"log{i}.txt"), "wb") as f:
-                f.write(sample_text(500 + i, 5_000))
-        T.train([d], mpath, time_limit=5, preset="braid", seed=0, echo=print)
-    write_vector("braid-v2-mixed", sample_text(59, 150_000), model=mpath, frame_size=140_000)
+                f.write(text)
+        T.train([d], mpath, time_limit=5, preset="braid", seed=0, echo=print, **options)
 
 
 def golden_braid_fork(name: str = "fork", fork: dict | None = None, seed: int = 61):
@@ -149,15 +154,7 @@ def golden_braid_memory():
     if os.path.exists(arc):
         print(f"keep {arc}")
         return
-    import tempfile
-
-    from lcodec import train as T
-
-    with tempfile.TemporaryDirectory() as d:
-        for i in range(8):
-            with open(os.path.join(d, f"log{i}.txt"), "wb") as f:
-                f.write(recurring_text(700 + i, 6_000))
-        T.train([d], mpath, time_limit=5, preset="braid", seed=0, echo=print)
+    train_on(mpath, [recurring_text(700 + i, 6_000) for i in range(8)])
     if "memory" not in modelfile.load(mpath)[1]:
         raise SystemExit("the memory golden's training did not keep the memory: change its data")
     write_vector("braid-v2-memory", recurring_text(79, 150_000), model=mpath, frame_size=140_000)
