@@ -21,6 +21,8 @@ Both produce a sequence of 32-bit words, stored little-endian.
 """
 from __future__ import annotations
 
+import itertools
+
 import numpy as np
 import constriction
 
@@ -76,6 +78,25 @@ def encode_frame(model, data: bytes, lanes: int, coder: str = "queue") -> tuple[
     return np.asarray(words, "<u4").tobytes(), nll
 
 
+# Decoders in use by a model's compiled decode loop, by key: [decoder, the exception it
+# raised]. The loop runs the model's step and asks step_symbols for the step's symbols
+# without leaving compiled code between steps (one object-mode call per step, where a
+# Python loop paid the dispatch of every model array, 5-15 us, per step).
+_LIVE: dict = {}
+_KEYS = itertools.count(1)
+
+
+def step_symbols(key: int, tab: np.ndarray, m: int) -> np.ndarray:
+    """The symbols of one step (m lanes, tables tab[:m]); an empty array when the coded
+    data cannot be decoded (the exception is kept for decode_frame to raise)."""
+    slot = _LIVE[key]
+    try:
+        return np.asarray(slot[0].decode(_FAMILY, tab[:m]), np.int32).reshape(m)
+    except Exception as e:  # noqa: BLE001 - raised again by decode_frame, outside compiled code
+        slot[1] = e
+        return np.empty(0, np.int32)
+
+
 def decode_frame(model, payload: bytes, n: int, lanes: int, coder: str = "queue") -> bytes:
     """Inverse of encode_frame. Raises ValueError when the payload cannot be decoded."""
     if len(payload) % 4:
@@ -96,8 +117,20 @@ def decode_frame(model, payload: bytes, n: int, lanes: int, coder: str = "queue"
     by_step = np.zeros((n_steps, len(lengths)), np.uint8)
     prev = np.zeros(len(lengths), np.int32)
     m_prev = 0
+    run = getattr(step, "run", None)  # the model's compiled loop over every step, if it has one
     try:
-        for t in range(n_steps):
+        if run is not None:
+            key = next(_KEYS)
+            _LIVE[key] = [dec, None]
+            try:
+                done = run(key, np.asarray(active, np.int64), by_step)
+            finally:
+                err = _LIVE.pop(key)[1]
+            if err is not None:
+                raise err
+            if done != n_steps:
+                raise ValueError("coded payload cannot be decoded")
+        for t in range(n_steps if run is None else 0):
             m = active[t]
             tab = np.ascontiguousarray(step(prev, m_prev, m), np.float64)
             prev = np.asarray(dec.decode(_FAMILY, tab), np.int32)

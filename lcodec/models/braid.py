@@ -31,8 +31,9 @@ from __future__ import annotations
 import threading
 
 import numpy as np
-from numba import njit
+from numba import njit, objmode
 
+from .. import coder as C
 from . import recall as R
 from . import strata as S
 from .kernel_cache import forget_if_changed
@@ -855,7 +856,7 @@ def _after_chain(match, rc, mix, fork, b, hist, p, buf, cur, use_match, use_sse,
 @njit(cache=True, nogil=True)
 def _teacher(corpus, state, match, data, starts, lengths, t0, t1, max_order, hash_log2, dfile, out_syms, out_tab, mix, fork, rc):
     """Tables of steps t0..t1 for all active lanes, in coding order, updating state."""
-    bases, hist, gen = state[2], state[3], state[4]
+    bases, hist, gen, rmap, nxt = state[2], state[3], state[4], state[5], state[6]
     slots = np.empty(max_order + 1, np.int64)
     checks = np.empty(max_order + 1, np.uint64)
     p = np.empty(256, np.int64)
@@ -872,6 +873,7 @@ def _teacher(corpus, state, match, data, starts, lengths, t0, t1, max_order, has
         mix[5][4] = t
         for b in range(m):
             _slots(mix, b, hist[b], max_order, hash_log2, bases, gen, slots, checks)
+            S._map_rows(rmap, nxt, gen, max_order, slots)
             _braid_predict(corpus, state, hist[b], slots, checks, max_order, dfile, p, mix, b)
             if use_fork:
                 _fork_keep(fork, p)
@@ -890,6 +892,7 @@ def _teacher(corpus, state, match, data, starts, lengths, t0, t1, max_order, has
         for b in range(m):
             sym = data[starts[b] + t]
             _slots(mix, b, hist[b], max_order, hash_log2, bases, gen, slots, checks)
+            S._map_rows(rmap, nxt, gen, max_order, slots)
             _file_update(state, slots, checks, max_order, sym, t if use_mix else -1)
             if use_match:
                 R.update(rc, b, data, starts[b], t, np.int64(sym), hist[b])
@@ -904,7 +907,7 @@ def _teacher(corpus, state, match, data, starts, lengths, t0, t1, max_order, has
 def _step(corpus, state, match, starts, syms, t_prev, m_prev, m, max_order, hash_log2, dfile, out_tab, work, mix, fork, rc):
     """Decoder step: count the symbols of step t_prev (m_prev lanes), then predict m lanes.
     `work` holds the scratch arrays, made once per frame (a step is too short to allocate)."""
-    bases, hist, gen = state[2], state[3], state[4]
+    bases, hist, gen, rmap, nxt = state[2], state[3], state[4], state[5], state[6]
     slots, checks, p = work
     buf = match[0]
     use_match = match[5][3] > 0 and corpus[5][0] == 0
@@ -924,6 +927,7 @@ def _step(corpus, state, match, starts, syms, t_prev, m_prev, m, max_order, hash
     for b in range(m_prev):
         sym = syms[b]
         _slots(mix, b, hist[b], max_order, hash_log2, bases, gen, slots, checks)
+        S._map_rows(rmap, nxt, gen, max_order, slots)
         _file_update(state, slots, checks, max_order, sym, t_prev if mix[5][1] != 0 else -1)
         if use_match:
             R.update(rc, b, buf, starts[b], t_prev, np.int64(sym), hist[b])
@@ -933,11 +937,33 @@ def _step(corpus, state, match, starts, syms, t_prev, m_prev, m, max_order, hash
     mix[5][4] = t_prev + 1
     for b in range(m):
         _slots(mix, b, hist[b], max_order, hash_log2, bases, gen, slots, checks)
+        S._map_rows(rmap, nxt, gen, max_order, slots)
         _braid_predict(corpus, state, hist[b], slots, checks, max_order, dfile, p, mix, b)
         if use_fork:
             _fork_keep(fork, p)
         _after_chain(match, rc, mix, fork, b, hist[b], p, buf, starts[b] + t_prev + 1, use_match, use_sse, use_fork)
         S._emit(p, out_tab[b])
+
+
+@njit(cache=True, nogil=True)
+def _decode_steps(corpus, state, match, starts, max_order, hash_log2, dfile, tab, work, mix, fork, rc, key, active,
+                  by_step):
+    """Every decoder step of a frame in one compiled loop (as strata's _decode_steps)."""
+    prev = np.zeros(by_step.shape[1], np.int32)
+    m_prev = 0
+    for t in range(active.shape[0]):
+        m = active[t]
+        _step(corpus, state, match, starts, prev, t - 1, m_prev, m, max_order, hash_log2, dfile, tab, work, mix, fork,
+              rc)
+        with objmode(got="int32[:]"):
+            got = C.step_symbols(key, tab, m)
+        if got.shape[0] != m:
+            return t
+        for b in range(m):
+            prev[b] = got[b]
+            by_step[t, b] = got[b]
+        m_prev = m
+    return active.shape[0]
 
 
 # -- the file's tables: one idle set per thread, reused across frames -----------------------
@@ -951,7 +977,8 @@ def _pool_take(n_rows: int):
         pool["busy"] = True
         pool["gen"] += 1
         return pool["arrays"], pool["gen"]
-    arrays = (np.zeros((n_rows, 512), np.uint8), np.zeros((n_rows, META), np.uint32), np.zeros(n_rows, np.uint64))
+    arrays = (np.zeros((n_rows, 512), np.uint8), np.zeros((n_rows, META), np.uint32), np.zeros(n_rows, np.uint64),
+              np.zeros(n_rows, np.uint64))
     if pool is None or not pool["busy"]:
         _local.pool = {"rows": n_rows, "arrays": arrays, "gen": 1, "busy": True}
     return arrays, 1  # zeroed tags hold generation 0, which never matches
@@ -1114,7 +1141,9 @@ class Braid:
         bases = np.zeros(len(rows), np.int64)
         bases[1:] = np.cumsum(rows)[:-1]
         arrays, gen = _pool_take(int(sum(rows)))
-        return (arrays[0], arrays[1], bases, np.zeros(n_lanes, np.uint64), np.uint64(gen)), arrays[2]
+        # rows are placed in the order a frame first meets them (strata's _map_rows)
+        return (arrays[0], arrays[1], bases, np.zeros(n_lanes, np.uint64), np.uint64(gen), arrays[3],
+                np.zeros(1, np.int64)), arrays[2]
 
     def lanes_for(self, n: int) -> int:
         """One lane per 64 KiB of frame, at most 16: lanes share the file's tables but each
@@ -1242,6 +1271,9 @@ class Braid:
             _step(corpus, state, match, starts, prev_syms, t[0], m_prev, m, mo, hl, disc, tab, work, mix, fork, rc)
             t[0] += 1
             return tab[:m]
+
+        step.run = lambda key, active, by_step: _decode_steps(corpus, state, match, starts, mo, hl, disc, tab, work,
+                                                              mix, fork, rc, key, active, by_step)
 
         step.close = lambda: _pool_give(state)
         return step

@@ -26,9 +26,18 @@ and taken over on update).
 from __future__ import annotations
 
 import threading
+import warnings
 
 import numpy as np
-from numba import njit
+from numba import njit, objmode
+from numba.core.errors import NumbaWarning
+
+from .. import coder as C
+
+# The decode loops below hand each step to the coder in object mode (the GIL is taken for
+# that call only; the model's work between calls runs without it).
+warnings.filterwarnings("ignore", message="Code running in object mode won't allow parallel execution",
+                        category=NumbaWarning)
 
 P_BITS = 20  # fixed-point total of the blended distribution
 F = 16  # discount is expressed in sixteenths of a count
@@ -62,6 +71,22 @@ def _row_slots(hist, max_order, hash_log2, bases, gen, slots, checks):
             x = x * _M2
             slots[k] = bases[k] + np.int64(x >> np.uint64(64 - hash_log2))
             checks[k] = g | ((x >> np.uint64(8)) & np.uint64(0xFFFFFFFF))
+
+
+@njit(cache=True, nogil=True)
+def _map_rows(rmap, nxt, gen, max_order, slots):
+    """Turn each order's row index (the hashed table's, which decides what collides) into
+    a place in the row arrays, handed out in the order rows are first met in this frame:
+    the rows a frame uses lie side by side, so a short frame touches a few pages of the
+    tables, not all of them. rmap holds gen << 32 | place; another generation means unmet."""
+    g = gen << np.uint64(32)
+    for k in range(max_order + 1):
+        e = rmap[slots[k]]
+        if (e >> np.uint64(32)) != gen:
+            e = g | np.uint64(nxt[0])
+            rmap[slots[k]] = e
+            nxt[0] += 1
+        slots[k] = np.int64(e & np.uint64(0xFFFFFFFF))
 
 
 @njit(cache=True, nogil=True)
@@ -244,7 +269,7 @@ def _match_update(match, b, start, t, sym, hist, gen):
 @njit(cache=True, nogil=True)
 def _teacher(state, match, data, starts, lengths, t0, t1, max_order, hash_log2, disc, out_syms, out_tab):
     """Tables of steps t0..t1 for all active lanes, in coding order, updating state."""
-    counts, tot, dist, tags, bases, hist, gen = state
+    counts, tot, dist, tags, bases, hist, gen, rmap, nxt = state
     slots = np.empty(max_order + 1, np.int64)
     checks = np.empty(max_order + 1, np.uint64)
     p = np.empty(256, np.int64)
@@ -257,6 +282,7 @@ def _teacher(state, match, data, starts, lengths, t0, t1, max_order, hash_log2, 
             m += 1
         for b in range(m):
             _row_slots(hist[b], max_order, hash_log2, bases, gen, slots, checks)
+            _map_rows(rmap, nxt, gen, max_order, slots)
             _predict(counts, tot, dist, tags, slots, checks, max_order, disc, p)
             if use_match:
                 _match_predict(match, b, p)
@@ -265,6 +291,7 @@ def _teacher(state, match, data, starts, lengths, t0, t1, max_order, hash_log2, 
         for b in range(m):
             sym = data[starts[b] + t]
             _row_slots(hist[b], max_order, hash_log2, bases, gen, slots, checks)
+            _map_rows(rmap, nxt, gen, max_order, slots)
             _update(counts, tot, dist, tags, slots, checks, max_order, sym)
             hist[b] = (hist[b] << np.uint64(8)) | np.uint64(sym)
             if use_match:
@@ -276,7 +303,7 @@ def _teacher(state, match, data, starts, lengths, t0, t1, max_order, hash_log2, 
 @njit(cache=True, nogil=True)
 def _step(state, match, starts, syms, t_prev, m_prev, m, max_order, hash_log2, disc, out_tab):
     """Decoder step: count the symbols of step t_prev (m_prev lanes), then predict m lanes."""
-    counts, tot, dist, tags, bases, hist, gen = state
+    counts, tot, dist, tags, bases, hist, gen, rmap, nxt = state
     slots = np.empty(max_order + 1, np.int64)
     checks = np.empty(max_order + 1, np.uint64)
     p = np.empty(256, np.int64)
@@ -287,12 +314,14 @@ def _step(state, match, starts, syms, t_prev, m_prev, m, max_order, hash_log2, d
     for b in range(m_prev):
         sym = syms[b]
         _row_slots(hist[b], max_order, hash_log2, bases, gen, slots, checks)
+        _map_rows(rmap, nxt, gen, max_order, slots)
         _update(counts, tot, dist, tags, slots, checks, max_order, sym)
         hist[b] = (hist[b] << np.uint64(8)) | np.uint64(sym)
         if use_match:
             _match_update(match, b, starts[b], t_prev, sym, hist[b], gen)
     for b in range(m):
         _row_slots(hist[b], max_order, hash_log2, bases, gen, slots, checks)
+        _map_rows(rmap, nxt, gen, max_order, slots)
         _predict(counts, tot, dist, tags, slots, checks, max_order, disc, p)
         if use_match:
             _match_predict(match, b, p)
@@ -317,7 +346,8 @@ def _pool_take(n_rows: int):
         pool["gen"] += 1
         return (*pool["arrays"], pool["gen"])
     arrays = (np.zeros((n_rows, 256), np.uint8), np.zeros(n_rows, np.int32),
-              np.zeros(n_rows, np.int32), np.zeros(n_rows, np.uint64), np.zeros(n_rows, np.uint64))
+              np.zeros(n_rows, np.int32), np.zeros(n_rows, np.uint64), np.zeros(n_rows, np.uint64),
+              np.zeros(n_rows, np.uint64))
     if pool is None or not pool["busy"]:  # keep the newest, largest set
         _local.pool = {"rows": n_rows, "arrays": arrays, "gen": 1, "busy": True}
     return (*arrays, 1)  # zeroed tags hold generation 0, which never matches
@@ -339,6 +369,27 @@ def run_chunks(lengths: np.ndarray, chunk_steps: int, run):
     for t0 in range(0, n_steps, chunk_steps):
         k = run(t0, min(n_steps, t0 + chunk_steps), syms, tab)
         yield syms[:k], tab[:k]
+
+
+@njit(cache=True, nogil=True)
+def _decode_steps(state, match, starts, max_order, hash_log2, disc, tab, key, active, by_step):
+    """Every decoder step of a frame in one compiled loop (coder.decode_frame's fast path):
+    the same _step calls as the Python loop, the symbols from coder.step_symbols. Returns
+    the steps done (fewer when the coded data could not be decoded)."""
+    prev = np.zeros(by_step.shape[1], np.int32)
+    m_prev = 0
+    for t in range(active.shape[0]):
+        m = active[t]
+        _step(state, match, starts, prev, t - 1, m_prev, m, max_order, hash_log2, disc, tab)
+        with objmode(got="int32[:]"):
+            got = C.step_symbols(key, tab, m)
+        if got.shape[0] != m:
+            return t
+        for b in range(m):
+            prev[b] = got[b]
+            by_step[t, b] = got[b]
+        m_prev = m
+    return active.shape[0]
 
 
 # Named parameter sets. A preset, once released, is frozen: archives name it instead of
@@ -430,8 +481,9 @@ class Strata:
         rows = [1, 256] + [hashed] * (self.max_order - 1)
         bases = np.zeros(len(rows), np.int64)
         bases[1:] = np.cumsum(rows)[:-1]
-        counts, tot, dist, tags, mtab, gen = _pool_take(int(sum(rows)))
-        return (counts, tot, dist, tags, bases, np.zeros(n_lanes, np.uint64), np.uint64(gen)), mtab
+        counts, tot, dist, tags, mtab, rmap, gen = _pool_take(int(sum(rows)))
+        return (counts, tot, dist, tags, bases, np.zeros(n_lanes, np.uint64), np.uint64(gen), rmap,
+                np.zeros(1, np.int64)), mtab
 
     def new_match(self, buf, mtab, lengths):
         """Match-model state: the frame's bytes (known ones), index, per-lane match, hit rates."""
@@ -474,5 +526,7 @@ class Strata:
             t[0] += 1
             return tab[:m]
 
+        step.run = lambda key, active, by_step: _decode_steps(state, match, starts, mo, hl, disc, tab, key, active,
+                                                              by_step)
         step.close = lambda: _pool_give(state)
         return step
