@@ -31,9 +31,8 @@ from __future__ import annotations
 import threading
 
 import numpy as np
-from numba import njit, objmode
+from numba import njit
 
-from .. import coder as C
 from . import recall as R
 from . import strata as S
 from .kernel_cache import forget_if_changed
@@ -950,19 +949,11 @@ def _decode_steps(corpus, state, match, starts, max_order, hash_log2, dfile, tab
                   by_step):
     """Every decoder step of a frame in one compiled loop (as strata's _decode_steps)."""
     prev = np.zeros(by_step.shape[1], np.int32)
-    m_prev = 0
     for t in range(active.shape[0]):
-        m = active[t]
-        _step(corpus, state, match, starts, prev, t - 1, m_prev, m, max_order, hash_log2, dfile, tab, work, mix, fork,
-              rc)
-        with objmode(got="int32[:]"):
-            got = C.step_symbols(key, tab, m)
-        if got.shape[0] != m:
+        _step(corpus, state, match, starts, prev, t - 1, active[t - 1] if t else 0, active[t], max_order, hash_log2,
+              dfile, tab, work, mix, fork, rc)
+        if not S._symbols_of_step(key, tab, active[t], prev, by_step, t):
             return t
-        for b in range(m):
-            prev[b] = got[b]
-            by_step[t, b] = got[b]
-        m_prev = m
     return active.shape[0]
 
 

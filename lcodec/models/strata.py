@@ -377,19 +377,25 @@ def _decode_steps(state, match, starts, max_order, hash_log2, disc, tab, key, ac
     the same _step calls as the Python loop, the symbols from coder.step_symbols. Returns
     the steps done (fewer when the coded data could not be decoded)."""
     prev = np.zeros(by_step.shape[1], np.int32)
-    m_prev = 0
     for t in range(active.shape[0]):
-        m = active[t]
-        _step(state, match, starts, prev, t - 1, m_prev, m, max_order, hash_log2, disc, tab)
-        with objmode(got="int32[:]"):
-            got = C.step_symbols(key, tab, m)
-        if got.shape[0] != m:
+        _step(state, match, starts, prev, t - 1, active[t - 1] if t else 0, active[t], max_order, hash_log2, disc, tab)
+        if not _symbols_of_step(key, tab, active[t], prev, by_step, t):
             return t
-        for b in range(m):
-            prev[b] = got[b]
-            by_step[t, b] = got[b]
-        m_prev = m
     return active.shape[0]
+
+
+@njit(cache=True, nogil=True)
+def _symbols_of_step(key, tab, m, prev, by_step, t):
+    """Ask the coder (object mode, coder.step_symbols) for step t's m symbols under the
+    tables tab[:m]; store them in prev and by_step[t]. False when they cannot be decoded."""
+    with objmode(got="int32[:]"):
+        got = C.step_symbols(key, tab, m)
+    if got.shape[0] != m:
+        return False
+    for b in range(m):
+        prev[b] = got[b]
+        by_step[t, b] = got[b]
+    return True
 
 
 # Named parameter sets. A preset, once released, is frozen: archives name it instead of
