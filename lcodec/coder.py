@@ -110,32 +110,32 @@ def decode_frame(model, payload: bytes, n: int, lanes: int, coder: str = "queue"
     else:
         raise ValueError(f"unknown coder {coder!r}")
     n_steps = int(lengths[0]) if n else 0
-    active = active_lanes(lengths, n_steps).tolist()
+    active = active_lanes(lengths, n_steps)
     step = model.stepper(lengths)
     # symbols by step and lane; lanes are laid out contiguously at the end (a step is a few
     # microseconds of model work, so the loop does as little else as it can)
     by_step = np.zeros((n_steps, len(lengths)), np.uint8)
-    prev = np.zeros(len(lengths), np.int32)
-    m_prev = 0
     run = getattr(step, "run", None)  # the model's compiled loop over every step, if it has one
     try:
         if run is not None:
             key = next(_KEYS)
             _LIVE[key] = [dec, None]
             try:
-                done = run(key, np.asarray(active, np.int64), by_step)
+                done = run(key, active.astype(np.int64), by_step)
             finally:
                 err = _LIVE.pop(key)[1]
             if err is not None:
                 raise err
             if done != n_steps:
                 raise ValueError("coded payload cannot be decoded")
-        for t in range(n_steps if run is None else 0):
-            m = active[t]
-            tab = np.ascontiguousarray(step(prev, m_prev, m), np.float64)
-            prev = np.asarray(dec.decode(_FAMILY, tab), np.int32)
-            by_step[t, :m] = prev
-            m_prev = m
+        else:
+            prev = np.zeros(len(lengths), np.int32)
+            m_prev = 0
+            for t, m in enumerate(active.tolist()):
+                tab = np.ascontiguousarray(step(prev, m_prev, m), np.float64)
+                prev = np.asarray(dec.decode(_FAMILY, tab), np.int32)
+                by_step[t, :m] = prev
+                m_prev = m
     finally:
         if hasattr(step, "close"):
             step.close()

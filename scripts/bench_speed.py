@@ -71,8 +71,7 @@ def test_bytes(kind: str, out: str, n: int) -> bytes:
 
 def time_model(model, data: bytes) -> dict:
     """One frame, one thread: encode and decode seconds (the kernels warmed first)."""
-    lanes = model.lanes_for(len(data)) if getattr(model, "lanes_for", None) else 1
-    lanes = lanes or 1
+    lanes = api.frame_lanes(model, len(data))  # as `lcodec pack` chooses them
     warm = data[:4096]
     coder.decode_frame(model, coder.encode_frame(model, warm, 1)[0], len(warm), 1)
     t0 = time.perf_counter()
