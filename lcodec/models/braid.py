@@ -153,7 +153,6 @@ AGE_BASE = BYTE_BASE + N_LAYER_IDS * 256
 MIX_CLASSES = AGE_BASE + N_LAYER_IDS * AGE_CLASSES  # four weights per layer use, summed
 LREC = 13  # per recorded layer: kind, slot, entry end, inv, A_own, e', class, order, class 2,
 # byte before, class 3, age class, class 4
-LAST = 6  # meta field of a file row: the lane step at which its context was last seen
 
 
 def _byte_class_table() -> np.ndarray:
@@ -264,11 +263,20 @@ def _sparse_layer_mix(ent, a, b, disc, p, A, mix, rec, lid):
     return A_below, True
 
 
-# The file's tables: row r is rows[r, :256] (the counts), rows[r, 256:] (the bytes seen,
-# in the order they came, meta[r, N1] of them) and meta[r] (tag, total, and how many
-# counts are >= 1, 2, 3): three cache lines for the usual row, not seven arrays.
+# The file's tables. Row r is one 64-byte line, meta[r] (uint32 fields: tag, total, how
+# many counts are >= 1, 2, 3, the step it was last seen, its big row) whose last 32 bytes
+# (m8[r, 32:64], the same memory as bytes) hold up to SMALL bytes seen, in the order they
+# came, and their counts: most rows of the higher orders see a few bytes, so a row costs
+# one cache line and a short frame touches few pages. The SMALL+1-th byte moves the row
+# to a big row, big[meta[r, BIG] - 1] (counts[256], then the bytes seen in order), handed
+# out in the order needed. Either way a row reads as the same counts and the same list,
+# so the tables do not depend on the layout.
 TAG_LO, TAG_HI, TOT, N1, N2, N3 = 0, 1, 2, 3, 4, 5
-META = 8  # uint32 fields per row (two spare): two rows per 64-byte line
+LAST = 6  # meta field of a file row: the lane step at which its context was last seen
+BIG = 7  # 1 + the big row holding this row's counts, or 0 while they fit the line
+META = 16  # uint32 fields per row: 64 bytes
+SMALL = 16  # bytes seen that a row holds in its own line
+SYM0, CNT0 = 32, 48  # byte offsets in the line of the bytes seen and their counts
 
 
 @njit(cache=True, nogil=True)
@@ -277,9 +285,40 @@ def _tag_is(meta, r, chk):
 
 
 @njit(cache=True, nogil=True)
+def _file_count(fs, r, s):
+    """Row r's count of byte s."""
+    big, meta, m8 = fs[0], fs[1], fs[7]
+    g = np.int64(meta[r, BIG])
+    if g:
+        return np.int64(big[g - 1, s])
+    for i in range(np.int64(meta[r, N1])):
+        if m8[r, SYM0 + i] == s:
+            return np.int64(m8[r, CNT0 + i])
+    return np.int64(0)
+
+
+@njit(cache=True, nogil=True)
+def _file_add(fs, r, p, A, inv, a1, a2, a3):
+    """p[s] += A * w(s) for each byte s row r has seen (w: its discounted share)."""
+    big, meta, m8 = fs[0], fs[1], fs[7]
+    n1 = np.int64(meta[r, N1])
+    g = np.int64(meta[r, BIG])
+    for i in range(n1):
+        if g:
+            s = big[g - 1, 256 + i]
+            c = np.int64(big[g - 1, s])
+        else:
+            s = m8[r, SYM0 + i]
+            c = np.int64(m8[r, CNT0 + i])
+        n = c * F - (a1 + a2 * (c >= 2) + a3 * (c >= 3))
+        w = (n * inv) >> (INV_BITS - 31)
+        p[s] += (A * w) >> (62 - P_BITS)
+
+
+@njit(cache=True, nogil=True)
 def _file_layer(fs, r, disc, p, A):
     """The same for the file's own row r: only the bytes it has seen (as a corpus row)."""
-    rows, meta = fs[0], fs[1]
+    meta = fs[1]
     a1 = np.int64(disc[0])
     a2 = np.int64(disc[1]) - a1
     a3 = np.int64(disc[2]) - np.int64(disc[1])
@@ -287,18 +326,13 @@ def _file_layer(fs, r, disc, p, A):
     esc = a1 * n1 + a2 * np.int64(meta[r, N2]) + a3 * np.int64(meta[r, N3])
     # bound: as _sparse_layer (a row holds at most 256 counts <= 255)
     inv = (np.int64(1) << INV_BITS) // (np.int64(meta[r, TOT]) * F)
-    for i in range(n1):
-        s = rows[r, 256 + i]
-        c = np.int64(rows[r, s])
-        n = c * F - (a1 + a2 * (c >= 2) + a3 * (c >= 3))
-        w = (n * inv) >> (INV_BITS - 31)
-        p[s] += (A * w) >> (62 - P_BITS)
+    _file_add(fs, r, p, A, inv, a1, a2, a3)
     return (A * ((esc * inv) >> (INV_BITS - 31))) >> 31
 
 
 @njit(cache=True, nogil=True)
 def _file_layer_mix(fs, r, disc, p, A, mix, rec, lid):
-    rows, meta = fs[0], fs[1]
+    meta = fs[1]
     a1 = np.int64(disc[0])
     a2 = np.int64(disc[1]) - a1
     a3 = np.int64(disc[2]) - np.int64(disc[1])
@@ -307,12 +341,7 @@ def _file_layer_mix(fs, r, disc, p, A, mix, rec, lid):
     t = np.int64(meta[r, TOT])
     inv = (np.int64(1) << INV_BITS) // (t * F)  # bounds as _sparse_layer
     A_own, A_below = _mix_escape(mix, rec, esc, t * F, inv, A, _mix_class(lid, n1, t))
-    for i in range(n1):
-        s = rows[r, 256 + i]
-        c = np.int64(rows[r, s])
-        n = c * F - (a1 + a2 * (c >= 2) + a3 * (c >= 3))
-        w = (n * inv) >> (INV_BITS - 31)
-        p[s] += (A_own * w) >> (62 - P_BITS)
+    _file_add(fs, r, p, A_own, inv, a1, a2, a3)
     return A_below
 
 
@@ -324,7 +353,6 @@ def _mix_update(mix, corpus, fs, dfile, b, x):
     were at the prediction (no count changes in between), so encoder and decoder agree."""
     W, lrec, lcnt, lu, mp = mix[0], mix[2], mix[3], mix[4], mix[5]
     ent, dcorp = corpus[1], corpus[4]
-    rows = fs[0]
     nlay = lcnt[b]
     if nlay == 0:
         return
@@ -334,7 +362,7 @@ def _mix_update(mix, corpus, fs, dfile, b, x):
         rec = lrec[b, l]
         k = rec[7]
         if rec[0] == 1:
-            c = np.int64(rows[rec[1], x])
+            c = _file_count(fs, rec[1], x)
             disc = dfile[k]
         else:
             c = np.int64(0)
@@ -714,44 +742,79 @@ def _slots(mix, b, hist, max_order, hash_log2, bases, gen, slots, checks):
 def _file_update(fs, slots, checks, max_order, sym, now=-1):
     """Count `sym` in the file's rows from the highest order down, stopping below the first
     order that knew it (strata's update exclusion, with its halving at 255). A row left by
-    an earlier frame (another generation in its tag) is cleared through its list first."""
-    rows, meta = fs[0], fs[1]
+    an earlier frame, or by another context of the same slot (another tag), starts empty;
+    a big row it held is not used again in this frame."""
+    big, meta, m8, nxt = fs[0], fs[1], fs[7], fs[6]
     for k in range(max_order, -1, -1):
         r = slots[k]
         chk = checks[k]
         if not _tag_is(meta, r, chk):
-            for i in range(meta[r, N1]):
-                rows[r, rows[r, 256 + i]] = 0
             meta[r, TOT] = 0
             meta[r, N1] = 0
             meta[r, N2] = 0
             meta[r, N3] = 0
+            meta[r, BIG] = 0
             meta[r, TAG_LO] = np.uint32(chk & np.uint64(0xFFFFFFFF))
             meta[r, TAG_HI] = np.uint32(chk >> np.uint64(32))
-        c = rows[r, sym]
+        n1 = np.int64(meta[r, N1])
+        g = np.int64(meta[r, BIG])
+        i = -1  # the byte's place in the line's list (small rows)
+        if g:
+            c = np.int64(big[g - 1, sym])
+        else:
+            c = np.int64(0)
+            for j in range(n1):
+                if m8[r, SYM0 + j] == sym:
+                    i = j
+                    c = np.int64(m8[r, CNT0 + j])
+                    break
         if c >= S.COUNT_LIMIT:
             t = 0
             m2 = 0
             m3 = 0
-            for i in range(meta[r, N1]):
-                x = rows[r, 256 + i]
-                v = rows[r, x]
+            for j in range(n1):
+                if g:
+                    v = np.int64(big[g - 1, big[g - 1, 256 + j]])
+                else:
+                    v = np.int64(m8[r, CNT0 + j])
                 if v > 1:
                     v = (v + 1) >> 1
-                rows[r, x] = v
+                if g:
+                    big[g - 1, big[g - 1, 256 + j]] = v
+                else:
+                    m8[r, CNT0 + j] = v
                 t += v
                 m2 += v >= 2
                 m3 += v >= 3
             meta[r, TOT] = t
             meta[r, N2] = m2
             meta[r, N3] = m3
-            c = rows[r, sym]
-        rows[r, sym] = c + 1
+            c = np.int64(big[g - 1, sym]) if g else np.int64(m8[r, CNT0 + i])
+        if c == 0 and not g and n1 == SMALL:  # the line is full: move the row to a big row
+            g = nxt[1] + 1
+            if g > big.shape[0]:  # cannot happen (new_state's bound); refuse rather than overrun
+                raise ValueError("braid: more big rows than a frame can need")
+            nxt[1] = g
+            for s in range(256):
+                big[g - 1, s] = 0
+            for j in range(SMALL):
+                x = m8[r, SYM0 + j]
+                big[g - 1, 256 + j] = x
+                big[g - 1, x] = m8[r, CNT0 + j]
+            meta[r, BIG] = np.uint32(g)
+        if g:
+            big[g - 1, sym] = c + 1
+            if c == 0:
+                big[g - 1, 256 + n1] = sym
+        elif c == 0:
+            m8[r, SYM0 + n1] = sym
+            m8[r, CNT0 + n1] = 1
+        else:
+            m8[r, CNT0 + i] = c + 1
         meta[r, TOT] += 1
         if now >= 0:
             meta[r, LAST] = np.uint32(now)
         if c == 0:
-            rows[r, 256 + meta[r, N1]] = sym
             meta[r, N1] += 1
         elif c == 1:
             meta[r, N2] += 1
@@ -961,23 +1024,29 @@ def _decode_steps(corpus, state, match, starts, max_order, hash_log2, dfile, tab
 _local = threading.local()
 
 
-def _pool_take(n_rows: int):
-    """Row arrays with at least n_rows rows and a generation not used before with them."""
+def _pool_take(n_rows: int, n_big: int):
+    """Row arrays with at least n_rows rows and n_big big rows, and a generation not used
+    before with them. Fresh arrays are zeroed by the system page by page, so a frame pays
+    only for the pages its rows touch."""
     pool = getattr(_local, "pool", None)
-    if pool is not None and not pool["busy"] and pool["rows"] >= n_rows and pool["gen"] < 0xFFFFFFFF:
+    if (pool is not None and not pool["busy"] and pool["rows"] >= n_rows and pool["big"] >= n_big
+            and pool["gen"] < 0xFFFFFFFF):
         pool["busy"] = True
         pool["gen"] += 1
         return pool["arrays"], pool["gen"]
-    arrays = (np.zeros((n_rows, 512), np.uint8), np.zeros((n_rows, META), np.uint32), np.zeros(n_rows, np.uint64),
-              np.zeros(n_rows, np.uint64))
+    raw = np.zeros(n_rows * 4 * META + 64, np.uint8)
+    off = -raw.ctypes.data % 64  # rows on cache-line boundaries
+    line = raw[off:off + n_rows * 4 * META]
+    arrays = (np.zeros((n_big, 512), np.uint8), line.view(np.uint32).reshape(n_rows, META), np.zeros(n_rows, np.uint64),
+              np.zeros(n_rows, np.uint64), line.reshape(n_rows, 4 * META))
     if pool is None or not pool["busy"]:
-        _local.pool = {"rows": n_rows, "arrays": arrays, "gen": 1, "busy": True}
+        _local.pool = {"rows": n_rows, "big": n_big, "arrays": arrays, "gen": 1, "busy": True}
     return arrays, 1  # zeroed tags hold generation 0, which never matches
 
 
 def _pool_give(state):
     pool = getattr(_local, "pool", None)
-    if pool is not None and pool["arrays"][0] is state[0]:
+    if pool is not None and pool["arrays"][1] is state[1]:
         pool["busy"] = False
 
 
@@ -1131,10 +1200,15 @@ class Braid:
         rows = [own, 256 * own] + [hashed] * (f.max_order - 1)
         bases = np.zeros(len(rows), np.int64)
         bases[1:] = np.cumsum(rows)[:-1]
-        arrays, gen = _pool_take(int(sum(rows)))
-        # rows are placed in the order a frame first meets them (strata's _map_rows)
+        # a big row is taken by the SMALL+1-th byte a row sees since it was last emptied, so
+        # a frame of n bytes, counting each byte in at most max_order + 1 rows, takes fewer
+        # than (max_order + 1) * n / (SMALL + 1) + 1 of them
+        n_big = (f.max_order + 1) * max(n, 1) // (SMALL + 1) + 1
+        arrays, gen = _pool_take(int(sum(rows)), n_big)
+        # rows are placed in the order a frame first meets them (strata's _map_rows);
+        # nxt: the next row to place, the big rows handed out
         return (arrays[0], arrays[1], bases, np.zeros(n_lanes, np.uint64), np.uint64(gen), arrays[3],
-                np.zeros(1, np.int64)), arrays[2]
+                np.zeros(2, np.int64), arrays[4]), arrays[2]
 
     def lanes_for(self, n: int) -> int:
         """One lane per 64 KiB of frame, at most 16: lanes share the file's tables but each
