@@ -16,6 +16,7 @@ from lcodec.braid_train import nll_bits
 from lcodec.errors import ModelError
 from lcodec.models import load_model
 from lcodec.models import strata as S
+from lcodec.models import braid as B
 from lcodec.models.braid import Braid
 from support import stdlib_file, step_tables, teacher_tables
 
@@ -679,3 +680,85 @@ def test_hostile_fork_parameters_are_refused(tiny_fork, tmp_path, damage):
     modelfile.dump(bad, {"name": "braid", "params": p}, arrays)
     with pytest.raises(ModelError, match="bad parameters"):
         load_model(bad)
+
+
+def _ref_file_update(rows, slots, checks, sym, now):
+    """Python-integer reference of the file's rows: a dict per row of its tag, counts, the
+    bytes seen in order and the step it was last seen (the recipe in _file_update)."""
+    for k in range(len(slots) - 1, -1, -1):
+        r = rows.setdefault(slots[k], {"tag": None})
+        if r["tag"] != checks[k]:
+            r.update(tag=checks[k], cnt={}, seen=[], last=0)
+        c = r["cnt"].get(sym, 0)
+        if c >= S.COUNT_LIMIT:
+            r["cnt"] = {s: ((v + 1) >> 1 if v > 1 else v) for s, v in r["cnt"].items()}
+            c = r["cnt"][sym]
+        r["cnt"][sym] = c + 1
+        r["last"] = now
+        if c == 0:
+            r["seen"].append(sym)
+        else:
+            for k2 in range(k - 1, -1, -1):
+                below = rows.get(slots[k2])
+                if below is not None and below["tag"] == checks[k2]:
+                    below["last"] = now
+            break
+
+
+def _ref_file_layer(r, disc, A):
+    """p and the A left below for one file row, in Python integers (the _file_layer recipe)."""
+    a1, a2, a3 = disc[0], disc[1] - disc[0], disc[2] - disc[1]
+    cnt = r["cnt"]
+    esc = sum(a1 + a2 * (c >= 2) + a3 * (c >= 3) for c in cnt.values())
+    inv = (1 << B.INV_BITS) // (sum(cnt.values()) * S.F)
+    p = [0] * 256
+    for s, c in cnt.items():
+        w = ((c * S.F - (a1 + a2 * (c >= 2) + a3 * (c >= 3))) * inv) >> (B.INV_BITS - 31)
+        p[s] += (A * w) >> (62 - S.P_BITS)
+    return p, (A * ((esc * inv) >> (B.INV_BITS - 31))) >> 31
+
+
+@pytest.mark.parametrize("seed", [0, 1, 2])
+def test_file_rows_match_python_integers(seed):
+    # The file's rows keep up to SMALL bytes in their own line, then move to a big row:
+    # counts, totals, the step last seen and every layer's share must be those of the plain
+    # recipe, through line-to-big-row moves, halvings at 255 (in either form) and rows
+    # taken over by another context of the same slot.
+    rng = np.random.default_rng(seed)
+    n_rows, max_order, steps = 5, 2, 4000
+    arrays, gen = B._pool_take(n_rows, (max_order + 1) * steps // (B.SMALL + 1) + 1)
+    fs = (arrays[0], arrays[1], None, None, np.uint64(gen), None, np.zeros(2, np.int64), arrays[4])
+    try:
+        rows, halved = {}, [False]
+        disc = np.array([10, 14, 20], np.int64)
+        for t in range(steps):
+            u = t % 2000  # many bytes (moves to big rows), one byte (halvings), a few
+            phase = 0 if u < 400 else (1 if u < 1800 else 2)
+            sym = int(rng.integers(0, 256) if phase == 0 else (7 if phase == 1 else rng.integers(60, 70)))
+            slots = np.array(rng.choice(n_rows, max_order + 1, replace=False), np.int64)
+            # each slot's own context, and now and then another one taking it over
+            checks = np.array([(gen << 32) | (2 * int(r) + 1 + int(rng.random() < 0.002)) for r in slots], np.uint64)
+            top = rows.get(int(slots[-1]))
+            halved[0] |= bool(top and top["tag"] == checks[-1] and top["cnt"].get(sym, 0) >= S.COUNT_LIMIT)
+            B._file_update(fs, slots, checks, max_order, sym, t)
+            _ref_file_update(rows, slots.tolist(), checks.tolist(), sym, t)
+            if t % 37 and t < steps - 1:
+                continue
+            meta = arrays[1]
+            for r, ref in rows.items():
+                chk = int(meta[r, B.TAG_LO]) | (int(meta[r, B.TAG_HI]) << 32)
+                assert chk == ref["tag"]
+                got = [int(B._file_count(fs, r, s)) for s in range(256)]
+                assert got == [ref["cnt"].get(s, 0) for s in range(256)], (t, r)
+                c = list(ref["cnt"].values())
+                assert [int(meta[r, f]) for f in (B.TOT, B.N1, B.N2, B.N3, B.LAST)] == \
+                       [sum(c), len(c), sum(v >= 2 for v in c), sum(v >= 3 for v in c), ref["last"]]
+                A = int(rng.integers(1, 1 << 31))
+                p = np.zeros(256, np.int64)
+                below = B._file_layer(fs, r, disc, p, np.int64(A))
+                ref_p, ref_below = _ref_file_layer(ref, disc.tolist(), A)
+                assert p.tolist() == ref_p and int(below) == ref_below
+        assert fs[6][1] > 3  # rows did move to big rows
+        assert halved[0]
+    finally:
+        B._pool_give(fs)
