@@ -338,3 +338,22 @@ def test_damaged_model_file_is_refused(tmp_path, model_file, text_file):
         no_traceback(r)
         assert err_of(r).strip()
     assert not (tmp_path / "x.py").exists() and not (tmp_path / "y.lcodec").exists()
+
+
+def test_pack_in_a_fresh_process_leaves_scipy_importable(tmp_path, text_file):
+    # pack, unpack and verify hide scipy from numba's one BLAS look-up (a start-up cost);
+    # afterwards scipy must import as usual, and the round trip must be exact
+    code = (
+        "import sys\n"
+        "from click.testing import CliRunner\n"
+        "from lcodec.cli import main\n"
+        f"r = CliRunner().invoke(main, ['pack', '-q', {str(text_file)!r}, '-o', {str(tmp_path / 'a.lcodec')!r}])\n"
+        "assert r.exit_code == 0, r.output\n"
+        f"r = CliRunner().invoke(main, ['unpack', '-q', {str(tmp_path / 'a.lcodec')!r}, '-o', {str(tmp_path / 'back')!r}])\n"
+        "assert r.exit_code == 0, r.output\n"
+        "assert 'scipy' not in sys.modules or sys.modules['scipy'] is not None\n"
+        "import scipy.linalg\n"
+        "print('ok')\n")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=300)
+    assert out.returncode == 0 and out.stdout.strip() == "ok", out.stderr
+    assert (tmp_path / "back").read_bytes() == text_file.read_bytes()
