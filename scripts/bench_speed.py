@@ -20,7 +20,8 @@ Rows:
   * small input: `lcodec pack` and `lcodec unpack` of a 40 KB text file with the built-in
     model, as commands. Wall time and peak RSS are set against
     `python -c "import numpy, numba"`;
-  * `--jobs 2` against `--jobs 1`: strata on 4 frames of 1 MiB, and braid on 2 frames.
+  * `--jobs 2` against `--jobs 1`: strata on 4 frames of 1 MiB, and braid on 2 frames
+    (with the peak RSS of braid's one-process pack: memory per frame, not per input).
 
 Targets (the speed issue):
   * braid decode >= 600 KB/s and encode >= 800 KB/s per core;
@@ -138,7 +139,7 @@ def jobs_scaling(data: bytes, model_path: str | None, tmp: str) -> dict:
         args = [PY, "-m", "lcodec", "pack", src, "-o", src + ".lcodec", "--force", "-q", "--jobs", str(jobs)]
         if model_path:
             args += ["-m", model_path]
-        out[f"jobs{jobs}_s"] = command(args)[0]
+        out[f"jobs{jobs}_s"], out[f"jobs{jobs}_peak_rss_mb"] = command(args)
     out["speedup"] = out["jobs1_s"] / out["jobs2_s"]
     return out
 
@@ -199,7 +200,8 @@ def main() -> int:
             if kind0:
                 jb = res["jobs_braid"] = jobs_scaling(big[:2 << 20], os.path.join(a.models, f"{kind0}-braid.lcmodel"), tmp)
                 print(f"--jobs 2, braid, 2 x 1 MiB frames: {jb['jobs1_s']:.1f} s -> {jb['jobs2_s']:.1f} s "
-                      f"({jb['speedup']:.2f}x)", flush=True)
+                      f"({jb['speedup']:.2f}x); peak RSS of the --jobs 1 pack {jb['jobs1_peak_rss_mb']:.0f} MB",
+                      flush=True)
     targets = {}
     for kind, row in res["kinds"].items():
         b = row["braid"]
