@@ -89,20 +89,56 @@ def _map_rows(rmap, nxt, gen, max_order, slots):
         slots[k] = np.int64(e & np.uint64(0xFFFFFFFF))
 
 
+# The file's rows. Row r is one 64-byte line, meta[r] (uint32 fields: tag, total, distinct
+# bytes, big row), whose last 32 bytes (m8[r, 32:64], the same memory as bytes) hold up to
+# SMALL bytes seen and their counts; the SMALL+1-th distinct byte moves the counts to a big
+# row, big[meta[r, BIG] - 1] (256 counts), handed out in the order needed. Most rows of the
+# higher orders see a few bytes, so a row costs one cache line and a short frame touches
+# few pages; the tables are the same as with 256 counts per row.
+TAG_LO, TAG_HI, TOT, DIST, BIG = 0, 1, 2, 3, 4
+META = 16  # uint32 fields per row: 64 bytes
+SMALL = 16  # distinct bytes a row holds in its own line
+SYM0, CNT0 = 32, 48  # byte offsets in the line of the bytes seen and their counts
+
+
 @njit(cache=True, nogil=True)
-def _predict(counts, tot, dist, tags, slots, checks, max_order, disc, p):
+def _tag_is(meta, r, chk):
+    return meta[r, TAG_LO] == np.uint32(chk & np.uint64(0xFFFFFFFF)) and meta[r, TAG_HI] == np.uint32(chk >> np.uint64(32))
+
+
+def big_rows_for(n_bytes: int, max_order: int) -> int:
+    """Big rows one frame can need: a row takes one with the SMALL+1-th distinct byte it
+    counts since it was last emptied, and each byte is counted in at most max_order + 1
+    rows, so fewer than (max_order + 1) * n / (SMALL + 1) + 1 are taken."""
+    return (max_order + 1) * max(n_bytes, 1) // (SMALL + 1) + 1
+
+
+def row_arrays(n_rows: int, n_big: int):
+    """Zeroed row lines (uint32 fields and the same memory as bytes, each row on a cache
+    line of its own) and big rows. Fresh arrays are zeroed by the system page by page, so
+    a frame pays only for the pages its rows touch."""
+    raw = np.zeros(n_rows * 4 * META + 64, np.uint8)
+    off = -raw.ctypes.data % 64
+    line = raw[off:off + n_rows * 4 * META]
+    return line.view(np.uint32).reshape(n_rows, META), line.reshape(n_rows, 4 * META), np.zeros((n_big, 256), np.uint8)
+
+
+@njit(cache=True, nogil=True)
+def _predict(rows, slots, checks, max_order, disc, p, keep):
     """Blend orders 0..max_order into p (integers, total about 2**P_BITS).
 
     disc[k] holds order k's discounts (in 1/F of a count) for counts 1, 2 and >= 3.
+    keep: scratch for a short row's bytes (their n and p before the order is applied).
     """
+    meta, m8, big = rows
     one = np.int64(1) << P_BITS
     for s in range(256):
         p[s] = one >> 8
     for k in range(max_order + 1):
         r = slots[k]
-        if tags[r] != checks[k]:
+        if not _tag_is(meta, r, checks[k]):
             continue
-        t = np.int64(tot[r])
+        t = np.int64(meta[r, TOT])
         if t == 0:
             continue
         # discount of a count c, without branches (so the loops vectorise):
@@ -110,48 +146,104 @@ def _predict(counts, tot, dist, tags, slots, checks, max_order, disc, p):
         a1 = np.int64(disc[k, 0])
         a2 = np.int64(disc[k, 1]) - a1
         a3 = np.int64(disc[k, 2]) - np.int64(disc[k, 1])
-        row = counts[r]
-        esc = np.int64(0)
-        for s in range(256):
-            c = np.int64(row[s])
-            esc += a1 * (c >= 1) + a2 * (c >= 2) + a3 * (c >= 3)
         # bound: n*F <= 4080, esc <= 47*256 < 2**14, p[s] <= 2**20, so num < 2**35;
         # inv <= 2**32 / 16, so num * inv < 2**63 fits int64.
         inv = (np.int64(1) << 32) // (t * F)
-        for s in range(256):
-            c = np.int64(row[s])
-            n = c * F - (a1 * (c >= 1) + a2 * (c >= 2) + a3 * (c >= 3))
-            num = n * one + esc * p[s]
-            p[s] = (num * inv) >> 32
+        g = np.int64(meta[r, BIG])
+        if g:
+            row = big[g - 1]
+            esc = np.int64(0)
+            for s in range(256):
+                c = np.int64(row[s])
+                esc += a1 * (c >= 1) + a2 * (c >= 2) + a3 * (c >= 3)
+            for s in range(256):
+                c = np.int64(row[s])
+                n = c * F - (a1 * (c >= 1) + a2 * (c >= 2) + a3 * (c >= 3))
+                num = n * one + esc * p[s]
+                p[s] = (num * inv) >> 32
+        else:
+            # a byte not seen has n = 0: p[s] <- esc * p[s] * inv >> 32 for all 256, then
+            # the few seen bytes from their p before (the same numbers as the dense row)
+            nd = np.int64(meta[r, DIST])
+            esc = np.int64(0)
+            for i in range(nd):
+                s = m8[r, SYM0 + i]
+                c = np.int64(m8[r, CNT0 + i])
+                d = a1 + a2 * (c >= 2) + a3 * (c >= 3)
+                esc += d
+                keep[i, 0] = s
+                keep[i, 1] = c * F - d
+                keep[i, 2] = p[s]
+            for s in range(256):
+                p[s] = (esc * p[s] * inv) >> 32
+            for i in range(nd):
+                p[keep[i, 0]] = ((keep[i, 1] * one + esc * keep[i, 2]) * inv) >> 32
 
 
 @njit(cache=True, nogil=True)
-def _update(counts, tot, dist, tags, slots, checks, max_order, sym):
-    """Count `sym` from the highest order down, stopping below the first order that knew it."""
+def _update(rows, slots, checks, max_order, sym, nxt):
+    """Count `sym` from the highest order down, stopping below the first order that knew it.
+    A row left by an earlier frame or another context (another tag) starts empty; a big
+    row it held is not used again in this frame (nxt[1]: big rows handed out)."""
+    meta, m8, big = rows
     for k in range(max_order, -1, -1):
         r = slots[k]
-        row = counts[r]
-        if tags[r] != checks[k]:
-            row[:] = 0
-            tags[r] = checks[k]
-            tot[r] = 0
-            dist[r] = 0
-        c = row[sym]
-        if c >= COUNT_LIMIT:
+        chk = checks[k]
+        if not _tag_is(meta, r, chk):
+            meta[r, TOT] = 0
+            meta[r, DIST] = 0
+            meta[r, BIG] = 0
+            meta[r, TAG_LO] = np.uint32(chk & np.uint64(0xFFFFFFFF))
+            meta[r, TAG_HI] = np.uint32(chk >> np.uint64(32))
+        nd = np.int64(meta[r, DIST])
+        g = np.int64(meta[r, BIG])
+        i = -1
+        if g:
+            c = np.int64(big[g - 1, sym])
+        else:
+            c = np.int64(0)
+            for j in range(nd):
+                if m8[r, SYM0 + j] == sym:
+                    i = j
+                    c = np.int64(m8[r, CNT0 + j])
+                    break
+        if c >= COUNT_LIMIT:  # halve: every count > 1 to (c + 1) >> 1; none reaches 0
             t = 0
-            dd = 0
+            if g:
+                row = big[g - 1]
+                for s in range(256):
+                    v = (row[s] + 1) >> 1 if row[s] > 1 else row[s]
+                    row[s] = v
+                    t += v
+                c = np.int64(row[sym])
+            else:
+                for j in range(nd):
+                    v = m8[r, CNT0 + j]
+                    v = (v + 1) >> 1 if v > 1 else v
+                    m8[r, CNT0 + j] = v
+                    t += v
+                c = np.int64(m8[r, CNT0 + i])
+            meta[r, TOT] = t
+        if c == 0 and not g and nd == SMALL:  # the line is full: move the counts to a big row
+            g = nxt[1] + 1
+            if g > big.shape[0]:  # cannot happen (big_rows_for's bound); refuse rather than overrun
+                raise ValueError("strata: more big rows than a frame can need")
+            nxt[1] = g
             for s in range(256):
-                v = (row[s] + 1) >> 1 if row[s] > 1 else row[s]
-                row[s] = v
-                t += v
-                dd += 1 if v > 0 else 0
-            tot[r] = t
-            dist[r] = dd
-            c = row[sym]
-        row[sym] = c + 1
-        tot[r] += 1
+                big[g - 1, s] = 0
+            for j in range(SMALL):
+                big[g - 1, m8[r, SYM0 + j]] = m8[r, CNT0 + j]
+            meta[r, BIG] = np.uint32(g)
+        if g:
+            big[g - 1, sym] = c + 1
+        elif c == 0:
+            m8[r, SYM0 + nd] = sym
+            m8[r, CNT0 + nd] = 1
+        else:
+            m8[r, CNT0 + i] = c + 1
+        meta[r, TOT] += 1
         if c == 0:
-            dist[r] += 1
+            meta[r, DIST] += 1
         else:
             break
 
@@ -269,10 +361,11 @@ def _match_update(match, b, start, t, sym, hist, gen):
 @njit(cache=True, nogil=True)
 def _teacher(state, match, data, starts, lengths, t0, t1, max_order, hash_log2, disc, out_syms, out_tab):
     """Tables of steps t0..t1 for all active lanes, in coding order, updating state."""
-    counts, tot, dist, tags, bases, hist, gen, rmap, nxt = state
+    rows, bases, hist, gen, rmap, nxt = state
     slots = np.empty(max_order + 1, np.int64)
     checks = np.empty(max_order + 1, np.uint64)
     p = np.empty(256, np.int64)
+    keep = np.empty((SMALL, 3), np.int64)
     nl = lengths.shape[0]
     use_match = match[5][3] > 0
     i = 0
@@ -283,7 +376,7 @@ def _teacher(state, match, data, starts, lengths, t0, t1, max_order, hash_log2, 
         for b in range(m):
             _row_slots(hist[b], max_order, hash_log2, bases, gen, slots, checks)
             _map_rows(rmap, nxt, gen, max_order, slots)
-            _predict(counts, tot, dist, tags, slots, checks, max_order, disc, p)
+            _predict(rows, slots, checks, max_order, disc, p, keep)
             if use_match:
                 _match_predict(match, b, p)
             _emit(p, out_tab[i + b])
@@ -292,7 +385,7 @@ def _teacher(state, match, data, starts, lengths, t0, t1, max_order, hash_log2, 
             sym = data[starts[b] + t]
             _row_slots(hist[b], max_order, hash_log2, bases, gen, slots, checks)
             _map_rows(rmap, nxt, gen, max_order, slots)
-            _update(counts, tot, dist, tags, slots, checks, max_order, sym)
+            _update(rows, slots, checks, max_order, sym, nxt)
             hist[b] = (hist[b] << np.uint64(8)) | np.uint64(sym)
             if use_match:
                 _match_update(match, b, starts[b], t, sym, hist[b], gen)
@@ -303,10 +396,11 @@ def _teacher(state, match, data, starts, lengths, t0, t1, max_order, hash_log2, 
 @njit(cache=True, nogil=True)
 def _step(state, match, starts, syms, t_prev, m_prev, m, max_order, hash_log2, disc, out_tab):
     """Decoder step: count the symbols of step t_prev (m_prev lanes), then predict m lanes."""
-    counts, tot, dist, tags, bases, hist, gen, rmap, nxt = state
+    rows, bases, hist, gen, rmap, nxt = state
     slots = np.empty(max_order + 1, np.int64)
     checks = np.empty(max_order + 1, np.uint64)
     p = np.empty(256, np.int64)
+    keep = np.empty((SMALL, 3), np.int64)
     buf = match[0]
     use_match = match[5][3] > 0
     for b in range(m_prev):
@@ -315,14 +409,14 @@ def _step(state, match, starts, syms, t_prev, m_prev, m, max_order, hash_log2, d
         sym = syms[b]
         _row_slots(hist[b], max_order, hash_log2, bases, gen, slots, checks)
         _map_rows(rmap, nxt, gen, max_order, slots)
-        _update(counts, tot, dist, tags, slots, checks, max_order, sym)
+        _update(rows, slots, checks, max_order, sym, nxt)
         hist[b] = (hist[b] << np.uint64(8)) | np.uint64(sym)
         if use_match:
             _match_update(match, b, starts[b], t_prev, sym, hist[b], gen)
     for b in range(m):
         _row_slots(hist[b], max_order, hash_log2, bases, gen, slots, checks)
         _map_rows(rmap, nxt, gen, max_order, slots)
-        _predict(counts, tot, dist, tags, slots, checks, max_order, disc, p)
+        _predict(rows, slots, checks, max_order, disc, p, keep)
         if use_match:
             _match_predict(match, b, p)
         _emit(p, out_tab[b])
@@ -337,19 +431,19 @@ def _emit(p, out):
 _local = threading.local()
 
 
-def _pool_take(n_rows: int):
-    """Row arrays with at least n_rows rows, and a generation number not used before with
-    them. One idle set is kept per thread; a frame opened while it is busy gets new arrays."""
+def _pool_take(n_rows: int, n_big: int):
+    """Row arrays with at least n_rows rows and n_big big rows, and a generation number not
+    used before with them. One idle set is kept per thread; a frame opened while it is busy
+    gets new arrays."""
     pool = getattr(_local, "pool", None)
-    if pool is not None and not pool["busy"] and pool["rows"] >= n_rows and pool["gen"] < 0xFFFFFFFF:
+    if (pool is not None and not pool["busy"] and pool["rows"] >= n_rows and pool["big"] >= n_big
+            and pool["gen"] < 0xFFFFFFFF):
         pool["busy"] = True
         pool["gen"] += 1
         return (*pool["arrays"], pool["gen"])
-    arrays = (np.zeros((n_rows, 256), np.uint8), np.zeros(n_rows, np.int32),
-              np.zeros(n_rows, np.int32), np.zeros(n_rows, np.uint64), np.zeros(n_rows, np.uint64),
-              np.zeros(n_rows, np.uint64))
+    arrays = (row_arrays(n_rows, n_big), np.zeros(n_rows, np.uint64), np.zeros(n_rows, np.uint64))
     if pool is None or not pool["busy"]:  # keep the newest, largest set
-        _local.pool = {"rows": n_rows, "arrays": arrays, "gen": 1, "busy": True}
+        _local.pool = {"rows": n_rows, "big": n_big, "arrays": arrays, "gen": 1, "busy": True}
     return (*arrays, 1)  # zeroed tags hold generation 0, which never matches
 
 
@@ -487,9 +581,10 @@ class Strata:
         rows = [1, 256] + [hashed] * (self.max_order - 1)
         bases = np.zeros(len(rows), np.int64)
         bases[1:] = np.cumsum(rows)[:-1]
-        counts, tot, dist, tags, mtab, rmap, gen = _pool_take(int(sum(rows)))
-        return (counts, tot, dist, tags, bases, np.zeros(n_lanes, np.uint64), np.uint64(gen), rmap,
-                np.zeros(1, np.int64)), mtab
+        lines, mtab, rmap, gen = _pool_take(int(sum(rows)), big_rows_for(n_bytes, self.max_order))
+        # rows are placed in the order the frame first meets them (_map_rows); nxt: the next
+        # row to place, the big rows handed out
+        return (lines, bases, np.zeros(n_lanes, np.uint64), np.uint64(gen), rmap, np.zeros(2, np.int64)), mtab
 
     def new_match(self, buf, mtab, lengths):
         """Match-model state: the frame's bytes (known ones), index, per-lane match, hit rates."""

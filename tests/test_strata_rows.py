@@ -1,0 +1,68 @@
+"""strata's rows (a 64-byte line for a few bytes seen, a big row past SMALL) against a
+Python-integer reference of the plain recipe: 256 counts per row, halved at 255, and the
+blend of orders from the uniform distribution up."""
+import numpy as np
+import pytest
+
+from lcodec.models import strata as S
+
+
+def _ref_update(rows, slots, checks, sym):
+    for k in range(len(slots) - 1, -1, -1):
+        r = rows.setdefault(slots[k], {"tag": None})
+        if r["tag"] != checks[k]:
+            r.update(tag=checks[k], cnt=[0] * 256)
+        cnt = r["cnt"]
+        if cnt[sym] >= S.COUNT_LIMIT:
+            r["cnt"] = cnt = [(v + 1) >> 1 if v > 1 else v for v in cnt]
+        c = cnt[sym]
+        cnt[sym] = c + 1
+        if c:
+            break
+
+
+def _ref_predict(rows, slots, checks, disc):
+    one = 1 << S.P_BITS
+    p = [one >> 8] * 256
+    for k in range(len(slots)):
+        r = rows.get(slots[k])
+        if r is None or r["tag"] != checks[k] or sum(r["cnt"]) == 0:
+            continue
+        a1, a2, a3 = disc[k][0], disc[k][1] - disc[k][0], disc[k][2] - disc[k][1]
+        d = [a1 * (c >= 1) + a2 * (c >= 2) + a3 * (c >= 3) for c in r["cnt"]]
+        esc = sum(d)
+        inv = (1 << 32) // (sum(r["cnt"]) * S.F)
+        p = [(((c * S.F - d[s]) * one + esc * p[s]) * inv) >> 32 for s, c in enumerate(r["cnt"])]
+    return p
+
+
+@pytest.mark.parametrize("seed", [0, 1, 2])
+def test_rows_and_blend_match_python_integers(seed):
+    rng = np.random.default_rng(seed)
+    n_rows, max_order, steps = 5, 2, 4000
+    lines, _, _, gen = S._pool_take(n_rows, S.big_rows_for(steps, max_order))
+    nxt = np.zeros(2, np.int64)
+    disc = np.array([[10, 14, 20], [12, 17, 23], [13, 18, 24]], np.int64)
+    p = np.zeros(256, np.int64)
+    keep = np.empty((S.SMALL, 3), np.int64)
+    rows, halved = {}, False
+    try:
+        for t in range(steps):
+            u = t % 2000  # many bytes (rows move to big rows), one byte (halvings), a few
+            sym = int(rng.integers(0, 256) if u < 400 else (7 if u < 1800 else rng.integers(60, 70)))
+            slots = np.array(rng.choice(n_rows, max_order + 1, replace=False), np.int64)
+            # each slot's own context, and now and then another one taking it over
+            checks = np.array([(gen << 32) | (2 * int(r) + 1 + int(rng.random() < 0.002)) for r in slots], np.uint64)
+            top = rows.get(int(slots[-1]))
+            halved |= bool(top and top["tag"] == checks[-1] and top["cnt"][sym] >= S.COUNT_LIMIT)
+            S._update(lines, slots, checks, max_order, sym, nxt)
+            _ref_update(rows, slots.tolist(), checks.tolist(), sym)
+            if t % 23 == 0 or t == steps - 1:
+                S._predict(lines, slots, checks, max_order, disc, p, keep)
+                assert p.tolist() == _ref_predict(rows, slots.tolist(), checks.tolist(), disc.tolist()), t
+                meta = lines[0]
+                for r, ref in rows.items():
+                    assert [int(meta[r, f]) for f in (S.TOT, S.DIST)] == [sum(ref["cnt"]), sum(c > 0 for c in ref["cnt"])]
+        assert nxt[1] > 3 and halved  # rows moved to big rows, and counts were halved
+    finally:
+        S._pool_give((lines,))
