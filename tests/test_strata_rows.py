@@ -39,26 +39,31 @@ def _ref_predict(rows, slots, checks, disc):
 @pytest.mark.parametrize("seed", [0, 1, 2])
 def test_rows_and_blend_match_python_integers(seed):
     rng = np.random.default_rng(seed)
-    n_rows, max_order, steps = 5, 2, 4000
+    n_rows, max_order, steps = 6, 2, 5000
     lines, _, _, gen = S._pool_take(n_rows, S.big_rows_for(steps, max_order))
     nxt = np.zeros(2, np.int64)
     disc = np.array([[10, 14, 20], [12, 17, 23], [13, 18, 24]], np.int64)
     p = np.zeros(256, np.int64)
     keep = np.empty((S.SMALL, 3), np.int64)
+    seen, vals = np.zeros((3, 256), np.int64), np.empty(256, np.int64)
     rows, halved = {}, False
     try:
         for t in range(steps):
-            u = t % 2000  # many bytes (rows move to big rows), one byte (halvings), a few
-            sym = int(rng.integers(0, 256) if u < 400 else (7 if u < 1800 else rng.integers(60, 70)))
-            slots = np.array(rng.choice(n_rows, max_order + 1, replace=False), np.int64)
+            # one byte (halvings in short rows), many bytes (rows move to big rows), one byte
+            # again (halvings in big rows), a few bytes
+            u = t % 2500
+            sym = int(7 if u < 700 or 1000 <= u < 2200 else (rng.integers(0, 256) if u < 1000 else rng.integers(60, 70)))
+            # order 0: one row of its own (as in the model); above: rows shared at random,
             # each slot's own context, and now and then another one taking it over
-            checks = np.array([(gen << 32) | (2 * int(r) + 1 + int(rng.random() < 0.002)) for r in slots], np.uint64)
+            slots = np.array([0, *rng.choice(np.arange(1, n_rows), max_order, replace=False)], np.int64)
+            checks = np.array([(gen << 32) | (2 * int(r) + 1 + int(r > 0 and rng.random() < 0.002)) for r in slots],
+                              np.uint64)
             top = rows.get(int(slots[-1]))
             halved |= bool(top and top["tag"] == checks[-1] and top["cnt"][sym] >= S.COUNT_LIMIT)
-            S._update(lines, slots, checks, max_order, sym, nxt)
+            S._update(lines, slots, checks, max_order, sym, nxt, seen)
             _ref_update(rows, slots.tolist(), checks.tolist(), sym)
             if t % 23 == 0 or t == steps - 1:
-                S._predict(lines, slots, checks, max_order, disc, p, keep)
+                S._predict(lines, slots, checks, max_order, disc, p, keep, seen, vals)
                 assert p.tolist() == _ref_predict(rows, slots.tolist(), checks.tolist(), disc.tolist()), t
                 meta = lines[0]
                 for r, ref in rows.items():

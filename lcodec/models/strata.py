@@ -124,16 +124,24 @@ def row_arrays(n_rows: int, n_big: int):
 
 
 @njit(cache=True, nogil=True)
-def _predict(rows, slots, checks, max_order, disc, p, keep):
+def _predict(rows, slots, checks, max_order, disc, p, keep, seen, vals):
     """Blend orders 0..max_order into p (integers, total about 2**P_BITS).
 
     disc[k] holds order k's discounts (in 1/F of a count) for counts 1, 2 and >= 3.
-    keep: scratch for a short row's bytes (their n and p before the order is applied).
+    Each order maps every byte's value x to ((n * one + esc * x) * inv) >> 32, n from the
+    byte's count there (0 if none). A byte the frame has not had yet has no count at any
+    order, so all such bytes keep one shared value; only the frame's bytes so far (seen[0,
+    :D], in the order they first came, D = seen[2, 0]) are followed one by one, in vals.
+    keep: scratch for a short row's bytes (their place in vals, n, and value before).
     """
     meta, m8, big = rows
     one = np.int64(1) << P_BITS
-    for s in range(256):
-        p[s] = one >> 8
+    base = one >> 8
+    order = seen[0]
+    place = seen[1]
+    nd_all = seen[2, 0]
+    for i in range(nd_all):
+        vals[i] = base
     for k in range(max_order + 1):
         r = slots[k]
         if not _tag_is(meta, r, checks[k]):
@@ -141,8 +149,7 @@ def _predict(rows, slots, checks, max_order, disc, p, keep):
         t = np.int64(meta[r, TOT])
         if t == 0:
             continue
-        # discount of a count c, without branches (so the loops vectorise):
-        # d(c) = a1*[c>=1] + a2*[c>=2] + a3*[c>=3]
+        # discount of a count c: d(c) = a1*[c>=1] + a2*[c>=2] + a3*[c>=3]
         a1 = np.int64(disc[k, 0])
         a2 = np.int64(disc[k, 1]) - a1
         a3 = np.int64(disc[k, 2]) - np.int64(disc[k, 1])
@@ -150,41 +157,43 @@ def _predict(rows, slots, checks, max_order, disc, p, keep):
         # inv <= 2**32 / 16, so num * inv < 2**63 fits int64.
         inv = (np.int64(1) << 32) // (t * F)
         g = np.int64(meta[r, BIG])
-        if g:
+        esc = np.int64(0)
+        if g:  # a row's bytes are the frame's: its counts are 0 outside seen[0, :D]
             row = big[g - 1]
-            esc = np.int64(0)
-            for s in range(256):
-                c = np.int64(row[s])
+            for i in range(nd_all):
+                c = np.int64(row[order[i]])
                 esc += a1 * (c >= 1) + a2 * (c >= 2) + a3 * (c >= 3)
-            for s in range(256):
-                c = np.int64(row[s])
+            for i in range(nd_all):
+                c = np.int64(row[order[i]])
                 n = c * F - (a1 * (c >= 1) + a2 * (c >= 2) + a3 * (c >= 3))
-                num = n * one + esc * p[s]
-                p[s] = (num * inv) >> 32
-        else:
-            # a byte not seen has n = 0: p[s] <- esc * p[s] * inv >> 32 for all 256, then
-            # the few seen bytes from their p before (the same numbers as the dense row)
+                vals[i] = ((n * one + esc * vals[i]) * inv) >> 32
+        else:  # n = 0 for all but the row's few bytes: scale all, then those from before
             nd = np.int64(meta[r, DIST])
-            esc = np.int64(0)
-            for i in range(nd):
-                s = m8[r, SYM0 + i]
-                c = np.int64(m8[r, CNT0 + i])
+            for j in range(nd):
+                c = np.int64(m8[r, CNT0 + j])
                 d = a1 + a2 * (c >= 2) + a3 * (c >= 3)
                 esc += d
-                keep[i, 0] = s
-                keep[i, 1] = c * F - d
-                keep[i, 2] = p[s]
-            for s in range(256):
-                p[s] = (esc * p[s] * inv) >> 32
-            for i in range(nd):
-                p[keep[i, 0]] = ((keep[i, 1] * one + esc * keep[i, 2]) * inv) >> 32
+                i = place[m8[r, SYM0 + j]]
+                keep[j, 0] = i
+                keep[j, 1] = c * F - d
+                keep[j, 2] = vals[i]
+            for i in range(nd_all):
+                vals[i] = (esc * vals[i] * inv) >> 32
+            for j in range(nd):
+                vals[keep[j, 0]] = ((keep[j, 1] * one + esc * keep[j, 2]) * inv) >> 32
+        base = (esc * base * inv) >> 32
+    for s in range(256):
+        p[s] = base
+    for i in range(nd_all):
+        p[order[i]] = vals[i]
 
 
 @njit(cache=True, nogil=True)
-def _update(rows, slots, checks, max_order, sym, nxt):
+def _update(rows, slots, checks, max_order, sym, nxt, seen):
     """Count `sym` from the highest order down, stopping below the first order that knew it.
     A row left by an earlier frame or another context (another tag) starts empty; a big
-    row it held is not used again in this frame (nxt[1]: big rows handed out)."""
+    row it held is not used again in this frame (nxt[1]: big rows handed out). A byte new
+    to the frame is new to every order, down to order 0: it joins seen (see _predict)."""
     meta, m8, big = rows
     for k in range(max_order, -1, -1):
         r = slots[k]
@@ -244,6 +253,11 @@ def _update(rows, slots, checks, max_order, sym, nxt):
         meta[r, TOT] += 1
         if c == 0:
             meta[r, DIST] += 1
+            if k == 0:
+                d = seen[2, 0]
+                seen[0, d] = sym
+                seen[1, sym] = d
+                seen[2, 0] = d + 1
         else:
             break
 
@@ -361,11 +375,12 @@ def _match_update(match, b, start, t, sym, hist, gen):
 @njit(cache=True, nogil=True)
 def _teacher(state, match, data, starts, lengths, t0, t1, max_order, hash_log2, disc, out_syms, out_tab):
     """Tables of steps t0..t1 for all active lanes, in coding order, updating state."""
-    rows, bases, hist, gen, rmap, nxt = state
+    rows, bases, hist, gen, rmap, nxt, seen = state
     slots = np.empty(max_order + 1, np.int64)
     checks = np.empty(max_order + 1, np.uint64)
     p = np.empty(256, np.int64)
     keep = np.empty((SMALL, 3), np.int64)
+    vals = np.empty(256, np.int64)
     nl = lengths.shape[0]
     use_match = match[5][3] > 0
     i = 0
@@ -376,7 +391,7 @@ def _teacher(state, match, data, starts, lengths, t0, t1, max_order, hash_log2, 
         for b in range(m):
             _row_slots(hist[b], max_order, hash_log2, bases, gen, slots, checks)
             _map_rows(rmap, nxt, gen, max_order, slots)
-            _predict(rows, slots, checks, max_order, disc, p, keep)
+            _predict(rows, slots, checks, max_order, disc, p, keep, seen, vals)
             if use_match:
                 _match_predict(match, b, p)
             _emit(p, out_tab[i + b])
@@ -385,7 +400,7 @@ def _teacher(state, match, data, starts, lengths, t0, t1, max_order, hash_log2, 
             sym = data[starts[b] + t]
             _row_slots(hist[b], max_order, hash_log2, bases, gen, slots, checks)
             _map_rows(rmap, nxt, gen, max_order, slots)
-            _update(rows, slots, checks, max_order, sym, nxt)
+            _update(rows, slots, checks, max_order, sym, nxt, seen)
             hist[b] = (hist[b] << np.uint64(8)) | np.uint64(sym)
             if use_match:
                 _match_update(match, b, starts[b], t, sym, hist[b], gen)
@@ -396,11 +411,12 @@ def _teacher(state, match, data, starts, lengths, t0, t1, max_order, hash_log2, 
 @njit(cache=True, nogil=True)
 def _step(state, match, starts, syms, t_prev, m_prev, m, max_order, hash_log2, disc, out_tab):
     """Decoder step: count the symbols of step t_prev (m_prev lanes), then predict m lanes."""
-    rows, bases, hist, gen, rmap, nxt = state
+    rows, bases, hist, gen, rmap, nxt, seen = state
     slots = np.empty(max_order + 1, np.int64)
     checks = np.empty(max_order + 1, np.uint64)
     p = np.empty(256, np.int64)
     keep = np.empty((SMALL, 3), np.int64)
+    vals = np.empty(256, np.int64)
     buf = match[0]
     use_match = match[5][3] > 0
     for b in range(m_prev):
@@ -409,14 +425,14 @@ def _step(state, match, starts, syms, t_prev, m_prev, m, max_order, hash_log2, d
         sym = syms[b]
         _row_slots(hist[b], max_order, hash_log2, bases, gen, slots, checks)
         _map_rows(rmap, nxt, gen, max_order, slots)
-        _update(rows, slots, checks, max_order, sym, nxt)
+        _update(rows, slots, checks, max_order, sym, nxt, seen)
         hist[b] = (hist[b] << np.uint64(8)) | np.uint64(sym)
         if use_match:
             _match_update(match, b, starts[b], t_prev, sym, hist[b], gen)
     for b in range(m):
         _row_slots(hist[b], max_order, hash_log2, bases, gen, slots, checks)
         _map_rows(rmap, nxt, gen, max_order, slots)
-        _predict(rows, slots, checks, max_order, disc, p, keep)
+        _predict(rows, slots, checks, max_order, disc, p, keep, seen, vals)
         if use_match:
             _match_predict(match, b, p)
         _emit(p, out_tab[b])
@@ -583,8 +599,9 @@ class Strata:
         bases[1:] = np.cumsum(rows)[:-1]
         lines, mtab, rmap, gen = _pool_take(int(sum(rows)), big_rows_for(n_bytes, self.max_order))
         # rows are placed in the order the frame first meets them (_map_rows); nxt: the next
-        # row to place, the big rows handed out
-        return (lines, bases, np.zeros(n_lanes, np.uint64), np.uint64(gen), rmap, np.zeros(2, np.int64)), mtab
+        # row to place, the big rows handed out; seen: the frame's bytes so far (_predict)
+        return (lines, bases, np.zeros(n_lanes, np.uint64), np.uint64(gen), rmap, np.zeros(2, np.int64),
+                np.zeros((3, 256), np.int64)), mtab
 
     def new_match(self, buf, mtab, lengths):
         """Match-model state: the frame's bytes (known ones), index, per-lane match, hit rates."""
