@@ -288,7 +288,7 @@ def test_odds_table_is_exact():
     assert (np.diff(ODDS) > 0).all()
 
 
-@pytest.mark.parametrize("which", ["tiny_mixed", "tiny_fork", "tiny_fork2"])
+@pytest.mark.parametrize("which", ["tiny_mixed", "tiny_fork", "tiny_fork2", "tiny_cut"])
 def test_mixed_and_fork_parallel_pass_equals_step_pass(which, request):
     """Escape weights (tiny_mixed), and with the tree refinement too (tiny_fork; tiny_fork2
     with its weight sets, extra inputs and final stage): the
@@ -762,3 +762,33 @@ def test_file_rows_match_python_integers(seed):
         assert halved[0]
     finally:
         B._pool_give(fs)
+
+
+# -- the chain cut short (model parameter chain_cut) -------------------------------------------
+@pytest.fixture(scope="module")
+def tiny_cut(tmp_path_factory, tiny_fork2):
+    """tiny_fork2 with the chain stopping once less than 2**-6 of the mass is left below."""
+    return _with_params(tmp_path_factory, tiny_fork2, "tiny-cut", {"chain_cut": 6})
+
+
+def test_chain_cut_is_live_costs_little_and_round_trips(tiny_cut, tiny_fork2, tmp_path):
+    cut, full = load_model(tiny_cut), load_model(tiny_fork2)
+    data = stdlib_file("shlex.py", 30_000)
+    a, b = teacher_tables(cut, data, 3), teacher_tables(full, data, 3)
+    assert not np.array_equal(a, b)  # the cut changes the tables (a new model version) ...
+    for name in ("calendar.py", "textwrap.py"):
+        held = stdlib_file(name)
+        assert nll_bits(cut, held) <= 1.03 * nll_bits(full, held)  # ... for a few percent at 2**-6
+    blob = lcodec.pack(data, model=cut)
+    assert lcodec.unpack(blob, model=cut) == data
+    with pytest.raises(lcodec.LcodecError):
+        lcodec.unpack(blob, model=full)  # archives name the model file they need
+
+
+@pytest.mark.parametrize("value", [31, -1, "8", 2.0])
+def test_hostile_chain_cut_is_refused(tiny_mixed, tmp_path, value):
+    meta, arrays, _ = modelfile.load(tiny_mixed)
+    bad = str(tmp_path / "bad.lcmodel")
+    modelfile.dump(bad, {"name": "braid", "params": {**meta["architecture"]["params"], "chain_cut": value}}, arrays)
+    with pytest.raises(ModelError, match="bad parameters"):
+        load_model(bad)

@@ -836,6 +836,9 @@ def _braid_predict(corpus, fstate, hist, slots, checks, max_order, dfile, p, mix
     slot2, ent, cbase, csize, dcorp, mode, found = corpus
     fmeta = fstate[1]
     use_file = mode[0] == 0
+    # chain_cut c > 0: the chain stops once less than 2**-c of the mass is left below (it goes
+    # to the uniform distribution); 0: only when nothing is left (model files without it)
+    cut_a = (np.int64(ONE_A) >> mode[1]) if mode[1] > 0 else np.int64(1)
     use_mix = mix[5][1] != 0
     lrec = mix[2]
     last = np.int64(hist & np.uint64(0xFF))
@@ -888,7 +891,7 @@ def _braid_predict(corpus, fstate, hist, slots, checks, max_order, dfile, p, mix
                     nlay += 1 if used else 0
                 else:
                     A = _sparse_layer(ent, a0, b0, dcorp[k], p, A)
-        if A == 0:
+        if A < cut_a:  # what is left below is too little to be worth the lower layers
             break
     u = (A << (P_BITS - 8)) >> 31  # the uniform distribution's share: A / 256 of 2**P_BITS
     for s in range(256):
@@ -1131,7 +1134,8 @@ class Braid:
         ablation figures; such an object is only ever costed, never used to pack."""
         allowed = {"corpus_order", "max_order", "hash_log2", "discount", "match_min"}
         optional = {"mix_shift", "sse_bits", "lane_tables", "fork_shift", "fork_mix_shift", "fork_cut",
-                    "fork_sets", "fork_inputs", "fork_final", "recall_min", "recall_long", "memory_bytes"}  # absent: the plain chain (model files made before it)
+                    "fork_sets", "fork_inputs", "fork_final", "recall_min", "recall_long", "memory_bytes",
+                    "chain_cut"}  # absent: the plain chain (model files made before it)
         if not isinstance(params, dict) or not allowed <= set(params) <= allowed | optional:
             raise ValueError(f"braid needs exactly {', '.join(sorted(allowed))} (and optionally {', '.join(sorted(optional))})")
         ms = params.get("mix_shift", 0)
@@ -1146,6 +1150,10 @@ class Braid:
         if lt not in (0, 1) or type(lt) is not int:
             raise ValueError("lane_tables must be 0 or 1")
         self.lane_tables = lt
+        cc = params.get("chain_cut", 0)
+        if type(cc) is not int or not 0 <= cc <= 30:
+            raise ValueError("chain_cut must be 0 (off) or 1..30")
+        self.chain_cut = cc
         fork = [params.get(k) for k in ("fork_shift", "fork_mix_shift", "fork_cut")]
         if fork != [None] * 3:
             if any(type(v) is not int for v in fork) or not (1 <= fork[0] <= 10 and 10 <= fork[1] <= 24 and 1 <= fork[2] <= 22):
@@ -1178,7 +1186,7 @@ class Braid:
         slot2[:, 1] = arrays["start"]
         ent = arrays["sym"].astype(np.uint16) | (arrays["cnt"].astype(np.uint16) << np.uint16(8))
         self.corpus = (slot2, ent, bases, sizes.astype(np.int64), arrays["corpus_discount"].astype(np.int64),
-                       np.array([1 if prior_only else 0], np.int64), np.zeros(len(sizes), np.int64))
+                       np.array([1 if prior_only else 0, cc], np.int64), np.zeros(len(sizes), np.int64))
 
     @classmethod
     def from_params(cls, params: dict, arrays: dict | None = None) -> "Braid":
