@@ -74,8 +74,10 @@ if ROOT not in sys.path:
 
 import numpy as np  # noqa: E402
 
-from lcodec import api, modelfile, salvage as S  # noqa: E402
-from lcodec import container as C  # noqa: E402
+from lcodec import api
+from lcodec.archive import salvage as S
+from lcodec.format import modelfile  # noqa: E402
+from lcodec.format import container as C  # noqa: E402
 from lcodec.errors import LcodecError  # noqa: E402
 from lcodec.models import default_model, load_model, resolve  # noqa: E402
 from lcodec.models.strata import Strata  # noqa: E402

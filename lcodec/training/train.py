@@ -19,9 +19,11 @@ import time
 
 import numpy as np
 
-from . import __version__, modelfile
-from .errors import UsageError
-from .models.weft import HASH_KEYS, LUT_STEPS_PER_NAT, PAD, Weft, context_rows
+from ..errors import UsageError
+from ..format import modelfile
+from ..version import __version__
+from .curves import write_curve_png  # noqa: F401  (also lcodec.training.train.write_curve_png, as before)
+from ..models.weft import HASH_KEYS, LUT_STEPS_PER_NAT, PAD, Weft, context_rows
 
 PRESETS = {
     # name: window, embed, hidden, [hashed contexts: orders, 2**bits rows each, width],
@@ -176,32 +178,6 @@ def export(net, cfg) -> tuple[dict, dict]:
     arrays = {"emb": emb, "w1": w1, "b1": np.clip(b1, -lim, lim).astype(np.int32), "w2": w2,
               "b2": np.clip(b2, -lim, lim).astype(np.int32), "lut": lut, **extra_arrays}
     return params, arrays
-
-
-def write_curve_png(curve: list, path: str, title: str) -> str | None:
-    """Train and validation bits per byte against time; None when matplotlib is missing."""
-    try:
-        import matplotlib
-        matplotlib.use("Agg")
-        import matplotlib.pyplot as plt
-    except ImportError:
-        return None
-    fig, ax = plt.subplots(figsize=(7, 4), dpi=100)
-    t = [c["seconds"] for c in curve]
-    if all("train_bpb" in c for c in curve):
-        ax.plot(t, [c["train_bpb"] for c in curve], label="train (running mean)", color="#3b6ea8")
-    ax.plot(t, [c["val_bpb"] for c in curve], label="validation", color="#c8553d", marker="o", ms=3)
-    ax.set_xlabel("seconds")
-    ax.set_ylabel("bits per byte")
-    ax.set_title(title)
-    ax.grid(alpha=0.3)
-    ax.legend()
-    fig.tight_layout()
-    tmp = path + ".part"
-    fig.savefig(tmp, format="png")
-    plt.close(fig)
-    os.replace(tmp, path)
-    return path
 
 
 def integer_bpb(model: Weft, pos: Positions, idx: np.ndarray) -> float:
@@ -396,7 +372,7 @@ def choose_adapt(model, val_images: dict, echo=print) -> dict:
 
 def read_images(paths: list[str], echo=print) -> list[tuple[str, np.ndarray]]:
     """Samples of every image lcodec models under the given files/folders (others skipped)."""
-    from .images import read_samples
+    from ..inputs.images import read_samples
 
     out = []
     for name, data in read_corpus(paths):
@@ -422,7 +398,7 @@ def train_image(corpus: list[str], out: str, time_limit: float = 120.0, preset: 
         import torch
     except ImportError:
         raise UsageError("training needs torch: run scripts/setup.sh (installs torch==2.13.0)") from None
-    from .models.tessel import EMB_ROWS, N_SLOTS, Tessel, raster_features
+    from ..models.tessel import EMB_ROWS, N_SLOTS, Tessel, raster_features
 
     if preset not in IMAGE_PRESETS:
         raise UsageError(f"unknown preset {preset!r} (have: {', '.join(IMAGE_PRESETS)})")
