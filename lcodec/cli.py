@@ -404,7 +404,7 @@ def info(path, as_json, frames):
         meta, arrays, sha = modelfile.parse(blob, where=path)
         d = {"model_file": path, "sha256": sha, "bytes": len(blob), **meta}
         if meta["architecture"]["name"] == "braid":  # what the file holds, in plain words (files made before said nothing)
-            from .braid_train import contents_text
+            from .training.braid_train import contents_text
 
             mem = arrays.get("memory")
             d["contents"] = contents_text(0 if mem is None else len(mem))
