@@ -16,7 +16,9 @@ Model: a pixel model file (default: the committed tiny golden model
 tests/golden/tessel-tiny-structure.lcmodel; a trained model is larger and slower per
 sample, so its coding dominates start-up even more). Every run is `python -m lcodec ...`
 in a child process. The machine may be shared: the load average (os.getloadavg) is
-recorded before and after each run; figures taken under load are lower bounds.
+recorded before and after each run, figures taken under load are lower bounds, and the
+CPU seconds of each run (all its processes, sampled with psutil) give the ceiling two
+free cores would allow (CPU of --jobs 1 / half the CPU of --jobs 2).
 """
 from __future__ import annotations
 
@@ -83,14 +85,42 @@ def make_corpus(folder: str, size: int) -> int:
 
 
 def run(args: list, label: str) -> dict:
+    """One `python -m lcodec ...`: wall seconds, and the CPU seconds of it and every process
+    it started (sampled every 0.1 s with psutil, when installed: worker processes are
+    children of the pool's server process, which os.wait4 does not see)."""
+    try:
+        import psutil
+    except ImportError:
+        psutil = None
     load0 = os.getloadavg()[0]
     t0 = time.perf_counter()
-    r = subprocess.run([sys.executable, "-m", "lcodec", *args], capture_output=True, text=True)
+    cmd = [sys.executable, "-m", "lcodec", *args]
+    cpu = {}
+    if psutil is None:
+        r = subprocess.run(cmd, capture_output=True, text=True)
+        rc, err = r.returncode, r.stderr
+    else:
+        p = psutil.Popen(cmd, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True)
+        while p.poll() is None:
+            try:
+                procs = [p] + p.children(recursive=True)
+            except psutil.Error:
+                procs = []
+            for q in procs:
+                try:
+                    t = q.cpu_times()
+                    cpu[q.pid] = t.user + t.system
+                except psutil.Error:
+                    pass
+            time.sleep(0.1)
+        rc, err = p.returncode, p.stderr.read()
     dt = time.perf_counter() - t0
-    if r.returncode != 0:
-        raise SystemExit(f"{label} failed ({r.returncode}): {r.stderr}")
-    res = {"label": label, "seconds": round(dt, 3), "load_before": load0, "load_after": os.getloadavg()[0]}
-    print(f"  {label}: {dt:.2f} s (load {load0:.2f} -> {res['load_after']:.2f})", flush=True)
+    if rc != 0:
+        raise SystemExit(f"{label} failed ({rc}): {err}")
+    res = {"label": label, "seconds": round(dt, 3), "cpu_seconds": round(sum(cpu.values()), 3) if cpu else None,
+           "processes": len(cpu) or None, "load_before": load0, "load_after": os.getloadavg()[0]}
+    extra = f", CPU {res['cpu_seconds']:.2f} s in {len(cpu)} processes" if cpu else ""
+    print(f"  {label}: {dt:.2f} s{extra} (load {load0:.2f} -> {res['load_after']:.2f})", flush=True)
     return res
 
 
@@ -140,6 +170,12 @@ def main(argv=None) -> int:
                     return 1
         best = {j: min(r["seconds"] for r in decodes[j]) for j in (1, 2)}
         ratio = best[1] / best[2]
+        cpus = {j: [r["cpu_seconds"] for r in decodes[j] if r["cpu_seconds"]] for j in (1, 2)}
+        ceiling = None
+        if cpus[1] and cpus[2]:  # what two free cores would give: the work of --jobs 2 split in two
+            ceiling = min(cpus[1]) / (min(cpus[2]) / 2)
+            print(f"CPU: --jobs 1 {min(cpus[1]):.2f} s, --jobs 2 {min(cpus[2]):.2f} s in all its processes; "
+                  f"on two free cores that is x{ceiling:.2f} at most", flush=True)
         met = ratio >= TARGET and size >= 8_000_000
         print(f"unpack: --jobs 1 {best[1]:.2f} s ({size / best[1] / 1e6:.3f} MB/s), --jobs 2 {best[2]:.2f} s "
               f"({size / best[2] / 1e6:.3f} MB/s): x{ratio:.2f} (target x{TARGET}) {'MET' if met else 'MISSED'}; "
@@ -147,6 +183,7 @@ def main(argv=None) -> int:
         result = {"corpus_files": n, "corpus_bytes": size, "model": os.path.basename(a.model),
                   "archive_bytes": os.path.getsize(arch), "identical_archives": identical,
                   "pack": packs, "unpack": decodes, "best_unpack_s": best, "speedup": round(ratio, 3),
+                  "cpu_bound_ceiling": None if ceiling is None else round(ceiling, 3),
                   "target": TARGET, "met": met, "cores": os.cpu_count()}
         os.makedirs(os.path.dirname(os.path.abspath(a.json)), exist_ok=True)
         with open(a.json, "w") as f:
