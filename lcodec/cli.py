@@ -14,7 +14,7 @@ import sys
 # BLAS on one thread unless the user says otherwise, set before numpy loads (the first
 # lcodec module that imports it follows): the pixel model's products are small, and two
 # BLAS threads only fight lcodec's own workers for the cores (packing the image bench's
-# 8-bit test set took 9.5 s with two and 6.2-6.6 s with one, load about 3; DEVELOPERS.md,
+# 8-bit test set took 9.5 s with two and 6.2-6.6 s with one, load about 3; docs/notes/model-tessel.md,
 # "Decoding threads"). Training uses torch's own thread pool, which this leaves alone.
 os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
 

@@ -143,7 +143,7 @@ def main():
         out[key] = {"rows": rows, "totals": IB.totals(rows)}
     # decode speed: the 8-bit test images in one archive, decoded with 1 and 2 threads in a
     # fresh process, as `lcodec unpack` runs (model load included, interpreter start not).
-    # In this process, after packing, a threaded decode was seen to collapse (DEVELOPERS.md)
+    # In this process, after packing, a threaded decode was seen to collapse (docs/notes/model-tessel.md, "Decoding threads")
     blob, st = api.pack_paths([dirs["test8"]], model=model)
     n = sum(i["samples"] for i in st.images)
     arch = os.path.join(root, "test8.lcodec")

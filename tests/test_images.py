@@ -1339,7 +1339,7 @@ def test_decoders_keep_blas_on_one_thread(model_file, tmp_path):
     """Decoding image frames (1 or 2 threads) puts BLAS on one thread and leaves it there,
     also when the caller had set 2 meanwhile: restoring it after each decode made OpenBLAS
     change its thread count back and forth, and the next threaded decode collapsed
-    (DEVELOPERS.md). threadpoolctl reports the setting."""
+    (docs/notes/model-tessel.md, "Decoding threads"). threadpoolctl reports the setting."""
     from threadpoolctl import threadpool_info, threadpool_limits
     d = tmp_path / "plates"
     d.mkdir()

@@ -3,7 +3,7 @@
 Frames are independent (every frame starts from a fresh model state), so any worker
 may code any frame and the archive is the same bytes whoever coded it: the parent
 hands out batches of frames in order, keeps a bounded number in flight, and writes the
-results back in frame order (DEVELOPERS.md, "Parallel coding").
+results back in frame order (DEVELOPERS.md, "The pipeline").
 
 A worker builds its model once, from a `ModelSpec`: a built-in model's identity, or a
 model file's bytes (its identity is their SHA-256). Local workers get the spec through

@@ -27,7 +27,7 @@ from ..models.weft import HASH_KEYS, LUT_STEPS_PER_NAT, PAD, Weft, context_rows
 
 PRESETS = {
     # name: window, embed, hidden, [hashed contexts: orders, 2**bits rows each, width],
-    # batch, learning rate (figures in DEVELOPERS.md)
+    # batch, learning rate (figures in docs/notes/model-weft.md)
     "weft": dict(window=16, embed=8, hidden=192, hash_orders=[2, 3, 4, 5, 6, 8], hash_bits=17, hash_embed=16,
                  batch=4096, lr=3e-3),
     "small": dict(window=16, embed=12, hidden=192, batch=1024, lr=3e-3),
@@ -317,17 +317,17 @@ def train(corpus: list[str], out: str, time_limit: float = 600.0, preset: str = 
 
 # -- pixel models (lcodec train --kind image) ---------------------------------------------------
 IMAGE_PRESETS = {
-    # name: embed per slot, hidden, batch, learning rate (figures in DEVELOPERS.md)
+    # name: embed per slot, hidden, batch, learning rate (figures in docs/notes/model-weft.md)
     "small": dict(embed=8, hidden=128, batch=2048, lr=3e-3),
     "tiny": dict(embed=2, hidden=16, batch=512, lr=5e-3),  # for tests
 }
 
 
-ADAPT_K = 4096  # prior strength of the adaptive counts (figures in DEVELOPERS.md)
-STRUCTURE_K = 32  # prior strength of the structure counts (figures in DEVELOPERS.md)
+ADAPT_K = 4096  # prior strength of the adaptive counts (figures in docs/notes/model-weft.md)
+STRUCTURE_K = 32  # prior strength of the structure counts (figures in docs/notes/model-weft.md)
 AUGMENT_SAMPLES = 1 << 24  # mirrored, flipped and transposed copies join while the training samples stay below this
 STRUCTURE_CAP = 12  # evidence cap of the two-member weights, in bits
-LAW = {"limit": 255, "cap": 12}  # the law stage of 16-bit samples (figures in DEVELOPERS.md)
+LAW = {"limit": 255, "cap": 12}  # the law stage of 16-bit samples (figures in docs/notes/model-weft.md)
 ADAPT_GRID = (0, 256, 1024, 4096, 16384)
 
 
