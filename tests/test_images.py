@@ -1396,3 +1396,47 @@ def test_blas_guard_holds_across_interleaved_decoders():
             t.join(20)
         assert seen == {"b_after_a_left": [1] * n}
     assert blas() == [1] * n
+
+
+def test_a_pixel_job_killed_mid_run_resumes_with_the_same_bytes(model_file, tmp_path):
+    """`lcodec pack --resume --jobs 2` with a pixel model, SIGKILLed (with its workers) once
+    its journal records finished frames: the rerun codes only the rest and writes the
+    bytes an uninterrupted run writes (as tests/test_scale.py does for byte models)."""
+    import json
+    import signal
+    import time
+    d = tmp_path / "plates"
+    d.mkdir()
+    for i in range(24):  # enough frames that the job is still running when the journal has some
+        a = _sample(("camera", "moon", "page", "coins")[i % 4], 150 + i, 160)
+        a = [a, a[::-1], a[:, ::-1], a[::-1, ::-1]][(i // 4) % 4]
+        (d / f"plate-{i:02d}.pgm").write_bytes(_pgm(np.ascontiguousarray(a)))
+    out = tmp_path / "plates.lcodec"
+    journal = tmp_path / ".plates.lcodec.lcodec-journal"
+    args = ["pack", d, "-o", out, "-m", model_file, "--resume", "--jobs", "2"]
+
+    def frames_done():
+        try:
+            return json.loads(journal.read_text())["frames_done"]
+        except (OSError, ValueError, KeyError):
+            return 0
+
+    p = subprocess.Popen([sys.executable, "-m", "lcodec", *map(str, args)], stdout=subprocess.DEVNULL,
+                         stderr=subprocess.PIPE, start_new_session=True)
+    killed, t0 = False, time.monotonic()
+    while p.poll() is None and time.monotonic() - t0 < 300:
+        if frames_done() >= 2:
+            os.killpg(p.pid, signal.SIGKILL)  # the job and its worker processes
+            killed = True
+            break
+        time.sleep(0.02)
+    p.wait()
+    assert killed, "the job ended before it could be interrupted"
+    assert not out.exists() and (tmp_path / ".plates.lcodec.lcodec-partial").exists()
+    done = frames_done()
+    r = _lc(*args)
+    assert r.returncode == 0, r.stderr
+    fresh, stats = api.pack_paths([str(d)], model=model_file)
+    assert out.read_bytes() == fresh
+    assert f"({done} more kept from the interrupted run)".encode() in r.stderr, r.stderr
+    assert not journal.exists()
