@@ -9,7 +9,7 @@ import sys
 
 sys.path.insert(0, os.path.join(os.path.dirname(os.path.abspath(__file__)), ".."))
 
-from lcodec.democorpus import build_files, generate, main, split_names  # noqa: E402,F401
+from lcodec.demo.corpus import build_files, generate, main, split_names  # noqa: E402,F401
 
 if __name__ == "__main__":
     sys.exit(main())

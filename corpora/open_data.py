@@ -36,10 +36,10 @@ import sysconfig
 from pathlib import Path
 
 try:
-    from lcodec.democorpus import clear_previous_run
+    from lcodec.demo.corpus import clear_previous_run
 except ImportError:  # run from a checkout without lcodec installed
     sys.path.insert(0, os.path.join(os.path.dirname(os.path.abspath(__file__)), ".."))
-    from lcodec.democorpus import clear_previous_run
+    from lcodec.demo.corpus import clear_previous_run
 
 MANIFEST_NAME = "manifest.tsv"
 TEXT_PROBE_BYTES = 8192

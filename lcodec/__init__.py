@@ -3,7 +3,7 @@
 The library's entry points (pack, unpack, verify, info, ... and the error classes) are
 imported on first use, so that the command line can set up the process (its BLAS thread
 count, lcodec.cli) before numpy loads."""
-__version__ = "0.1.0"
+from .version import __version__  # noqa: F401
 
 _API = ("info", "pack", "pack_each", "pack_paths", "pack_stats", "pack_to", "unpack", "unpack_to_dir",
         "unpack_to_file", "verify")

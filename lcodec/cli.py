@@ -14,13 +14,13 @@ import sys
 # BLAS on one thread unless the user says otherwise, set before numpy loads (the first
 # lcodec module that imports it follows): the pixel model's products are small, and two
 # BLAS threads only fight lcodec's own workers for the cores (packing the image bench's
-# 8-bit test set took 9.5 s with two and 6.2-6.6 s with one, load about 3; DEVELOPERS.md,
+# 8-bit test set took 9.5 s with two and 6.2-6.6 s with one, load about 3; docs/notes/model-tessel.md,
 # "Decoding threads"). Training uses torch's own thread pool, which this leaves alone.
 os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
 
 import click  # noqa: E402
 
-from . import __version__  # noqa: E402
+from .version import __version__  # noqa: E402
 from .errors import LcodecError, UsageError  # noqa: E402
 from .fsio import ARCHIVE_EXT, atomic_write, map_input, map_stream, read_input  # noqa: E402
 
@@ -130,7 +130,7 @@ force_option = click.option("--force", is_flag=True, help="Overwrite an existing
 threads_option = click.option("--threads", type=click.IntRange(1, 64), default=1, show_default=True,
                               help="Frames decoded side by side by threads of this process (images: one "
                                    "frame each; any model). Same output. --jobs uses worker processes "
-                                   "instead (byte models only); give one or the other.")
+                                   "instead; give one or the other.")
 quiet_option = click.option("-q", "--quiet", is_flag=True, help="No progress or summary on stderr.")
 
 
@@ -147,7 +147,7 @@ def parse_size(text: str, option: str) -> int:
 def _jobs_value(ctx, param, value):
     if value is None:
         return None
-    from .scale import parse_jobs
+    from .archive.runners import parse_jobs
 
     try:
         return parse_jobs(value)
@@ -157,8 +157,7 @@ def _jobs_value(ctx, param, value):
 
 jobs_option = click.option("-j", "--jobs", "jobs", default=None, callback=_jobs_value, metavar="N",
                            help="Code frames in N worker processes (0 or 'auto': every core). The archive "
-                                "is the same bytes for any N. Default 1. Byte models only (a pixel model "
-                                "runs in this process).")
+                                "is the same bytes for any N. Default 1. Byte and pixel models alike.")
 cluster_option = click.option("--cluster", "cluster", default=None, metavar="ADDRESS",
                               help="Run the coding on an existing dask.distributed cluster, given its "
                                    "scheduler's address (tcp://HOST:PORT). Same bytes as a local run.")
@@ -234,7 +233,7 @@ def pack(inputs, output, model, frame_size, jobs, cluster, per_file, resume, no_
             raise UsageError("the output folder would be an input")
         bar = Progress(_tree_bytes(inputs), "packing", quiet)
         man = api.pack_each(list(inputs), output, model, frame_size, bar, jobs=jobs, cluster=cluster, force=force,
-                            resume=resume,
+                            resume=resume, pixels=not no_pixels,
                             on_skip=lambda p: click.echo(f"lcodec: skipped {p} (not a regular file)", err=True))
         bar.close()
         if not quiet:
@@ -344,7 +343,7 @@ def unpack(archive, output, model, force, salvage_mode, keep_damaged, report_pat
     if output != "-" and os.path.lexists(output) and not force:
         raise UsageError(f"{output} exists; pass --force to overwrite it")
     if salvage_mode or keep_damaged or report_path:
-        from . import salvage as S
+        from .archive import salvage as S
 
         if not salvage_mode:
             raise UsageError("--keep-damaged and --report go with --salvage")
@@ -420,14 +419,15 @@ def verify(archive, against, model, threads, jobs, cluster, quiet):
 @guarded
 def info(path, as_json, frames):
     """Describe an archive (header, members, frames, model identity) or a model file."""
-    from . import api, modelfile
+    from . import api
+    from .format import modelfile
 
     blob = _read_archive(path)
     if blob[:8] == modelfile.MAGIC:
         meta, arrays, sha = modelfile.parse(blob, where=path)
         d = {"model_file": path, "sha256": sha, "bytes": len(blob), **meta}
         if meta["architecture"]["name"] == "braid":  # what the file holds, in plain words (files made before said nothing)
-            from .braid_train import contents_text
+            from .training.braid_train import contents_text
 
             mem = arrays.get("memory")
             d["contents"] = contents_text(0 if mem is None else len(mem))
@@ -503,13 +503,13 @@ def bench(corpus_dir, model, json_out, csv_out, split, seed, report_dir, kind, f
     """
     if kind == "image":
         return _bench_images(corpus_dir, model, json_out, csv_out or report_dir or split, force, quiet)
-    from . import bench as B
+    from .measure import bench as B
 
     for out in (json_out, csv_out):
         if out and os.path.lexists(out) and not force:
             raise UsageError(f"{out} exists; pass --force to overwrite it")
     if report_dir:
-        from . import report as R
+        from .measure import report as R
 
         R.check_out_dir(report_dir, force)
         R.require_matplotlib()
@@ -531,7 +531,7 @@ def bench(corpus_dir, model, json_out, csv_out, split, seed, report_dir, kind, f
 
 
 def _bench_images(corpus_dir, model, json_out, unsupported, force, quiet):
-    from . import imagebench as IB
+    from .measure import imagebench as IB
     from .models import resolve
 
     if unsupported:
@@ -586,7 +586,7 @@ def explain(file, model, output, png_out, frame_size, view_bytes, force, quiet):
     if os.path.isdir(file):
         raise UsageError(f"{file} is a folder; explain takes one file")
     data = read_input(file)
-    from . import explain as X
+    from .measure import explain as X
 
     png_out = png_out or X.default_png_path(output)
     if os.path.abspath(png_out) == os.path.abspath(output):
@@ -655,7 +655,7 @@ def train(corpus, output, kind, time_limit, preset, seed, max_bytes, memory, ada
     and unpacking with any model file do not. With --kind image, images are coded as
     pixels by `pack -m MODEL` (see README.md, "Images").
     """
-    from . import train as T
+    from .training import train as T
 
     echo = lambda m: click.echo(m, err=True)  # noqa: E731
     if kind == "image":

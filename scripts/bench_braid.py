@@ -39,14 +39,16 @@ ROOT = os.path.join(os.path.dirname(os.path.abspath(__file__)), "..")
 sys.path.insert(0, ROOT)
 
 from corpora import open_data  # noqa: E402
-from lcodec import api, bench as B, modelfile  # noqa: E402
-from lcodec import baselines as BL  # noqa: E402
-from lcodec.container import read_container  # noqa: E402
-from lcodec.braid_train import nll_bits  # noqa: E402
+from lcodec import api
+from lcodec.format import modelfile
+from lcodec.measure import bench as B  # noqa: E402
+from lcodec.measure import baselines as BL  # noqa: E402
+from lcodec.format.container import read_container  # noqa: E402
+from lcodec.training.braid_train import nll_bits  # noqa: E402
 from lcodec.models import load_model  # noqa: E402
 from lcodec.models.braid import Braid  # noqa: E402
 from lcodec.models.strata import Strata  # noqa: E402
-from lcodec.train import train  # noqa: E402
+from lcodec.training.train import train  # noqa: E402
 
 LC, ST = "lcodec-braid", "lcodec-strata"
 MODEL_BUDGET = 128_000_000

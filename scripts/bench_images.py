@@ -46,7 +46,8 @@ sys.path.insert(0, os.path.join(os.path.dirname(__file__), ".."))
 
 import numpy as np  # noqa: E402
 
-from lcodec import api, imagebench as IB  # noqa: E402
+from lcodec import api
+from lcodec.measure import imagebench as IB  # noqa: E402
 
 TRAIN8 = ["brick", "grass", "gravel", "cell", "clock", "microaneurysms", "text"]
 TRAIN8_COLOUR = ["astronaut", "chelsea", "coffee", "immunohistochemistry"]
@@ -127,7 +128,7 @@ def main():
               "tested on the bottom parts (not the targets' setting)")
     model = args.model
     if model is None:
-        from lcodec.train import train_image
+        from lcodec.training.train import train_image
         model = os.path.join(root, "images-regions.lcmodel" if args.held_out_regions else "images.lcmodel")
         train_image([dirs["train"]], model, time_limit=args.time_limit, force=True)
     msize = os.path.getsize(model)
@@ -142,7 +143,7 @@ def main():
         out[key] = {"rows": rows, "totals": IB.totals(rows)}
     # decode speed: the 8-bit test images in one archive, decoded with 1 and 2 threads in a
     # fresh process, as `lcodec unpack` runs (model load included, interpreter start not).
-    # In this process, after packing, a threaded decode was seen to collapse (DEVELOPERS.md)
+    # In this process, after packing, a threaded decode was seen to collapse (docs/notes/model-tessel.md, "Decoding threads")
     blob, st = api.pack_paths([dirs["test8"]], model=model)
     n = sum(i["samples"] for i in st.images)
     arch = os.path.join(root, "test8.lcodec")

@@ -24,7 +24,8 @@ ROOT = os.path.join(os.path.dirname(os.path.abspath(__file__)), "..")
 sys.path.insert(0, ROOT)
 
 from corpora import open_data  # noqa: E402
-from lcodec import api, bench as B  # noqa: E402
+from lcodec import api
+from lcodec.measure import bench as B  # noqa: E402
 
 LC = "lcodec-strata"
 

@@ -28,9 +28,11 @@ ROOT = os.path.join(os.path.dirname(os.path.abspath(__file__)), "..")
 sys.path.insert(0, ROOT)
 
 from corpora import open_data  # noqa: E402
-from lcodec import api, bench as B, modelfile  # noqa: E402
-from lcodec import baselines as BL  # noqa: E402
-from lcodec.container import read_container  # noqa: E402
+from lcodec import api
+from lcodec.format import modelfile
+from lcodec.measure import bench as B  # noqa: E402
+from lcodec.measure import baselines as BL  # noqa: E402
+from lcodec.format.container import read_container  # noqa: E402
 from lcodec.models import load_model  # noqa: E402
 
 LC = "lcodec-weft"
@@ -69,7 +71,7 @@ def main() -> int:
     open_data.materialise("python_stdlib", corpus, limit_bytes=32 << 20)
     model = a.model
     if model is None:
-        from lcodec.train import train
+        from lcodec.training.train import train
 
         model = os.path.join(a.out, f"python_stdlib-{a.preset}.lcmodel")
         t0 = time.perf_counter()

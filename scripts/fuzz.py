@@ -74,8 +74,10 @@ if ROOT not in sys.path:
 
 import numpy as np  # noqa: E402
 
-from lcodec import api, modelfile, salvage as S  # noqa: E402
-from lcodec import container as C  # noqa: E402
+from lcodec import api
+from lcodec.archive import read as _read, salvage as S
+from lcodec.format import modelfile  # noqa: E402
+from lcodec.format import container as C  # noqa: E402
 from lcodec.errors import LcodecError  # noqa: E402
 from lcodec.models import default_model, load_model, resolve  # noqa: E402
 from lcodec.models.strata import Strata  # noqa: E402
@@ -718,7 +720,7 @@ def check_model(blob, seed: Seed, resealed: bool, scratch: str):
 def _cache_decoding(enabled: bool):
     """Reuse the result of a frame decoded before when its head and coded bytes are the same.
     Returns the function to put back when the run ends."""
-    real = api._decode_frame
+    real = _read.decode_record
     if not enabled or getattr(real, "_fuzz_cached", False):
         return real
     cache = {}
@@ -736,8 +738,14 @@ def _cache_decoding(enabled: bool):
         return raw
 
     cached._fuzz_cached = True
-    api._decode_frame = cached
+    _use_decoder(cached)
     return real
+
+
+def _use_decoder(fn) -> None:
+    """Every module that decodes a frame of a read container calls it by this name."""
+    _read.decode_record = fn
+    S.decode_record = fn
 
 
 def _cap_memory(headroom_gib: float):
@@ -849,7 +857,7 @@ def run(n: int = 100_000, rng_seed: int = 1, budget: float = 10.0, salvage_every
         wall = time.perf_counter() - t_all
         rss_peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
     finally:
-        api._decode_frame = real_decode_frame
+        _use_decoder(real_decode_frame)
         shutil.rmtree(work, ignore_errors=True)
     return {
         "inputs": t.n, "seed": rng_seed, "archives": t.archives, "model_files": t.models,

@@ -40,7 +40,7 @@ def write_vector(name: str, data: bytes, **pack_args) -> None:
 def golden_learned(kind: str, preset: str, n_files: int, file_bytes: int, seed0: int, data_seed: int,
                    time_limit: float, container: str, model_name: str | None = None):
     """A tiny model of `kind`, trained on generated log lines, and a container made with it."""
-    from lcodec import train as T
+    from lcodec.training import train as T
 
     mpath = os.path.join(HERE, model_name or f"{kind}-tiny.lcmodel")
     arc = os.path.join(HERE, container + ".lcodec")
@@ -85,7 +85,7 @@ def train_on(mpath: str, texts: list, **options) -> None:
     """Train the default braid preset for 5 s on `texts`, each a file of its own."""
     import tempfile
 
-    from lcodec import train as T
+    from lcodec.training import train as T
 
     with tempfile.TemporaryDirectory() as d:
         for i, text in enumerate(texts):
@@ -100,8 +100,8 @@ def golden_braid_fork(name: str = "fork", fork: dict | None = None, seed: int = 
     with indented lines (so the column context is exercised) whose first frame has two
     lanes. `fork`: the refinement as first released (braid-fork-tiny, braid-v2-fork) unless
     given (braid-fork2-tiny, braid-v2-fork2: the preset with its later parts)."""
-    from lcodec import modelfile
-    from lcodec.braid_train import TREE_V1
+    from lcodec.format import modelfile
+    from lcodec.training.braid_train import TREE_V1
 
     mpath = os.path.join(HERE, f"braid-{name}-tiny.lcmodel")
     arc = os.path.join(HERE, f"braid-v2-{name}.lcodec")
@@ -117,7 +117,7 @@ def golden_braid_fork(name: str = "fork", fork: dict | None = None, seed: int = 
 
 
 def golden_braid_fork2():
-    from lcodec.braid_train import PRESETS
+    from lcodec.training.braid_train import PRESETS
 
     golden_braid_fork("fork2", PRESETS["braid-tree"]["fork"], seed=62)
 
@@ -147,7 +147,7 @@ def golden_braid_memory():
     """A braid model of the default preset with its corpus memory (the training text
     itself, lcodec/models/recall.py), trained on log lines of which some recur, and a
     version-2 container (first frame in two lanes) of new lines of the same kind."""
-    from lcodec import modelfile
+    from lcodec.format import modelfile
 
     mpath = os.path.join(HERE, "braid-memory-tiny.lcmodel")
     arc = os.path.join(HERE, "braid-v2-memory.lcodec")
@@ -164,8 +164,8 @@ def golden_braid_memtree():
     """The braid-tree preset with a corpus memory: braid-memory-tiny.lcmodel plus the tree
     refinement's parameters (the repeat byte the refinement is told of may then come from
     the memory), and a version-2 container of indented lines."""
-    from lcodec import modelfile
-    from lcodec.braid_train import PRESETS
+    from lcodec.format import modelfile
+    from lcodec.training.braid_train import PRESETS
 
     mpath = os.path.join(HERE, "braid-memtree-tiny.lcmodel")
     arc = os.path.join(HERE, "braid-v2-memtree.lcodec")
@@ -193,7 +193,7 @@ def golden_tessel():
     from PIL import Image, PngImagePlugin
     from pydicom.data import get_testdata_file
 
-    from lcodec import train as T
+    from lcodec.training import train as T
 
     mpath = os.path.join(HERE, "tessel-tiny.lcmodel")
     names = ["tessel-v1-pgm", "tessel-v1-png", "tessel-v1-dicom16"]
@@ -277,7 +277,7 @@ def golden_tessel_replicated():
 def derive_tessel(src: str, dst: str, edit) -> None:
     """Write dst (unless it exists): the pixel model file tests/golden/SRC with its
     parameters changed in place by edit(params), its arrays and other metadata kept."""
-    from lcodec import modelfile
+    from lcodec.format import modelfile
 
     if os.path.exists(dst):
         return

@@ -5,7 +5,7 @@ import sysconfig
 import numpy as np
 import pytest
 
-from lcodec.coder import active_lanes, lane_layout
+from lcodec.coding import active_lanes, lane_layout
 
 
 def stdlib_file(rel: str, n: int | None = None) -> bytes:

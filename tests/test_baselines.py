@@ -18,8 +18,8 @@ import zlib
 
 import pytest
 
-from lcodec import baselines as B
-from lcodec import bench
+from lcodec.measure import baselines as B
+from lcodec.measure import bench
 from lcodec.errors import DataError, UsageError
 
 zstandard = pytest.importorskip("zstandard")

@@ -17,7 +17,8 @@ import sys
 
 import pytest
 
-from lcodec import api, modelfile
+from lcodec import api
+from lcodec.format import modelfile
 from lcodec.cli import main as cli_group
 from lcodec.models.strata import Strata
 from support import stdlib_file  # noqa: E402

@@ -5,7 +5,7 @@ import crc32c as crc32c_pkg
 import pytest
 from hypothesis import given, settings, strategies as st
 
-from lcodec import container as C
+from lcodec.format import container as C
 from lcodec.errors import DataError
 
 

@@ -15,7 +15,7 @@ if str(REPO) not in sys.path:
     sys.path.insert(0, str(REPO))
 
 from corpora import open_data  # noqa: E402
-from lcodec import democorpus as make_demo  # noqa: E402
+from lcodec.demo import corpus as make_demo  # noqa: E402
 
 SMALL = 0.05
 

@@ -18,7 +18,7 @@ import sys
 import pytest
 
 from lcodec import api
-from lcodec import container as C
+from lcodec.format import container as C
 from lcodec.errors import DataError
 from lcodec.models import default_model
 from support import stdlib_file  # noqa: E402

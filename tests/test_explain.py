@@ -21,9 +21,9 @@ import numpy as np
 import pytest
 
 from lcodec import api
-from lcodec import container as C
-from lcodec.coder import active_lanes, lane_layout
-from lcodec.explain import (TOP_N, WINDOW, explain, heat_png, looks_like_text, render_html,
+from lcodec.format import container as C
+from lcodec.coding import active_lanes, lane_layout
+from lcodec.measure.explain import (TOP_N, WINDOW, explain, heat_png, looks_like_text, render_html,
                             symbol_costs, top_windows)
 from lcodec.models import resolve
 from lcodec.models.strata import Strata

@@ -16,10 +16,11 @@ import pytest
 import lcodec
 from lcodec import api
 from lcodec.errors import DataError, ModelError
-from lcodec.images import analyse, read_record, rebuild
+from lcodec.inputs.images import analyse, read_record, rebuild
 from lcodec.models import load_model
 from lcodec.models.tessel import EMB_ROWS, N_SLOTS, Tessel, coding_order
-from lcodec.pixels import decode_image_frame, encode_image_frame, region_values
+from lcodec.frames.imageframe import decode_image_frame, encode_image_frame
+from lcodec.inputs.layout import region_values
 
 PIL = pytest.importorskip("PIL.Image", reason="Pillow is needed (pip install -e .[test])")
 skdata = pytest.importorskip("skimage.data", reason="scikit-image is needed for its bundled sample images")
@@ -63,7 +64,7 @@ def random_tessel(seed=0, E=4, H=24, roles=("r8", "r16h", "r16l"), shift=1, adap
 
 @pytest.fixture(scope="module")
 def model_file(tmp_path_factory):
-    from lcodec import modelfile
+    from lcodec.format import modelfile
     m = random_tessel(structure=STRUCT)
     p = str(tmp_path_factory.mktemp("m") / "rand.lcmodel")
     modelfile.dump(p, {"name": "tessel", "params": m.params}, m.arrays)
@@ -344,7 +345,7 @@ def test_a_file_that_is_a_pixel_record_stays_bytes(model_file):
 
 
 def test_salvage_rebuilds_pixel_exact_members(model_file, tmp_path):
-    from lcodec import salvage as S
+    from lcodec.archive import salvage as S
     d = _folder(tmp_path)
     blob, _ = api.pack_paths([str(d)], model=model_file)
     inf = lcodec.info(blob)
@@ -376,7 +377,7 @@ def test_force_byte_mode(model_file, tmp_path):
 
 
 def test_depth_without_a_network_is_coded_as_bytes(tmp_path):
-    from lcodec import modelfile
+    from lcodec.format import modelfile
     m = random_tessel(roles=("r8",))
     p = str(tmp_path / "m8.lcmodel")
     modelfile.dump(p, {"name": "tessel", "params": m.params}, m.arrays)
@@ -390,7 +391,7 @@ def test_wrong_or_missing_model_is_a_clear_error(model_file, tmp_path):
     blob = lcodec.pack(_pgm(_sample("camera")), model=model_file)
     with pytest.raises(ModelError, match="needs the tessel model file"):
         lcodec.unpack(blob)
-    from lcodec import modelfile
+    from lcodec.format import modelfile
     other = random_tessel(seed=5)
     p = str(tmp_path / "other.lcmodel")
     modelfile.dump(p, {"name": "tessel", "params": other.params}, other.arrays)
@@ -434,7 +435,7 @@ GOOD = b"\x01\x00\x01\x01\x01\x01\x00"  # version 1, offset 0, 1 x 1 x 1 sample 
 def test_hostile_image_descriptors_are_refused(payload):
     """Zero rows, 5 channels, 3-byte samples, a region past the content, unknown or
     8-bit-only-forbidden flags, a prefix past the end, broken words, an over-long varint."""
-    from lcodec.pixels import read_descriptor
+    from lcodec.inputs.layout import read_descriptor
     lay, pos = read_descriptor(GOOD, 1)  # the valid one is accepted
     assert (lay.rows, lay.cols, pos) == (1, 1, len(GOOD))
     with pytest.raises(DataError):
@@ -530,7 +531,7 @@ def test_parallel_pass_equals_step_pass(kind, adapt):
         a, lay_args = _sample("camera", 21, 10), (1, 0)
     if a.ndim == 2:
         a = a[:, :, None]
-    from lcodec.pixels import Layout, values_region
+    from lcodec.inputs.layout import Layout, values_region
     lay = Layout(5, a.shape[0], a.shape[1], a.shape[2], *lay_args)
     raw = b"head!" + values_region(a, lay) + b"tail"
     payload, _, _ = encode_image_frame(m, raw, lay)
@@ -702,7 +703,7 @@ def test_upscaled_and_mosaic_images_round_trip(kind, model_file, tmp_path):
 
 
 def test_law_params_refused(tmp_path):
-    from lcodec import modelfile
+    from lcodec.format import modelfile
     m = random_tessel(law=LAW)
     for bad in ({"limit": -1, "cap": 12}, {"limit": 255}, {"limit": 255, "cap": 0}, {"limit": 255, "cap": 31},
                 {"limit": (1 << 16) + 1, "cap": 12}, {"limit": 2.5, "cap": 12}, {"limit": 255, "cap": 12, "x": 1}, 7):
@@ -783,7 +784,7 @@ def test_law_stage_learns_a_small_noisy_scan(model_file, tmp_path):
         m = random_tessel(structure=STRUCT, law=law)
         bits[name] = sum(float(-np.log2(t[np.arange(len(s_)), s_] / t.sum(1)).sum()) for s_, t in m.teacher_tables(v, True))
     assert bits["on"] < 0.9 * bits["off"], bits
-    from lcodec import modelfile
+    from lcodec.format import modelfile
     p = str(tmp_path / "law.lcmodel")
     m = random_tessel(structure=STRUCT, law=LAW)
     modelfile.dump(p, {"name": "tessel", "params": m.params}, m.arrays)
@@ -793,7 +794,7 @@ def test_law_stage_learns_a_small_noisy_scan(model_file, tmp_path):
 
 
 def test_structure_params_refused(tmp_path):
-    from lcodec import modelfile
+    from lcodec.format import modelfile
     m = random_tessel(structure=STRUCT)
     for bad in ({"k": {"r8": 1}, "cap": 0, "decay": 0, "blend": 1}, {"k": {"r8": 1}, "cap": 12, "decay": 0},
                 {"k": {"r8": -1}, "cap": 12, "decay": 0, "blend": 1}, {"k": {"r9": 1}, "cap": 12, "decay": 0, "blend": 1},
@@ -808,7 +809,7 @@ def test_structure_params_refused(tmp_path):
 def test_model_file_round_trip_and_refusals(model_file, tmp_path):
     m = load_model(model_file)
     assert m.is_image_model and m.identity["model"] == "tessel"
-    from lcodec import modelfile
+    from lcodec.format import modelfile
     bad = random_tessel()
     arrays = dict(bad.arrays)
     arrays["r8.w1"] = arrays["r8.w1"][:-1]
@@ -849,7 +850,7 @@ def test_train_image_cli(tmp_path):
 def test_augmented_copies_and_budget():
     """`augmented`: the copies are exactly numpy's mirror, flip and transpose of each training
     image, in that order, and never take the training samples past the budget."""
-    from lcodec.train import augmented
+    from lcodec.training.train import augmented
     a = np.arange(2 * 3 * 1, dtype=np.uint8).reshape(2, 3, 1)
     b = (np.arange(4 * 5 * 3) % 251).astype(np.uint8).reshape(4, 5, 3)
     got = augmented([a, b])
@@ -882,7 +883,7 @@ def test_train_image_cli_16bit_law_stage(flag, tmp_path):
     assert r.returncode == 0, r.stderr
     params = load_model(str(out)).inner.params
     assert params.get("law") == (None if flag else {"limit": 255, "cap": 12})
-    from lcodec import modelfile
+    from lcodec.format import modelfile
     trained = modelfile.load(str(out))[0]["training"]["sets"]["16-bit"]  # one training image, one validation image
     assert (trained["augmented_copies"], trained["train_samples"]) == ((0, 40 * 48) if flag else (3, 4 * 40 * 48))
     assert ("mirrored, flipped or transposed" in r.stderr) == (flag is None)
@@ -1040,7 +1041,7 @@ def test_golden_replicated_containers_decode_exactly(name):
     else:
         assert frame["replicated"] == [3, 2] and frame["channels"] == 3
         assert np.array_equal(got, np.repeat(np.repeat(skdata.coffee()[150:162, 250:270], 3, 0), 2, 1))
-    from lcodec.container import read_container
+    from lcodec.format.container import read_container
     (fr,) = read_container(blob).frames
     assert fr.payload[0] == 2  # REPLICATED_VERSION
 
@@ -1048,7 +1049,7 @@ def test_golden_replicated_containers_decode_exactly(name):
 def test_replication_factors():
     """`replication`: the largest exact factors per axis (up to 16, dividing the size), checked
     against numpy's repeat; one changed sample, or a size the factor does not divide, is none."""
-    from lcodec.pixels import replication
+    from lcodec.inputs.layout import replication
     rng = np.random.default_rng(5)
     for fr, fc, ch in [(2, 2, 1), (3, 2, 3), (1, 4, 1), (5, 1, 2), (16, 16, 1), (7, 3, 4)]:
         base = rng.integers(0, 256, (4, 5, ch)).astype(np.uint8)
@@ -1104,9 +1105,9 @@ def test_replicated_images_round_trip(kind, model_file):
 def test_replicated_descriptor_refused(factors, why):
     """A version-2 descriptor with factors that are 1 x 1, zero, above 16 or do not divide the
     size: the frame is reported damaged, never decoded."""
-    from lcodec.container import uvarint
+    from lcodec.format.container import uvarint
     from lcodec.errors import DataError
-    from lcodec.pixels import read_descriptor
+    from lcodec.inputs.layout import read_descriptor
     head = bytes([2]) + b"".join(uvarint(x) for x in (0, 4, 6, 1, 1, 0) + factors)
     with pytest.raises(DataError, match="image frame damaged.*" + why):
         read_descriptor(head + bytes(8), 24)
@@ -1117,14 +1118,14 @@ def test_replicated_descriptor_refused(factors, why):
         read_descriptor(bytes([3]) + ok[1:] + bytes(8), 24)
 
 
-# -- pixel models next to the streaming path (merge of scale and pixels) ------------------------
+# -- pixel models on the one pipeline: every runner, streaming, --resume, --per-file ------------
 def _lc(*args):
     return subprocess.run([sys.executable, "-m", "lcodec", *map(str, args)], capture_output=True, timeout=300)
 
 
 def test_cli_pack_unpack_verify_with_threads(model_file, tmp_path):
-    """The CLI's streaming pack (pack_to) sends a pixel model to the in-memory path: the PNG
-    is a pixel record, rebuilt on unpack (read back with Pillow), with 1 and 2 threads."""
+    """The CLI's streaming pack (pack_to) with a pixel model: the PNG is a pixel record,
+    rebuilt on unpack (read back with Pillow), with 1 and 2 threads."""
     d = _folder(tmp_path)
     arch = tmp_path / "plates.lcodec"
     r = _lc("pack", d, "-o", arch, "-m", model_file)
@@ -1152,23 +1153,166 @@ def test_cli_pack_unpack_verify_with_threads(model_file, tmp_path):
     assert np.array_equal(np.asarray(PIL.open(tmp_path / "back.png")), _sample("coins"))
 
 
-def test_streaming_only_options_are_refused_with_a_pixel_model(model_file, tmp_path):
+def _plates(tmp_path, n=6):
+    """A folder of several images of two formats (scikit-image's bundled samples as the
+    pixels; Pillow writes the PNGs) and a text file."""
     d = _folder(tmp_path)
+    for i, name in enumerate(("page", "text", "moon", "camera", "coins", "page")[:n]):
+        a = _sample(name, 20 + 4 * i, 26 + 2 * i)
+        (d / f"extra-{i}.{'png' if i % 2 else 'pgm'}").write_bytes(_png(a) if i % 2 else _pgm(a))
+    return d
+
+
+def _same_images(out, d):
+    """Restored files against the originals: byte-exact ones byte for byte, PNGs (pixel-exact)
+    by their pixels as Pillow reads them."""
+    for f in sorted(d.iterdir()):
+        back = out / f.name
+        if f.suffix == ".png":
+            assert np.array_equal(np.asarray(PIL.open(back)), np.asarray(PIL.open(f))), f.name
+        else:
+            assert back.read_bytes() == f.read_bytes(), f.name
+
+
+def test_pixel_model_gives_the_same_archive_on_every_runner(model_file, tmp_path):
+    """Image frames go through the one pipeline: --jobs 2 (worker processes) makes the
+    --jobs 1 archive byte for byte, streaming to a file or in memory, and decodes (unpack,
+    verify against the originals, decode_stream) in worker processes to the same files."""
+    d = _plates(tmp_path)
+    one, stats = api.pack_paths([str(d)], model=model_file)
+    assert len(stats.images) == 9 and {f["method"] for f in lcodec.info(one)["frames"]} >= {"modelled/image"}
+    two, stats2 = api.pack_paths([str(d)], model=model_file, jobs=2)
+    assert two == one and stats2.images == stats.images
+    api.pack_to([str(d)], str(tmp_path / "j2.lcodec"), model=model_file, jobs=2)
+    assert (tmp_path / "j2.lcodec").read_bytes() == one
+    out = tmp_path / "out"
+    api.unpack_to_dir(one, str(out), model=model_file, jobs=2)
+    _same_images(out / "plates", d)
+    rep = api.verify(one, model=model_file, against=str(d), jobs=2)
+    assert rep.ok, rep.problems
+    assert rep.guarantees == {"pixel-exact image": 4, "byte-exact image": 5}
+    rep = api.verify(one, model=model_file, against=str(d))  # one process: the same report
+    assert rep.ok and rep.guarantees == {"pixel-exact image": 4, "byte-exact image": 5}
+    # one image alone: a single-file archive, the PNG rebuilt from its pixel record
+    png = d / "b.png"
+    blob = api.pack(png.read_bytes(), model=model_file, jobs=2)
+    assert blob == api.pack(png.read_bytes(), model=model_file)
+    back = tmp_path / "back.png"
+    api.unpack_to_file(blob, str(back), model=model_file, jobs=2)
+    assert np.array_equal(np.asarray(PIL.open(back)), _sample("coins"))
+    assert api.unpack(blob, model=model_file, jobs=2) == back.read_bytes()
+
+    class Files(api.Sink):
+        def __init__(self):
+            self.got = {}
+
+        def data(self, mem, raw, n):
+            self.got[mem.path] = self.got.get(mem.path, b"") + raw
+
+    sink = Files()
+    api.decode_stream(one, sink, model_file, jobs=2)
+    assert sink.got["plates/a.pgm"] == (d / "a.pgm").read_bytes()
+    assert np.array_equal(np.asarray(PIL.open(io.BytesIO(sink.got["plates/b.png"]))), _sample("coins"))
+
+
+def test_pixel_model_on_the_command_line_with_jobs_and_per_file(model_file, tmp_path):
+    d = _plates(tmp_path, n=2)
     arch = tmp_path / "plates.lcodec"
-    for extra in (["--jobs", "2"], ["--resume"], ["--cluster", "tcp://127.0.0.1:1"]):
-        r = _lc("pack", d, "-o", arch, "-m", model_file, *extra)
-        assert r.returncode == 2 and b"byte models only" in r.stderr and b"Traceback" not in r.stderr, r.stderr
-        assert not arch.exists()
-    r = _lc("pack", d, "-o", tmp_path / "each", "-m", model_file, "--per-file")
-    assert r.returncode == 2 and b"byte models only" in r.stderr, r.stderr
-    arch.write_bytes(api.pack_paths([str(d)], model=model_file)[0])
+    r = _lc("pack", d, "-o", arch, "-m", model_file, "--jobs", "2")
+    assert r.returncode == 0, r.stderr
+    assert b"images as pixels" in r.stderr
+    assert arch.read_bytes() == api.pack_paths([str(d)], model=model_file)[0]
     r = _lc("unpack", arch, "-o", tmp_path / "out", "-m", model_file, "--jobs", "2")
-    assert r.returncode == 2 and b"byte models only" in r.stderr and not (tmp_path / "out").exists()
-    r = _lc("verify", arch, "-m", model_file, "--jobs", "2")
-    assert r.returncode == 2 and b"byte models only" in r.stderr
+    assert r.returncode == 0, r.stderr
+    _same_images(tmp_path / "out" / "plates", d)
+    r = _lc("verify", arch, "-m", model_file, "--jobs", "2", "--against", d)
+    assert r.returncode == 0 and b"pixel-exact image" in r.stdout, r.stderr
+    r = _lc("pack", d, "-o", tmp_path / "each", "-m", model_file, "--per-file", "--jobs", "2")
+    assert r.returncode == 0, r.stderr
+    for f in d.iterdir():
+        assert (tmp_path / "each" / "plates" / (f.name + ".lcodec")).read_bytes() == \
+            api.pack(f.read_bytes(), model=model_file), f.name
+
+
+def test_local_dask_cluster_gives_the_same_pixel_archive(model_file, tmp_path):
+    distributed = pytest.importorskip("distributed")
+    d = _plates(tmp_path, n=2)
+    local, _ = api.pack_paths([str(d)], model=model_file)
+    with distributed.LocalCluster(n_workers=2, processes=True, threads_per_worker=1, host="127.0.0.1",
+                                  dashboard_address=None) as cluster:
+        addr = cluster.scheduler_address
+        api.pack_to([str(d)], str(tmp_path / "c.lcodec"), model=model_file, cluster=addr)
+        assert (tmp_path / "c.lcodec").read_bytes() == local
+        rep = api.verify(local, model=model_file, against=str(d), cluster=addr)
+        assert rep.ok and rep.guarantees.get("pixel-exact image") == 2, rep.problems
+
+
+def test_per_file_job_with_a_pixel_model_writes_what_pack_writes_and_resumes(model_file, tmp_path):
+    d = _plates(tmp_path, n=2)
+    out = tmp_path / "each"
+    man = api.pack_each([str(d)], str(out), model=model_file, jobs=2)
+    assert man["packed"] == len(man["members"]) == 6 and man["kept"] == 0
+    for e in man["members"]:
+        orig = tmp_path / e["path"]
+        arch = (out / e["archive"]).read_bytes()
+        assert arch == api.pack(orig.read_bytes(), model=model_file)  # the same bytes as packing it alone
+        # the manifest describes the original (hashlib), whatever the archive holds
+        assert e["sha256"] == hashlib.sha256(orig.read_bytes()).hexdigest() and e["bytes"] == orig.stat().st_size
+        back = tmp_path / "back" / e["path"]
+        back.parent.mkdir(parents=True, exist_ok=True)
+        api.unpack_to_file(arch, str(back), model=model_file)
+    assert {e["guarantee"] for e in man["members"] if e["path"].endswith(".png")} == {"pixel-exact"}
+    _same_images(tmp_path / "back" / "plates", d)
+    # resume: every member is still good and kept; an edited image is coded again
+    (d / "extra-0.pgm").write_bytes(_pgm(_sample("moon", 22, 22)))
+    man2 = api.pack_each([str(d)], str(out), model=model_file, resume=True)
+    status = {e["path"]: e["status"] for e in man2["members"]}
+    assert status.pop("plates/extra-0.pgm") == "packed" and set(status.values()) == {"kept"}
+    assert (out / "plates" / "extra-0.pgm.lcodec").read_bytes() == api.pack((d / "extra-0.pgm").read_bytes(),
+                                                                              model=model_file)
+
+
+def test_an_interrupted_pixel_job_resumes_with_the_same_bytes(model_file, tmp_path, monkeypatch):
+    """--resume with a pixel model: a job stopped after some frames keeps its partial
+    archive and journal; the rerun codes only the rest and writes the uninterrupted bytes.
+    An image changed in between is refused."""
+    from lcodec.archive import runners, write
+    monkeypatch.setattr(runners, "BATCH_FRAMES", 1)  # a task (and a journal point) per frame
+    monkeypatch.setattr(write, "JOURNAL_EVERY_S", 0.0)
+    d = _plates(tmp_path)
+    out = tmp_path / "plates.lcodec"
+    journal = tmp_path / ".plates.lcodec.lcodec-journal"
+    coded = []
+
+    def stop_after_five(n):
+        coded.append(n)
+        if len(coded) == 5:
+            raise KeyboardInterrupt
+
+    with pytest.raises(KeyboardInterrupt):
+        api.pack_to([str(d)], str(out), model=model_file, resume=True, progress=stop_after_five)
+    assert not out.exists() and journal.exists()
+    import json
+    done = json.loads(journal.read_text())["frames_done"]
+    assert done == 4
+    stats = api.pack_to([str(d)], str(out), model=model_file, resume=True)
+    fresh, all_stats = api.pack_paths([str(d)], model=model_file)
+    assert out.read_bytes() == fresh
+    assert stats.kept_frames == done and stats.frames == all_stats.frames - done
+    assert not journal.exists()
+    # interrupted again, then an image that was already coded changes its pixels: refused
+    out.unlink()
+    coded.clear()
+    with pytest.raises(KeyboardInterrupt):
+        api.pack_to([str(d)], str(out), model=model_file, resume=True, progress=stop_after_five)
+    a = _sample("camera").copy()
+    a[3, 4] ^= 1
+    st = os.stat(d / "a.pgm")
+    (d / "a.pgm").write_bytes(_pgm(a))
+    os.utime(d / "a.pgm", ns=(st.st_atime_ns, st.st_mtime_ns))  # same size and time: only the pixels differ
     from lcodec.errors import UsageError
-    with pytest.raises(UsageError):
-        api.decode_stream(arch.read_bytes(), api._Sink(), model_file)
+    with pytest.raises(UsageError, match="changed since the interrupted run"):
+        api.pack_to([str(d)], str(out), model=model_file, resume=True)
 
 
 def test_threads_on_byte_archives(tmp_path):
@@ -1195,7 +1339,7 @@ def test_decoders_keep_blas_on_one_thread(model_file, tmp_path):
     """Decoding image frames (1 or 2 threads) puts BLAS on one thread and leaves it there,
     also when the caller had set 2 meanwhile: restoring it after each decode made OpenBLAS
     change its thread count back and forth, and the next threaded decode collapsed
-    (DEVELOPERS.md). threadpoolctl reports the setting."""
+    (docs/notes/model-tessel.md, "Decoding threads"). threadpoolctl reports the setting."""
     from threadpoolctl import threadpool_info, threadpool_limits
     d = tmp_path / "plates"
     d.mkdir()
@@ -1252,3 +1396,47 @@ def test_blas_guard_holds_across_interleaved_decoders():
             t.join(20)
         assert seen == {"b_after_a_left": [1] * n}
     assert blas() == [1] * n
+
+
+def test_a_pixel_job_killed_mid_run_resumes_with_the_same_bytes(model_file, tmp_path):
+    """`lcodec pack --resume --jobs 2` with a pixel model, SIGKILLed (with its workers) once
+    its journal records finished frames: the rerun codes only the rest and writes the
+    bytes an uninterrupted run writes (as tests/test_scale.py does for byte models)."""
+    import json
+    import signal
+    import time
+    d = tmp_path / "plates"
+    d.mkdir()
+    for i in range(24):  # enough frames that the job is still running when the journal has some
+        a = _sample(("camera", "moon", "page", "coins")[i % 4], 150 + i, 160)
+        a = [a, a[::-1], a[:, ::-1], a[::-1, ::-1]][(i // 4) % 4]
+        (d / f"plate-{i:02d}.pgm").write_bytes(_pgm(np.ascontiguousarray(a)))
+    out = tmp_path / "plates.lcodec"
+    journal = tmp_path / ".plates.lcodec.lcodec-journal"
+    args = ["pack", d, "-o", out, "-m", model_file, "--resume", "--jobs", "2"]
+
+    def frames_done():
+        try:
+            return json.loads(journal.read_text())["frames_done"]
+        except (OSError, ValueError, KeyError):
+            return 0
+
+    p = subprocess.Popen([sys.executable, "-m", "lcodec", *map(str, args)], stdout=subprocess.DEVNULL,
+                         stderr=subprocess.PIPE, start_new_session=True)
+    killed, t0 = False, time.monotonic()
+    while p.poll() is None and time.monotonic() - t0 < 300:
+        if frames_done() >= 2:
+            os.killpg(p.pid, signal.SIGKILL)  # the job and its worker processes
+            killed = True
+            break
+        time.sleep(0.02)
+    p.wait()
+    assert killed, "the job ended before it could be interrupted"
+    assert not out.exists() and (tmp_path / ".plates.lcodec.lcodec-partial").exists()
+    done = frames_done()
+    r = _lc(*args)
+    assert r.returncode == 0, r.stderr
+    fresh, stats = api.pack_paths([str(d)], model=model_file)
+    assert out.read_bytes() == fresh
+    assert f"({done} more kept from the interrupted run)".encode() in r.stderr, r.stderr
+    assert not journal.exists()

@@ -26,7 +26,8 @@ import numpy as np
 import pytest
 from click.testing import CliRunner
 
-from lcodec import api, modelfile
+from lcodec import api
+from lcodec.format import modelfile
 from lcodec.cli import main as cli_group
 from lcodec.errors import ModelError
 from lcodec.models import load_model

@@ -25,10 +25,10 @@ from html.parser import HTMLParser
 
 import pytest
 
-from lcodec import bench as B
-from lcodec.baselines import make_baselines
+from lcodec.measure import bench as B
+from lcodec.measure.baselines import make_baselines
 from lcodec.errors import UsageError
-from lcodec.report import CHARTS, require_matplotlib, write_report
+from lcodec.measure.report import CHARTS, require_matplotlib, write_report
 
 from pageshot import ink_stats, screenshot
 
@@ -162,7 +162,7 @@ def test_summary_markdown_has_the_totals_and_model_sizes(report, bench_rows):
 
 
 def test_pages_say_what_each_baseline_is(report, bench_rows):
-    from lcodec.baselines import DESCRIPTIONS
+    from lcodec.measure.baselines import DESCRIPTIONS
 
     out, _ = report
     md = (out / "summary.md").read_text()

@@ -22,7 +22,7 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from lcodec import api
-from lcodec import container as C
+from lcodec.format import container as C
 from support import stdlib_file  # noqa: E402
 
 # -- the stated growth bound for incompressible data --------------------------------------

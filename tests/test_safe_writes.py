@@ -25,7 +25,7 @@ import pytest
 from click.testing import CliRunner
 
 from lcodec import api, fsio
-from lcodec import salvage as S
+from lcodec.archive import salvage as S
 from lcodec.cli import main as cli_group
 from lcodec.errors import UsageError
 from support import stdlib_file  # noqa: E402

@@ -19,9 +19,10 @@ import sys
 import pytest
 from click.testing import CliRunner
 
-from lcodec import api, modelfile
-from lcodec import container as C
-from lcodec import salvage as S
+from lcodec import api
+from lcodec.format import modelfile
+from lcodec.format import container as C
+from lcodec.archive import salvage as S
 from lcodec.cli import main as cli_group
 from lcodec.errors import ModelError
 from lcodec.models.strata import Strata

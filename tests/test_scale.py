@@ -21,8 +21,9 @@ import time
 
 import pytest
 
-from lcodec import api, scale
-from lcodec import container as C
+from lcodec import api
+from lcodec.archive import plan as P, read as R, runners as scale, write as W
+from lcodec.format import container as C
 from lcodec.errors import DataError, UsageError
 from lcodec.models.strata import Strata
 from support import stdlib_file
@@ -167,14 +168,14 @@ def test_pack_reads_input_only_a_bounded_window_ahead_of_what_it_wrote(big, tmp_
     src.write_bytes(big * 2)
     frame_size = 2048  # 293 frames
     reads = []
-    real = api._read_frames
+    real = P._read_frames
 
     def counting(s, fs):
         for raw in real(s, fs):
             reads.append(len(raw))
             yield raw
 
-    monkeypatch.setattr(api, "_read_frames", counting)
+    monkeypatch.setattr(P, "_read_frames", counting)
     ahead = []
 
     class Spy:
@@ -192,10 +193,10 @@ def test_pack_reads_input_only_a_bounded_window_ahead_of_what_it_wrote(big, tmp_
         def __getattr__(self, k):
             return getattr(self.f, k)
 
-    plan = api._plan_inputs([str(src)], frame_size, Strata().identity)
+    plan = P._plan_inputs([str(src)], frame_size, Strata())
     spy = Spy(str(tmp_path / "out.lcodec"))
     with scale.runner(Strata(), 1) as r:
-        api._write_plan_to(spy, plan, r, api.PackStats())
+        W._write_plan_to(spy, plan, r, api.PackStats())
     spy.f.close()
     n = -(-len(big) * 2 // frame_size)
     per_batch = scale.BATCH_BYTES // frame_size
@@ -217,16 +218,16 @@ def test_unpack_writes_each_frame_as_it_is_decoded(tmp_path, monkeypatch):
     blob = stored_archive(data, 4096)
     n = len(C.read_container(blob).frames)
     taken = []
-    real = api._frame_fields
+    real = R.frame_fields
 
     def counting(fr):
         taken.append(fr.index)
         return real(fr)
 
-    monkeypatch.setattr(api, "_frame_fields", counting)
+    monkeypatch.setattr(R, "frame_fields", counting)
     seen = []
 
-    class Sink(api._Sink):
+    class Sink(api.Sink):
         def data(self, mem, raw, k):
             seen.append((len(taken), len(raw)))
 
@@ -255,9 +256,9 @@ def test_an_input_that_changes_while_packing_is_refused(tmp_path):
     p = tmp_path / "log.txt"
     p.write_bytes(b"x" * 1000)
     with pytest.raises(UsageError, match="changed while it was being packed"):
-        list(api._read_frames(api._Source(2000, path=str(p)), 512))
+        list(P._read_frames(P._Source(2000, path=str(p)), 512))
     with pytest.raises(UsageError, match="changed while it was being packed"):
-        list(api._read_frames(api._Source(500, path=str(p)), 512))
+        list(P._read_frames(P._Source(500, path=str(p)), 512))
 
 
 # -- corpus jobs and resume ------------------------------------------------------------------------

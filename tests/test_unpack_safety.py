@@ -5,7 +5,7 @@ import stat
 import pytest
 
 from lcodec import api
-from lcodec import container as C
+from lcodec.format import container as C
 from lcodec.errors import DataError, UsageError
 
 

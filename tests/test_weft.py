@@ -9,7 +9,7 @@ import numpy as np
 import pytest
 
 import lcodec
-from lcodec import modelfile
+from lcodec.format import modelfile
 from lcodec.models import load_model
 from lcodec.errors import ModelError
 from lcodec.models.weft import FNV_PRIME, GOLDEN_MIX, PAD, Weft, context_rows
@@ -166,7 +166,7 @@ def test_same_archive_across_threads_and_backends(tmp_path, stdlib_text, model):
 @pytest.mark.parametrize("preset", ["tiny", "tiny-hashed"])
 def test_training_integer_model_close_to_float(tmp_path, stdlib_text, preset):
     pytest.importorskip("torch")
-    from lcodec import train as T
+    from lcodec.training import train as T
 
     corpus = tmp_path / "corpus"
     corpus.mkdir()

@@ -9,7 +9,7 @@ from __future__ import annotations
 import os
 
 from ..errors import DataError, ModelError
-from .. import modelfile
+from ..format import modelfile
 from .strata import Strata
 from .weft import Weft
 from .braid import Braid

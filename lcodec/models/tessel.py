@@ -521,7 +521,7 @@ def limit_blas() -> None:
     products are small: one thread is faster). The setting is process-wide and deliberately
     not restored: restoring it after each decode made OpenBLAS change its thread count back
     and forth, and a decode in 2 threads after such a change ran at 4,800-16,000 pixels per
-    second against 274,000-283,000 with the limit kept (load about 3; DEVELOPERS.md,
+    second against 274,000-283,000 with the limit kept (load about 3; docs/notes/model-tessel.md,
     "Decoding threads"). Asked on every call (about 0.4 ms), so that a BLAS library loaded
     since the last call is limited too."""
     from threadpoolctl import threadpool_limits

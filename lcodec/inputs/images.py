@@ -23,8 +23,8 @@ from dataclasses import dataclass
 import numpy as np
 from numba import njit
 
-from .models.tessel import FLAG_BIG_ENDIAN, FLAG_SIGNED, MAX_SAMPLES
-from .pixels import FLAG_RECORD, Layout
+from ..models.tessel import FLAG_BIG_ENDIAN, FLAG_SIGNED, MAX_SAMPLES
+from .layout import FLAG_RECORD, Layout
 
 RECORD_MAGIC = b"\x9blcpix\r\n"  # pixel record (pixel-exact content)
 PNG_SIG = b"\x89PNG\r\n\x1a\n"
@@ -456,7 +456,7 @@ def rebuild(content: bytes) -> bytes:
 def read_samples(data: bytes) -> np.ndarray | None:
     """Samples (rows, cols, channels) as the model sees them, for training; None if the
     file is not an image lcodec models."""
-    from .pixels import region_values
+    from .layout import region_values
 
     info = analyse(data)
     if info is None:

@@ -1,28 +1,24 @@
-"""Image frames: one frame holds one image's content (docs/FORMAT.md, "Image frames").
+"""Image layouts: where an image file's samples lie (docs/FORMAT.md, "Image frames").
 
-The content is `prefix | pixel region | suffix`, where the pixel region holds
-rows x columns x channels samples of 1 or 2 bytes, interleaved, in raster order. The
-frame payload is a small plain descriptor of that layout followed by one range-coder
-stream: first the prefix and suffix bytes (coded with the built-in strata model, one
-lane), then the samples (coded with the pixel model in wavefront order).
+An image content is `prefix | pixel region | suffix`, where the pixel region holds
+rows x columns x channels samples of 1 or 2 bytes, interleaved, in raster order. A
+`Layout` says where the region is and how its samples are stored; its plain descriptor
+opens every image frame's payload. The readers of image formats (inputs/images.py) find
+layouts; the image frame kind (frames/imageframe.py) codes the samples they describe.
 """
 from __future__ import annotations
 
-from dataclasses import dataclass, replace
+from dataclasses import dataclass
 
-import constriction
 import numpy as np
 
-from .container import read_uvarint, uvarint
-from .errors import DataError, ModelError
-from .models.tessel import FLAG_BIG_ENDIAN, FLAG_SIGNED, MAX_SAMPLES, PAYLOAD_VERSION
+from ..errors import DataError
+from ..format.container import read_uvarint, uvarint
+from ..models.tessel import FLAG_BIG_ENDIAN, FLAG_SIGNED, MAX_SAMPLES, PAYLOAD_VERSION
 
 FLAG_RECORD = 4  # the content is a pixel record (pixel-exact); else the file's own bytes
 REPLICATED_VERSION = 2  # payload version of a frame whose samples are an exact block replication
 MAX_REPEAT = 16  # the largest replication factor looked for (per axis)
-
-_FAMILY = constriction.stream.model.Categorical(perfect=False)
-
 
 @dataclass(frozen=True)
 class Layout:
@@ -115,35 +111,6 @@ def side_bytes(raw, lay: Layout) -> bytes:
     return bytes(raw[:lay.offset]) + bytes(raw[lay.offset + lay.region_len:])
 
 
-def encode_image_frame(model, raw: bytes, lay: Layout) -> tuple[bytes, float, float]:
-    """(payload, NLL bits of the side bytes, NLL bits of the samples)."""
-    lay.check(len(raw))
-    enc = constriction.stream.queue.RangeEncoder()
-    side = side_bytes(raw, lay)
-    nll_side = nll_pix = 0.0
-    if side:
-        arr = np.frombuffer(side, np.uint8)
-        for syms, tab in model.teacher_chunks(arr, np.zeros(1, np.int64), np.array([len(arr)], np.int64)):
-            if len(syms):
-                enc.encode(np.ascontiguousarray(syms, np.int32), _FAMILY, np.ascontiguousarray(tab, np.float64))
-                nll_side += _nll(syms, tab)
-    v = region_values(raw, lay)
-    fr, fc = replication(v)
-    if (fr, fc) != (1, 1):  # code one sample of each block; the decoder repeats it
-        lay = replace(lay, rep_rows=fr, rep_cols=fc)
-        v = np.ascontiguousarray(v[::fr, ::fc])
-    for syms, tab in model.teacher_tables(v, lay.deep):
-        enc.encode(np.ascontiguousarray(syms, np.int32), _FAMILY, tab)
-        nll_pix += _nll(syms, tab)
-    words = np.asarray(enc.get_compressed(), "<u4").tobytes()
-    return lay.descriptor() + words, nll_side, nll_pix
-
-
-def _nll(syms, tab) -> float:
-    chosen = tab[np.arange(len(syms)), syms]
-    return float(-np.log2(chosen / tab.sum(axis=1)).sum())
-
-
 def read_descriptor(payload, raw_len: int) -> tuple[Layout, int]:
     mv = memoryview(payload)
     if len(mv) < 1 or mv[0] not in (PAYLOAD_VERSION, REPLICATED_VERSION):
@@ -162,32 +129,3 @@ def read_descriptor(payload, raw_len: int) -> tuple[Layout, int]:
     if (len(mv) - pos) % 4:
         raise DataError("image frame damaged (coded words are not whole 32-bit words)")
     return lay, pos
-
-
-def decode_image_frame(model, payload, raw_len: int, record=None) -> bytes:
-    lay, pos = read_descriptor(payload, raw_len)
-    if not model.has_depth(lay.deep):
-        raise ModelError(f"this model has no network for {8 * lay.bps}-bit samples")
-    words = np.frombuffer(bytes(payload[pos:]), "<u4").astype(np.uint32)
-    dec = constriction.stream.queue.RangeDecoder(words)
-    n_side = raw_len - lay.region_len
-    side = np.empty(n_side, np.uint8)
-    if n_side:
-        step = model.stepper(np.array([n_side], np.int64))
-        prev = np.zeros(1, np.int32)
-        try:
-            for t in range(n_side):
-                tab = np.ascontiguousarray(step(prev, 1 if t else 0, 1), np.float64)
-                s = dec.decode(_FAMILY, tab)
-                side[t] = s[0]
-                prev[0] = s[0]
-        finally:
-            if hasattr(step, "close"):
-                step.close()
-    v = model.step_decode(lay.rows // lay.rep_rows, lay.cols // lay.rep_cols, lay.channels, lay.deep,
-                          lambda tab: dec.decode(_FAMILY, np.ascontiguousarray(tab, np.float64)), record)
-    if lay.replicated:
-        v = np.repeat(np.repeat(v, lay.rep_rows, axis=0), lay.rep_cols, axis=1)
-    region = values_region(v, lay)
-    sb = side.tobytes()
-    return sb[:lay.offset] + region + sb[lay.offset:]

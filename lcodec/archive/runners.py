@@ -3,7 +3,7 @@
 Frames are independent (every frame starts from a fresh model state), so any worker
 may code any frame and the archive is the same bytes whoever coded it: the parent
 hands out batches of frames in order, keeps a bounded number in flight, and writes the
-results back in frame order (DEVELOPERS.md, "Parallel coding").
+results back in frame order (DEVELOPERS.md, "The pipeline").
 
 A worker builds its model once, from a `ModelSpec`: a built-in model's identity, or a
 model file's bytes (its identity is their SHA-256). Local workers get the spec through
@@ -13,7 +13,8 @@ state crosses a process: a worker compiles (or loads from numba's cache) its own
 and a model file's bytes are read by modelfile.parse, which never runs code.
 
 Work and results are plain bytes and tuples:
-  encode_batch(key, [raw, ...])        -> [(record bytes, model NLL bits, stored?), ...]
+  encode_batch(key, [work, ...])       -> [(record bytes, model NLL bits, stored?, figures), ...]
+                                          (work: a frame's bytes, or an ImageWork: frames/)
   decode_batch(key, [(index, method, raw_len, lanes, raw_crc, coded_crc, payload), ...])
                                        -> [(raw bytes or None, problem or None), ...]
 """
@@ -26,7 +27,10 @@ import os
 from collections import deque
 from dataclasses import dataclass
 
-from .errors import UsageError
+from ..errors import UsageError
+from ..format import modelfile
+from ..frames import code_frame, decode_one
+from ..models import ARCHITECTURES, BUILTIN, Loaded
 
 BATCH_BYTES = 1 << 17  # frames per task: up to about this many raw bytes (many small files share a task)
 BATCH_FRAMES = 256
@@ -49,8 +53,6 @@ class ModelSpec:
 
 def model_spec(model) -> ModelSpec:
     """The spec of a model object, refused (UsageError) when workers could not rebuild it."""
-    from .models import BUILTIN, Loaded
-
     ident = model.identity
     text = json.dumps(ident, sort_keys=True, separators=(",", ":"))
     if isinstance(model, Loaded):
@@ -92,9 +94,6 @@ def model_for(key: str):
 
 
 def build(spec: ModelSpec):
-    from . import modelfile
-    from .models import BUILTIN, ARCHITECTURES, Loaded
-
     ident = json.loads(spec.identity_json)
     if spec.kind == "builtin":
         return BUILTIN[ident["model"]].from_identity(ident)
@@ -107,15 +106,11 @@ def build(spec: ModelSpec):
 
 # -- the work (module level: importable by workers) ------------------------------------------
 def encode_batch(key: str, raws: list) -> list:
-    from .api import code_frame
-
     m = model_for(key)
     return [None if raw is None else code_frame(m, raw) for raw in raws]
 
 
 def decode_batch(key: str, items: list) -> list:
-    from .api import decode_one
-
     m = model_for(key)
     return [decode_one(m, *it) for it in items]
 

@@ -33,7 +33,7 @@ import shutil
 from typing import Sequence
 
 from .bench import ROW_KEYS, TOTAL, total_rows, write_csv, write_json
-from .errors import UsageError
+from ..errors import UsageError
 
 CHARTS = ("bits_per_byte", "per_file", "tradeoff", "overhead")
 CAPTIONS = {
@@ -507,7 +507,7 @@ def write_report(rows: Sequence[dict], out_dir: str, title: str = "lcodec bench 
 def _write_folder(out_dir: str, files: dict, rows) -> None:
     """A new folder is written under a temporary name and renamed into place; into an
     existing folder (empty, or --force) each file is written atomically."""
-    from .fsio import atomic_write
+    from ..fsio import atomic_write
 
     def put(folder):
         for name, blob in files.items():

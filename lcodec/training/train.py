@@ -19,13 +19,15 @@ import time
 
 import numpy as np
 
-from . import __version__, modelfile
-from .errors import UsageError
-from .models.weft import HASH_KEYS, LUT_STEPS_PER_NAT, PAD, Weft, context_rows
+from ..errors import UsageError
+from ..format import modelfile
+from ..version import __version__
+from .curves import write_curve_png  # noqa: F401  (also lcodec.training.train.write_curve_png, as before)
+from ..models.weft import HASH_KEYS, LUT_STEPS_PER_NAT, PAD, Weft, context_rows
 
 PRESETS = {
     # name: window, embed, hidden, [hashed contexts: orders, 2**bits rows each, width],
-    # batch, learning rate (figures in DEVELOPERS.md)
+    # batch, learning rate (figures in docs/notes/model-weft.md)
     "weft": dict(window=16, embed=8, hidden=192, hash_orders=[2, 3, 4, 5, 6, 8], hash_bits=17, hash_embed=16,
                  batch=4096, lr=3e-3),
     "small": dict(window=16, embed=12, hidden=192, batch=1024, lr=3e-3),
@@ -178,32 +180,6 @@ def export(net, cfg) -> tuple[dict, dict]:
     return params, arrays
 
 
-def write_curve_png(curve: list, path: str, title: str) -> str | None:
-    """Train and validation bits per byte against time; None when matplotlib is missing."""
-    try:
-        import matplotlib
-        matplotlib.use("Agg")
-        import matplotlib.pyplot as plt
-    except ImportError:
-        return None
-    fig, ax = plt.subplots(figsize=(7, 4), dpi=100)
-    t = [c["seconds"] for c in curve]
-    if all("train_bpb" in c for c in curve):
-        ax.plot(t, [c["train_bpb"] for c in curve], label="train (running mean)", color="#3b6ea8")
-    ax.plot(t, [c["val_bpb"] for c in curve], label="validation", color="#c8553d", marker="o", ms=3)
-    ax.set_xlabel("seconds")
-    ax.set_ylabel("bits per byte")
-    ax.set_title(title)
-    ax.grid(alpha=0.3)
-    ax.legend()
-    fig.tight_layout()
-    tmp = path + ".part"
-    fig.savefig(tmp, format="png")
-    plt.close(fig)
-    os.replace(tmp, path)
-    return path
-
-
 def integer_bpb(model: Weft, pos: Positions, idx: np.ndarray) -> float:
     bits = 0.0
     for i in range(0, len(idx), 8192):
@@ -341,17 +317,17 @@ def train(corpus: list[str], out: str, time_limit: float = 600.0, preset: str = 
 
 # -- pixel models (lcodec train --kind image) ---------------------------------------------------
 IMAGE_PRESETS = {
-    # name: embed per slot, hidden, batch, learning rate (figures in DEVELOPERS.md)
+    # name: embed per slot, hidden, batch, learning rate (figures in docs/notes/model-weft.md)
     "small": dict(embed=8, hidden=128, batch=2048, lr=3e-3),
     "tiny": dict(embed=2, hidden=16, batch=512, lr=5e-3),  # for tests
 }
 
 
-ADAPT_K = 4096  # prior strength of the adaptive counts (figures in DEVELOPERS.md)
-STRUCTURE_K = 32  # prior strength of the structure counts (figures in DEVELOPERS.md)
+ADAPT_K = 4096  # prior strength of the adaptive counts (figures in docs/notes/model-weft.md)
+STRUCTURE_K = 32  # prior strength of the structure counts (figures in docs/notes/model-weft.md)
 AUGMENT_SAMPLES = 1 << 24  # mirrored, flipped and transposed copies join while the training samples stay below this
 STRUCTURE_CAP = 12  # evidence cap of the two-member weights, in bits
-LAW = {"limit": 255, "cap": 12}  # the law stage of 16-bit samples (figures in DEVELOPERS.md)
+LAW = {"limit": 255, "cap": 12}  # the law stage of 16-bit samples (figures in docs/notes/model-weft.md)
 ADAPT_GRID = (0, 256, 1024, 4096, 16384)
 
 
@@ -396,7 +372,7 @@ def choose_adapt(model, val_images: dict, echo=print) -> dict:
 
 def read_images(paths: list[str], echo=print) -> list[tuple[str, np.ndarray]]:
     """Samples of every image lcodec models under the given files/folders (others skipped)."""
-    from .images import read_samples
+    from ..inputs.images import read_samples
 
     out = []
     for name, data in read_corpus(paths):
@@ -422,7 +398,7 @@ def train_image(corpus: list[str], out: str, time_limit: float = 120.0, preset: 
         import torch
     except ImportError:
         raise UsageError("training needs torch: run scripts/setup.sh (installs torch==2.13.0)") from None
-    from .models.tessel import EMB_ROWS, N_SLOTS, Tessel, raster_features
+    from ..models.tessel import EMB_ROWS, N_SLOTS, Tessel, raster_features
 
     if preset not in IMAGE_PRESETS:
         raise UsageError(f"unknown preset {preset!r} (have: {', '.join(IMAGE_PRESETS)})")

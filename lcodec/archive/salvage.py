@@ -38,9 +38,14 @@ import os
 import re
 from dataclasses import dataclass, field
 
-from . import container as C
-from .errors import DataError, LcodecError, ModelError, UsageError
-from .fsio import atomic_write, safe_member_path, _remove_quietly
+from ..errors import DataError, LcodecError, ModelError, UsageError
+from ..format import container as C
+from ..frames import decode_record, image_guarantee
+from ..fsio import atomic_write, safe_member_path, _remove_quietly
+from ..inputs.images import rebuild
+from ..models import default_model, for_identity, identity_text, resolve
+from .plan import KEPT_MODE_BITS
+from .read import _refuse_links, apply_folder_modes
 
 DAMAGED_SUFFIX = ".lcodec-damaged"
 REPORT_SUFFIX = ".salvage.json"
@@ -453,8 +458,6 @@ class Salvage:
 
 # -- analysis ------------------------------------------------------------------------------
 def _choose_model(hints: Hints | None, header: str, model, problems: list):
-    from .models import default_model, for_identity, identity_text, resolve
-
     if header == "good":
         return for_identity(hints.identity, model), identity_text(hints.identity)  # as unpack does
     ident = hints.identity if hints is not None else None
@@ -476,7 +479,6 @@ def _choose_model(hints: Hints | None, header: str, model, problems: list):
 
 
 def _is_record(fr) -> bool:
-    from .api import image_guarantee
     try:
         return image_guarantee(fr) == "pixel-exact"
     except DataError:
@@ -487,7 +489,6 @@ def _rebuilt(data: bytes, record: bool) -> bytes:
     """What to write for recovered content: a pixel record becomes its image file again."""
     if not record:
         return data
-    from .images import rebuild
     try:
         return rebuild(data)
     except (ValueError, KeyError, TypeError):
@@ -495,10 +496,8 @@ def _rebuilt(data: bytes, record: bool) -> bytes:
 
 
 def _decode(model, fr, progress) -> tuple[bytes | None, str]:
-    from .api import _decode_frame
-
     try:
-        return _decode_frame(model, fr), ""
+        return decode_record(model, fr), ""
     except DataError as e:
         msg = str(e)
         return None, msg[msg.find("(") + 1:-1] if msg.endswith(")") and "(" in msg else msg
@@ -735,8 +734,6 @@ def _report_text(rep: dict) -> str:
 def _write_members(res: Salvage, out_dir: str, keep_damaged: bool) -> None:
     """Members into `out_dir` through a temporary folder renamed into place (or, into an
     existing folder with --force, file by file), as api.unpack_to_dir does."""
-    from . import api
-    from .api import KEPT_MODE_BITS, _refuse_links
 
     todo = []  # (member result, path written, bytes, or None for a folder)
     taken = {r.path for r in res.members}
@@ -788,7 +785,7 @@ def _write_members(res: Salvage, out_dir: str, keep_damaged: bool) -> None:
                 os.replace(os.path.join(tmp, safe_member_path(rel_path)), dst)
             _remove_quietly(tmp)
         if res.names_checked:  # folder modes and times last, deepest first
-            api.apply_folder_modes(out_dir, folders)
+            apply_folder_modes(out_dir, folders)
     except OSError as e:
         _remove_quietly(tmp)
         raise UsageError(f"cannot write into {out_dir}: {e.strerror or e}") from None

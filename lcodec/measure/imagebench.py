@@ -22,10 +22,10 @@ import time
 
 import numpy as np
 
-from . import api
-from .errors import UsageError
-from .images import analyse
-from .pixels import region_values, side_bytes
+from ..archive import read as api_read, write as api_write
+from ..errors import UsageError
+from ..inputs.images import analyse
+from ..inputs.layout import region_values, side_bytes
 
 CODECS = ("png", "webp", "jpegls", "jpeg2000", "jpegxl")
 
@@ -103,15 +103,15 @@ def bench_file(path: str, model, codecs=CODECS) -> dict:
     if info is None:
         raise UsageError(f"{path}: not an image lcodec codes as pixels")
     t0 = time.perf_counter()
-    blob, stats = api.pack_stats(data, model)
+    blob, stats = api_write.pack_stats(data, model)
     enc_s = time.perf_counter() - t0
     t0 = time.perf_counter()
-    d = api.decode(blob, model)
+    d = api_read.decode(blob, model)
     dec_s = time.perf_counter() - t0
     content = b"".join(d.frames)
     if content != info.content:
         raise RuntimeError(f"{path}: lcodec did not round-trip")
-    if info.guarantee == "byte-exact" and api.unpack(blob, model) != data:
+    if info.guarantee == "byte-exact" and api_read.unpack(blob, model) != data:
         raise RuntimeError(f"{path}: lcodec did not round-trip byte-exact")
     lay = info.layout
     n = lay.rows * lay.cols * lay.channels

@@ -27,10 +27,11 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from . import api
-from . import container as C
-from .coder import active_lanes, lane_layout
-from .models import identity_text, resolve
+from ..archive import plan as api_plan, write as api_write
+from ..coding import active_lanes, lane_layout
+from ..format import container as C
+from ..frames import frame_lanes
+from ..models import identity_text, resolve
 from .report import readable_mode, require_matplotlib  # noqa: F401  (also used by the CLI)
 
 VIEW_TEXT_BYTES = 256 * 1024
@@ -50,10 +51,10 @@ TITLE_FROM_BIN = 5  # spans of 3 bits per byte and more carry their own hover ti
 # ---- the numbers ------------------------------------------------------------------
 
 
-def frame_spans(n: int, model, frame_size: int = api.DEFAULT_FRAME_SIZE) -> list[tuple[int, int, int]]:
+def frame_spans(n: int, model, frame_size: int = api_plan.DEFAULT_FRAME_SIZE) -> list[tuple[int, int, int]]:
     """(offset, length, lanes) of each frame of an n-byte content, as api packs it with
     `model` (lanes by api.frame_lanes)."""
-    return [(off, min(frame_size, n - off), api.frame_lanes(model, min(frame_size, n - off)))
+    return [(off, min(frame_size, n - off), frame_lanes(model, min(frame_size, n - off)))
             for off in range(0, n, frame_size)]
 
 
@@ -91,7 +92,7 @@ def _frame_costs(model, raw: np.ndarray, lanes: int) -> np.ndarray:
     return out
 
 
-def symbol_costs(data: bytes, model=None, frame_size: int = api.DEFAULT_FRAME_SIZE, progress=None) -> np.ndarray:
+def symbol_costs(data: bytes, model=None, frame_size: int = api_plan.DEFAULT_FRAME_SIZE, progress=None) -> np.ndarray:
     """The cost in bits of every byte of `data` under `model` (None: the built-in
     adaptive model; a model file's path; or a model object), one float64 per byte in
     file order, framed and laned as api.pack_stats codes it. Each frame starts from a
@@ -196,13 +197,13 @@ def top_windows(costs: np.ndarray, window: int = WINDOW, n: int = TOP_N) -> list
     return out
 
 
-def explain(data: bytes, model=None, frame_size: int = api.DEFAULT_FRAME_SIZE, progress=None) -> Explanation:
+def explain(data: bytes, model=None, frame_size: int = api_plan.DEFAULT_FRAME_SIZE, progress=None) -> Explanation:
     """Symbol costs of `data`, and the archive api.pack_stats makes of it, side by side.
     `progress`, if given, is called with byte counts (2 x len(data) in all)."""
     data = bytes(data)
     m = resolve(model)
     costs = symbol_costs(data, m, frame_size, progress)
-    blob, stats = api.pack_stats(data, m, frame_size, progress)
+    blob, stats = api_write.pack_stats(data, m, frame_size, progress)
     cont = C.read_container(blob)
     spans = frame_spans(len(data), m, frame_size)
     frames = []
@@ -511,7 +512,7 @@ def heat_png(ex: Explanation, path: str | None = None, columns: int = 1200) -> b
     plt.close(fig)
     png = buf.getvalue()
     if path is not None:
-        from .fsio import atomic_write
+        from ..fsio import atomic_write
 
         atomic_write(path, png, force=True)
     return png

@@ -46,7 +46,7 @@ import os
 import time
 from typing import Callable, Sequence
 
-from .errors import DataError, UsageError
+from ..errors import DataError, UsageError
 
 TOTAL = "*TOTAL*"
 ROW_KEYS = (
@@ -173,8 +173,7 @@ class LcodecCodec:
     kind = "lcodec"
 
     def __init__(self, model=None, label: str = "lcodec"):
-        from . import api  # noqa: F401  (imported late: the bench needs it only here)
-        from .models import resolve
+        from ..models import resolve
 
         self.name = label
         self.note = ""
@@ -187,18 +186,18 @@ class LcodecCodec:
             self.model_bytes = int(getattr(model, "model_bytes", 0))
 
     def compress_stats(self, data: bytes):
-        from . import api
+        from ..archive.write import pack_stats
 
-        blob, stats = api.pack_stats(data, model=self._model)
+        blob, stats = pack_stats(data, model=self._model)
         return blob, float(stats.nll_bits)
 
     def compress(self, data: bytes) -> bytes:
         return self.compress_stats(data)[0]
 
     def decompress(self, blob: bytes) -> bytes:
-        from . import api
+        from ..archive.read import unpack
 
-        return api.unpack(blob, model=self._model)
+        return unpack(blob, model=self._model)
 
 
 def lcodec_codec(model=None, label: str = "lcodec") -> LcodecCodec:
@@ -331,7 +330,7 @@ def run_bench(corpus_dir: str, lcodec_codecs: Sequence, baselines: Sequence | No
 
 def write_json(rows: Sequence[dict], path: str) -> None:
     """The rows as a JSON list of objects (keys ROW_KEYS), written atomically."""
-    from .fsio import atomic_write
+    from ..fsio import atomic_write
 
     text = json.dumps([{k: r.get(k) for k in ROW_KEYS} for r in rows], indent=1, allow_nan=False)
     atomic_write(path, (text + "\n").encode("utf-8"), force=True)
@@ -340,7 +339,7 @@ def write_json(rows: Sequence[dict], path: str) -> None:
 def write_csv(rows: Sequence[dict], path: str) -> None:
     """The rows as CSV with a header line (columns ROW_KEYS; None is an empty cell),
     written atomically."""
-    from .fsio import atomic_write
+    from ..fsio import atomic_write
 
     buf = io.StringIO(newline="")
     w = csv.DictWriter(buf, fieldnames=ROW_KEYS, lineterminator="\n")

@@ -13,9 +13,11 @@ from __future__ import annotations
 import os
 import time
 
-from . import api, bench as B, democorpus
-from .errors import UsageError
-from .fsio import ARCHIVE_EXT, atomic_write
+from .. import api
+from ..errors import UsageError
+from ..fsio import ARCHIVE_EXT, atomic_write
+from ..measure import bench as B
+from . import corpus as democorpus
 
 STAMP = ".lcodec-demo"  # marks a work folder as the demo's own, so it may be reused
 
@@ -42,8 +44,8 @@ def run(workdir: str, scale: float = 1.0, echo=print, quiet: bool = False) -> di
     test_dir = os.path.join(corpus, "test")
     echo(f"demo corpus: {corpus} ({_describe(summary)})")
 
-    from .models import load_model
-    from .train import train
+    from ..models import load_model
+    from ..training.train import train
 
     model_path = os.path.join(workdir, "model.lcmodel")
     t0 = time.perf_counter()
