@@ -180,6 +180,23 @@ def golden_braid_memtree():
     write_vector("braid-v2-memtree", data, model=mpath, frame_size=140_000)
 
 
+def golden_braid_cut():
+    """The default preset as it now trains, with the chain cut short (chain_cut 10):
+    braid-memory-tiny.lcmodel plus the cut, and a version-2 container of new log lines."""
+    from lcodec.format import modelfile
+    from lcodec.training.braid_train import PRESETS
+
+    mpath = os.path.join(HERE, "braid-cut-tiny.lcmodel")
+    arc = os.path.join(HERE, "braid-v2-cut.lcodec")
+    if os.path.exists(arc):
+        print(f"keep {arc}")
+        return
+    meta, arrays, _ = modelfile.load(os.path.join(HERE, "braid-memory-tiny.lcmodel"))
+    params = {**meta["architecture"]["params"], "chain_cut": PRESETS["braid"]["chain_cut"]}
+    modelfile.dump(mpath, {"name": "braid", "params": params}, arrays)
+    write_vector("braid-v2-cut", recurring_text(81, 150_000), model=mpath, frame_size=140_000)
+
+
 def golden_tessel():
     """A tiny trained pixel model (8- and 16-bit networks) and three image containers made
     with it: an 8-bit PGM (byte-exact), a PNG with a text chunk (pixel-exact) and pydicom's
@@ -326,6 +343,7 @@ def main():
     golden_braid_fork2()
     golden_braid_memory()
     golden_braid_memtree()
+    golden_braid_cut()
     golden_tessel()
     golden_tessel_structure()
     golden_tessel_law()

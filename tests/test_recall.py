@@ -465,11 +465,13 @@ def test_kernel_cache_forgets_when_a_called_module_changes(tmp_path):
 GOLDEN = os.path.join(os.path.dirname(__file__), "golden")
 
 
-@pytest.mark.parametrize("name,model", [("braid-v2-memory", "braid-memory-tiny"), ("braid-v2-memtree", "braid-memtree-tiny")])
+@pytest.mark.parametrize("name,model", [("braid-v2-memory", "braid-memory-tiny"), ("braid-v2-memtree", "braid-memtree-tiny"),
+                                        ("braid-v2-cut", "braid-cut-tiny")])
 def test_golden_memory_models_and_containers(name, model):
-    """The default preset with a corpus memory, and braid-tree with one (made by
-    scripts/make_golden.py from log lines of which some recur): the containers (first frame
-    in two lanes) decode, also in two threads, and re-encode byte for byte."""
+    """The default preset with a corpus memory, braid-tree with one, and the default preset
+    with its chain cut short (made by scripts/make_golden.py from log lines of which some
+    recur): the containers (first frame in two lanes) decode, also in two threads, and
+    re-encode byte for byte."""
     from lcodec.container import read_container
 
     model = os.path.join(GOLDEN, model + ".lcmodel")

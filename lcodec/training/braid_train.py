@@ -37,8 +37,10 @@ PRESETS = {
     # started from the held-out sample's; lane_tables: each lane's contexts its own;
     # sse_bits: secondary estimation of the favourite byte, 2**sse_bits context buckets;
     # fork: the refinement on the byte's binary tree, its tables' and mixer's rates and
-    # the mass below which a subtree is left as it is)
-    "braid": dict(corpus_order=6, min_seen=2, budget=64 << 20, mix_shift=16, lane_tables=1, sse_bits=10,
+    # the mass below which a subtree is left as it is; chain_cut: the chain stops once less
+    # than 2**-chain_cut of the mass is left below, about 1.3-1.5x faster both ways for
+    # 0.05-0.11% more bits on the bench kinds, docs/notes/2026-12-04-speed-rows.md)
+    "braid": dict(corpus_order=6, min_seen=2, budget=64 << 20, mix_shift=16, lane_tables=1, sse_bits=10, chain_cut=10,
                   file=dict(max_order=8, hash_log2=18, discount=[[13, 18, 24]] * 9, match_min=5),
                   memory=MEMORY_DEFAULT, recall=RECALL),
     "braid-lean": dict(corpus_order=4, min_seen=2, budget=16 << 20, file=dict(S.PRESETS["o6m"]), memory=0, recall=RECALL),
@@ -172,6 +174,8 @@ def train_braid(files: list[tuple[str, bytes]], corpus: list[str], out: str, tim
         params["mix_shift"] = cfg["mix_shift"]
     if cfg.get("sse_bits"):
         params["sse_bits"] = cfg["sse_bits"]
+    if cfg.get("chain_cut"):
+        params["chain_cut"] = cfg["chain_cut"]
     model = Braid(params, arrays)
     # validation sample for the search: whole held-out files, in a seeded order, up to the cap
     rng = random.Random(seed + 1)
