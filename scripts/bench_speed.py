@@ -48,7 +48,8 @@ import numba  # noqa: E402
 import numpy as np  # noqa: E402
 
 from corpora import open_data  # noqa: E402
-from lcodec import api, baselines, coder  # noqa: E402
+from lcodec import api, baselines  # noqa: E402
+from lcodec.coding import coder  # noqa: E402
 from lcodec.models import default_model, load_model  # noqa: E402
 
 PY = sys.executable

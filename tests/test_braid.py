@@ -305,7 +305,7 @@ def test_mixed_and_fork_parallel_pass_equals_step_pass(which, request):
 def test_escape_weights_move_and_are_integers(tiny_mixed):
     """The weights a frame leaves differ from where it started (they adapt), are integers
     within their clamp, and the same frame run twice leaves the same weights."""
-    from lcodec.coder import lane_layout
+    from lcodec.coding.coder import lane_layout
     from lcodec.models.braid import MIX_CLASSES, WFRAC, WMAX
 
     m = load_model(tiny_mixed).inner

@@ -3,7 +3,7 @@ import numpy as np
 import pytest
 from scipy.stats import entropy
 
-from lcodec.coder import decode_frame, encode_frame, lane_layout, active_lanes
+from lcodec.coding.coder import decode_frame, encode_frame, lane_layout, active_lanes
 from lcodec.models.strata import Strata
 
 FRAME_FIXED_BYTES = 8  # range/ANS coder flush: at most two 32-bit words beyond the NLL (docs/FORMAT.md)
@@ -17,7 +17,7 @@ class FixedTable:
         self.coder = coder
 
     def teacher_chunks(self, data, starts, lengths, chunk_steps=4096):
-        from lcodec.coder import active_lanes
+        from lcodec.coding.coder import active_lanes
         act = active_lanes(lengths, int(lengths[0]) if len(lengths) else 0)
         for t0 in range(0, len(act), chunk_steps):
             syms = np.concatenate([data[starts[:m] + t] for t, m in enumerate(act[t0:t0 + chunk_steps], t0)]).astype(np.int32)

@@ -32,7 +32,7 @@ import numpy as np
 from numba import njit, objmode
 from numba.core.errors import NumbaWarning
 
-from .. import coder as C
+from ..coding import coder as C
 
 # The decode loops below hand each step to the coder in object mode (the GIL is taken for
 # that call only; the model's work between calls runs without it).
