@@ -670,7 +670,7 @@ class _CoderProcess:
         tunables = [t for t in env.get("GLIBC_TUNABLES", "").split(":") if t]
         env["GLIBC_TUNABLES"] = ":".join(tunables + ["glibc.malloc.hugetlb=1"])
         self.proc = subprocess.Popen(
-            [sys.executable, "-c", "from lcodec.baselines import _coder_process_main; _coder_process_main()",
+            [sys.executable, "-c", "from lcodec.measure.baselines import _coder_process_main; _coder_process_main()",
              role, str(order), str(mem)],
             stdin=subprocess.PIPE, stdout=subprocess.PIPE, env=env)
         self.role = role
