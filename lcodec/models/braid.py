@@ -154,12 +154,7 @@ def _file_update(fs, slots, checks, max_order, sym, now=-1):
         if g:
             c = np.int64(big[g - 1, sym])
         else:
-            c = np.int64(0)
-            for j in range(n1):
-                if m8[r, SYM0 + j] == sym:
-                    i = j
-                    c = np.int64(m8[r, CNT0 + j])
-                    break
+            i, c = S._line_find(m8, r, n1, sym)
         if c >= S.COUNT_LIMIT:
             t = 0
             m2 = 0
@@ -183,17 +178,9 @@ def _file_update(fs, slots, checks, max_order, sym, now=-1):
             meta[r, N3] = m3
             c = np.int64(big[g - 1, sym]) if g else np.int64(m8[r, CNT0 + i])
         if c == 0 and not g and n1 == SMALL:  # the line is full: move the row to a big row
-            g = nxt[1] + 1
-            if g > big.shape[0]:  # cannot happen (new_state's bound); refuse rather than overrun
-                raise ValueError("braid: more big rows than a frame can need")
-            nxt[1] = g
-            for s in range(256):
-                big[g - 1, s] = 0
-            for j in range(SMALL):
-                x = m8[r, SYM0 + j]
-                big[g - 1, 256 + j] = x
-                big[g - 1, x] = m8[r, CNT0 + j]
-            meta[r, BIG] = np.uint32(g)
+            g = S._take_big(meta, m8, big, r, nxt, BIG)
+            for j in range(SMALL):  # and its bytes in the order they came
+                big[g - 1, 256 + j] = m8[r, SYM0 + j]
         if g:
             big[g - 1, sym] = c + 1
             if c == 0:
@@ -429,11 +416,8 @@ def _pool_take(n_rows: int, n_big: int):
         pool["busy"] = True
         pool["gen"] += 1
         return pool["arrays"], pool["gen"]
-    raw = np.zeros(n_rows * 4 * META + 64, np.uint8)
-    off = -raw.ctypes.data % 64  # rows on cache-line boundaries
-    line = raw[off:off + n_rows * 4 * META]
-    arrays = (np.zeros((n_big, 512), np.uint8), line.view(np.uint32).reshape(n_rows, META), np.zeros(n_rows, np.uint64),
-              np.zeros(n_rows, np.uint64), line.reshape(n_rows, 4 * META))
+    meta, m8, big = S.row_arrays(n_rows, n_big, 512)  # a big row: 256 counts, then the bytes seen in order
+    arrays = (big, meta, np.zeros(n_rows, np.uint64), np.zeros(n_rows, np.uint64), m8)
     if pool is None or not pool["busy"]:
         _local.pool = {"rows": n_rows, "big": n_big, "arrays": arrays, "gen": 1, "busy": True}
     return arrays, 1  # zeroed tags hold generation 0, which never matches
@@ -600,11 +584,7 @@ class Braid:
         rows = [own, 256 * own] + [hashed] * (f.max_order - 1)
         bases = np.zeros(len(rows), np.int64)
         bases[1:] = np.cumsum(rows)[:-1]
-        # a big row is taken by the SMALL+1-th byte a row sees since it was last emptied, so
-        # a frame of n bytes, counting each byte in at most max_order + 1 rows, takes fewer
-        # than (max_order + 1) * n / (SMALL + 1) + 1 of them
-        n_big = (f.max_order + 1) * max(n, 1) // (SMALL + 1) + 1
-        arrays, gen = _pool_take(int(sum(rows)), n_big)
+        arrays, gen = _pool_take(int(sum(rows)), S.big_rows_for(n, f.max_order))
         # rows are placed in the order a frame first meets them (strata's _map_rows);
         # nxt: the next row to place, the big rows handed out
         return (arrays[0], arrays[1], bases, np.zeros(n_lanes, np.uint64), np.uint64(gen), arrays[3],

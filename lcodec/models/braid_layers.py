@@ -199,17 +199,14 @@ def _sparse_layer_mix(ent, a, b, disc, p, A, mix, rec, lid):
 # to a big row, big[meta[r, BIG] - 1] (counts[256], then the bytes seen in order), handed
 # out in the order needed. Either way a row reads as the same counts and the same list,
 # so the tables do not depend on the layout.
-TAG_LO, TAG_HI, TOT, N1, N2, N3 = 0, 1, 2, 3, 4, 5
-LAST = 6  # meta field of a file row: the lane step at which its context was last seen
+# The line is strata's (lcodec/models/strata.py): the same tag, total, distinct-byte
+# fields, SMALL bytes and their counts, and the same helpers; braid adds its own fields.
+TAG_LO, TAG_HI, TOT, N1 = S.TAG_LO, S.TAG_HI, S.TOT, S.DIST
+N2, N3 = 4, 5  # how many counts are >= 2, >= 3
+LAST = 6  # the lane step at which the row's context was last seen
 BIG = 7  # 1 + the big row holding this row's counts, or 0 while they fit the line
-META = 16  # uint32 fields per row: 64 bytes
-SMALL = 16  # bytes seen that a row holds in its own line
-SYM0, CNT0 = 32, 48  # byte offsets in the line of the bytes seen and their counts
-
-
-@njit(cache=True, nogil=True)
-def _tag_is(meta, r, chk):
-    return meta[r, TAG_LO] == np.uint32(chk & np.uint64(0xFFFFFFFF)) and meta[r, TAG_HI] == np.uint32(chk >> np.uint64(32))
+META, SMALL, SYM0, CNT0 = S.META, S.SMALL, S.SYM0, S.CNT0
+_tag_is = S._tag_is
 
 
 @njit(cache=True, nogil=True)
@@ -219,10 +216,7 @@ def _file_count(fs, r, s):
     g = np.int64(meta[r, BIG])
     if g:
         return np.int64(big[g - 1, s])
-    for i in range(np.int64(meta[r, N1])):
-        if m8[r, SYM0 + i] == s:
-            return np.int64(m8[r, CNT0 + i])
-    return np.int64(0)
+    return S._line_find(m8, r, np.int64(meta[r, N1]), s)[1]
 
 
 @njit(cache=True, nogil=True)
@@ -244,30 +238,30 @@ def _file_add(fs, r, p, A, inv, a1, a2, a3):
 
 
 @njit(cache=True, nogil=True)
-def _file_layer(fs, r, disc, p, A):
-    """The same for the file's own row r: only the bytes it has seen (as a corpus row)."""
-    meta = fs[1]
-    a1 = np.int64(disc[0])
-    a2 = np.int64(disc[1]) - a1
-    a3 = np.int64(disc[2]) - np.int64(disc[1])
-    n1 = np.int64(meta[r, N1])
-    esc = a1 * n1 + a2 * np.int64(meta[r, N2]) + a3 * np.int64(meta[r, N3])
-    # bound: as _sparse_layer (a row holds at most 256 counts <= 255)
-    inv = (np.int64(1) << INV_BITS) // (np.int64(meta[r, TOT]) * F)
-    _file_add(fs, r, p, A, inv, a1, a2, a3)
-    return (A * ((esc * inv) >> (INV_BITS - 31))) >> 31
-
-
-@njit(cache=True, nogil=True)
-def _file_layer_mix(fs, r, disc, p, A, mix, rec, lid):
-    meta = fs[1]
+def _file_terms(meta, r, disc):
+    """File row r's discount steps a1..a3, bytes seen n1, total t, escape mass and inv."""
     a1 = np.int64(disc[0])
     a2 = np.int64(disc[1]) - a1
     a3 = np.int64(disc[2]) - np.int64(disc[1])
     n1 = np.int64(meta[r, N1])
     esc = a1 * n1 + a2 * np.int64(meta[r, N2]) + a3 * np.int64(meta[r, N3])
     t = np.int64(meta[r, TOT])
-    inv = (np.int64(1) << INV_BITS) // (t * F)  # bounds as _sparse_layer
+    # bound: as _sparse_layer (a row holds at most 256 counts <= 255)
+    inv = (np.int64(1) << INV_BITS) // (t * F)
+    return a1, a2, a3, n1, t, esc, inv
+
+
+@njit(cache=True, nogil=True)
+def _file_layer(fs, r, disc, p, A):
+    """The same for the file's own row r: only the bytes it has seen (as a corpus row)."""
+    a1, a2, a3, n1, t, esc, inv = _file_terms(fs[1], r, disc)
+    _file_add(fs, r, p, A, inv, a1, a2, a3)
+    return (A * ((esc * inv) >> (INV_BITS - 31))) >> 31
+
+
+@njit(cache=True, nogil=True)
+def _file_layer_mix(fs, r, disc, p, A, mix, rec, lid):
+    a1, a2, a3, n1, t, esc, inv = _file_terms(fs[1], r, disc)
     A_own, A_below = _mix_escape(mix, rec, esc, t * F, inv, A, _mix_class(lid, n1, t))
     _file_add(fs, r, p, A_own, inv, a1, a2, a3)
     return A_below

@@ -113,14 +113,43 @@ def big_rows_for(n_bytes: int, max_order: int) -> int:
     return (max_order + 1) * max(n_bytes, 1) // (SMALL + 1) + 1
 
 
-def row_arrays(n_rows: int, n_big: int):
+def row_arrays(n_rows: int, n_big: int, big_width: int = 256):
     """Zeroed row lines (uint32 fields and the same memory as bytes, each row on a cache
-    line of its own) and big rows. Fresh arrays are zeroed by the system page by page, so
-    a frame pays only for the pages its rows touch."""
+    line of its own) and big rows (256 counts first, then whatever the model keeps).
+    Fresh arrays are zeroed by the system page by page, so a frame pays only for the
+    pages its rows touch."""
     raw = np.zeros(n_rows * 4 * META + 64, np.uint8)
     off = -raw.ctypes.data % 64
     line = raw[off:off + n_rows * 4 * META]
-    return line.view(np.uint32).reshape(n_rows, META), line.reshape(n_rows, 4 * META), np.zeros((n_big, 256), np.uint8)
+    return (line.view(np.uint32).reshape(n_rows, META), line.reshape(n_rows, 4 * META),
+            np.zeros((n_big, big_width), np.uint8))
+
+
+@njit(cache=True, nogil=True)
+def _line_find(m8, r, nd, sym):
+    """(place in the line, count) of byte sym in short row r holding nd bytes; (-1, 0)
+    when the row has not seen it."""
+    for j in range(nd):
+        if m8[r, SYM0 + j] == sym:
+            return j, np.int64(m8[r, CNT0 + j])
+    return -1, np.int64(0)
+
+
+@njit(cache=True, nogil=True)
+def _take_big(meta, m8, big, r, nxt, field):
+    """Move full short row r (SMALL bytes) to the next big row (nxt[1]: big rows handed
+    out): its 256 counts zeroed, then the line's counts; meta[r, field] = 1 + the big row,
+    which is returned. The line keeps its bytes, in the order they came."""
+    g = nxt[1] + 1
+    if g > big.shape[0]:  # cannot happen (big_rows_for's bound); refuse rather than overrun
+        raise ValueError("file rows: more big rows than a frame can need")
+    nxt[1] = g
+    for s in range(256):
+        big[g - 1, s] = 0
+    for j in range(SMALL):
+        big[g - 1, m8[r, SYM0 + j]] = m8[r, CNT0 + j]
+    meta[r, field] = np.uint32(g)
+    return g
 
 
 @njit(cache=True, nogil=True)
@@ -210,12 +239,7 @@ def _update(rows, slots, checks, max_order, sym, nxt, seen):
         if g:
             c = np.int64(big[g - 1, sym])
         else:
-            c = np.int64(0)
-            for j in range(nd):
-                if m8[r, SYM0 + j] == sym:
-                    i = j
-                    c = np.int64(m8[r, CNT0 + j])
-                    break
+            i, c = _line_find(m8, r, nd, sym)
         if c >= COUNT_LIMIT:  # halve: every count > 1 to (c + 1) >> 1; none reaches 0
             t = 0
             if g:
@@ -234,15 +258,7 @@ def _update(rows, slots, checks, max_order, sym, nxt, seen):
                 c = np.int64(m8[r, CNT0 + i])
             meta[r, TOT] = t
         if c == 0 and not g and nd == SMALL:  # the line is full: move the counts to a big row
-            g = nxt[1] + 1
-            if g > big.shape[0]:  # cannot happen (big_rows_for's bound); refuse rather than overrun
-                raise ValueError("strata: more big rows than a frame can need")
-            nxt[1] = g
-            for s in range(256):
-                big[g - 1, s] = 0
-            for j in range(SMALL):
-                big[g - 1, m8[r, SYM0 + j]] = m8[r, CNT0 + j]
-            meta[r, BIG] = np.uint32(g)
+            g = _take_big(meta, m8, big, r, nxt, BIG)
         if g:
             big[g - 1, sym] = c + 1
         elif c == 0:
@@ -409,14 +425,12 @@ def _teacher(state, match, data, starts, lengths, t0, t1, max_order, hash_log2, 
 
 
 @njit(cache=True, nogil=True)
-def _step(state, match, starts, syms, t_prev, m_prev, m, max_order, hash_log2, disc, out_tab):
-    """Decoder step: count the symbols of step t_prev (m_prev lanes), then predict m lanes."""
+def _step(state, match, starts, syms, t_prev, m_prev, m, max_order, hash_log2, disc, out_tab, work):
+    """Decoder step: count the symbols of step t_prev (m_prev lanes), then predict m lanes.
+    `work` holds the scratch arrays, made once per frame (new_work: a step is too short to
+    allocate)."""
     rows, bases, hist, gen, rmap, nxt, seen = state
-    slots = np.empty(max_order + 1, np.int64)
-    checks = np.empty(max_order + 1, np.uint64)
-    p = np.empty(256, np.int64)
-    keep = np.empty((SMALL, 3), np.int64)
-    vals = np.empty(256, np.int64)
+    slots, checks, p, keep, vals = work
     buf = match[0]
     use_match = match[5][3] > 0
     for b in range(m_prev):
@@ -482,13 +496,14 @@ def run_chunks(lengths: np.ndarray, chunk_steps: int, run):
 
 
 @njit(cache=True, nogil=True)
-def _decode_steps(state, match, starts, max_order, hash_log2, disc, tab, key, active, by_step):
+def _decode_steps(state, match, starts, max_order, hash_log2, disc, tab, work, key, active, by_step):
     """Every decoder step of a frame in one compiled loop (coder.decode_frame's fast path):
     the same _step calls as the Python loop, the symbols from coder.step_symbols. Returns
     the steps done (fewer when the coded data could not be decoded)."""
     prev = np.zeros(by_step.shape[1], np.int32)
     for t in range(active.shape[0]):
-        _step(state, match, starts, prev, t - 1, active[t - 1] if t else 0, active[t], max_order, hash_log2, disc, tab)
+        _step(state, match, starts, prev, t - 1, active[t - 1] if t else 0, active[t], max_order, hash_log2, disc, tab,
+              work)
         if not _symbols_of_step(key, tab, active[t], prev, by_step, t):
             return t
     return active.shape[0]
@@ -637,14 +652,16 @@ class Strata:
         starts[1:] = np.cumsum(lengths)[:-1]
         tab = np.empty((max(len(lengths), 1), 256), np.float64)
         mo, disc = self.max_order, self._disc
+        work = (np.empty(mo + 1, np.int64), np.empty(mo + 1, np.uint64), np.empty(256, np.int64),
+                np.empty((SMALL, 3), np.int64), np.empty(256, np.int64))
         t = [-1]
 
         def step(prev_syms, m_prev, m):
-            _step(state, match, starts, prev_syms, t[0], m_prev, m, mo, hl, disc, tab)
+            _step(state, match, starts, prev_syms, t[0], m_prev, m, mo, hl, disc, tab, work)
             t[0] += 1
             return tab[:m]
 
-        step.run = lambda key, active, by_step: _decode_steps(state, match, starts, mo, hl, disc, tab, key, active,
-                                                              by_step)
+        step.run = lambda key, active, by_step: _decode_steps(state, match, starts, mo, hl, disc, tab, work, key,
+                                                              active, by_step)
         step.close = lambda: _pool_give(state)
         return step
