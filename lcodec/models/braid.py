@@ -41,7 +41,7 @@ from . import recall as R
 from . import strata as S
 from . import braid_fork as BF
 from . import braid_layers as BL
-from .kernel_cache import forget_if_changed
+from .kernel_cache import forget_if_changed, inlined, kernel
 from .braid_fork import (  # noqa: F401 - the names stay importable from here
     FORK_STEP, FORK_RANGE, FORK_POINTS, FORK_LIM, FORK_ONE, FORK_MASS, FORK_HASH_BITS, FORK_CTX, FORK_TABLES,
     FORK_INPUTS, FORK_SETS_A, FORK_SETS_B, FORK_REPEAT_X, FORK_WMAX, FORK_W0, _fork_tables, FORK_STRETCH,
@@ -63,7 +63,7 @@ SALT = np.uint64(0x5BD1E995)  # keeps corpus hashes apart from strata's row hash
 
 
 # -- hashing (the builder computes the same numbers with numpy) ---------------------------
-@njit(cache=True, nogil=True)
+@inlined
 def _ctx_hash(hist, k):
     ctx = hist if k >= 8 else hist & np.uint64((1 << (8 * k)) - 1)
     x = (ctx + np.uint64(k) + SALT) * _M1
@@ -83,13 +83,13 @@ def tag_of(x):
     return ((x >> np.uint64(8)) & np.uint64(0xFFFFFFFF)) | np.uint64(1)
 
 
-@njit(cache=True, nogil=True)
+@inlined
 def _home(base, size, x):
     """Home slot of hash x in one order's table."""
     return base + np.int64(((x >> np.uint64(32)) * np.uint64(size)) >> np.uint64(32))
 
 
-@njit(cache=True, nogil=True)
+@inlined
 def _probe(slot2, base, size, x, j):
     """Slot of the context with hash x, probing from slot j, or -1 when it is not there."""
     tag = np.uint32(((x >> np.uint64(8)) & np.uint64(0xFFFFFFFF)) | np.uint64(1))
@@ -109,7 +109,7 @@ def _probe(slot2, base, size, x, j):
 # Lanes normally share the file's tables. With lane_tables each lane's contexts are its
 # own rows: order 0 and 1 rows per lane, and the lane's number mixed into the hash of the
 # higher orders (the same hashed table, so memory does not grow with lanes).
-@njit(cache=True, nogil=True)
+@inlined
 def _slots(mix, b, hist, max_order, hash_log2, bases, gen, slots, checks):
     if mix[5][3] == 0:
         S._row_slots(hist, max_order, hash_log2, bases, gen, slots, checks)
@@ -130,7 +130,7 @@ def _slots(mix, b, hist, max_order, hash_log2, bases, gen, slots, checks):
             checks[k] = g | ((x >> np.uint64(8)) & np.uint64(0xFFFFFFFF))
 
 
-@njit(cache=True, nogil=True)
+@kernel
 def _file_update(fs, slots, checks, max_order, sym, now=-1):
     """Count `sym` in the file's rows from the highest order down, stopping below the first
     order that knew it (strata's update exclusion, with its halving at 255). A row left by
@@ -207,7 +207,7 @@ def _file_update(fs, slots, checks, max_order, sym, now=-1):
             break
 
 
-@njit(cache=True, nogil=True)
+@kernel
 def _braid_predict(corpus, fstate, hist, slots, checks, max_order, dfile, p, mix, b):
     """p <- the braided distribution (integers, total about 2**P_BITS), top layer first:
     at each order the file's own row sits above the corpus row of the same context.
@@ -280,7 +280,7 @@ def _braid_predict(corpus, fstate, hist, slots, checks, max_order, dfile, p, mix
         mix[4][b] = u
 
 
-@njit(cache=True, nogil=True)
+@kernel
 def _after_chain(match, rc, mix, fork, b, hist, p, buf, cur, use_match, use_sse, use_fork):
     """The stages after the chain, for lane b (buf[cur] is the byte to come): the in-frame
     repeat model, the corpus memory, secondary estimation, the tree refinement."""
@@ -347,7 +347,7 @@ def _teacher(corpus, state, match, data, starts, lengths, t0, t1, max_order, has
     return i
 
 
-@njit(cache=True, nogil=True)
+@kernel
 def _step(corpus, state, match, starts, syms, t_prev, m_prev, m, max_order, hash_log2, dfile, out_tab, work, mix, fork, rc):
     """Decoder step: count the symbols of step t_prev (m_prev lanes), then predict m lanes.
     `work` holds the scratch arrays, made once per frame (a step is too short to allocate)."""

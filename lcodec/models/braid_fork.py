@@ -3,10 +3,9 @@ kernels, run by lcodec/models/braid.py after the chain and the repeat models."""
 from __future__ import annotations
 
 import numpy as np
-from numba import njit
 
 from . import strata as S
-from .kernel_cache import forget_if_changed
+from .kernel_cache import forget_if_changed, inlined, kernel
 from . import braid_layers as BL
 from .braid_layers import (BYTE_CLASS, _root64, _odds_table, ODDS)
 
@@ -83,7 +82,7 @@ def _fork_tables():
 FORK_STRETCH, FORK_GRID, FORK_SQUASH = _fork_tables()
 
 
-@njit(cache=True, nogil=True)
+@kernel
 def _fork_hash(x, salt):
     x = (x + salt) * _M1
     x = x ^ (x >> np.uint64(29))
@@ -91,7 +90,7 @@ def _fork_hash(x, salt):
     return np.int64(x >> np.uint64(64 - FORK_HASH_BITS))
 
 
-@njit(cache=True, nogil=True, inline="always")
+@inlined
 def _fork_read(tab, ri, i, grid):
     """Table row ri's share at log-odds place i (0 .. 2 * FORK_LIM), interpolated between
     its two nearest grid points and clamped to 1 .. FORK_ONE - 1. Rows store share + 1: a
@@ -114,7 +113,7 @@ def _fork_read(tab, ri, i, grid):
     return min(max(r, np.int64(1)), np.int64(FORK_ONE - 1))
 
 
-@njit(cache=True, nogil=True, inline="always")
+@inlined
 def _fork_move(tab, ri, i, tgt, shift):
     """Move the two grid points _fork_read used at place i toward tgt (0 or FORK_ONE), in
     proportion to their interpolation weights, at rate 2**-(shift - 6)."""
@@ -129,7 +128,7 @@ def _fork_move(tab, ri, i, tgt, shift):
     tab[ri, j + 1] += ((tgt - tab[ri, j + 1] + 1) * w) >> shift
 
 
-@njit(cache=True, nogil=True, inline="always")
+@inlined
 def _fork_sums(sub, p):
     """sub[256 + s] = p[s] + 1 (every byte keeps some mass), sub[n] = the sum over node n's
     subtree (n = 1..255), for the shares q = R / (L + R)."""
@@ -139,7 +138,7 @@ def _fork_sums(sub, p):
         sub[n] = sub[2 * n] + sub[2 * n + 1]  # p's total < 2**22: < 2**23
 
 
-@njit(cache=True, nogil=True)
+@kernel
 def _fork_keep(fork, p):
     """With fork_inputs: keep the distribution as it is before the repeat model."""
     if fork[4][4] != 0:
@@ -148,7 +147,7 @@ def _fork_keep(fork, p):
             pre[s] = p[s]
 
 
-@njit(cache=True, nogil=True)
+@kernel
 def _fork_sets(fork, b, hist, mix, match):
     """With fork_sets: lane b's two weight sets (first rows in fork[10]), recorded."""
     sel = fork[15][b]
@@ -168,7 +167,7 @@ def _fork_sets(fork, b, hist, mix, match):
     sel[1] = (FORK_SETS_A + top) * 256
 
 
-@njit(cache=True, nogil=True)
+@kernel
 def _fork_predict(fork, b, hist, p, buf, cur, expect):
     """p (the distribution so far, total < 2**22) <- the refined distribution (total about
     FORK_MASS); what lane b's update needs is recorded. buf[cur] is the byte to come: only
@@ -262,7 +261,7 @@ def _fork_predict(fork, b, hist, p, buf, cur, expect):
             p[2 * n - 255] = hi
 
 
-@njit(cache=True, nogil=True)
+@kernel
 def _fork_update(fork, b, sym, cur):
     """After lane b coded sym (at buf[cur]): the refined nodes on its path learn."""
     tab, cfg = fork[0], fork[4]

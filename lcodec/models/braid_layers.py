@@ -4,10 +4,9 @@ Integer-only kernels; lcodec/models/braid.py explains the chain and runs them.""
 from __future__ import annotations
 
 import numpy as np
-from numba import njit
 
 from . import strata as S
-from .kernel_cache import forget_if_changed
+from .kernel_cache import forget_if_changed, inlined, kernel
 
 forget_if_changed(__file__, [S.__file__])  # kernels here inline strata's kernels
 
@@ -29,7 +28,7 @@ ONE_A = 1 << 31
 INV_BITS = 43  # inv = 2**43 // (T * F): at least 2**22 because T * F < 2**21
 
 
-@njit(cache=True, nogil=True)
+@inlined
 def _row_totals(ent, a, b, a1, a2, a3):
     """A stored corpus row's total count t and escape mass (sum of its discounts)."""
     t = np.int64(0)
@@ -41,7 +40,7 @@ def _row_totals(ent, a, b, a1, a2, a3):
     return t, esc
 
 
-@njit(cache=True, nogil=True)
+@inlined
 def _sparse_layer(ent, a, b, disc, p, A):
     """Add one stored corpus row's share (entries a..b: byte | count << 8) to p; return
     the A left below it."""
@@ -135,14 +134,14 @@ def _odds_table() -> np.ndarray:
 ODDS = _odds_table()
 
 
-@njit(cache=True, nogil=True)
+@inlined
 def _mix_class(lid, n1, t):
     qn = 0 if n1 <= 1 else (1 if n1 == 2 else (2 if n1 <= 5 else 3))
     qt = 0 if t <= 2 else (1 if t <= 7 else (2 if t <= 31 else 3))
     return lid * 16 + qn * 4 + qt
 
 
-@njit(cache=True, nogil=True)
+@inlined
 def _mix_escape(mix, rec, esc, tf, inv, A, cls):
     """The layer's A_own (its bytes' share) and the A left below it, with the class's
     weight applied to the escape odds; both recorded in rec for the update."""
@@ -173,7 +172,7 @@ def _mix_escape(mix, rec, esc, tf, inv, A, cls):
     return A_own, (A * e31) >> 31
 
 
-@njit(cache=True, nogil=True)
+@inlined
 def _sparse_layer_mix(ent, a, b, disc, p, A, mix, rec, lid):
     a1 = np.int64(disc[0])
     a2 = np.int64(disc[1]) - a1
@@ -209,7 +208,7 @@ META, SMALL, SYM0, CNT0 = S.META, S.SMALL, S.SYM0, S.CNT0
 _tag_is = S._tag_is
 
 
-@njit(cache=True, nogil=True)
+@inlined
 def _file_count(fs, r, s):
     """Row r's count of byte s."""
     big, meta, m8 = fs[0], fs[1], fs[7]
@@ -219,7 +218,7 @@ def _file_count(fs, r, s):
     return S._line_find(m8, r, np.int64(meta[r, N1]), s)[1]
 
 
-@njit(cache=True, nogil=True)
+@inlined
 def _file_add(fs, r, p, A, inv, a1, a2, a3):
     """p[s] += A * w(s) for each byte s row r has seen (w: its discounted share)."""
     big, meta, m8 = fs[0], fs[1], fs[7]
@@ -237,7 +236,7 @@ def _file_add(fs, r, p, A, inv, a1, a2, a3):
         p[s] += (A * w) >> (62 - P_BITS)
 
 
-@njit(cache=True, nogil=True)
+@inlined
 def _file_terms(meta, r, disc):
     """File row r's discount steps a1..a3, bytes seen n1, total t, escape mass and inv."""
     a1 = np.int64(disc[0])
@@ -251,7 +250,7 @@ def _file_terms(meta, r, disc):
     return a1, a2, a3, n1, t, esc, inv
 
 
-@njit(cache=True, nogil=True)
+@inlined
 def _file_layer(fs, r, disc, p, A):
     """The same for the file's own row r: only the bytes it has seen (as a corpus row)."""
     a1, a2, a3, n1, t, esc, inv = _file_terms(fs[1], r, disc)
@@ -259,7 +258,7 @@ def _file_layer(fs, r, disc, p, A):
     return (A * ((esc * inv) >> (INV_BITS - 31))) >> 31
 
 
-@njit(cache=True, nogil=True)
+@inlined
 def _file_layer_mix(fs, r, disc, p, A, mix, rec, lid):
     a1, a2, a3, n1, t, esc, inv = _file_terms(fs[1], r, disc)
     A_own, A_below = _mix_escape(mix, rec, esc, t * F, inv, A, _mix_class(lid, n1, t))
@@ -267,7 +266,7 @@ def _file_layer_mix(fs, r, disc, p, A, mix, rec, lid):
     return A_below
 
 
-@njit(cache=True, nogil=True)
+@kernel
 def _mix_update(mix, corpus, fs, dfile, b, x):
     """After lane b coded byte x: each recorded layer's weight moves along the gradient of
     log P(x) in its escape log-odds, ((1 - e') * below(x) - e' * own(x)) / P(x), where own
@@ -325,7 +324,7 @@ SSE_LEVELS = 32
 SSE_LIMIT = 1023  # hit counts halved past this, to keep adapting
 
 
-@njit(cache=True, nogil=True)
+@kernel
 def _sse_predict(mix, match, b, hist, p, e, followed):
     """e: the byte to recalibrate (the repeat's, the corpus memory's, or the blend's
     favourite); followed: 1 when a repeat (in the frame or the memory) names it."""
@@ -349,7 +348,7 @@ def _sse_predict(mix, match, b, hist, p, e, followed):
     S._give_mass(p, e, pe, total, (pe + t2) >> 1)
 
 
-@njit(cache=True, nogil=True)
+@inlined
 def _sse_update(mix, match, b, sym):
     cell = mix[9][b]
     if cell < 0:

@@ -10,12 +10,27 @@ code. An encoder and a decoder on two machines could then compute different tabl
 of the sources of the modules its kernels call; when the stamp differs from the digest,
 the module's cache files are removed before anything is compiled or loaded, so numba
 compiles afresh. Call it at the top of such a module, after its imports.
+
+It also holds the two decorators of the per-symbol kernels (see `kernel` below).
 """
 from __future__ import annotations
 
 import glob
 import hashlib
 import os
+
+from numba import njit
+
+# The per-symbol kernels. A kernel runs a few hundred times per byte coded, with tuples of
+# a dozen arrays as arguments; numba's reference counting then made one atomic increment
+# and one decrement per array per call, which was about half of braid's time. `kernel`
+# compiles without the reference counts, `inlined` also puts the body in its caller (the
+# small helpers called once per layer). Without reference counts a function may neither
+# allocate an array nor return one other than an argument; numba refuses to compile either
+# (a typing error), so nothing can outlive its caller's references. Kernels that allocate
+# keep plain njit.
+kernel = njit(cache=True, nogil=True, _nrt=False)
+inlined = njit(cache=True, nogil=True, _nrt=False, inline="always")
 
 
 def forget_if_changed(module_file: str, deps: list[str]) -> None:

@@ -38,10 +38,9 @@ from __future__ import annotations
 from collections import namedtuple
 
 import numpy as np
-from numba import njit
 
 from . import strata as S
-from .kernel_cache import forget_if_changed
+from .kernel_cache import forget_if_changed, inlined, kernel
 
 forget_if_changed(__file__, [S.__file__])  # kernels here inline those modules' kernels
 
@@ -64,7 +63,7 @@ INDEX_MIN_BITS = 10
 _K = np.uint64(0x2545F4914F6CDD1D)
 
 
-@njit(cache=True, nogil=True)
+@inlined
 def _hash(lo, hi, n):
     """Hash of the last n bytes (lo: the last 8, most recent in the low byte; hi: the 8
     before them), a 64-bit number whose top bits index a table."""
@@ -84,7 +83,7 @@ def index_bits(n_text: int) -> int:
     return max(INDEX_MIN_BITS, int(max(n_text // STEP, 1) - 1).bit_length())
 
 
-@njit(cache=True, nogil=True)
+@kernel
 def _fill(text, n, index, shift):
     lo = np.uint64(0)
     hi = np.uint64(0)
@@ -139,7 +138,7 @@ def new_state(text, short, long, min_len: int, long_len: int, n_lanes: int, prio
                   np.full(nl, -1, np.int64), np.full(nl, -1, np.int64))
 
 
-@njit(cache=True, nogil=True)
+@inlined
 def run_class(n):
     """0..15 as they are, then two classes per doubling: 16-23, 24-31, 32-47, ..., 768+."""
     if n < 16:
@@ -153,7 +152,7 @@ def run_class(n):
     return min(c, RUN_CLASSES - 1)
 
 
-@njit(cache=True, nogil=True)
+@inlined
 def level_of(pe, total):
     """e's share q = pe / total in 16 levels by halvings: 0 for q below 1/256, 1 from 1/256,
     ..., 6 from 1/8, 7 from 1/4, 8 from 1/2; then by the rest 1 - q: 9 below 1/4, 10 below
@@ -171,7 +170,7 @@ def level_of(pe, total):
     return lev
 
 
-@njit(cache=True, nogil=True)
+@inlined
 def expected(rc, b):
     """The byte lane b's followed place names, or -1."""
     if rc.on == 0 or rc.ptr[b] < 0:
@@ -179,7 +178,7 @@ def expected(rc, b):
     return np.int64(rc.text[rc.ptr[b]])
 
 
-@njit(cache=True, nogil=True)
+@kernel
 def predict(rc, b, p, repeat_byte):
     """p (the table so far) <- with the followed place's byte at its cell's hit rate.
     repeat_byte: the byte the in-frame repeat model follows, or -1."""
@@ -207,7 +206,7 @@ def predict(rc, b, p, repeat_byte):
     S._give_mass(p, e, pe, total, (np.int64(st[0]) * total + k * pe) // (np.int64(st[1]) + k))
 
 
-@njit(cache=True, nogil=True)
+@kernel
 def _verify(text, q, buf, start, cur):
     """How many bytes before text[q] agree with the lane's bytes up to buf[cur] (at most VERIFY)."""
     n = 0
@@ -220,7 +219,7 @@ def _verify(text, q, buf, start, cur):
     return n
 
 
-@njit(cache=True, nogil=True)
+@kernel
 def update(rc, b, buf, start, t, sym, before):
     """After lane b coded sym (at buf[start + t]; before: its history without sym):
     score the cell, move or drop the followed place, look for a better one. Reads only

@@ -33,6 +33,7 @@ from numba import njit, objmode
 from numba.core.errors import NumbaWarning
 
 from ..coding import coder as C
+from .kernel_cache import inlined, kernel
 
 # The decode loops below hand each step to the coder in object mode (the GIL is taken for
 # that call only; the model's work between calls runs without it).
@@ -50,7 +51,7 @@ _M1 = np.uint64(0x9E3779B97F4A7C15)  # odd multipliers for context hashing
 _M2 = np.uint64(0xD6E8FEB86659FD93)
 
 
-@njit(cache=True, nogil=True)
+@inlined
 def _row_slots(hist, max_order, hash_log2, bases, gen, slots, checks):
     """Row index and check tag of each order's context (orders 0..max_order). A tag holds
     the frame's generation in its high 32 bits, so rows left by earlier frames read as empty."""
@@ -73,7 +74,7 @@ def _row_slots(hist, max_order, hash_log2, bases, gen, slots, checks):
             checks[k] = g | ((x >> np.uint64(8)) & np.uint64(0xFFFFFFFF))
 
 
-@njit(cache=True, nogil=True)
+@inlined
 def _map_rows(rmap, nxt, gen, max_order, slots):
     """Turn each order's row index (the hashed table's, which decides what collides) into
     a place in the row arrays, handed out in the order rows are first met in this frame:
@@ -101,7 +102,7 @@ SMALL = 16  # distinct bytes a row holds in its own line
 SYM0, CNT0 = 32, 48  # byte offsets in the line of the bytes seen and their counts
 
 
-@njit(cache=True, nogil=True)
+@inlined
 def _tag_is(meta, r, chk):
     return meta[r, TAG_LO] == np.uint32(chk & np.uint64(0xFFFFFFFF)) and meta[r, TAG_HI] == np.uint32(chk >> np.uint64(32))
 
@@ -125,7 +126,7 @@ def row_arrays(n_rows: int, n_big: int, big_width: int = 256):
             np.zeros((n_big, big_width), np.uint8))
 
 
-@njit(cache=True, nogil=True)
+@inlined
 def _line_find(m8, r, nd, sym):
     """(place in the line, count) of byte sym in short row r holding nd bytes; (-1, 0)
     when the row has not seen it."""
@@ -135,7 +136,7 @@ def _line_find(m8, r, nd, sym):
     return -1, np.int64(0)
 
 
-@njit(cache=True, nogil=True)
+@kernel
 def _take_big(meta, m8, big, r, nxt, field):
     """Move full short row r (SMALL bytes) to the next big row (nxt[1]: big rows handed
     out): its 256 counts zeroed, then the line's counts; meta[r, field] = 1 + the big row,
@@ -152,7 +153,7 @@ def _take_big(meta, m8, big, r, nxt, field):
     return g
 
 
-@njit(cache=True, nogil=True)
+@kernel
 def _predict(rows, slots, checks, max_order, disc, p, keep, seen, vals):
     """Blend orders 0..max_order into p (integers, total about 2**P_BITS).
 
@@ -217,7 +218,7 @@ def _predict(rows, slots, checks, max_order, disc, p, keep, seen, vals):
         p[order[i]] = vals[i]
 
 
-@njit(cache=True, nogil=True)
+@kernel
 def _update(rows, slots, checks, max_order, sym, nxt, seen):
     """Count `sym` from the highest order down, stopping below the first order that knew it.
     A row left by an earlier frame or another context (another tag) starts empty; a big
@@ -278,7 +279,7 @@ def _update(rows, slots, checks, max_order, sym, nxt, seen):
             break
 
 
-@njit(cache=True, nogil=True)
+@inlined
 def _step_of(pos, lay):
     """Step at which frame position `pos` is coded (lay: n, base lane length, lanes one longer)."""
     base, extra = lay[1], lay[2]
@@ -288,7 +289,7 @@ def _step_of(pos, lay):
     return (pos - big) % base
 
 
-@njit(cache=True, nogil=True)
+@inlined
 def _match_hash(hist, lay):
     ctx = hist & np.uint64((1 << (8 * lay[3])) - 1) if lay[3] < 8 else hist
     x = (ctx + np.uint64(99)) * _M1
@@ -297,7 +298,7 @@ def _match_hash(hist, lay):
     return np.int64(x >> np.uint64(64 - lay[4]))
 
 
-@njit(cache=True, nogil=True)
+@kernel
 def _match_predict(match, b, p):
     """Long-repeat predictor: where the lane's last bytes occurred before, the byte that
     followed gets the probability measured, so far in this frame, for matches of this
@@ -324,7 +325,7 @@ def _match_predict(match, b, p):
     _give_mass(p, e, pe, total, (np.int64(st[0]) * total) // np.int64(st[1]))
 
 
-@njit(cache=True, nogil=True)
+@inlined
 def _give_mass(p, e, pe, total, target):
     """Set byte e's share of the table p (summing to total, e holding pe of it, with
     total - pe >= 1024) to target, clamped to 1 .. total - 1024, the other bytes scaled
@@ -338,7 +339,7 @@ def _give_mass(p, e, pe, total, target):
     p[e] = target
 
 
-@njit(cache=True, nogil=True)
+@inlined
 def _score_cell(st, hit, limit):
     """A hit-rate cell (hits, trials) after one more trial; both halved past limit."""
     st[0] += 1 if hit else 0
@@ -348,7 +349,7 @@ def _score_cell(st, hit, limit):
         st[1] = (st[1] + 1) >> 1
 
 
-@njit(cache=True, nogil=True)
+@kernel
 def _match_update(match, b, start, t, sym, hist, gen):
     """After lane b coded `sym` at step t: score and extend its match, or look for a new
     one, then index the context just completed. Only bytes of steps <= t are read."""
@@ -424,7 +425,7 @@ def _teacher(state, match, data, starts, lengths, t0, t1, max_order, hash_log2, 
     return i
 
 
-@njit(cache=True, nogil=True)
+@kernel
 def _step(state, match, starts, syms, t_prev, m_prev, m, max_order, hash_log2, disc, out_tab, work):
     """Decoder step: count the symbols of step t_prev (m_prev lanes), then predict m lanes.
     `work` holds the scratch arrays, made once per frame (new_work: a step is too short to
@@ -452,7 +453,7 @@ def _step(state, match, starts, syms, t_prev, m_prev, m, max_order, hash_log2, d
         _emit(p, out_tab[b])
 
 
-@njit(cache=True, nogil=True)
+@inlined
 def _emit(p, out):
     for s in range(256):
         out[s] = np.float64(p[s] + 1)
