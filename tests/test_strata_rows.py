@@ -71,3 +71,22 @@ def test_rows_and_blend_match_python_integers(seed):
         assert nxt[1] > 3 and halved  # rows moved to big rows, and counts were halved
     finally:
         S._pool_give((lines,))
+
+
+def test_emit_is_the_exact_float_of_each_count():
+    """The coder's table is p + 1 as float64; _emit builds it from the bits of 2**52 (a
+    vector operation) instead of converting. It must equal Python's own int -> float for
+    every integer below 2**52, the edges included (the models' counts are below 2**24)."""
+    from numba import njit
+
+    @njit
+    def emit(p, out):
+        S._emit(p, out)
+
+    rng = np.random.default_rng(7)
+    for hi in (2, 1 << 24, 1 << 40, (1 << 52) - 1):
+        p = rng.integers(0, hi, 256).astype(np.int64)
+        p[0], p[1] = 0, hi - 1
+        out = np.empty(256, np.float64)
+        emit(p, out)
+        assert [float(x) for x in out] == [float(int(x) + 1) for x in p]

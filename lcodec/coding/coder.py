@@ -79,22 +79,32 @@ def encode_frame(model, data: bytes, lanes: int, coder: str = "queue") -> tuple[
 
 
 # Decoders in use by a model's compiled decode loop, by key: [decoder, the exception it
-# raised]. The loop runs the model's step and asks step_symbols for the step's symbols
-# without leaving compiled code between steps (one object-mode call per step, where a
-# Python loop paid the dispatch of every model array, 5-15 us, per step).
+# raised, the model's table buffer, the symbols by step]. The loop runs the model's step
+# and asks step_symbols for the step's symbols without leaving compiled code between steps
+# (one object-mode call per step, where a Python loop paid the dispatch of every model
+# array, 5-15 us, per step). Only integers cross into object mode: the tables and the
+# symbols are arrays both sides already hold (bind_tables), since passing an array in or
+# out of object mode costs about 0.3-0.5 us each way.
 _LIVE: dict = {}
 _KEYS = itertools.count(1)
 
 
-def step_symbols(key: int, tab: np.ndarray, m: int) -> np.ndarray:
-    """The symbols of one step (m lanes, tables tab[:m]); an empty array when the coded
-    data cannot be decoded (the exception is kept for decode_frame to raise)."""
+def bind_tables(key: int, tab: np.ndarray) -> None:
+    """The array a model's decode loop writes each step's tables into (rows 0..m-1)."""
+    _LIVE[key][2] = tab
+
+
+def step_symbols(key: int, m: int, t: int) -> int:
+    """Decode step t's m symbols under the bound tables into row t of the symbols by step;
+    m, or -1 when the coded data cannot be decoded (the exception is kept for decode_frame
+    to raise)."""
     slot = _LIVE[key]
     try:
-        return np.asarray(slot[0].decode(_FAMILY, tab[:m]), np.int32).reshape(m)
+        slot[3][t, :m] = slot[0].decode(_FAMILY, slot[2][:m])
+        return m
     except Exception as e:  # noqa: BLE001 - raised again by decode_frame, outside compiled code
         slot[1] = e
-        return np.empty(0, np.int32)
+        return -1
 
 
 def decode_frame(model, payload: bytes, n: int, lanes: int, coder: str = "queue") -> bytes:
@@ -119,7 +129,7 @@ def decode_frame(model, payload: bytes, n: int, lanes: int, coder: str = "queue"
     try:
         if run is not None:
             key = next(_KEYS)
-            _LIVE[key] = [dec, None]
+            _LIVE[key] = [dec, None, None, by_step]
             try:
                 done = run(key, active.astype(np.int64), by_step)
             finally:

@@ -37,6 +37,7 @@ import threading
 import numpy as np
 from numba import njit
 
+from ..coding import coder as C
 from . import recall as R
 from . import strata as S
 from . import braid_fork as BF
@@ -717,8 +718,12 @@ class Braid:
             t[0] += 1
             return tab[:m]
 
-        step.run = lambda key, active, by_step: _decode_steps(corpus, state, match, starts, mo, hl, disc, tab, work,
-                                                              mix, fork, rc, key, active, by_step)
+        def run(key, active, by_step):
+            C.bind_tables(key, tab)
+            return _decode_steps(corpus, state, match, starts, mo, hl, disc, tab, work, mix, fork, rc, key, active,
+                                 by_step)
+
+        step.run = run
 
         step.close = lambda: _pool_give(state)
         return step

@@ -453,10 +453,21 @@ def _step(state, match, starts, syms, t_prev, m_prev, m, max_order, hash_log2, d
         _emit(p, out_tab[b])
 
 
+_TWO52 = 4503599627370496.0  # 2.0 ** 52
+_TWO52_BITS = np.uint64(0x4330000000000000)  # its bits
+
+
 @inlined
 def _emit(p, out):
+    """out <- p + 1 as float64 (the coder's table), exactly: the integer n < 2**52 is put
+    in the mantissa of 2**52 (bits 0x433 << 52 | n) and 2**52 taken off. Both loops are
+    vector operations; a plain conversion of int64 to float64 is not one on this
+    processor's vector unit."""
+    bits = out.view(np.uint64)
     for s in range(256):
-        out[s] = np.float64(p[s] + 1)
+        bits[s] = np.uint64(p[s] + 1) | _TWO52_BITS
+    for s in range(256):
+        out[s] -= _TWO52
 
 
 _local = threading.local()
@@ -513,14 +524,14 @@ def _decode_steps(state, match, starts, max_order, hash_log2, disc, tab, work, k
 @njit(cache=True, nogil=True)
 def _symbols_of_step(key, tab, m, prev, by_step, t):
     """Ask the coder (object mode, coder.step_symbols) for step t's m symbols under the
-    tables tab[:m]; store them in prev and by_step[t]. False when they cannot be decoded."""
-    with objmode(got="int32[:]"):
-        got = C.step_symbols(key, tab, m)
-    if got.shape[0] != m:
+    tables tab[:m] (bound to the key beforehand); it writes them to by_step[t], and they
+    are copied to prev. False when they cannot be decoded."""
+    with objmode(got="int64"):
+        got = C.step_symbols(key, m, t)
+    if got != m:
         return False
     for b in range(m):
-        prev[b] = got[b]
-        by_step[t, b] = got[b]
+        prev[b] = by_step[t, b]
     return True
 
 
@@ -662,7 +673,10 @@ class Strata:
             t[0] += 1
             return tab[:m]
 
-        step.run = lambda key, active, by_step: _decode_steps(state, match, starts, mo, hl, disc, tab, work, key,
-                                                              active, by_step)
+        def run(key, active, by_step):
+            C.bind_tables(key, tab)
+            return _decode_steps(state, match, starts, mo, hl, disc, tab, work, key, active, by_step)
+
+        step.run = run
         step.close = lambda: _pool_give(state)
         return step
