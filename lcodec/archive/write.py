@@ -42,6 +42,7 @@ def _run_plans(plans, runner, stats: PackStats, on_open, on_record, on_close, pr
     for metas, results in runner.imap(runners.encode_batch, work):
         for (kind, plan, raw), res in zip(metas, results):
             if kind == "open":
+                plan.next_index = plan.skip_frames
                 on_open(plan)
             elif kind == "close":
                 on_close(plan)
@@ -50,6 +51,9 @@ def _run_plans(plans, runner, stats: PackStats, on_open, on_record, on_close, pr
                 stats.kept_bytes += raw
             else:
                 record, nll, stored, figures = res
+                # version 3: the record names its frame and its archive (coded anywhere, sealed here)
+                record = C.seal_record(record, plan.next_index, plan.archive_id)
+                plan.next_index += 1
                 on_record(plan, record)
                 if figures is not None:
                     stats.images.append(figures)
@@ -216,6 +220,7 @@ class _Journal:
     def prepare(self, out, plan: _Plan) -> int:
         """Position the partial file; returns the offset coding continues at."""
         f = out.f
+        plan.seal()
         head_len = len(plan.header())
         if not self.usable or self.state["frames_done"] == 0 or self.state["offset"] < head_len:
             f.seek(0)
@@ -230,7 +235,7 @@ class _Journal:
 
         def check(index, raw):
             try:
-                fr = C.read_record(memoryview(mm), pos[0], index)
+                fr = C.read_record(memoryview(mm), pos[0], index, None, C.VERSION_BOUND, plan.archive_id)
             except DataError:
                 raise UsageError(f"{self.partial} is damaged at frame {index}; remove it and "
                                  f"{self.path} to start again") from None
