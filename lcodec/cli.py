@@ -449,7 +449,8 @@ def info(path, as_json, frames):
     if as_json:
         click.echo(json.dumps(d, indent=2))
         return
-    click.echo(f"lcodec archive, format version {d['format_version']}")
+    click.echo(f"lcodec archive, format version {d['format_version']}"
+               + (f", archive identity {d['archive_id']}" if d.get("archive_id") else ""))
     click.echo(f"  content   {d['content_bytes']} bytes, sha256 {d['content_sha256']}")
     click.echo(f"  archive   {d['archive_bytes']} bytes, {d['bits_per_byte']:.3f} bits per byte")
     click.echo(f"  model     {d['model_text']}")

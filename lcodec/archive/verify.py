@@ -154,6 +154,7 @@ def info(blob) -> dict:
     frames = [_frame_info(f) for f in cont.frames]
     return {
         "format_version": cont.version,
+        "archive_id": cont.archive_id.hex() if cont.archive_id is not None else None,  # version 3
         "archive_bytes": cont.file_size,
         "content_bytes": cont.content_size,
         "bits_per_byte": 8.0 * cont.file_size / cont.content_size if cont.content_size else 0.0,
