@@ -135,13 +135,28 @@ quiet_option = click.option("-q", "--quiet", is_flag=True, help="No progress or 
 
 
 def parse_size(text: str, option: str) -> int:
-    """A byte count written as a whole number with an optional K, M or G (powers of 1024)."""
+    """A byte count written as a whole number with an optional K, M, G or T (powers of 1024)."""
     t = str(text).strip().upper().removesuffix("B").removesuffix("I")
-    mult = {"K": 1 << 10, "M": 1 << 20, "G": 1 << 30}.get(t[-1:], 1)
+    mult = {"K": 1 << 10, "M": 1 << 20, "G": 1 << 30, "T": 1 << 40}.get(t[-1:], 1)
     digits = t[:-1] if mult > 1 else t
     if not digits.isdigit():
         raise UsageError(f"{option} takes a size such as 32M, 512K or 0, not {text!r}")
     return int(digits) * mult
+
+
+def _ceiling_value(ctx, param, value):
+    if value is None or str(value).strip().lower() == "none":
+        return None
+    try:
+        return parse_size(value, "--output-ceiling")
+    except UsageError as e:
+        raise click.BadParameter(str(e)) from None
+
+
+ceiling_option = click.option("--output-ceiling", "ceiling", default="64G", show_default=True,
+                              callback=_ceiling_value, metavar="SIZE",
+                              help="Refuse, before decoding anything, an archive whose header claims more "
+                                   "content than SIZE (K, M, G, T; 'none': no ceiling). Exit 1.")
 
 
 def _jobs_value(ctx, param, value):
@@ -320,9 +335,11 @@ def _tree_bytes(inputs) -> int:
 @threads_option
 @jobs_option
 @cluster_option
+@ceiling_option
 @quiet_option
 @guarded
-def unpack(archive, output, model, force, salvage_mode, keep_damaged, report_path, threads, jobs, cluster, quiet):
+def unpack(archive, output, model, force, salvage_mode, keep_damaged, report_path, threads, jobs, cluster, ceiling,
+           quiet):
     """Restore an archive: a file, a folder for multi-member archives, or '-' for stdout.
 
     Every frame checksum and the SHA-256 of the content are checked before anything is
@@ -350,6 +367,11 @@ def unpack(archive, output, model, force, salvage_mode, keep_damaged, report_pat
         if output == "-":
             raise UsageError("--salvage writes files and a report: give -o with a file or folder name")
         hints = S.read_header_hints(memoryview(blob))
+        if hints is not None and ceiling is not None and hints.content_size > ceiling:
+            from .errors import CeilingError
+
+            raise CeilingError(f"the header claims {hints.content_size:,} bytes of content, more than the "
+                             f"output ceiling of {ceiling:,} bytes (raise it with --output-ceiling SIZE, or 'none')")
         bar = Progress(min(hints.content_size, 1 << 40) if hints else 0, "salvaging", quiet)
         try:
             res = S.salvage_to(blob, output, model, keep_damaged, force, report_path, archive_name=archive,
@@ -360,15 +382,17 @@ def unpack(archive, output, model, force, salvage_mode, keep_damaged, report_pat
             for line in S.summary(res):
                 click.echo(line, err=True)
         sys.exit(0 if res.ok else 1)
+    api.check_ceiling(blob, ceiling)
     multi = api.is_multi(blob)
     bar = Progress(api.info(blob)["content_bytes"], "unpacking", quiet)
     if multi:
         if output == "-":
             raise UsageError("this archive holds several members; unpack it into a folder, not stdout")
-        api.unpack_to_dir(blob, output, model, force, bar, jobs=jobs, cluster=cluster, workers=threads)
+        api.unpack_to_dir(blob, output, model, force, bar, jobs=jobs, cluster=cluster, workers=threads,
+                          ceiling=ceiling)
     else:
         api.unpack_to_file(blob, sys.stdout.buffer if output == "-" else output, model, force, bar,
-                           jobs=jobs, cluster=cluster, workers=threads)
+                           jobs=jobs, cluster=cluster, workers=threads, ceiling=ceiling)
     bar.close()
 
 
@@ -380,9 +404,10 @@ def unpack(archive, output, model, force, salvage_mode, keep_damaged, report_pat
 @threads_option
 @jobs_option
 @cluster_option
+@ceiling_option
 @quiet_option
 @guarded
-def verify(archive, against, model, threads, jobs, cluster, quiet):
+def verify(archive, against, model, threads, jobs, cluster, ceiling, quiet):
     """Decode an archive and check every checksum; exit 0 when exact, 1 when not."""
     _kernels_without_blas()
     from . import api
@@ -394,7 +419,7 @@ def verify(archive, against, model, threads, jobs, cluster, quiet):
     except LcodecError:
         total = 0
     bar = Progress(total, "verifying", quiet)
-    rep = api.verify(blob, model, against, bar, jobs=jobs, cluster=cluster, workers=threads)
+    rep = api.verify(blob, model, against, bar, jobs=jobs, cluster=cluster, workers=threads, ceiling=ceiling)
     bar.close()
     if rep.ok:
         what = f"{rep.members} members, " if rep.members else ""

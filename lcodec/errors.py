@@ -15,6 +15,10 @@ class ModelError(LcodecError):
     """Wrong, missing or unreadable model (exit 1)."""
 
 
+class CeilingError(LcodecError):
+    """The archive would decode to more bytes than the output ceiling allows (exit 1)."""
+
+
 class UsageError(LcodecError):
     """The request itself is wrong: bad option, missing input, refused overwrite (exit 2)."""
 

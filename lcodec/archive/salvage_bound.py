@@ -115,6 +115,13 @@ def place(mv, first: int, lay, aid: bytes | None):
             frs = good
         frs[0].index, frs[0].placed_by = k, "frame number"
         placed[k] = frs[0]
+    # a record of another archive is found where one of ours ends and none of ours begins
+    starts = {f.offset for f in placed.values()} | {f.offset for f in unplaced}
+    for e in sorted({_end(f) for f in placed.values()} | {first}):
+        if e not in starts and e not in {f.offset for f in foreign}:
+            fr = record_at(mv, e)
+            if fr is not None and fr.archive_id != aid:
+                foreign.append(fr)
     return placed, foreign, unplaced, 0, aid
 
 
