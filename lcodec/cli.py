@@ -667,12 +667,17 @@ def explain(file, model, output, png_out, frame_size, view_bytes, force, quiet):
 @click.option("--law/--no-law", default=True, show_default=True,
               help="Images: the third stage of 16-bit samples, a two-sided geometric law of the residual whose "
                    "scale each image learns per activity class (small or noisy scans).")
+@click.option("--record-names", is_flag=True,
+              help="List the training files' names (relative to the corpus arguments) in the model file. "
+                   "Without it the model file records only their count, bytes and a digest of the listing; "
+                   "it never records a path.")
 @click.option("--augment/--no-augment", default=True, show_default=True,
               help="Images: train also on each training image mirrored, flipped and transposed (while the "
                    "training samples stay under 16.8 million); decoding costs nothing more.")
 @force_option
 @guarded
-def train(corpus, output, kind, time_limit, preset, seed, max_bytes, memory, adapt_k, structure_k, law, augment, force):
+def train(corpus, output, kind, time_limit, preset, seed, max_bytes, memory, adapt_k, structure_k, law, record_names,
+          augment, force):
     """Train a model on files and folders of one kind; write a model file.
 
     A tenth of the files is held out for validation; progress shows validation bits per
@@ -688,10 +693,11 @@ def train(corpus, output, kind, time_limit, preset, seed, max_bytes, memory, ada
         if max_bytes is not None or memory is not None:
             raise UsageError("--max-bytes and --memory go with --kind bytes")
         T.train_image(list(corpus), output, time_limit or 120.0, preset or "small", seed, echo=echo, force=force,
-                      adapt_k=adapt_k, structure_k=structure_k, law=law, augment=augment)
+                      adapt_k=adapt_k, structure_k=structure_k, law=law, augment=augment, record_names=record_names)
     else:
         T.train(list(corpus), output, time_limit or 600.0, preset or T.DEFAULT_PRESET, seed, max_bytes, echo=echo,
-                force=force, memory=None if memory is None else parse_size(memory, "--memory"))
+                force=force, memory=None if memory is None else parse_size(memory, "--memory"),
+                record_names=record_names)
 
 
 @main.command(epilog=_example("demo"))
