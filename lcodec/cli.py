@@ -1,14 +1,17 @@
 """Command line: `lcodec pack | unpack | verify | info | bench | demo`.
 
 Exit codes: 0 ok; 1 a data problem (damaged archive, mismatch, wrong or missing model);
-2 a usage error (bad option, missing input, refused overwrite). No traceback for bad
-input: set LCODEC_DEBUG=1 to see one for an internal error.
+2 a usage error (bad option, missing input, refused overwrite); 130 interrupted (SIGINT),
+143 terminated (SIGTERM): then nothing is left under a final name and no temporary file
+is left behind (a `pack --resume` job keeps its partial archive and journal). No
+traceback for bad input: set LCODEC_DEBUG=1 to see one for an internal error.
 """
 from __future__ import annotations
 
 import functools
 import json
 import os
+import signal
 import sys
 
 # BLAS on one thread unless the user says otherwise, set before numpy loads (the first
@@ -21,7 +24,7 @@ os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
 import click  # noqa: E402
 
 from .version import __version__  # noqa: E402
-from .errors import LcodecError, UsageError  # noqa: E402
+from .errors import LcodecError, Terminated, UsageError  # noqa: E402
 from .fsio import ARCHIVE_EXT, atomic_write, map_input, map_stream, read_input  # noqa: E402
 
 EXAMPLES = {
@@ -75,18 +78,43 @@ def _kernels_without_blas():
             del sys.modules["scipy"]
 
 
+def _on_signal(signum, frame):
+    # once: a second signal during the cleanup must not cut it short
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
+    signal.signal(signal.SIGTERM, signal.SIG_IGN)
+    raise Terminated() if signum == signal.SIGTERM else KeyboardInterrupt()
+
+
+def _catch_signals() -> None:
+    """SIGINT and SIGTERM become exceptions in the main thread (not in worker processes,
+    which start with their own handlers)."""
+    import threading
+
+    if threading.current_thread() is threading.main_thread():
+        signal.signal(signal.SIGINT, _on_signal)
+        signal.signal(signal.SIGTERM, _on_signal)
+
+
+def _interrupted(name: str, code: int):
+    click.echo(f"lcodec: {name}; stopped, nothing was written under the final name and no temporary "
+               f"file was left (a --resume job keeps its journal)", err=True)
+    sys.exit(code)
+
+
 def guarded(fn):
     """Turn lcodec errors into a one-line message and their exit code."""
     @functools.wraps(fn)
     def wrapper(*a, **k):
         try:
+            _catch_signals()
             return fn(*a, **k)
         except LcodecError as e:
             click.echo(f"lcodec: {e}", err=True)
             sys.exit(e.exit_code)
         except KeyboardInterrupt:
-            click.echo("lcodec: interrupted; nothing was written under the final name", err=True)
-            sys.exit(130)
+            _interrupted("interrupted (SIGINT)", 130)
+        except Terminated:
+            _interrupted("terminated (SIGTERM)", 143)
         except BrokenPipeError:
             sys.exit(1)
         except OSError as e:  # e.g. stdout on a full disk; file outputs report their own

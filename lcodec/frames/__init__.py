@@ -14,7 +14,7 @@ method in format/container.py.
 from __future__ import annotations
 
 from ..coding import SubframeCheckFailed
-from ..errors import DataError, ModelError
+from ..errors import DataError, ModelError, Terminated
 from ..format import container as C
 from ..inputs.layout import FLAG_RECORD, read_descriptor
 from .byteframe import LANE_BYTES, MAX_LANES, choose_lanes, code_bytes, decode_bytes, frame_lanes  # noqa: F401
@@ -50,14 +50,14 @@ def decode_one(model, index: int, method: int, raw_len: int, lanes: int, raw_crc
             return None, str(e)
         except SubframeCheckFailed as e:
             return None, f"frame {index} damaged ({e})"
-        except (ModelError, KeyboardInterrupt, SystemExit):
+        except (ModelError, KeyboardInterrupt, SystemExit, Terminated):
             raise
         except BaseException:
             return None, f"frame {index} damaged (its coded words cannot be decoded)"
     else:
         try:
             raw = decode_bytes(model, method, payload, raw_len, lanes, checks)
-        except (KeyboardInterrupt, SystemExit):
+        except (KeyboardInterrupt, SystemExit, Terminated):
             raise
         except SubframeCheckFailed as e:
             return None, f"frame {index} damaged ({e})"
