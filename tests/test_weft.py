@@ -9,6 +9,7 @@ import numpy as np
 import pytest
 
 import lcodec
+from lcodec.format import container as C
 from lcodec.format import modelfile
 from lcodec.models import load_model
 from lcodec.errors import ModelError
@@ -182,5 +183,6 @@ def test_training_integer_model_close_to_float(tmp_path, stdlib_text, preset):
     data = stdlib_text[250_000:260_000]
     blob = lcodec.pack(data, model=m)
     assert lcodec.unpack(blob, model=m) == data
-    if preset == "tiny-hashed":  # named by its SHA-256 alone: the binary identity of format version 2
-        assert blob[4] == 2 and b"m.lcmodel" not in blob
+    if preset == "tiny-hashed":  # named by its SHA-256 alone: the binary identity (version 3 keeps it)
+        assert blob[4] == 3 and C.read_header(blob)[0]["identity"] == {"model": "weft", "sha256": sha}
+        assert b"m.lcmodel" not in blob

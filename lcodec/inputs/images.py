@@ -166,6 +166,14 @@ def _tiff_record(tif, page, check: bool = True):
         return None
     if page.imagedepth != 1:
         return None
+    # before anything is decoded or allocated: the size the header claims, and every strip
+    # or tile inside the file (a hostile header may claim 100,000 x 100,000 samples)
+    if page.imagelength * page.imagewidth * spp > MAX_SAMPLES:
+        return None
+    size = tif.filehandle.size
+    offs, counts = page.dataoffsets, page.databytecounts
+    if not offs or len(offs) != len(counts) or any(o < 0 or c < 0 or o + c > size for o, c in zip(offs, counts)):
+        return None
     a = page.asarray()
     if spp > 1 and page.planarconfig == 2:
         a = np.moveaxis(a, 0, -1)
@@ -242,6 +250,8 @@ def _dicom(data):
     frames = int(getattr(ds, "NumberOfFrames", 1) or 1)
     bps = bits // 8
     n = rows * cols * frames * spp * bps
+    if n > len(data) or rows < 1 or cols < 1 or frames < 1:  # the header claims more samples than the file holds
+        return None
     big = ts == ExplicitVRBigEndian
     tag = b"\x7f\xe0\x00\x10" if big else b"\xe0\x7f\x10\x00"
     explicit = ts != ImplicitVRLittleEndian
