@@ -100,7 +100,7 @@ class _Plan:
                 if not single:
                     content.update(data)
             else:
-                for raw in _read_frames(src, 1 << 20):
+                for raw in _hash_pieces(src):
                     h.update(raw)
                     if not single:
                         content.update(raw)
@@ -137,6 +137,22 @@ class _Plan:
         if content.digest() != self.content_sha:
             raise UsageError(f"{self.sources[0].path if self.sources else 'the input'} changed while it was "
                              f"being packed; nothing was written under the final name")
+
+
+def _hash_pieces(src: _Source, piece: int = 1 << 20):
+    """A file source's bytes in pieces, for hashing only (nothing is kept)."""
+    try:
+        with open(src.path, "rb") as f:
+            left = src.size
+            while left:
+                raw = f.read(min(piece, left))
+                if not raw:
+                    raise UsageError(f"{src.path} changed while it was being packed (it became shorter); "
+                                     f"nothing was written under the final name")
+                left -= len(raw)
+                yield raw
+    except OSError as e:
+        raise UsageError(f"cannot read {src.path}: {e.strerror or e}") from None
 
 
 def _content_of_image(src: _Source) -> bytes:

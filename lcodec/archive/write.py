@@ -235,12 +235,15 @@ class _Journal:
 
         def check(index, raw):
             try:
-                fr = C.read_record(memoryview(mm), pos[0], index, None, C.VERSION_BOUND, plan.archive_id)
+                fr = C.read_record(memoryview(mm), pos[0], index, None, C.VERSION_BOUND)
             except DataError:
                 raise UsageError(f"{self.partial} is damaged at frame {index}; remove it and "
                                  f"{self.path} to start again") from None
             if fr.raw_len != len(raw) or fr.raw_crc != C.crc32c(raw):
                 raise UsageError(f"an input changed since the interrupted run (frame {index} differs); "
+                                 f"remove {self.partial} and {self.path} to start again")
+            if fr.archive_id != plan.archive_id:  # its records name the archive of the old content
+                raise UsageError(f"an input changed since the interrupted run (the content's SHA-256 differs); "
                                  f"remove {self.partial} and {self.path} to start again")
             pos[0] = fr.payload_offset + fr.coded_len
 
