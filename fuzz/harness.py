@@ -225,8 +225,9 @@ def seeds(target: str) -> list[bytes]:
                 out.append(open(os.path.join(v3, n), "rb").read())
         return [bytes([1]) + b for b in out] + [bytes([0]) + b for b in out[:4]]
     if target == "modelfile":
+        out.extend(bytes([1]) + m for m in _small_models())
         for n in names:
-            if n.endswith(".lcmodel") and os.path.getsize(os.path.join(golden, n)) <= 1 << 18:
+            if n.endswith(".lcmodel") and os.path.getsize(os.path.join(golden, n)) <= MODEL_MAX_LEN:
                 out.append(bytes([1]) + open(os.path.join(golden, n), "rb").read())
         return out
     if target in ("images", "descriptor"):
@@ -242,6 +243,28 @@ def seeds(target: str) -> list[bytes]:
                         out.append(struct.pack("<I", fr.raw_len) + bytes(fr.payload[:64]))
         return out
     raise KeyError(target)
+
+
+MODEL_MAX_LEN = 1 << 15  # the weft and tessel golden model files fit; braid's (88-267 KB) do not
+
+
+def _small_models() -> list[bytes]:
+    """Small model files: strata parameters alone, and arrays of every dtype the format has."""
+    import tempfile
+
+    import numpy as np
+
+    from lcodec.models.strata import Strata
+
+    out = []
+    with tempfile.TemporaryDirectory() as d:
+        p = os.path.join(d, "m.lcmodel")
+        modelfile.dump(p, {"name": "strata", "params": Strata(max_order=4, hash_log2=14).params}, notes="seed")
+        out.append(open(p, "rb").read())
+        arrays = {f"a_{code}": np.arange(6, dtype=dt).reshape(2, 3) for code, dt in modelfile.DTYPES.items()}
+        modelfile.dump(p, {"name": "strata", "params": {}}, arrays)
+        out.append(open(p, "rb").read())
+    return out
 
 
 def _small_archives() -> list[bytes]:

@@ -24,6 +24,7 @@ import time
 ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
 HARNESS = os.path.join(ROOT, "fuzz", "harness.py")
 TARGETS = ["descriptor", "images", "container", "modelfile", "salvage"]
+MAX_LEN = {"modelfile": 1 << 15}  # inputs up to this long (the golden weft and tessel model files fit)
 STATS = re.compile(r"#(\d+)\s+(?:DONE|pulse|NEW|REDUCE|INITED)\s+cov: (\d+) ft: (\d+) corp: (\d+)/\S+.*?exec/s: (\d+)")
 
 
@@ -42,6 +43,7 @@ def run_target(target: str, runs: int, seconds: int, out_dir: str, max_len: int 
     for m in STATS.finditer(p.stderr):
         last = m
     found = sorted(f for f in os.listdir(work) if f.split("-")[0] in ("crash", "timeout", "oom", "leak"))
+    rows = {"max_len": max_len}
     execs = int(last.group(1)) if last else 0
     final = re.search(r"stat::number_of_executed_units:\s*(\d+)", p.stderr)
     if final:
@@ -52,7 +54,7 @@ def run_target(target: str, runs: int, seconds: int, out_dir: str, max_len: int 
             "corpus_inputs": int(last.group(4)) if last else 0,
             "crashes": sum(f.startswith(("crash", "oom", "leak")) for f in found),
             "hangs": sum(f.startswith("timeout") for f in found), "artifacts": found,
-            "exit_code": p.returncode, "reached_runs": execs >= runs}
+            "exit_code": p.returncode, "reached_runs": execs >= runs, **rows}
 
 
 def main() -> None:
@@ -65,7 +67,7 @@ def main() -> None:
     a = ap.parse_args()
     rows = []
     for t in a.targets.split(","):
-        r = run_target(t, a.runs, a.seconds, a.out)
+        r = run_target(t, a.runs, a.seconds, a.out, MAX_LEN.get(t, 4096))
         rows.append(r)
         print(f"{t:11s} {r['executions']:>9,} executions in {r['seconds']:7.1f} s ({r['exec_per_s']:,.0f}/s), "
               f"coverage {r['coverage_edges']} edges / {r['features']} features, corpus {r['corpus_inputs']}, "

@@ -171,3 +171,17 @@ def test_cli_ceiling_exits_1_with_one_line(pair, tmp_path):
     r = subprocess.run([sys.executable, "-m", "lcodec", "unpack", str(arc), "-o", str(tmp_path / "a"),
                         "--output-ceiling", "none"], capture_output=True, text=True)
     assert r.returncode == 0
+
+
+def test_version_1_salvage_still_places_records_without_numbers():
+    # the legacy path (archive/salvage.py _place): records carry no frame number
+    golden = os.path.join(os.path.dirname(__file__), "golden")
+    blob = bytearray(open(os.path.join(golden, "strata-v1-text.lcodec"), "rb").read())
+    orig = open(os.path.join(golden, "strata-v1-text.orig"), "rb").read()
+    cont = C.read_container(bytes(blob))
+    assert cont.version == 1 and len(cont.frames) == 3
+    blob[cont.frames[1].offset + 1] ^= 0x40  # the second record's head
+    res = S.salvage(bytes(blob))
+    assert [res.frames[i].status for i in range(3)] == ["good", "missing", "good"]
+    assert res.frames[2].placed_by == "end of file"
+    assert res.partial[:8192] == orig[:8192] and res.partial[16384:] == orig[16384:]

@@ -23,7 +23,8 @@ def test_fuzz_smoke(target, tmp_path):
     corpus = tmp_path / "corpus"
     subprocess.run([sys.executable, HARNESS, "--seeds", target, str(corpus)], check=True, capture_output=True)
     assert len(os.listdir(corpus)) >= 3
-    r = subprocess.run([sys.executable, HARNESS, target, f"-max_total_time={SECONDS[target]}", "-max_len=4096",
+    max_len = 1 << 15 if target == "modelfile" else 4096
+    r = subprocess.run([sys.executable, HARNESS, target, f"-max_total_time={SECONDS[target]}", f"-max_len={max_len}",
                         "-timeout=10", "-rss_limit_mb=2048", f"-artifact_prefix={tmp_path}/", str(corpus)],
                        capture_output=True, text=True, timeout=300)
     found = [f for f in os.listdir(tmp_path) if f.startswith(("crash", "timeout", "oom", "leak"))]
