@@ -17,7 +17,9 @@ Every function takes the same frames through the same pipeline (lcodec/archive/)
 byte models and pixel models alike; `jobs` (worker processes) and `cluster` (a dask
 scheduler's address or a distributed.Client) choose where frames are coded, never what
 the archive holds. Errors: lcodec.errors.DataError (damaged/mismatching data),
-ModelError (wrong or missing model), UsageError (a bad request).
+ModelError (wrong or missing model), UsageError (a bad request), CeilingError (the
+archive claims more content than `ceiling` bytes: unpack and verify refuse it before
+decoding anything; default DEFAULT_CEILING, None for no ceiling).
 
 This module only gathers names; the code lives in the layers below it (DEVELOPERS.md).
 """
@@ -25,8 +27,8 @@ from __future__ import annotations
 
 from .archive.perfile import EACH_JOURNAL, EACH_KIND, EACH_MANIFEST, EACH_MANIFEST_KIND, pack_each
 from .archive.plan import DEFAULT_FRAME_SIZE, KEPT_MODE_BITS, PackStats
-from .archive.read import (Decoded, Sink, apply_folder_modes, decode, decode_stream, is_multi, unpack,
-                           unpack_to_dir, unpack_to_file)
+from .archive.read import (DEFAULT_CEILING, Decoded, Sink, apply_folder_modes, check_ceiling, decode, decode_stream,
+                           is_multi, unpack, unpack_to_dir, unpack_to_file)
 from .archive.verify import VerifyReport, info, verify
 from .archive.write import JOURNAL_EVERY_S, JOURNAL_KIND, pack, pack_paths, pack_stats, pack_to
 from .frames import LANE_BYTES, MAX_LANES, choose_lanes, decode_one, frame_lanes, image_guarantee, is_pixel_model
@@ -42,7 +44,7 @@ def code_frame(model, raw: bytes) -> tuple[bytes, float, bool]:
 _Sink = Sink  # the name decode_stream's sinks subclassed before the layout by layers
 
 __all__ = [
-    "DEFAULT_FRAME_SIZE", "EACH_JOURNAL", "EACH_KIND", "EACH_MANIFEST", "EACH_MANIFEST_KIND", "JOURNAL_EVERY_S",
+    "DEFAULT_CEILING", "DEFAULT_FRAME_SIZE", "check_ceiling", "EACH_JOURNAL", "EACH_KIND", "EACH_MANIFEST", "EACH_MANIFEST_KIND", "JOURNAL_EVERY_S",
     "JOURNAL_KIND", "KEPT_MODE_BITS", "LANE_BYTES", "MAX_LANES", "Decoded", "PackStats", "Sink", "VerifyReport",
     "apply_folder_modes", "choose_lanes", "code_frame", "decode", "decode_one", "decode_stream", "frame_lanes",
     "image_guarantee", "info", "is_multi", "is_pixel_model", "pack", "pack_each", "pack_paths", "pack_stats",

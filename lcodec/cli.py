@@ -1,14 +1,17 @@
 """Command line: `lcodec pack | unpack | verify | info | bench | demo`.
 
 Exit codes: 0 ok; 1 a data problem (damaged archive, mismatch, wrong or missing model);
-2 a usage error (bad option, missing input, refused overwrite). No traceback for bad
-input: set LCODEC_DEBUG=1 to see one for an internal error.
+2 a usage error (bad option, missing input, refused overwrite); 130 interrupted (SIGINT),
+143 terminated (SIGTERM): then nothing is left under a final name and no temporary file
+is left behind (a `pack --resume` job keeps its partial archive and journal). No
+traceback for bad input: set LCODEC_DEBUG=1 to see one for an internal error.
 """
 from __future__ import annotations
 
 import functools
 import json
 import os
+import signal
 import sys
 
 # BLAS on one thread unless the user says otherwise, set before numpy loads (the first
@@ -21,7 +24,7 @@ os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
 import click  # noqa: E402
 
 from .version import __version__  # noqa: E402
-from .errors import LcodecError, UsageError  # noqa: E402
+from .errors import LcodecError, Terminated, UsageError  # noqa: E402
 from .fsio import ARCHIVE_EXT, atomic_write, map_input, map_stream, read_input  # noqa: E402
 
 EXAMPLES = {
@@ -75,18 +78,43 @@ def _kernels_without_blas():
             del sys.modules["scipy"]
 
 
+def _on_signal(signum, frame):
+    # once: a second signal during the cleanup must not cut it short
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
+    signal.signal(signal.SIGTERM, signal.SIG_IGN)
+    raise Terminated() if signum == signal.SIGTERM else KeyboardInterrupt()
+
+
+def _catch_signals() -> None:
+    """SIGINT and SIGTERM become exceptions in the main thread (not in worker processes,
+    which start with their own handlers)."""
+    import threading
+
+    if threading.current_thread() is threading.main_thread():
+        signal.signal(signal.SIGINT, _on_signal)
+        signal.signal(signal.SIGTERM, _on_signal)
+
+
+def _interrupted(name: str, code: int):
+    click.echo(f"lcodec: {name}; stopped, nothing was written under the final name and no temporary "
+               f"file was left (a --resume job keeps its journal)", err=True)
+    sys.exit(code)
+
+
 def guarded(fn):
     """Turn lcodec errors into a one-line message and their exit code."""
     @functools.wraps(fn)
     def wrapper(*a, **k):
         try:
+            _catch_signals()
             return fn(*a, **k)
         except LcodecError as e:
             click.echo(f"lcodec: {e}", err=True)
             sys.exit(e.exit_code)
         except KeyboardInterrupt:
-            click.echo("lcodec: interrupted; nothing was written under the final name", err=True)
-            sys.exit(130)
+            _interrupted("interrupted (SIGINT)", 130)
+        except Terminated:
+            _interrupted("terminated (SIGTERM)", 143)
         except BrokenPipeError:
             sys.exit(1)
         except OSError as e:  # e.g. stdout on a full disk; file outputs report their own
@@ -135,13 +163,28 @@ quiet_option = click.option("-q", "--quiet", is_flag=True, help="No progress or 
 
 
 def parse_size(text: str, option: str) -> int:
-    """A byte count written as a whole number with an optional K, M or G (powers of 1024)."""
+    """A byte count written as a whole number with an optional K, M, G or T (powers of 1024)."""
     t = str(text).strip().upper().removesuffix("B").removesuffix("I")
-    mult = {"K": 1 << 10, "M": 1 << 20, "G": 1 << 30}.get(t[-1:], 1)
+    mult = {"K": 1 << 10, "M": 1 << 20, "G": 1 << 30, "T": 1 << 40}.get(t[-1:], 1)
     digits = t[:-1] if mult > 1 else t
     if not digits.isdigit():
         raise UsageError(f"{option} takes a size such as 32M, 512K or 0, not {text!r}")
     return int(digits) * mult
+
+
+def _ceiling_value(ctx, param, value):
+    if value is None or str(value).strip().lower() == "none":
+        return None
+    try:
+        return parse_size(value, "--output-ceiling")
+    except UsageError as e:
+        raise click.BadParameter(str(e)) from None
+
+
+ceiling_option = click.option("--output-ceiling", "ceiling", default="64G", show_default=True,
+                              callback=_ceiling_value, metavar="SIZE",
+                              help="Refuse, before decoding anything, an archive whose header claims more "
+                                   "content than SIZE (K, M, G, T; 'none': no ceiling). Exit 1.")
 
 
 def _jobs_value(ctx, param, value):
@@ -320,9 +363,11 @@ def _tree_bytes(inputs) -> int:
 @threads_option
 @jobs_option
 @cluster_option
+@ceiling_option
 @quiet_option
 @guarded
-def unpack(archive, output, model, force, salvage_mode, keep_damaged, report_path, threads, jobs, cluster, quiet):
+def unpack(archive, output, model, force, salvage_mode, keep_damaged, report_path, threads, jobs, cluster, ceiling,
+           quiet):
     """Restore an archive: a file, a folder for multi-member archives, or '-' for stdout.
 
     Every frame checksum and the SHA-256 of the content are checked before anything is
@@ -350,6 +395,11 @@ def unpack(archive, output, model, force, salvage_mode, keep_damaged, report_pat
         if output == "-":
             raise UsageError("--salvage writes files and a report: give -o with a file or folder name")
         hints = S.read_header_hints(memoryview(blob))
+        if hints is not None and ceiling is not None and hints.content_size > ceiling:
+            from .errors import CeilingError
+
+            raise CeilingError(f"the header claims {hints.content_size:,} bytes of content, more than the "
+                             f"output ceiling of {ceiling:,} bytes (raise it with --output-ceiling SIZE, or 'none')")
         bar = Progress(min(hints.content_size, 1 << 40) if hints else 0, "salvaging", quiet)
         try:
             res = S.salvage_to(blob, output, model, keep_damaged, force, report_path, archive_name=archive,
@@ -360,15 +410,17 @@ def unpack(archive, output, model, force, salvage_mode, keep_damaged, report_pat
             for line in S.summary(res):
                 click.echo(line, err=True)
         sys.exit(0 if res.ok else 1)
+    api.check_ceiling(blob, ceiling)
     multi = api.is_multi(blob)
     bar = Progress(api.info(blob)["content_bytes"], "unpacking", quiet)
     if multi:
         if output == "-":
             raise UsageError("this archive holds several members; unpack it into a folder, not stdout")
-        api.unpack_to_dir(blob, output, model, force, bar, jobs=jobs, cluster=cluster, workers=threads)
+        api.unpack_to_dir(blob, output, model, force, bar, jobs=jobs, cluster=cluster, workers=threads,
+                          ceiling=ceiling)
     else:
         api.unpack_to_file(blob, sys.stdout.buffer if output == "-" else output, model, force, bar,
-                           jobs=jobs, cluster=cluster, workers=threads)
+                           jobs=jobs, cluster=cluster, workers=threads, ceiling=ceiling)
     bar.close()
 
 
@@ -380,9 +432,10 @@ def unpack(archive, output, model, force, salvage_mode, keep_damaged, report_pat
 @threads_option
 @jobs_option
 @cluster_option
+@ceiling_option
 @quiet_option
 @guarded
-def verify(archive, against, model, threads, jobs, cluster, quiet):
+def verify(archive, against, model, threads, jobs, cluster, ceiling, quiet):
     """Decode an archive and check every checksum; exit 0 when exact, 1 when not."""
     _kernels_without_blas()
     from . import api
@@ -394,7 +447,7 @@ def verify(archive, against, model, threads, jobs, cluster, quiet):
     except LcodecError:
         total = 0
     bar = Progress(total, "verifying", quiet)
-    rep = api.verify(blob, model, against, bar, jobs=jobs, cluster=cluster, workers=threads)
+    rep = api.verify(blob, model, against, bar, jobs=jobs, cluster=cluster, workers=threads, ceiling=ceiling)
     bar.close()
     if rep.ok:
         what = f"{rep.members} members, " if rep.members else ""
@@ -449,7 +502,8 @@ def info(path, as_json, frames):
     if as_json:
         click.echo(json.dumps(d, indent=2))
         return
-    click.echo(f"lcodec archive, format version {d['format_version']}")
+    click.echo(f"lcodec archive, format version {d['format_version']}"
+               + (f", archive identity {d['archive_id']}" if d.get("archive_id") else ""))
     click.echo(f"  content   {d['content_bytes']} bytes, sha256 {d['content_sha256']}")
     click.echo(f"  archive   {d['archive_bytes']} bytes, {d['bits_per_byte']:.3f} bits per byte")
     click.echo(f"  model     {d['model_text']}")
@@ -641,12 +695,17 @@ def explain(file, model, output, png_out, frame_size, view_bytes, force, quiet):
 @click.option("--law/--no-law", default=True, show_default=True,
               help="Images: the third stage of 16-bit samples, a two-sided geometric law of the residual whose "
                    "scale each image learns per activity class (small or noisy scans).")
+@click.option("--record-names", is_flag=True,
+              help="List the training files' names (relative to the corpus arguments) in the model file. "
+                   "Without it the model file records only their count, bytes and a digest of the listing; "
+                   "it never records a path.")
 @click.option("--augment/--no-augment", default=True, show_default=True,
               help="Images: train also on each training image mirrored, flipped and transposed (while the "
                    "training samples stay under 16.8 million); decoding costs nothing more.")
 @force_option
 @guarded
-def train(corpus, output, kind, time_limit, preset, seed, max_bytes, memory, adapt_k, structure_k, law, augment, force):
+def train(corpus, output, kind, time_limit, preset, seed, max_bytes, memory, adapt_k, structure_k, law, record_names,
+          augment, force):
     """Train a model on files and folders of one kind; write a model file.
 
     A tenth of the files is held out for validation; progress shows validation bits per
@@ -662,10 +721,11 @@ def train(corpus, output, kind, time_limit, preset, seed, max_bytes, memory, ada
         if max_bytes is not None or memory is not None:
             raise UsageError("--max-bytes and --memory go with --kind bytes")
         T.train_image(list(corpus), output, time_limit or 120.0, preset or "small", seed, echo=echo, force=force,
-                      adapt_k=adapt_k, structure_k=structure_k, law=law, augment=augment)
+                      adapt_k=adapt_k, structure_k=structure_k, law=law, augment=augment, record_names=record_names)
     else:
         T.train(list(corpus), output, time_limit or 600.0, preset or T.DEFAULT_PRESET, seed, max_bytes, echo=echo,
-                force=force, memory=None if memory is None else parse_size(memory, "--memory"))
+                force=force, memory=None if memory is None else parse_size(memory, "--memory"),
+                record_names=record_names)
 
 
 @main.command(epilog=_example("demo"))

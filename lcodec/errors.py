@@ -15,6 +15,15 @@ class ModelError(LcodecError):
     """Wrong, missing or unreadable model (exit 1)."""
 
 
+class Terminated(BaseException):
+    """SIGTERM, raised where the process is (the CLI installs the handler), so that every
+    output's cleanup runs as it does for KeyboardInterrupt on SIGINT. Never caught as damage."""
+
+
+class CeilingError(LcodecError):
+    """The archive would decode to more bytes than the output ceiling allows (exit 1)."""
+
+
 class UsageError(LcodecError):
     """The request itself is wrong: bad option, missing input, refused overwrite (exit 2)."""
 

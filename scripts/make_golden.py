@@ -1,5 +1,5 @@
 #!/usr/bin/env python3
-"""Write the golden containers in tests/golden/ (format v1). Run only when adding a vector:
+"""Write the golden containers in tests/golden/ (every format version). Run only when adding a vector:
 existing vectors are never regenerated (see the format-change rules in DEVELOPERS.md)."""
 import os
 import random
@@ -348,7 +348,48 @@ def main():
     golden_tessel_structure()
     golden_tessel_law()
     golden_tessel_replicated()
+    golden_v3_twins()
 
 
 if __name__ == "__main__":
     main()
+
+
+def golden_v3_twins():
+    """Container version 3 (records carry their frame number and the archive identity; coded
+    words carry sub-frame checks): for every older golden container NAME, the container
+    today's encoder writes for NAME.orig with the same model and frame size, as
+    tests/golden/v3/NAME.lcodec. The old container must keep decoding; the twin is what
+    today's encoder must keep writing (tests compare both)."""
+    import glob
+    import hashlib
+
+    from lcodec.format import container as C
+
+    out_dir = os.path.join(HERE, "v3")
+    os.makedirs(out_dir, exist_ok=True)
+    models = {}
+    for mp in glob.glob(os.path.join(HERE, "*.lcmodel")):
+        with open(mp, "rb") as f:
+            models[hashlib.sha256(f.read()).hexdigest()] = mp
+    for arc in sorted(glob.glob(os.path.join(HERE, "*.lcodec"))):
+        name = os.path.basename(arc)[:-7]
+        twin = os.path.join(out_dir, name + ".lcodec")
+        if os.path.exists(twin):
+            print(f"keep {twin}")
+            continue
+        with open(arc, "rb") as f:
+            blob = f.read()
+        cont = C.read_container(blob)
+        if cont.version == C.VERSION_BOUND:
+            continue
+        ident = cont.identity
+        model = models[ident["sha256"]] if "sha256" in ident else None
+        if model is None:
+            from lcodec.models.strata import Strata
+            model = Strata.from_identity(ident)
+        with open(os.path.join(HERE, name + ".orig"), "rb") as f:
+            orig = f.read()
+        with open(twin, "wb") as f:
+            f.write(lcodec.pack(orig, model=model, frame_size=cont.frame_size))
+        print(f"wrote {twin}")

@@ -40,3 +40,13 @@ def step_tables(model, data, lanes):
     if hasattr(step, "close"):
         step.close()
     return np.concatenate(out)
+
+
+def v3_twin(name: str) -> bytes:
+    """tests/golden/v3/NAME.lcodec: the container today's encoder writes (format version 3)
+    for the golden NAME.orig with the golden NAME.lcodec's model and frame size (made by
+    scripts/make_golden.py). An older golden container must keep decoding; its twin is what
+    today's encoder must keep writing."""
+    import os
+    with open(os.path.join(os.path.dirname(__file__), "golden", "v3", name + ".lcodec"), "rb") as f:
+        return f.read()

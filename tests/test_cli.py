@@ -244,7 +244,7 @@ def test_info_json(tmp_path, tree, text_file):
     d = json.loads(r.stdout)  # reference: the standard library's json parser
     for key in ("format_version", "content_bytes", "frames", "model", "members"):
         assert key in d, key
-    assert d["format_version"] == 1
+    assert d["format_version"] == 3 and len(d["archive_id"]) == 16
     assert d["content_bytes"] == sum(len(v) for v in tree_of(tree).values() if v is not None)
     paths = {m["path"] for m in d["members"]}
     assert "station-logs/2031/vk7.log" in paths and "station-logs/2031/empty" in paths
@@ -257,7 +257,7 @@ def test_info_json(tmp_path, tree, text_file):
     d1 = json.loads(cli("info", farc, "--json").stdout)
     assert d1["members"] is None and d1["content_bytes"] == len(text_file.read_bytes())
     r = cli("info", farc, "--frames")
-    assert r.returncode == 0 and b"format version 1" in r.stdout
+    assert r.returncode == 0 and b"format version 3" in r.stdout
 
 
 def test_info_on_a_damaged_archive(tmp_path, text_file):

@@ -87,7 +87,7 @@ def fix_header_crc(blob: bytes, s: "Sample") -> bytes:
 
 
 def with_version(s: "Sample", version: int) -> bytes:
-    assert s.blob[:4] == C.MAGIC and s.blob[4] == 1  # the version byte follows the 4-byte magic
+    assert s.blob[:4] == C.MAGIC and s.blob[4] == 3  # the version byte follows the 4-byte magic
     return fix_header_crc(s.blob[:4] + bytes([version]) + s.blob[5:], s)
 
 
@@ -224,7 +224,7 @@ def test_appended_garbage(sample, tail, tmp_path):
 
 
 def test_unknown_format_version(sample, tmp_path):
-    bad = with_version(sample, 3)
+    bad = with_version(sample, 4)
     msg, text = expect_refused(sample, bad, tmp_path, message="unsupported format version")
     assert "unsupported format version" in text
 
@@ -300,7 +300,7 @@ def damaged_variants(s: Sample) -> dict:
         "truncated in header": s.blob[:50],
         "truncated in payload": s.blob[: s.payloads[-1][0] + 3],
         "garbage appended": s.blob + b"\xff" * 33,
-        "version 3": with_version(s, 3),
+        "version 4": with_version(s, 4),
         "wrong magic": with_magic(s, b"\x9bLC\n"),
     }
     if s.kind == "folder":
@@ -309,7 +309,7 @@ def damaged_variants(s: Sample) -> dict:
 
 
 FILE_CASES = ["header fields", "identity", "frame head", "frame payload", "truncated in header",
-              "truncated in payload", "garbage appended", "version 3", "wrong magic"]
+              "truncated in payload", "garbage appended", "version 4", "wrong magic"]
 FOLDER_CASES = FILE_CASES + ["member table"]
 
 
@@ -368,7 +368,7 @@ def check_cli_refusal(run: CliRun):
 @pytest.mark.parametrize("name", FILE_CASES)
 def test_cli_refuses_damaged_file_archive(cli_runs, single, name):
     uerr, verr = check_cli_refusal(cli_runs[("file", name)])
-    if name == "version 3":
+    if name == "version 4":
         assert "unsupported format version" in uerr and "unsupported format version" in verr
     if name == "wrong magic":
         assert "not an lcodec archive" in uerr
@@ -379,7 +379,7 @@ def test_cli_refuses_damaged_file_archive(cli_runs, single, name):
 @pytest.mark.parametrize("name", FOLDER_CASES)
 def test_cli_refuses_damaged_folder_archive(cli_runs, folder, name):
     uerr, verr = check_cli_refusal(cli_runs[("folder", name)])
-    if name == "version 3":
+    if name == "version 4":
         assert "unsupported format version" in uerr and "unsupported format version" in verr
     if name == "frame payload":
         assert folder.member_paths[-1] in verr and "frame 2" in verr

@@ -131,7 +131,8 @@ def test_damaged_record_head_is_found_past_by_scanning(single):
     res = S.salvage(flip(single["blob"], cont.frames[2].offset + 1, 2))
     assert res.content is None
     assert [res.frames[i].status for i in range(5)] == ["good", "good", "missing", "good", "good"]
-    assert res.frames[3].placed_by == "end of file" and res.frames[4].placed_by == "end of file"
+    # version 3: the records carry their frame numbers (version 1 placed them from the end of the file)
+    assert res.frames[3].placed_by == "frame number" and res.frames[4].placed_by == "frame number"
     rep = res.report()
     [e] = rep["damaged_frames"]
     f2, f3 = cont.frames[2], cont.frames[3]
@@ -163,12 +164,13 @@ def test_damaged_header_still_finds_frames_by_scanning(single):
 def test_damaged_identity_length_still_places_every_frame(single):
     # The identity length (the varint before the member-table length and the header CRC)
     # changed: the header's first record is no longer where it says, so the records are
-    # found by scanning and placed from the end of the file; the content SHA-256 read
-    # from the damaged header still proves the content.
+    # found by scanning (the archive identity most records carry, as the damaged header's
+    # own is unproven) and placed by their frame numbers; the content SHA-256 read from
+    # the damaged header still proves the content.
     cont = single["cont"]
     res = S.salvage(flip(single["blob"], cont.spans["crc"][0] - 2, 6))
     assert res.header == "damaged" and not res.ok
-    assert [res.frames[i].placed_by for i in range(5)] == ["end of file"] * 5
+    assert [res.frames[i].placed_by for i in range(5)] == ["frame number"] * 5
     assert res.content == single["data"]
 
 

@@ -2,8 +2,11 @@
 
 A plan knows, before any content is read, everything the header needs except the
 SHA-256 fields: the members, the content size, the frame size and the frame count (so
-the header's length is fixed and the header can be written again at the end). Its
-frames are then read lazily, one at a time, and hashed as they go past.
+the header's length is fixed). `seal()` then reads the content once to hash it (a quick
+pass: hashing runs at hundreds of MB/s, coding at hundreds of KB/s), which completes the
+header and with it the archive identity every version-3 record carries. Its frames are
+then read lazily, one at a time, and hashed again as they go past: an input that
+changed in between is refused.
 
 Frame kinds enter here. With a pixel model, each file that an input reader
 (inputs/images.py) recognises as an image becomes an image source: its content is the
@@ -70,13 +73,47 @@ class _Plan:
         self.skip_frames = 0  # frames a resumed run already has in its partial file
         self.skip_check = None  # (index, raw) -> None, raises if a skipped frame's content changed
         self.out = None  # set by the consumer
+        self.sealed = False
+        self.archive_id = None
+        self.next_index = 0  # the frame number of the next record coded (the writer's count)
 
     def header(self) -> bytes:
         return C.header_bytes(self.content_size, self.content_sha, self.n_frames, self.frame_size,
-                              self.identity, self.members)
+                              self.identity, self.members, bound=True)
+
+    def seal(self) -> None:
+        """Hash the content (every SHA-256 field of the header), and so fix the archive
+        identity (container version 3). Reads each input once more; idempotent."""
+        if self.sealed:
+            return
+        content = hashlib.sha256()
+        single = len(self.sources) == 1 and self.sources[0].member is None
+        for src in self.sources:
+            h = content if single else hashlib.sha256()
+            if src.data is not None:
+                h.update(src.data)
+                if not single:
+                    content.update(src.data)
+            elif src.image is not None:
+                data = _content_of_image(src)
+                h.update(data)
+                if not single:
+                    content.update(data)
+            else:
+                for raw in _hash_pieces(src):
+                    h.update(raw)
+                    if not single:
+                        content.update(raw)
+            if src.member is not None:
+                src.member.sha256 = h.digest()
+        self.content_sha = content.digest()
+        self.sealed = True
+        self.archive_id = C.header_id(self.header())
 
     def frames(self):
-        """The raw frames in order, read lazily, hashing as they go."""
+        """The raw frames in order, read lazily, hashing as they go (checked against what
+        seal() found: an input that changed since is refused)."""
+        self.seal()
         content = hashlib.sha256()
         single = len(self.sources) == 1 and self.sources[0].member is None
         index = 0
@@ -94,9 +131,33 @@ class _Plan:
                 else:
                     yield work
                 index += 1
-            if src.member is not None:
-                src.member.sha256 = h.digest()
-        self.content_sha = content.digest()
+            if src.member is not None and src.member.sha256 != h.digest():
+                raise UsageError(f"{src.path or src.member.path} changed while it was being packed; "
+                                 f"nothing was written under the final name")
+        if content.digest() != self.content_sha:
+            raise UsageError(f"{self.sources[0].path if self.sources else 'the input'} changed while it was "
+                             f"being packed; nothing was written under the final name")
+
+
+def _hash_pieces(src: _Source, piece: int = 1 << 20):
+    """A file source's bytes in pieces, for hashing only (nothing is kept)."""
+    try:
+        with open(src.path, "rb") as f:
+            left = src.size
+            while left:
+                raw = f.read(min(piece, left))
+                if not raw:
+                    raise UsageError(f"{src.path} changed while it was being packed (it became shorter); "
+                                     f"nothing was written under the final name")
+                left -= len(raw)
+                yield raw
+    except OSError as e:
+        raise UsageError(f"cannot read {src.path}: {e.strerror or e}") from None
+
+
+def _content_of_image(src: _Source) -> bytes:
+    work = _image_work(src)
+    return work.data
 
 
 def _read_frames(src: _Source, frame_size: int):
@@ -128,6 +189,7 @@ def _frame_items(plans):
     """("open", plan), ("frame", plan, raw bytes, or the length of a kept frame), ...,
     ("close", plan) for each plan."""
     for plan in plans:
+        plan.seal()  # the header complete (SHA-256 fields, archive identity) before any record
         yield ("open", plan, None)
         for raw in plan.frames():
             yield ("frame", plan, raw)

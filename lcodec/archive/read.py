@@ -17,7 +17,7 @@ import hashlib
 import os
 from dataclasses import dataclass, field
 
-from ..errors import DataError, UsageError
+from ..errors import CeilingError, DataError, UsageError
 from ..format import container as C
 from ..frames import decode_record, frame_fields, image_guarantee
 from ..fsio import OutFile, _remove_quietly, safe_member_path
@@ -122,6 +122,22 @@ def _threaded_frames(cont: C.Container, m, workers: int):
             pool.shutdown(wait=True, cancel_futures=True)
 
 
+DEFAULT_CEILING = 64 << 30  # the output ceiling unpack and verify apply unless told otherwise
+
+
+def check_ceiling(blob, ceiling: int | None) -> None:
+    """Refuse, before anything is decoded, an archive whose header claims more content than
+    `ceiling` bytes (None: no ceiling). The claim bounds the work too: every frame's raw
+    length is checked against it, and sub-frame checks (version 3) stop a frame whose
+    coded words run out long before its claimed length."""
+    if ceiling is None:
+        return
+    size = C.read_header(blob)[0]["content_size"]
+    if size > ceiling:
+        raise CeilingError(f"the archive would decode to {size:,} bytes, more than the output ceiling of "
+                           f"{ceiling:,} bytes (raise it with --output-ceiling SIZE, or 'none')")
+
+
 def _check_workers(jobs, cluster, workers: int) -> None:
     if workers > 1 and (cluster is not None or jobs not in (None, 0, 1)):
         raise UsageError("give --threads or --jobs/--cluster, not both")
@@ -149,13 +165,15 @@ class Sink:
 
 
 def decode_stream(blob, sink: Sink, model=None, progress=None, keep_going: bool = False, jobs: int = 1,
-                  cluster=None, workers: int = 1) -> tuple[C.Container, list]:
+                  cluster=None, workers: int = 1, ceiling: int | None = None) -> tuple[C.Container, list]:
     """Decode every frame in order, handing each to `sink` as it comes (nothing is kept),
     and check every checksum: each frame's CRC-32C, each member's SHA-256 (at its end),
     the content's SHA-256 (at the end). Returns (container, problems); without
-    keep_going the first problem raises DataError."""
+    keep_going the first problem raises DataError. An archive claiming more than `ceiling`
+    bytes is refused first (CeilingError)."""
     _check_workers(jobs, cluster, workers)
     cont = C.read_container(blob)
+    check_ceiling(blob, ceiling)
     m = for_identity(cont.identity, model)
     _check_member_table(cont)
     problems = []
@@ -271,9 +289,11 @@ class _Collect(Sink):
         self.parts.append(raw if raw is not None else bytes(n))
 
 
-def unpack(blob, model=None, progress=None, jobs: int = 1, cluster=None, workers: int = 1) -> bytes:
+def unpack(blob, model=None, progress=None, jobs: int = 1, cluster=None, workers: int = 1,
+           ceiling: int | None = DEFAULT_CEILING) -> bytes:
     """Archive bytes -> the original bytes (single-content archives)."""
     _check_workers(jobs, cluster, workers)
+    check_ceiling(blob, ceiling)
     model = _archive_model(blob, model)
     if is_multi(blob):
         n = len(decode(blob, model).container.members)  # damage first (DataError), as always
@@ -292,16 +312,18 @@ class _ToFile(Sink):
 
 
 def unpack_to_file(blob, output, model=None, force: bool = False, progress=None, jobs: int = 1,
-                   cluster=None, workers: int = 1) -> int:
+                   cluster=None, workers: int = 1, ceiling: int | None = DEFAULT_CEILING) -> int:
     """Decode a single-file archive into the file `output` (a path) or a binary stream,
     frame by frame: memory holds a bounded window of frames, never the whole content.
     A path gets the content under a temporary name, renamed into place only after every
     checksum passed; a stream (stdout) gets it only after that too (it is spooled to a
-    temporary file first). Returns the content size."""
+    temporary file first). Returns the content size. An archive claiming more than
+    `ceiling` bytes is refused before anything is decoded or written."""
     import shutil
     import tempfile
 
     _check_workers(jobs, cluster, workers)
+    check_ceiling(blob, ceiling)
     if is_multi(blob):
         n = len(C.read_container(blob).members)
         raise UsageError(f"this archive holds {n} members; unpack it into a folder")
@@ -362,12 +384,14 @@ class _ToFolder(Sink):
 
 
 def unpack_to_dir(blob, out_dir: str, model=None, force: bool = False, progress=None, jobs: int = 1,
-                  cluster=None, workers: int = 1) -> list[str]:
+                  cluster=None, workers: int = 1, ceiling: int | None = DEFAULT_CEILING) -> list[str]:
     """Decode a multi-member archive into `out_dir` (created; must not exist unless force).
     Members are decoded frame by frame and written under a temporary folder as they come;
     only when every checksum passed is it renamed into place (or, with force into an
-    existing folder, its files moved in); returns the member paths written."""
+    existing folder, its files moved in); returns the member paths written. An archive
+    claiming more than `ceiling` bytes is refused before anything is decoded or written."""
     _check_workers(jobs, cluster, workers)
+    check_ceiling(blob, ceiling)
     if not is_multi(blob):
         C.read_container(blob)  # a damaged archive is a DataError, as before
         raise UsageError("this archive holds a single file; unpack it to a file name")

@@ -116,6 +116,11 @@ def decode_batch(key: str, items: list) -> list:
 
 
 def _init_worker(spec: ModelSpec) -> None:
+    import signal
+
+    # Ctrl-C reaches the whole process group: the parent stops the job and cleans up; a
+    # worker only stops when the pool is shut down (no traceback from each worker)
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
     os.environ.setdefault("NUMBA_NUM_THREADS", "1")
     register(spec)
     model_for(spec.key)  # build (and compile) now, before the first task

@@ -19,6 +19,9 @@ What the format gives (docs/FORMAT.md), and how each piece is used:
   records that ends exactly at the end of the file holds the last frames), from a damaged
   head whose own length fields point exactly at it, or from its frames' raw lengths when
   only one place fits; a record whose place stays uncertain is listed and not used.
+* Version 3 (archive/salvage_bound.py): each record carries the archive's identity and
+  its frame number under its CRC-32C, so records are found by their archive's identity
+  and placed by the number they carry; a record of another archive is refused.
 * Per frame: the CRC-32C of its coded bytes (checked before decoding) and of its raw bytes.
 * Per member: SHA-256. Only a member whose every frame decodes and whose SHA-256 matches
   is written under its own name; a single-file archive's content only when every frame
@@ -45,6 +48,7 @@ from ..fsio import atomic_write, safe_member_path, _remove_quietly
 from ..inputs.images import rebuild
 from ..models import default_model, for_identity, identity_text, resolve
 from .plan import KEPT_MODE_BITS
+from . import salvage_bound as B
 from .read import _refuse_links, apply_folder_modes
 
 DAMAGED_SUFFIX = ".lcodec-damaged"
@@ -67,6 +71,8 @@ class Hints:
     identity: dict | None
     members: list | None
     members_readable: bool
+    version: int = 1
+    archive_id: bytes | None = None  # version 3: from the header's bytes as read (proven when crc_ok)
 
 
 def read_header_hints(mv) -> Hints | None:
@@ -108,7 +114,8 @@ def read_header_hints(mv) -> Hints | None:
     good = (crc_ok and bytes(mv[:4]) == C.MAGIC and mv[4] in C.SUPPORTED_VERSIONS and flags & ~C.FLAG_MEMBERS == 0
             and 1 <= frame_size <= C.MAX_FRAME_RAW and identity is not None and readable
             and (members is not None) == bool(flags & C.FLAG_MEMBERS))
-    return Hints(crc_ok, good, end, size, sha, n_frames, frame_size, identity, members, readable)
+    aid = C.archive_id(bytes(mv[:pos]) + bytes(mv[pos + 4:end])) if mv[4] == C.VERSION_BOUND else None
+    return Hints(crc_ok, good, end, size, sha, n_frames, frame_size, identity, members, readable, mv[4], aid)
 
 
 class Layout:
@@ -525,9 +532,19 @@ def salvage(blob, model=None, progress=None) -> Salvage:
         problems.append("header damaged (its checksum does not match): its fields are used as hints only")
     m, model_text = _choose_model(hints, header, model, problems)
     frames, unplaced, pieces, structure = {}, [], [], ""
+    if hints is not None and hints.version in C.SUPPORTED_VERSIONS:
+        bound = hints.version == C.VERSION_BOUND
+    else:  # the version byte is unreadable: version-3 records say what they are
+        bound = bool(B.scan(mv, 0, n, None))
+    min_rec = C.min_record(C.VERSION_BOUND if bound else 1)
+    foreign = []
     if lay is not None:
-        whole = lay.n <= (n - hints.end) // C.MIN_RECORD
-        placed, unplaced_recs, trailing = _place(mv, hints.end, lay, hints.end if header == "good" else 6, whole)
+        whole = lay.n <= (n - hints.end) // min_rec
+        if bound:
+            placed, foreign, unplaced_recs, trailing, _ = B.place(mv, hints.end, lay,
+                                                                  hints.archive_id if header == "good" else None)
+        else:
+            placed, unplaced_recs, trailing = _place(mv, hints.end, lay, hints.end if header == "good" else 6, whole)
         if header == "damaged" and not placed and lay.n:
             lay = None  # the damaged header's layout fits no record: scan instead
         else:
@@ -539,7 +556,9 @@ def salvage(blob, model=None, progress=None) -> Salvage:
             order = sorted(placed)
             top = order[-1] if order else -1
             tail = n - (_end(placed[top]) if order else hints.end)
-            limit = min(lay.n, top + 1 + max(tail, 0) // C.MIN_RECORD)  # the frames that can lie in the file
+            limit = min(lay.n, top + 1 + max(tail, 0) // min_rec)  # the frames that can lie in the file
+            if bound and order:
+                limit = max(limit, top + 1)
             for i in range(limit):
                 if i in placed:
                     fr = placed[i]
@@ -555,13 +574,22 @@ def salvage(blob, model=None, progress=None) -> Salvage:
                 hi = order[j] if j < len(order) else lay.n
                 frames[i] = FrameResult(i, "missing", "record not found (its head is damaged, or the archive "
                                         "is cut or shifted here)", (a, max(a, b)), hi - lo == 2 and b > a)
-            unplaced = [FrameResult(None, "unplaced", f"record of {f.raw_len} raw bytes whose frame number is "
-                                    "uncertain; not used", (f.offset, _end(f)), True) for f in unplaced_recs]
+            why = ("record of {} raw bytes whose frame number does not fit the header, or that repeats a "
+                   "frame; not used") if bound else "record of {} raw bytes whose frame number is uncertain; not used"
+            unplaced = [FrameResult(None, "unplaced", why.format(f.raw_len), (f.offset, _end(f)), True)
+                        for f in unplaced_recs]
     if lay is None:  # no usable header: every record found, in archive order
         structure = "records found by scanning (no usable header)"
         if header == "unreadable":
             problems.insert(0, "header unreadable")
-        heads = scan_records(mv, 0, n)
+        if bound:  # by the frame numbers they carry, the records of the identity most carry
+            mine, foreign, _ = B.pieces_in_order(mv, n)
+            for fr in mine:
+                fr.index = fr.number
+                data, why = _decode(m, fr, progress)
+                pieces.append(FrameResult(fr.number, "good" if data is not None else "damaged", why,
+                                          (fr.offset, _end(fr)), True, data, "frame number"))
+        heads = {} if bound else scan_records(mv, 0, n)
         q_end = -1
         for q in sorted(heads):
             if q < q_end:
@@ -584,6 +612,11 @@ def salvage(blob, model=None, progress=None) -> Salvage:
             problems.append(f"frame {f.index if f.index is not None else '?'} {f.status}: {f.reason}")
     if unplaced:
         problems.append(f"{len(unplaced)} records found whose frame number is uncertain (not used)")
+    if foreign:
+        res.unplaced.extend(FrameResult(None, "unplaced", f"record of another archive (identity "
+                                        f"{f.archive_id.hex()}, frame {f.number}); refused", (f.offset, _end(f)), True)
+                            for f in foreign)
+        problems.append(f"{len(foreign)} records of another archive found and refused")
     if lay is not None and lay.n > len(frames):
         problems.append(f"frames {len(frames)}..{lay.n - 1} missing: the archive ends before them")
     if pieces:

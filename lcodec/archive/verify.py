@@ -14,7 +14,7 @@ from ..fsio import safe_member_path
 from ..inputs.images import analyse
 from ..inputs.layout import read_descriptor
 from ..models import identity_text
-from .read import _archive_model, _check_workers, Sink, decode_stream
+from .read import DEFAULT_CEILING, _archive_model, _check_workers, Sink, check_ceiling, decode_stream
 
 @dataclass
 class VerifyReport:
@@ -90,13 +90,15 @@ class _Compare(Sink):
 
 
 def verify(blob, model=None, against: str | None = None, progress=None, jobs: int = 1,
-           cluster=None, workers: int = 1) -> VerifyReport:
+           cluster=None, workers: int = 1, ceiling: int | None = DEFAULT_CEILING) -> VerifyReport:
     """Decode everything, check every checksum (and the original, if given); never raises
     DataError for damage: it is reported in `problems`. Frames are decoded and checked as
-    they come (in `jobs` processes or on `cluster`); nothing is kept."""
+    they come (in `jobs` processes or on `cluster`); nothing is kept. An archive claiming
+    more than `ceiling` bytes raises CeilingError before anything is decoded."""
     _check_workers(jobs, cluster, workers)
     try:
         cont = C.read_container(blob)
+        check_ceiling(blob, ceiling)
         model = _archive_model(blob, model)
     except DataError as e:
         return VerifyReport(False, [str(e)], 0, 0, 0)
@@ -154,6 +156,7 @@ def info(blob) -> dict:
     frames = [_frame_info(f) for f in cont.frames]
     return {
         "format_version": cont.version,
+        "archive_id": cont.archive_id.hex() if cont.archive_id is not None else None,  # version 3
         "archive_bytes": cont.file_size,
         "content_bytes": cont.content_size,
         "bits_per_byte": 8.0 * cont.file_size / cont.content_size if cont.content_size else 0.0,

@@ -42,6 +42,7 @@ def _run_plans(plans, runner, stats: PackStats, on_open, on_record, on_close, pr
     for metas, results in runner.imap(runners.encode_batch, work):
         for (kind, plan, raw), res in zip(metas, results):
             if kind == "open":
+                plan.next_index = plan.skip_frames
                 on_open(plan)
             elif kind == "close":
                 on_close(plan)
@@ -50,6 +51,9 @@ def _run_plans(plans, runner, stats: PackStats, on_open, on_record, on_close, pr
                 stats.kept_bytes += raw
             else:
                 record, nll, stored, figures = res
+                # version 3: the record names its frame and its archive (coded anywhere, sealed here)
+                record = C.seal_record(record, plan.next_index, plan.archive_id)
+                plan.next_index += 1
                 on_record(plan, record)
                 if figures is not None:
                     stats.images.append(figures)
@@ -216,6 +220,7 @@ class _Journal:
     def prepare(self, out, plan: _Plan) -> int:
         """Position the partial file; returns the offset coding continues at."""
         f = out.f
+        plan.seal()
         head_len = len(plan.header())
         if not self.usable or self.state["frames_done"] == 0 or self.state["offset"] < head_len:
             f.seek(0)
@@ -230,12 +235,15 @@ class _Journal:
 
         def check(index, raw):
             try:
-                fr = C.read_record(memoryview(mm), pos[0], index)
+                fr = C.read_record(memoryview(mm), pos[0], index, None, C.VERSION_BOUND)
             except DataError:
                 raise UsageError(f"{self.partial} is damaged at frame {index}; remove it and "
                                  f"{self.path} to start again") from None
             if fr.raw_len != len(raw) or fr.raw_crc != C.crc32c(raw):
                 raise UsageError(f"an input changed since the interrupted run (frame {index} differs); "
+                                 f"remove {self.partial} and {self.path} to start again")
+            if fr.archive_id != plan.archive_id:  # its records name the archive of the old content
+                raise UsageError(f"an input changed since the interrupted run (the content's SHA-256 differs); "
                                  f"remove {self.partial} and {self.path} to start again")
             pos[0] = fr.payload_offset + fr.coded_len
 

@@ -3,4 +3,5 @@ constriction (the range coder "queue" or the ANS coder "stack"). It sees only th
 protocol's integer tables, never a model's internals.
 The code is in coder.py; the names callers use are here too.
 """
-from .coder import active_lanes, decode_frame, encode_frame, lane_layout  # noqa: F401
+from .coder import (CHECK_EVERY, CheckedDecoder, CheckedEncoder, SubframeCheckFailed, active_lanes,  # noqa: F401
+                    decode_frame, encode_frame, lane_layout)

@@ -1,4 +1,4 @@
-"""Container format v1: byte layout, writer and a validating reader.
+"""Container format (versions 1, 2 and 3): byte layout, writer and a validating reader.
 
 The layout is documented byte by byte in docs/FORMAT.md; keep the two in step (the
 format-change rules are in DEVELOPERS.md). Fixed-width integers are little-endian;
@@ -21,7 +21,8 @@ from ..errors import DataError
 MAGIC = b"\x9blc\n"
 VERSION = 1  # written when the model identity is JSON
 VERSION_COMPACT = 2  # the same layout, the identity of a model file in binary (docs/FORMAT.md)
-SUPPORTED_VERSIONS = (1, 2)
+VERSION_BOUND = 3  # records carry their frame number and the archive's identity; sub-frame checks
+SUPPORTED_VERSIONS = (1, 2, 3)
 IDENT_MODEL_FILE = 1  # version-2 identity kind: SHA-256 of a model file, then its architecture's name
 MAX_MODEL_NAME = 64
 
@@ -41,6 +42,9 @@ MAX_IDENTITY = 1 << 16  # model identity JSON
 MAX_MEMBER_TABLE = 1 << 28
 MAX_PATH = 4096
 MIN_RECORD = 16  # smallest frame record: 3 one-byte varints, method, three CRCs
+MIN_RECORD_V3 = 25  # version 3: the archive identity (8) and a one-byte frame number more
+ARCHIVE_ID_BYTES = 8
+_ID_DOMAIN = b"lcodec archive identity v3\0"
 _MEMBER = struct.Struct("<IQ32sq")  # mode, size, SHA-256, mtime_ns (after u16 len + path)
 
 
@@ -99,6 +103,9 @@ class Frame:
     raw_crc: int
     coded_crc: int  # CRC-32C of the coded bytes: damage is caught before decoding
     payload: memoryview = field(repr=False)
+    checks: bool = False  # version 3: the coded words carry sub-frame checks (docs/FORMAT.md)
+    number: int | None = None  # version 3: the frame number the record carries
+    archive_id: bytes | None = None  # version 3: the identity of the archive it was written for
 
 
 @dataclass
@@ -113,6 +120,7 @@ class Container:
     frames: list[Frame]
     file_size: int
     spans: dict  # byte ranges of the header CRC, identity and member table (for tools and tests)
+    archive_id: bytes | None = None  # version 3: what every record must carry
 
     @property
     def coded_bytes(self) -> int:
@@ -132,6 +140,22 @@ def frame_record(raw_len: int, coded: bytes, method: int, lanes: int, raw_crc: i
     head = (uvarint(raw_len) + uvarint(len(coded)) + bytes([method]) + uvarint(lanes)
             + struct.pack("<II", raw_crc, crc32c(coded)))
     return head + struct.pack("<I", crc32c(head)) + coded
+
+
+def seal_record(record: bytes, number: int, archive_id: bytes) -> bytes:
+    """A record as frame_record makes it (the version-1 form) -> the version-3 record of
+    frame `number` of the archive `archive_id` (its head rewritten, its coded bytes kept)."""
+    fr = read_record(memoryview(record), 0, number)
+    head = (archive_id + uvarint(number) + uvarint(fr.raw_len) + uvarint(fr.coded_len) + bytes([fr.method])
+            + uvarint(fr.lanes) + struct.pack("<II", fr.raw_crc, fr.coded_crc))
+    return head + struct.pack("<I", crc32c(head)) + record[fr.payload_offset:]
+
+
+def archive_id(checked: bytes) -> bytes:
+    """The version-3 archive identity: the first 8 bytes of SHA-256 over a domain string and
+    every byte the header CRC-32C covers (so it names the sizes, the content's SHA-256, the
+    model and the member table)."""
+    return hashlib.sha256(_ID_DOMAIN + checked).digest()[:ARCHIVE_ID_BYTES]
 
 
 def _compact_identity(identity: dict) -> bytes | None:
@@ -159,6 +183,8 @@ def encode_identity(identity: dict) -> tuple[int, bytes]:
 
 
 def decode_identity(version: int, raw: bytes) -> dict:
+    if version == VERSION_BOUND:  # either form, told apart by the first byte ("{" or the kind)
+        version = VERSION_COMPACT if raw[:1] == bytes([IDENT_MODEL_FILE]) else VERSION
     if version == VERSION_COMPACT:
         _need(len(raw) >= 34 and raw[0] == IDENT_MODEL_FILE, "header damaged (model identity is not readable)")
         try:
@@ -176,13 +202,32 @@ def decode_identity(version: int, raw: bytes) -> dict:
 
 
 def header_bytes(content_size: int, content_sha256: bytes, n_frames: int, frame_size: int,
-                 identity: dict, members: list[Member] | None) -> bytes:
+                 identity: dict, members: list[Member] | None, bound: bool = False) -> bytes:
+    """The header. bound=False writes version 1 or 2 (as lcodec did before version 3, kept
+    for tests of old archives); lcodec writes version 3 (bound=True), whose records must
+    then be sealed (seal_record) with header_id() of these bytes."""
     version, ident = encode_identity(identity)
+    if bound:
+        version = VERSION_BOUND
     table = encode_members(members) if members is not None else b""
     flags = FLAG_MEMBERS if members is not None else 0
     head = (MAGIC + bytes([version, flags]) + uvarint(content_size) + content_sha256 + uvarint(n_frames)
             + uvarint(frame_size) + uvarint(len(ident)) + uvarint(len(table)))
     return head + struct.pack("<I", crc32c(head + ident + table)) + ident + table
+
+
+def header_id(header: bytes) -> bytes | None:
+    """The archive identity of a version-3 header (None for versions 1 and 2)."""
+    h, _ = read_header(header, whole=False)
+    return h["archive_id"]
+
+
+def build_archive(content_size: int, content_sha256: bytes, frame_size: int, identity: dict,
+                  members: list[Member] | None, records: list[bytes]) -> bytes:
+    """A version-3 archive from frame_record()s (for tools and tests)."""
+    head = header_bytes(content_size, content_sha256, len(records), frame_size, identity, members, bound=True)
+    aid = header_id(head)
+    return head + b"".join(seal_record(r, i, aid) for i, r in enumerate(records))
 
 
 # -- reader -------------------------------------------------------------------------------
@@ -191,8 +236,13 @@ def _need(cond: bool, msg: str):
         raise DataError(msg)
 
 
-def read_header(buf) -> tuple[dict, int]:
-    """Parse and check the header; returns (fields, offset of the first frame record)."""
+def min_record(version: int) -> int:
+    return MIN_RECORD_V3 if version >= VERSION_BOUND else MIN_RECORD
+
+
+def read_header(buf, whole: bool = True) -> tuple[dict, int]:
+    """Parse and check the header; returns (fields, offset of the first frame record).
+    whole=False: `buf` is the header alone (the frame count is not checked against it)."""
     mv = memoryview(buf)
     n = len(mv)
     _need(n >= 4 and bytes(mv[:4]) == MAGIC, "not an lcodec archive (magic bytes do not match)")
@@ -216,6 +266,7 @@ def read_header(buf) -> tuple[dict, int]:
     _need(crc32c(bytes(mv[:pos]) + bytes(mv[pos + 4:end])) == hcrc, "header damaged (header checksum does not match)")
     _need(flags & ~FLAG_MEMBERS == 0, "header damaged (unknown flags)")
     _need(1 <= frame_size <= MAX_FRAME_RAW, "header damaged (bad frame size)")
+    _need(version != VERSION_BOUND or ilen >= 1, "header damaged (no model identity)")
     identity = decode_identity(version, bytes(mv[pos + 4:pos + 4 + ilen]))
     members = None
     if flags & FLAG_MEMBERS:
@@ -223,10 +274,12 @@ def read_header(buf) -> tuple[dict, int]:
     else:
         _need(tlen == 0, "header damaged (member table without its flag)")
     # Each frame record takes at least MIN_RECORD bytes, which bounds n_frames by the file size.
-    _need(n_frames <= (n - end) // MIN_RECORD, "archive truncated: fewer bytes than its frames need")
+    _need(not whole or n_frames <= (n - end) // min_record(version),
+          "archive truncated: fewer bytes than its frames need")
     spans = {"crc": (pos, pos + 4), "identity": (pos + 4, pos + 4 + ilen), "members": (pos + 4 + ilen, end)}
+    aid = archive_id(bytes(mv[:pos]) + bytes(mv[pos + 4:end])) if version >= VERSION_BOUND else None
     return dict(version=version, flags=flags, content_size=size, content_sha256=sha, n_frames=n_frames,
-                frame_size=frame_size, identity=identity, members=members, spans=spans), end
+                frame_size=frame_size, identity=identity, members=members, spans=spans, archive_id=aid), end
 
 
 def _read_members(mv) -> list[Member]:
@@ -272,12 +325,20 @@ def expected_frame_sizes(content_size: int, frame_size: int, members: list[Membe
     return out
 
 
-def read_record(mv, pos: int, index: int, where: str | None = None) -> Frame:
+def read_record(mv, pos: int, index: int, where: str | None = None, version: int = VERSION,
+                archive: bytes | None = None) -> Frame:
     """Parse and check the frame record at `pos` on its own (record CRC-32C, method, lanes,
     stored length, coded bytes within the file); the caller checks the raw length it
-    expects. Raises DataError. Also used to find records by scanning (lcodec.salvage)."""
+    expects. Raises DataError. Also used to find records by scanning (lcodec.salvage).
+    Version 3: the record's archive identity must be `archive` (when given) and its frame
+    number `index` (when index >= 0)."""
     where = where or f"frame {index}"
     start = pos
+    number = aid = None
+    if version >= VERSION_BOUND:
+        _need(pos + ARCHIVE_ID_BYTES <= len(mv), f"archive truncated at {where}")
+        aid = bytes(mv[pos:pos + ARCHIVE_ID_BYTES])
+        number, pos = read_uvarint(mv, pos + ARCHIVE_ID_BYTES, where)
     raw_len, pos = read_uvarint(mv, pos, where)
     coded_len, pos = read_uvarint(mv, pos, where)
     _need(pos + 1 <= len(mv), f"archive truncated at {where}")
@@ -287,12 +348,20 @@ def read_record(mv, pos: int, index: int, where: str | None = None) -> Frame:
     raw_crc, coded_crc, rcrc = struct.unpack_from("<III", mv, pos)
     _need(crc32c(bytes(mv[start:pos + 8])) == rcrc, f"frame {index} damaged (record checksum does not match)")
     _need(method in METHOD_NAMES and raw_len <= MAX_FRAME_RAW, f"frame {index} damaged (impossible record)")
+    if version >= VERSION_BOUND:
+        # no lcodec writes ANS (stack) records in version 3: they would carry no sub-frame checks
+        _need(method != METHOD_STACK, f"frame {index} damaged (impossible record)")
+        _need(archive is None or aid == archive,
+              f"frame {index} refused: its record belongs to another archive (archive identity "
+              f"{aid.hex()}, this archive is {archive.hex() if archive else '?'})")
+        _need(index < 0 or number == index, f"frame {index} refused: its record says it is frame {number}")
     _need(1 <= lanes <= min(MAX_LANES, max(raw_len, 1)), f"frame {index} damaged (bad lane count)")
     if method == METHOD_STORED:
         _need(coded_len == raw_len, f"frame {index} damaged (stored frame length)")
     pos += 12
     _need(pos + coded_len <= len(mv), f"archive truncated at {where}")
-    return Frame(index, start, pos, raw_len, coded_len, method, lanes, raw_crc, coded_crc, mv[pos:pos + coded_len])
+    return Frame(index, start, pos, raw_len, coded_len, method, lanes, raw_crc, coded_crc, mv[pos:pos + coded_len],
+                 version >= VERSION_BOUND, number, aid)
 
 
 def read_container(buf) -> Container:
@@ -309,13 +378,13 @@ def read_container(buf) -> Container:
     expect = expected_frame_sizes(h["content_size"], h["frame_size"], members)
     frames = []
     for i, want in enumerate(expect):
-        fr = read_record(mv, pos, i, f"frame {i} (of {len(expect)})")
+        fr = read_record(mv, pos, i, f"frame {i} (of {len(expect)})", h["version"], h["archive_id"])
         _need(fr.raw_len == want, f"frame {i} damaged (impossible record)")
         frames.append(fr)
         pos = fr.payload_offset + fr.coded_len
     _need(pos == len(mv), f"archive has {len(mv) - pos} unexpected bytes after its last frame")
     return Container(h["version"], h["flags"], h["content_size"], h["content_sha256"], h["frame_size"],
-                     h["identity"], members, frames, len(mv), h["spans"])
+                     h["identity"], members, frames, len(mv), h["spans"], h["archive_id"])
 
 
 def sha256(data) -> bytes:

@@ -8,12 +8,13 @@ image frame, frames/imageframe.py); a new kind is a new work type here plus its 
 method in format/container.py.
 
     code_frame(model, work)  -> (record, NLL bits, stored?, figures or None)
-    decode_one(model, index, method, raw_len, lanes, raw_crc, coded_crc, payload)
+    decode_one(model, index, method, raw_len, lanes, raw_crc, coded_crc, payload, checks)
                              -> (content bytes, None) or (None, what is wrong)
 """
 from __future__ import annotations
 
-from ..errors import DataError, ModelError
+from ..coding import SubframeCheckFailed
+from ..errors import DataError, ModelError, Terminated
 from ..format import container as C
 from ..inputs.layout import FLAG_RECORD, read_descriptor
 from .byteframe import LANE_BYTES, MAX_LANES, choose_lanes, code_bytes, decode_bytes, frame_lanes  # noqa: F401
@@ -32,8 +33,10 @@ def code_frame(model, work) -> tuple[bytes, float, bool, dict | None]:
 
 
 def decode_one(model, index: int, method: int, raw_len: int, lanes: int, raw_crc: int, coded_crc: int,
-               payload) -> tuple[bytes | None, str | None]:
-    """One frame record's fields -> (content bytes, None), or (None, what is wrong)."""
+               payload, checks: bool = False) -> tuple[bytes | None, str | None]:
+    """One frame record's fields -> (content bytes, None), or (None, what is wrong).
+    checks: the coded words carry sub-frame checks (version 3): decoding stops at the
+    first that fails, long before a made-up claimed length is reached."""
     if C.crc32c(payload) != coded_crc:
         return None, f"frame {index} damaged (CRC-32C of its coded bytes does not match)"
     if method == C.METHOD_STORED:
@@ -42,18 +45,22 @@ def decode_one(model, index: int, method: int, raw_len: int, lanes: int, raw_crc
         if not is_pixel_model(model):
             return None, f"frame {index} damaged (an image frame in an archive of a byte model)"
         try:
-            raw = decode_image_frame(model, payload, raw_len)
+            raw = decode_image_frame(model, payload, raw_len, checks=checks)
         except DataError as e:
             return None, str(e)
-        except (ModelError, KeyboardInterrupt, SystemExit):
+        except SubframeCheckFailed as e:
+            return None, f"frame {index} damaged ({e})"
+        except (ModelError, KeyboardInterrupt, SystemExit, Terminated):
             raise
         except BaseException:
             return None, f"frame {index} damaged (its coded words cannot be decoded)"
     else:
         try:
-            raw = decode_bytes(model, method, payload, raw_len, lanes)
-        except (KeyboardInterrupt, SystemExit):
+            raw = decode_bytes(model, method, payload, raw_len, lanes, checks)
+        except (KeyboardInterrupt, SystemExit, Terminated):
             raise
+        except SubframeCheckFailed as e:
+            return None, f"frame {index} damaged ({e})"
         except BaseException:  # constriction may refuse a damaged payload (a panic is a BaseException)
             return None, f"frame {index} damaged (its coded words cannot be decoded)"
     if C.crc32c(raw) != raw_crc:
@@ -64,7 +71,7 @@ def decode_one(model, index: int, method: int, raw_len: int, lanes: int, raw_crc
 def decode_record(model, fr: C.Frame) -> bytes:
     """One frame of a read container -> its content; DataError when it is damaged."""
     raw, problem = decode_one(model, fr.index, fr.method, fr.raw_len, fr.lanes, fr.raw_crc, fr.coded_crc,
-                              fr.payload)
+                              fr.payload, fr.checks)
     if problem:
         raise DataError(problem)
     return raw
@@ -72,7 +79,7 @@ def decode_record(model, fr: C.Frame) -> bytes:
 
 def frame_fields(fr: C.Frame) -> tuple:
     """A frame's fields as plain data (what a decoding task carries to a worker)."""
-    return (fr.index, fr.method, fr.raw_len, fr.lanes, fr.raw_crc, fr.coded_crc, bytes(fr.payload))
+    return (fr.index, fr.method, fr.raw_len, fr.lanes, fr.raw_crc, fr.coded_crc, bytes(fr.payload), fr.checks)
 
 
 def image_guarantee(fr: C.Frame) -> str | None:

@@ -31,16 +31,19 @@ def stored_record(raw: bytes) -> bytes:
 
 def code_bytes(model, raw: bytes) -> tuple[bytes, float, bool]:
     """One byte frame -> (its record, model NLL in bits, stored?). The same bytes wherever
-    it runs: the model starts from a fresh state in every frame."""
+    it runs: the model starts from a fresh state in every frame. The record is in the
+    version-1 form, its coded words with sub-frame checks (queue): the writer seals it
+    into a version-3 record (format.container.seal_record)."""
     lanes = frame_lanes(model, len(raw))
-    coded, nll = encode_frame(model, raw, lanes, model.coder)
+    coded, nll = encode_frame(model, raw, lanes, model.coder, checks=model.coder == "queue")
     if len(coded) >= len(raw):  # incompressible: store (growth is the record only)
         return stored_record(raw), 8.0 * len(raw), True
     method = C.METHOD_QUEUE if model.coder == "queue" else C.METHOD_STACK
     return C.frame_record(len(raw), coded, method, lanes, C.crc32c(raw)), nll, False
 
 
-def decode_bytes(model, method: int, payload, raw_len: int, lanes: int) -> bytes:
-    """A queue or stack record's payload -> its bytes (the coder raises on damaged words)."""
+def decode_bytes(model, method: int, payload, raw_len: int, lanes: int, checks: bool = False) -> bytes:
+    """A queue or stack record's payload -> its bytes (the coder raises on damaged words,
+    SubframeCheckFailed at the first failed sub-frame check)."""
     coder = "queue" if method == C.METHOD_QUEUE else "stack"
-    return decode_frame(model, bytes(payload), raw_len, lanes, coder)
+    return decode_frame(model, bytes(payload), raw_len, lanes, coder, checks=checks and coder == "queue")

@@ -12,6 +12,7 @@ from dataclasses import dataclass, replace
 import constriction
 import numpy as np
 
+from ..coding import CheckedDecoder, CheckedEncoder
 from ..errors import ModelError
 from ..format import container as C
 from ..inputs.layout import Layout, read_descriptor, region_values, replication, side_bytes, values_region
@@ -47,10 +48,13 @@ def code_image(model, work: ImageWork) -> tuple[bytes, float, bool, dict | None]
     return C.frame_record(len(raw), coded, C.METHOD_IMAGE, 1, C.crc32c(raw)), nll_side + nll_pix, False, figures
 
 
-def encode_image_frame(model, raw: bytes, lay: Layout) -> tuple[bytes, float, float]:
-    """(payload, NLL bits of the side bytes, NLL bits of the samples)."""
+def encode_image_frame(model, raw: bytes, lay: Layout, checks: bool = True) -> tuple[bytes, float, float]:
+    """(payload, NLL bits of the side bytes, NLL bits of the samples). checks: with
+    sub-frame checks (what container version 3 holds)."""
     lay.check(len(raw))
     enc = constriction.stream.queue.RangeEncoder()
+    if checks:
+        enc = CheckedEncoder(enc)
     side = side_bytes(raw, lay)
     nll_side = nll_pix = 0.0
     if side:
@@ -76,12 +80,16 @@ def _nll(syms, tab) -> float:
     return float(-np.log2(chosen / tab.sum(axis=1)).sum())
 
 
-def decode_image_frame(model, payload, raw_len: int, record=None) -> bytes:
+def decode_image_frame(model, payload, raw_len: int, record=None, checks: bool = True) -> bytes:
+    """checks: the words carry sub-frame checks (container version 3); the first that
+    fails raises SubframeCheckFailed and decoding stops there."""
     lay, pos = read_descriptor(payload, raw_len)
     if not model.has_depth(lay.deep):
         raise ModelError(f"this model has no network for {8 * lay.bps}-bit samples")
     words = np.frombuffer(bytes(payload[pos:]), "<u4").astype(np.uint32)
     dec = constriction.stream.queue.RangeDecoder(words)
+    if checks:
+        dec = CheckedDecoder(dec)
     n_side = raw_len - lay.region_len
     side = np.empty(n_side, np.uint8)
     if n_side:

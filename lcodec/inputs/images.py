@@ -21,10 +21,10 @@ import zlib
 from dataclasses import dataclass
 
 import numpy as np
-from numba import njit
 
 from ..models.tessel import FLAG_BIG_ENDIAN, FLAG_SIGNED, MAX_SAMPLES
 from .layout import FLAG_RECORD, Layout
+from .pngfilter import _unfilter
 
 RECORD_MAGIC = b"\x9blcpix\r\n"  # pixel record (pixel-exact content)
 PNG_SIG = b"\x89PNG\r\n\x1a\n"
@@ -166,6 +166,14 @@ def _tiff_record(tif, page, check: bool = True):
         return None
     if page.imagedepth != 1:
         return None
+    # before anything is decoded or allocated: the size the header claims, and every strip
+    # or tile inside the file (a hostile header may claim 100,000 x 100,000 samples)
+    if page.imagelength * page.imagewidth * spp > MAX_SAMPLES:
+        return None
+    size = tif.filehandle.size
+    offs, counts = page.dataoffsets, page.databytecounts
+    if not offs or len(offs) != len(counts) or any(o < 0 or c < 0 or o + c > size for o, c in zip(offs, counts)):
+        return None
     a = page.asarray()
     if spp > 1 and page.planarconfig == 2:
         a = np.moveaxis(a, 0, -1)
@@ -242,6 +250,8 @@ def _dicom(data):
     frames = int(getattr(ds, "NumberOfFrames", 1) or 1)
     bps = bits // 8
     n = rows * cols * frames * spp * bps
+    if n > len(data) or rows < 1 or cols < 1 or frames < 1:  # the header claims more samples than the file holds
+        return None
     big = ts == ExplicitVRBigEndian
     tag = b"\x7f\xe0\x00\x10" if big else b"\xe0\x7f\x10\x00"
     explicit = ts != ImplicitVRLittleEndian
@@ -288,40 +298,6 @@ def _chunks(data):
         if typ == b"IEND":
             break
     return out
-
-
-@njit(cache=True, nogil=True)
-def _unfilter(buf, rows, stride, bpp, out):
-    """PNG reconstruction (filter types 0-4 of the PNG specification, ISO/IEC 15948)."""
-    pos = 0
-    for r in range(rows):
-        ft = buf[pos]
-        pos += 1
-        for i in range(stride):
-            x = np.int32(buf[pos + i])
-            a = np.int32(out[r, i - bpp]) if i >= bpp else 0
-            b = np.int32(out[r - 1, i]) if r > 0 else 0
-            c = np.int32(out[r - 1, i - bpp]) if (r > 0 and i >= bpp) else 0
-            if ft == 1:
-                x += a
-            elif ft == 2:
-                x += b
-            elif ft == 3:
-                x += (a + b) >> 1
-            elif ft == 4:
-                p = a + b - c
-                pa, pb, pc = abs(p - a), abs(p - b), abs(p - c)
-                if pa <= pb and pa <= pc:
-                    x += a
-                elif pb <= pc:
-                    x += b
-                else:
-                    x += c
-            elif ft != 0:
-                return False
-            out[r, i] = np.uint8(x & 255)
-        pos += stride
-    return True
 
 
 def png_samples(data: bytes):

@@ -27,6 +27,7 @@ from ..models import strata as S
 from ..models.braid import Braid
 from ..version import __version__
 from .braid_build import build, memory_text
+from .listing import corpus_record
 
 MEMORY_DEFAULT = 32 << 20  # bytes of training text kept as the corpus memory (`train --memory`)
 RECALL = dict(recall_min=8, recall_long=16)  # the memory's two context lengths (lcodec/models/recall.py)
@@ -57,10 +58,12 @@ CANDIDATES = [[10, 14, 20], [13, 18, 24], [14, 22, 30], [15, 26, 36], [15, 29, 4
 def contents_text(memory_bytes: int) -> str:
     """What a braid model file holds, in plain words (train's output and `info MODEL`)."""
     tables = "context counts of the training files (rare strings may still be inferred from them)"
+    paths = ("; of the corpus only its file count, bytes and a digest of its listing (no paths; names only "
+             "with --record-names)")
     if memory_bytes:
         return (f"{memory_bytes:,} bytes of the training text itself (the corpus memory: anyone with the file "
-                f"can read it; train with --memory 0 to keep none) and {tables}")
-    return f"no training text, only {tables}"
+                f"can read it; train with --memory 0 to keep none) and {tables}{paths}")
+    return f"no training text, only {tables}{paths}"
 
 
 def nll_bits(model, data: bytes) -> float:
@@ -143,8 +146,9 @@ def mix_weights(model, files: list[bytes]) -> np.ndarray:
 
 
 def train_braid(files: list[tuple[str, bytes]], corpus: list[str], out: str, time_limit: float, preset: str,
-                seed: int, echo=print, memory: int | None = None) -> dict:
-    """memory: bytes of training text the model may keep (None: the preset's default)."""
+                seed: int, echo=print, memory: int | None = None, record_names: bool = False) -> dict:
+    """memory: bytes of training text the model may keep (None: the preset's default).
+    record_names: the model file lists the files' relative names (never paths)."""
     cfg = PRESETS[preset]
     memory = cfg["memory"] if memory is None else int(memory)
     t_start = time.perf_counter()
@@ -297,7 +301,7 @@ def train_braid(files: list[tuple[str, bytes]], corpus: list[str], out: str, tim
         "seed": seed,
         "quantisation": "counts scaled per row to at most 255 (one byte), integer discounts in sixteenths of a count",
         "training": {"files": len(train_files), "bytes": n_train, "seconds": round(time.perf_counter() - t_start, 1),
-                     "min_seen": min_seen, "corpus": [os.path.abspath(c) for c in corpus][:20]},
+                     "min_seen": min_seen, "corpus": corpus_record(corpus, files, record_names)},
         "validation": {"files": len(val_files), "bytes": int(sum(len(f) for f in val_files)),
                        "integer_bpb": round(val_bpb, 4), "strata_bpb": round(strata_bpb, 4)},
         "corpus_memory": mem_info,

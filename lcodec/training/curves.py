@@ -24,7 +24,15 @@ def write_curve_png(curve: list, path: str, title: str) -> str | None:
     ax.legend()
     fig.tight_layout()
     tmp = path + ".part"
-    fig.savefig(tmp, format="png")
-    plt.close(fig)
-    os.replace(tmp, path)
+    try:
+        fig.savefig(tmp, format="png")
+        os.replace(tmp, path)
+    except BaseException:  # an interrupt or a full disk: no temporary file left behind
+        try:
+            os.unlink(tmp)
+        except OSError:
+            pass
+        raise
+    finally:
+        plt.close(fig)
     return path

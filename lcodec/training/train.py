@@ -23,6 +23,7 @@ from ..errors import UsageError
 from ..format import modelfile
 from ..version import __version__
 from .curves import write_curve_png  # noqa: F401  (also lcodec.training.train.write_curve_png, as before)
+from .listing import corpus_record
 from ..models.weft import HASH_KEYS, LUT_STEPS_PER_NAT, PAD, Weft, context_rows
 
 PRESETS = {
@@ -191,9 +192,11 @@ def integer_bpb(model: Weft, pos: Positions, idx: np.ndarray) -> float:
 
 def train(corpus: list[str], out: str, time_limit: float = 600.0, preset: str = DEFAULT_PRESET,
           seed: int = 0, max_bytes: int | None = None, echo=print, force: bool = False,
-          memory: int | None = None) -> dict:
+          memory: int | None = None, record_names: bool = False) -> dict:
     """memory: braid presets only, bytes of training text kept as the corpus memory (None:
-    the preset's default, 0: none)."""
+    the preset's default, 0: none). The model file records the corpus's file count, bytes
+    and listing digest, never a path; record_names adds the files' relative names
+    (training/listing.py)."""
     from . import braid_train
 
     if preset in braid_train.PRESETS:
@@ -202,7 +205,7 @@ def train(corpus: list[str], out: str, time_limit: float = 600.0, preset: str = 
         if memory is not None and not 0 <= memory <= braid_train.R.MAX_TEXT:
             raise UsageError(f"--memory must be 0..{braid_train.R.MAX_TEXT:,} bytes")
         return braid_train.train_braid(read_corpus(corpus, max_bytes), corpus, out, time_limit, preset, seed, echo,
-                                       memory=memory)
+                                       memory=memory, record_names=record_names)
     if memory is not None:
         raise UsageError(f"--memory goes with the braid presets ({', '.join(braid_train.PRESETS)}), not {preset!r}")
     try:
@@ -301,7 +304,7 @@ def train(corpus: list[str], out: str, time_limit: float = 600.0, preset: str = 
         "seed": seed,
         "quantisation": "int8 weights and embeddings, uint7 hidden activations, softmax on a 1/32-nat grid (lut)",
         "training": {"files": len(train_files), "bytes": tr.n, "seconds": round(time.perf_counter() - t_start, 1),
-                     "steps": step, "corpus": [os.path.abspath(c) for c in corpus][:20]},
+                     "steps": step, "corpus": corpus_record(corpus, files, record_names)},
         "validation": {"files": len(val_files), "bytes": int(len(val_idx)), "float_qat_bpb": round(float_bpb, 4),
                        "integer_bpb": round(int_bpb, 4)},
         "learning_curve": curve,
@@ -389,7 +392,8 @@ def read_images(paths: list[str], echo=print) -> list[tuple[str, np.ndarray]]:
 
 def train_image(corpus: list[str], out: str, time_limit: float = 120.0, preset: str = "small",
                 seed: int = 0, echo=print, force: bool = False, chan_shift: int = 1, adapt_k=str(ADAPT_K),
-                structure_k: int = STRUCTURE_K, law: bool = True, augment: bool = True) -> dict:
+                structure_k: int = STRUCTURE_K, law: bool = True, augment: bool = True,
+                record_names: bool = False) -> dict:
     """Fit a tessel pixel model: one network per role present in the corpus (8-bit samples;
     16-bit high and low bytes), quantisation-aware, then export and measure it. With
     `augment`, the training images' mirrored, flipped and transposed copies join the
@@ -547,7 +551,7 @@ def train_image(corpus: list[str], out: str, time_limit: float = 120.0, preset: 
         "lcodec_version": __version__, "kind": "image", "preset": preset, "seed": seed,
         "quantisation": "int8 weights and embeddings, uint7 hidden activations, softmax on a 1/32-nat grid (lut)",
         "training": {"seconds": round(time.perf_counter() - t_start, 1), "steps": step, "sets": summary,
-                     "corpus": [os.path.abspath(c) for c in corpus][:20]},
+                     "corpus": corpus_record(corpus, read_corpus(corpus), record_names)},
         "validation_bits_per_symbol": result, "learning_curve": curve,
     }
     sha = modelfile.dump(out, {"name": "tessel", "params": params}, arrays, **meta)

@@ -1,0 +1,122 @@
+"""SIGINT and SIGTERM during pack, unpack and train: exit 130 / 143 with one line, nothing
+under a final name, no temporary file left (a `pack --resume` job keeps its partial archive
+and journal). The signals are sent to the lcodec process, as `kill PID` or Ctrl-C would."""
+import os
+import signal
+import subprocess
+import sys
+import time
+
+import numpy as np
+import pytest
+
+import lcodec
+
+pytestmark = pytest.mark.skipif(os.name != "posix", reason="POSIX signals")
+
+SIGNALS = [(signal.SIGINT, 130, "interrupted (SIGINT)"), (signal.SIGTERM, 143, "terminated (SIGTERM)")]
+
+
+def _text(n: int, seed: int = 0) -> bytes:
+    rng = np.random.default_rng(seed)
+    words = [b"kestrel-ridge", b"mount-orrin", b"vale-of-tess", b"gust", b"tremor", b"battery", b"link", b"ok"]
+    out = bytearray()
+    while len(out) < n:
+        out += b" ".join(words[i] for i in rng.integers(len(words), size=6)) + b" %d\n" % rng.integers(1 << 30)
+    return bytes(out[:n])
+
+
+def _run_and_signal(args, folder, sig, started, timeout=120):
+    """Start lcodec, wait until started(folder) says it is working, send `sig`, wait."""
+    p = subprocess.Popen([sys.executable, "-m", "lcodec", *args], stdout=subprocess.PIPE, stderr=subprocess.PIPE)
+    t0 = time.monotonic()
+    while not started(folder):
+        if p.poll() is not None:
+            out, err = p.communicate()
+            pytest.fail(f"lcodec ended before the signal: {p.returncode} {err.decode()}")
+        if time.monotonic() - t0 > timeout:
+            p.kill()
+            pytest.fail("lcodec never started its work")
+        time.sleep(0.02)
+    time.sleep(0.3)
+    p.send_signal(sig)
+    out, err = p.communicate(timeout=timeout)
+    return p.returncode, err.decode()
+
+
+def _temp_file(folder):
+    return any(n.startswith(".") for n in os.listdir(folder))
+
+
+def _check(code, err, want_code, want_text):
+    assert code == want_code, err
+    lines = [ln for ln in err.splitlines() if ln.strip()]
+    assert len(lines) == 1 and want_text in lines[0], err
+
+
+@pytest.fixture(scope="module")
+def big(tmp_path_factory):
+    d = tmp_path_factory.mktemp("big")
+    data = _text(1_500_000)
+    (d / "mast.log").write_bytes(data)
+    return d / "mast.log", data
+
+
+@pytest.mark.parametrize("sig,code,text", SIGNALS)
+def test_pack_interrupted(tmp_path, big, sig, code, text):
+    src, _ = big
+    out = tmp_path / "mast.log.lcodec"
+    rc, err = _run_and_signal(["pack", str(src), "-o", str(out), "--frame-size", "65536"], tmp_path, sig, _temp_file)
+    _check(rc, err, code, text)
+    assert os.listdir(tmp_path) == []
+
+
+def test_pack_in_workers_terminated(tmp_path, big):
+    src, _ = big
+    out = tmp_path / "mast.log.lcodec"
+    rc, err = _run_and_signal(["pack", str(src), "-o", str(out), "--frame-size", "65536", "--jobs", "2"], tmp_path,
+                              signal.SIGTERM, _temp_file)
+    _check(rc, err, 143, "terminated (SIGTERM)")
+    assert os.listdir(tmp_path) == []
+
+
+def test_resumable_pack_keeps_only_its_journal(tmp_path, big):
+    src, data = big
+    out = tmp_path / "mast.log.lcodec"
+    journal = tmp_path / ".mast.log.lcodec.lcodec-journal"
+    rc, err = _run_and_signal(["pack", str(src), "-o", str(out), "--frame-size", "65536", "--resume"], tmp_path,
+                              signal.SIGINT, lambda d: journal.exists())
+    _check(rc, err, 130, "interrupted (SIGINT)")
+    assert sorted(os.listdir(tmp_path)) == [".mast.log.lcodec.lcodec-journal", ".mast.log.lcodec.lcodec-partial"]
+
+
+@pytest.mark.parametrize("sig,code,text", SIGNALS)
+def test_unpack_interrupted(tmp_path, big, sig, code, text):
+    src, data = big
+    arc = tmp_path / "in" / "mast.log.lcodec"
+    arc.parent.mkdir()
+    arc.write_bytes(lcodec.pack(data, frame_size=65536))
+    out_dir = tmp_path / "out"
+    out_dir.mkdir()
+    rc, err = _run_and_signal(["unpack", str(arc), "-o", str(out_dir / "mast.log")], out_dir, sig, _temp_file)
+    _check(rc, err, code, text)
+    assert os.listdir(out_dir) == []
+
+
+def test_train_terminated(tmp_path):
+    corpus = tmp_path / "corpus"
+    corpus.mkdir()
+    for i in range(6):
+        (corpus / f"mast-{i}.log").write_bytes(_text(60_000, i))
+    out_dir = tmp_path / "out"
+    out_dir.mkdir()
+    p = subprocess.Popen([sys.executable, "-m", "lcodec", "train", str(corpus), "-o", str(out_dir / "m.lcmodel"),
+                          "--time-limit", "60"], stdout=subprocess.PIPE, stderr=subprocess.PIPE)
+    first = p.stderr.readline()  # training has begun (it reports what it counts)
+    assert first, "train said nothing"
+    time.sleep(1.0)
+    p.send_signal(signal.SIGTERM)
+    _, rest = p.communicate(timeout=120)
+    assert p.returncode == 143, rest.decode()
+    assert "terminated (SIGTERM)" in rest.decode().strip().splitlines()[-1]
+    assert os.listdir(out_dir) == []
