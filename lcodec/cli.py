@@ -24,6 +24,7 @@ os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
 import click  # noqa: E402
 
 from .version import __version__  # noqa: E402
+from . import errors  # noqa: E402
 from .errors import LcodecError, Terminated, UsageError  # noqa: E402
 from .fsio import ARCHIVE_EXT, atomic_write, map_input, map_stream, read_input  # noqa: E402
 
@@ -82,6 +83,7 @@ def _on_signal(signum, frame):
     # once: a second signal during the cleanup must not cut it short
     signal.signal(signal.SIGINT, signal.SIG_IGN)
     signal.signal(signal.SIGTERM, signal.SIG_IGN)
+    errors.PENDING_SIGNALS.append(int(signum))  # for code that may lose the exception below
     raise Terminated() if signum == signal.SIGTERM else KeyboardInterrupt()
 
 

@@ -1,4 +1,7 @@
 """Error types. Every error the user can cause maps to an exit code in the CLI."""
+from __future__ import annotations
+
+import signal
 
 
 class LcodecError(Exception):
@@ -28,3 +31,18 @@ class UsageError(LcodecError):
     """The request itself is wrong: bad option, missing input, refused overwrite (exit 2)."""
 
     exit_code = 2
+
+
+# Signals the CLI's handler has taken (lcodec/cli.py), in order. The handler raises at once,
+# but an exception raised while numba is entering object mode is lost there (numba
+# unpickles the called function at each entry and drops what that raises), so the decode
+# loop also looks here at every step (coding/coder.py) and raises what was lost.
+PENDING_SIGNALS: list = []
+
+
+def pending_interruption() -> BaseException | None:
+    """The exception of the first signal taken (KeyboardInterrupt, or Terminated for SIGTERM),
+    or None."""
+    if not PENDING_SIGNALS:
+        return None
+    return Terminated() if PENDING_SIGNALS[0] == signal.SIGTERM else KeyboardInterrupt()

@@ -35,6 +35,8 @@ import itertools
 import numpy as np
 import constriction
 
+from .. import errors
+
 CODERS = {"queue": 1, "stack": 2}
 _FAMILY = constriction.stream.model.Categorical(perfect=False)
 CHECK_EVERY = 1 << 16  # symbols between sub-frame checks
@@ -175,6 +177,10 @@ def step_symbols(key: int, m: int, t: int) -> int:
     m, or -1 when the coded data cannot be decoded (the exception is kept for decode_frame
     to raise)."""
     slot = _LIVE[key]
+    stop = errors.pending_interruption()  # a signal whose exception object mode lost
+    if stop is not None:
+        slot[1] = stop
+        return -1
     try:
         slot[3][t, :m] = slot[0].decode(_FAMILY, slot[2][:m])
         return m
@@ -213,6 +219,8 @@ def decode_frame(model, payload: bytes, n: int, lanes: int, coder: str = "queue"
                 done = run(key, active, by_step)
             finally:
                 err = _LIVE.pop(key)[1]
+            if err is None:  # the step whose object-mode call lost a signal's exception stops here
+                err = errors.pending_interruption()
             if err is not None:
                 raise err
             if done != n_steps:

@@ -14,7 +14,7 @@ method in format/container.py.
 from __future__ import annotations
 
 from ..coding import SubframeCheckFailed
-from ..errors import DataError, ModelError, Terminated
+from ..errors import DataError, ModelError, Terminated, pending_interruption
 from ..format import container as C
 from ..inputs.layout import FLAG_RECORD, read_descriptor
 from .byteframe import LANE_BYTES, MAX_LANES, choose_lanes, code_bytes, decode_bytes, frame_lanes  # noqa: F401
@@ -30,6 +30,14 @@ def code_frame(model, work) -> tuple[bytes, float, bool, dict | None]:
     if isinstance(work, ImageWork):
         return code_image(model, work)
     return (*code_bytes(model, work), None)
+
+
+def _raise_pending() -> None:
+    """A signal taken while numba entered object mode comes out as some other error (or
+    none): raise the interruption instead of calling the frame damaged."""
+    stop = pending_interruption()
+    if stop is not None:
+        raise stop
 
 
 def decode_one(model, index: int, method: int, raw_len: int, lanes: int, raw_crc: int, coded_crc: int,
@@ -53,6 +61,7 @@ def decode_one(model, index: int, method: int, raw_len: int, lanes: int, raw_crc
         except (ModelError, KeyboardInterrupt, SystemExit, Terminated):
             raise
         except BaseException:
+            _raise_pending()
             return None, f"frame {index} damaged (its coded words cannot be decoded)"
     else:
         try:
@@ -62,6 +71,7 @@ def decode_one(model, index: int, method: int, raw_len: int, lanes: int, raw_crc
         except SubframeCheckFailed as e:
             return None, f"frame {index} damaged ({e})"
         except BaseException:  # constriction may refuse a damaged payload (a panic is a BaseException)
+            _raise_pending()
             return None, f"frame {index} damaged (its coded words cannot be decoded)"
     if C.crc32c(raw) != raw_crc:
         return None, f"frame {index} damaged (CRC-32C of its decoded bytes does not match)"
