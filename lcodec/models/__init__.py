@@ -14,9 +14,10 @@ from .strata import Strata
 from .weft import Weft
 from .braid import Braid
 from .tessel import Tessel
+from .heddle import Heddle
 
 BUILTIN = {"strata": Strata}  # models an archive can name without a model file
-ARCHITECTURES = {"strata": Strata, "weft": Weft, "braid": Braid, "tessel": Tessel}  # what a model file may hold
+ARCHITECTURES = {"strata": Strata, "weft": Weft, "braid": Braid, "tessel": Tessel, "heddle": Heddle}  # what a model file may hold
 
 
 NAMED_IN_IDENTITY = {"weft", "tessel"}  # (tessel's golden archives were made with the name too;
