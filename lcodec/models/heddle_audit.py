@@ -94,9 +94,9 @@ def decode_speed(model: Heddle, records) -> float:
     return len(data) / dt
 
 
-def run(graph: Graph, records=None, n: int = 16, seed: int = 0, speed: bool = True, echo=print) -> dict:
+def run(graph: Graph, records=None, n: int = 16, seed: int = 0, speed: bool = True, echo=print, shape=None) -> dict:
     """Every check on a graph; returns the figures and prints a short report."""
-    records, H, W = _records(graph, records, n, seed)
+    records, H, W = _records(graph, records, n, seed, shape)
     rep = {"record": [H, W], "alphabet": graph.A, "records": len(records)}
     plan = graph.plan(H, W)
     rep["static_pairs"] = plan.violations[:64]
@@ -108,6 +108,7 @@ def run(graph: Graph, records=None, n: int = 16, seed: int = 0, speed: bool = Tr
             + ", ".join(f"{p}<-{q}" for p, q in pairs[:12])))
     if plan.violations:
         echo("  the graph's own dependencies: " + ", ".join(f"{p}<-{q}" for p, q in plan.violations[:12]))
+        rep["ok"] = False
         return rep
     par = graph.parallel(records, H, W, width=graph.A)
     rep["parallel_equals_step"] = bool(np.array_equal(par, step_tables(graph, records, H, W)))

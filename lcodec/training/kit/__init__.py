@@ -10,7 +10,7 @@ loop, and export it as a heddle model file that lcodec runs with integers only.
 Layers (layers.py): SymbolEmbed (with causal_window), DegreeLinear (made_degrees,
 grid_degrees), RasterConv, Residual, HeddleNet. The runtime is lcodec/models/heddle.py.
 """
-from .layers import (MAX_FAN_IN, DegreeLinear, HeddleNet, RasterConv, Residual, SymbolEmbed,  # noqa: F401
+from .layers import (MAX_FAN_IN, DegreeLinear, Dropout, HeddleNet, RasterConv, Residual, SymbolEmbed,  # noqa: F401
                      causal_window, fake_quant, grid_degrees, made_degrees, ste_round)
 from .export import export, graph_of, integer_tables  # noqa: F401
 from .helpers import nll, sample  # noqa: F401

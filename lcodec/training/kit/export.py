@@ -20,7 +20,7 @@ import torch.nn.functional as F
 
 from ...format import modelfile
 from ...version import __version__
-from .layers import ACT_MAX, DegreeLinear, HeddleNet, RasterConv, Residual
+from .layers import ACT_MAX, DegreeLinear, Dropout, HeddleNet, RasterConv, Residual
 
 LUT_STEPS_PER_NAT = 32
 LUT_TOP = 1 << 24
@@ -76,6 +76,8 @@ def graph_of(model: HeddleNet) -> tuple[dict, dict]:
 
     def add(layer):
         i = len(ops)
+        if isinstance(layer, Dropout):
+            return
         if isinstance(layer, Residual):
             x_idx, x_scale = state["idx"], state["scale"]
             for inner in layer.block:

@@ -263,6 +263,18 @@ class Residual(nn.Module):
         return fake_quant(z, so, 0, ACT_MAX), so
 
 
+class Dropout(nn.Module):
+    """Dropout of activations while training (identity in eval mode and in the exported
+    model, which has no op for it). Shapes: unchanged."""
+
+    def __init__(self, p: float = 0.2):
+        super().__init__()
+        self.p = p
+
+    def forward(self, x, s_in):
+        return F.dropout(x, self.p, self.training), s_in
+
+
 class HeddleNet(nn.Module):
     """An autoregressive model over records of H x W symbols (raster order), built from the
     kit's layers; the last layer gives logits (act="logits"): a grid with `alphabet`
