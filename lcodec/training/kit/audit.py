@@ -23,12 +23,15 @@ def float_pairs(model, x: torch.Tensor, limit: int = 64) -> list:
     A = model.alphabet
     base = model(x)
     gen = torch.Generator().manual_seed(0)
+    order = model.order or list(range(H * W))
+    rank = torch.empty(H * W, dtype=torch.long)
+    rank[torch.tensor(order)] = torch.arange(H * W)
     pairs = []
-    for q in range(H * W):
+    for q in order:
         alt = x.clone().reshape(B, -1)
         alt[:, q] = (alt[:, q] + torch.randint(1, A, (B,), generator=gen)) % A
         moved = (model(alt.reshape(B, H, W)) != base).any(dim=-1).any(dim=0).reshape(-1)
-        for p in torch.nonzero(moved[:q + 1]).flatten().tolist():
+        for p in torch.nonzero(moved & (rank <= rank[q])).flatten().tolist():
             pairs.append((p, q))
             if len(pairs) >= limit:
                 return pairs
@@ -49,6 +52,8 @@ def audit(model, records, speed: bool = True, echo=print) -> dict:
     if model.record == (0, 0):
         graph.H, graph.W = 0, 0
     rec = x.reshape(len(x), -1).numpy()
+    if model.order is not None:  # the exported graph codes records laid out in coding order
+        rec, H, W = rec[:, model.order], 1, H * W
     rep = heddle_audit.run(graph, rec, speed=speed and graph.P > 0, echo=echo) if graph.P else \
         _image_run(graph, rec, H, W, echo)
     rep["float_pairs"] = fp

@@ -44,7 +44,7 @@ def multipliers(ratios) -> tuple[np.ndarray, int]:
     return m, s
 
 
-def _weighted(layer, s_in: float, i: int, arrays: dict) -> tuple[dict, float | None]:
+def _weighted(layer, s_in: float, i: int, arrays: dict, order=None, reads_grid=False) -> tuple[dict, float | None]:
     w = (layer.weight * layer.mask).detach().double()
     sw = layer.weight_scale().double()
     shape = (-1,) + (1,) * (w.dim() - 1)
@@ -52,6 +52,15 @@ def _weighted(layer, s_in: float, i: int, arrays: dict) -> tuple[dict, float | N
     bi = torch.clamp(torch.round(layer.bias.detach().double() / (s_in * sw)), -BIAS_LIMIT, BIAS_LIMIT)
     arrays[f"{i}.w"] = wi.T.copy() if isinstance(layer, DegreeLinear) else wi
     arrays[f"{i}.b"] = bi.numpy().astype(np.int32)
+    if order is not None:  # to coding order: input positions of a grid, output positions of logits
+        w = arrays[f"{i}.w"]
+        P = len(order)
+        if reads_grid:
+            w = w.reshape(P, -1, w.shape[1])[order].reshape(-1, w.shape[-1])
+        if layer.act == "logits":
+            w = w.reshape(w.shape[0], P, -1)[:, order].reshape(w.shape[0], -1)
+            arrays[f"{i}.b"] = arrays[f"{i}.b"].reshape(P, -1)[order].reshape(-1)
+        arrays[f"{i}.w"] = np.ascontiguousarray(w)
     op = {"op": "conv" if isinstance(layer, RasterConv) else "linear", "act": layer.act}
     if layer.act == "logits":
         op["shift"] = 1
@@ -89,7 +98,7 @@ def graph_of(model: HeddleNet) -> tuple[dict, dict]:
             return
         if not isinstance(layer, (DegreeLinear, RasterConv)):
             raise ValueError(f"export: {type(layer).__name__} is not a layer of the kit")
-        op, out = _weighted(layer, state["scale"], i, arrays)
+        op, out = _weighted(layer, state["scale"], i, arrays, model.order, state["idx"] == 0)
         op["in"] = state["idx"]
         ops.append(op)
         if layer.act == "logits":
@@ -105,6 +114,8 @@ def graph_of(model: HeddleNet) -> tuple[dict, dict]:
     ops.append({"op": "head", "in": state["idx"], "mo": int(mo[0]), "so": so})
     arrays["lut"] = exp_table()
     H, W = model.record
+    if model.order is not None:
+        H, W = 1, H * W  # positions are ranks now: a record of one row in coding order
     return {"record": [H, W], "alphabet": model.alphabet, "ops": ops}, arrays
 
 
@@ -112,12 +123,15 @@ def export(model: HeddleNet, path: str, **meta) -> str:
     """Write `model` as a heddle model file at `path` (atomically); returns its SHA-256.
     `meta` adds descriptive keys (say, a validation NLL); no paths, no training data."""
     params, arrays = graph_of(model)
+    if model.order is not None:
+        meta.setdefault("coding_order", model.order)
     from ...models.heddle import Graph
 
     Graph(params, arrays)  # the runtime's own checks (bounds, shapes, causality) before writing
     return modelfile.dump(path, {"name": "heddle", "params": params}, arrays, lcodec_version=__version__,
                           quantisation="int8 weights and embeddings, 0..127 activations, softmax on a "
-                                       "1/32-nat grid (lut)", **meta)
+                                       "1/32-nat grid (lut)",
+                          contents="the graph and its integer weights; no training data, no paths", **meta)
 
 
 def integer_tables(params: dict, arrays: dict, x: torch.Tensor) -> torch.Tensor:

@@ -29,7 +29,7 @@ def sample(model, n: int, record=None, temperature: float = 1.0, seed: int = 0) 
     was = model.training
     model.eval()
     x = torch.zeros(n, H, W, dtype=torch.long)
-    for p in range(H * W):
+    for p in (getattr(model, "order", None) or range(H * W)):
         r, c = divmod(p, W)
         logits = model(x)[:, r, c, :] / max(temperature, 1e-6)
         x[:, r, c] = torch.multinomial(torch.softmax(logits, -1), 1, generator=g)[:, 0]

@@ -276,26 +276,40 @@ class Dropout(nn.Module):
 
 
 class HeddleNet(nn.Module):
-    """An autoregressive model over records of H x W symbols (raster order), built from the
-    kit's layers; the last layer gives logits (act="logits"): a grid with `alphabet`
-    channels, or flat units p * alphabet + a. Its softmax runs through the exponential table
-    once exported (`export`); here the logits are plain nats.
+    """An autoregressive model over records of H x W symbols, built from the kit's layers;
+    the last layer gives logits (act="logits"): a grid with `alphabet` channels, or flat
+    units p * alphabet + a. Its softmax runs through the exponential table once exported
+    (`export`); here the logits are plain nats.
 
     Args:
         record: (H, W); (0, 0) for an image-sized pixel model (convolutions only).
         alphabet: symbols per position (256 for bytes and 8-bit samples).
         embed: the SymbolEmbed.
-        layers: the rest, in order (DegreeLinear, RasterConv, Residual).
+        layers: the rest, in order (DegreeLinear, RasterConv, Residual, Dropout).
+        order: the coding order, a permutation of the positions (order[k] is coded k-th;
+            default raster). Another order needs DegreeLinear layers alone (degrees from
+            `made_degrees(..., order)`) and an embedding of each position's own symbol;
+            the exported model codes records whose bytes are laid out in coding order
+            (`to_coding_order`).
     Shapes: x (B, H, W) long -> logits (B, H, W, alphabet).
     """
 
-    def __init__(self, record, alphabet: int, embed: SymbolEmbed, layers):
+    def __init__(self, record, alphabet: int, embed: SymbolEmbed, layers, order=None):
         super().__init__()
         self.record, self.alphabet = tuple(record), alphabet
         self.embed = embed
         self.layers = nn.ModuleList(layers)
         if embed.alphabet != alphabet:
             raise ValueError("the embedding's alphabet differs from the model's")
+        P = self.record[0] * self.record[1]
+        self.order = None
+        if order is not None and list(order) != list(range(P)):
+            if sorted(order) != list(range(P)):
+                raise ValueError("order must be a permutation of the record's positions")
+            if embed.shifts != [(0, 0)] or any(isinstance(m, RasterConv) for m in self.modules()):
+                raise ValueError("another coding order needs DegreeLinear layers over each position's own "
+                                 "symbol (convolutions and windows are raster-ordered)")
+            self.order = [int(v) for v in order]
 
     def forward(self, x):
         B, H, W = x.shape
@@ -307,3 +321,18 @@ class HeddleNet(nn.Module):
         if y.dim() == 4:
             return y.permute(0, 2, 3, 1)
         return y.reshape(B, H, W, self.alphabet)
+
+
+def to_coding_order(records, order):
+    """Records (B, H, W) or (B, P) -> (B, P) with their symbols in coding order: the byte
+    layout a model exported with `order` codes."""
+    x = torch.as_tensor(records)
+    return x.reshape(x.shape[0], -1)[:, list(order)]
+
+
+def from_coding_order(records, order):
+    """Inverse of to_coding_order: (B, P) in coding order -> (B, P) in raster order."""
+    x = torch.as_tensor(records)
+    out = torch.empty_like(x)
+    out[:, list(order)] = x
+    return out
