@@ -33,6 +33,7 @@ from __future__ import annotations
 
 import numpy as np
 
+from ..errors import ModelError
 from .heddle_ops import ACT_MAX, SUM_LIMIT, add_logits, column_bound, requant_relu, residual, softmax_lut
 from .strata import Strata
 
@@ -45,7 +46,7 @@ MAX_WIDTH = 4096  # channels of a grid tensor
 MAX_LANES = 4096  # records decoded in lockstep (the container's lane limit)
 TEXT_LANE_BYTES = 16384  # lanes of a frame not made of whole records: one per 16 KiB, at most 16
 CHUNK_ROWS = 1 << 15  # rows of one product in a parallel pass
-MAX_IMAGE_POSITIONS = 1 << 24
+MAX_IMAGE_POSITIONS = 1 << 22  # larger images go as bytes (the plan's indices and tensors grow with it)
 
 
 class Spec:
@@ -250,7 +251,7 @@ class Plan:
                 idx = None
                 ru = self.ready[sp.ins[0]]
                 ready = ru if specs[sp.ins[0]].out == "grid" else ru.reshape(P, A).max(axis=1)
-            self.index.append(None if idx is None else np.ascontiguousarray(idx, np.int64))
+            self.index.append(None if idx is None else np.ascontiguousarray(idx, np.int32))
             self.ready.append(np.asarray(ready, np.int64))
         head = self.ready[-1]
         bad = np.flatnonzero(head > np.arange(P))
@@ -524,6 +525,10 @@ class HeddleImage(Heddle):
     def has_depth(self, deep: bool) -> bool:
         return not deep
 
+    def takes_image(self, layout) -> bool:
+        """Images of up to MAX_IMAGE_POSITIONS samples per plane are coded as pixels."""
+        return layout.rows * layout.cols <= MAX_IMAGE_POSITIONS
+
     def teacher_chunks(self, *a, **k):
         return self.bytes_model.teacher_chunks(*a, **k)
 
@@ -535,9 +540,12 @@ class HeddleImage(Heddle):
 
     def _plan(self, rows: int, cols: int) -> Plan:
         if rows * cols > MAX_IMAGE_POSITIONS:
-            raise ValueError("image too large for a heddle pixel model")
+            raise ModelError(f"a {rows} x {cols} image is too large for a heddle pixel model")
         plan = self.graph.plan(rows, cols)
-        plan.check_causal(f"{rows} x {cols} image: ")
+        try:
+            plan.check_causal(f"{rows} x {cols} image: ")
+        except ValueError as e:
+            raise ModelError(f"this heddle model cannot code the image: {e}") from None
         return plan
 
     def teacher_tables(self, v: np.ndarray, deep: bool):
