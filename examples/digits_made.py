@@ -23,6 +23,7 @@ work = sys.argv[1] if len(sys.argv) > 1 else "digits-run"
 os.makedirs(work, exist_ok=True)
 torch.set_num_threads(1)
 torch.manual_seed(0)
+np.random.seed(0)
 
 # -- data: 17 grey levels (0..16), one byte per pixel; a fixed held-out split ------------
 digits = load_digits().images.astype(np.int64)

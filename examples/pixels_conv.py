@@ -25,6 +25,7 @@ seconds = float(sys.argv[2]) if len(sys.argv) > 2 else 180
 os.makedirs(os.path.join(work, "test"), exist_ok=True)
 torch.set_num_threads(1)
 torch.manual_seed(0)
+np.random.seed(0)
 train = [torch.from_numpy(getattr(sd, n)().astype(np.int64)) for n in ("camera", "moon", "brick", "grass", "gravel", "cell")]
 test = {n: getattr(sd, n)() for n in ("coins", "clock", "page")}
 

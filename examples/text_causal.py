@@ -22,6 +22,7 @@ work = sys.argv[1] if len(sys.argv) > 1 else "text-run"
 seconds = float(sys.argv[2]) if len(sys.argv) > 2 else 150
 torch.set_num_threads(1)
 torch.manual_seed(0)
+np.random.seed(0)
 
 # -- data: stdlib modules, sorted by name; every 8th held out --------------------------
 lib = sysconfig.get_paths()["stdlib"]
