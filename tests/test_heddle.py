@@ -239,6 +239,8 @@ HOSTILE = {
     "bad multiplier": (lambda p, a: p["ops"][3].update({"ma": 0}), "ma must be"),
     "extra key": (lambda p, a: p["ops"][1].update({"code": "print(1)"}), "needs exactly the keys"),
     "huge record": (lambda p, a: p.update({"record": [70000, 70000]}), "record must be"),
+    "huge activations": (lambda p, a: (p.update({"record": [256, 256]}), a.update(  # 300 channels x 65,536 positions
+        {"0.table": np.ones((6, 100), np.int8), "1.w": np.zeros((4, 300, 2, 3), np.int8)})), "activations"),
 }
 
 
@@ -250,6 +252,19 @@ def test_hostile_model_files_are_refused_clearly(tmp_path, case):
         load_model(path)
     r = cli("pack", os.path.join(GOLDEN, "heddle-v1-digits.orig"), "-m", path, "-o", tmp_path / "x.lcodec")
     assert r.returncode == 1 and b"Traceback" not in r.stderr and b"bad parameters" in r.stderr
+
+
+def test_lanes_are_bounded_by_the_activations():
+    from lcodec.models.heddle import BATCH_ELEMENTS, Heddle, record_lanes
+
+    m = load_model(DIGITS).inner
+    assert m.lanes_for(64 * 360) == 360 and m.lanes_for(64 * 4097) == 241  # a divisor of 4097 = 17 * 241
+    assert record_lanes(100, 64) == 1 and record_lanes(64 * 12, 64, cap=5) == 4
+    params, arrays = random_graph("conv", H=64, W=64)
+    big = Heddle(params, arrays)
+    assert big.max_lanes() * big.graph.elements(big.R) <= BATCH_ELEMENTS
+    with pytest.raises(ValueError, match="lanes"):
+        big.stepper(np.ones(big.max_lanes() + 1, np.int64))
 
 
 def test_damaged_model_files_are_refused(tmp_path):

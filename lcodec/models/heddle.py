@@ -46,7 +46,9 @@ MAX_WIDTH = 4096  # channels of a grid tensor
 MAX_LANES = 4096  # records decoded in lockstep (the container's lane limit)
 TEXT_LANE_BYTES = 16384  # lanes of a frame not made of whole records: one per 16 KiB, at most 16
 CHUNK_ROWS = 1 << 15  # rows of one product in a parallel pass
-MAX_IMAGE_POSITIONS = 1 << 22  # larger images go as bytes (the plan's indices and tensors grow with it)
+MAX_RECORD_ELEMENTS = 1 << 24  # activations of one record (all tensors but the logits); larger: refused
+BATCH_ELEMENTS = 1 << 25  # activations of the records computed at once (bounds the lanes of a frame)
+IMAGE_ELEMENTS = 1 << 27  # activations of one image plane; larger images go as bytes (strata)
 
 
 class Spec:
@@ -286,8 +288,17 @@ class Graph:
         (self.H, self.W), self.A, self.specs, self.lut = parse_graph(params, arrays)
         self.P = self.H * self.W
         self._plans = {}
+        self.lazy = self.specs[-1].ins[0]  # the logits: computed by the head for the positions it needs
+        self.grid_width = sum(sp.width for i, sp in enumerate(self.specs[:-1]) if sp.out == "grid" and i != self.lazy)
+        self.flat_width = sum(sp.width for i, sp in enumerate(self.specs[:-1]) if sp.out == "flat" and i != self.lazy)
+        if self.P and self.elements(self.P) > MAX_RECORD_ELEMENTS:
+            raise ValueError(f"a record's activations ({self.elements(self.P):,}) exceed {MAX_RECORD_ELEMENTS:,}")
         if self.P and check_causal:
             self.plan(self.H, self.W).check_causal()
+
+    def elements(self, P: int) -> int:
+        """Activations one record of P positions holds (the logits are never held whole)."""
+        return (P + 1) * self.grid_width + self.flat_width
 
     def plan(self, H: int, W: int) -> Plan:
         key = (H, W)
@@ -302,8 +313,8 @@ class Graph:
         """Zeroed tensors for B records of P positions; grid tensors carry one zero row at
         index P (what a tap outside the grid reads)."""
         out = []
-        for sp in self.specs:
-            if sp.kind == "head":
+        for i, sp in enumerate(self.specs):
+            if sp.kind == "head" or i == self.lazy:
                 out.append(None)
             elif sp.out == "grid":
                 out.append(np.zeros((B, P + 1, sp.width), np.int64 if sp.logits else np.float32))
@@ -314,39 +325,42 @@ class Graph:
     def run_op(self, i: int, plan: Plan, syms: np.ndarray, bufs: list, sel: np.ndarray) -> None:
         """Compute the elements `sel` (positions of a grid, units of a flat tensor) of op i
         for every record of the batch, from the tensors already computed."""
+        if len(sel):
+            if self.specs[i].out == "grid":
+                bufs[i][:, sel, :] = self.compute(i, plan, syms, bufs, sel)
+            else:
+                bufs[i][:, sel] = self.compute(i, plan, syms, bufs, sel)
+
+    def compute(self, i: int, plan: Plan, syms: np.ndarray, bufs: list, sel: np.ndarray) -> np.ndarray:
+        """Elements `sel` of op i: (B, n, width) for a grid, (B, n) for a flat tensor."""
         sp, B, n = self.specs[i], syms.shape[0], len(sel)
-        if n == 0:
-            return
-        out = bufs[i]
         if sp.kind == "embed":
             x = np.minimum(syms, self.A)[:, plan.index[i][sel]]  # (B, n, shifts): symbols A+ read the PAD row
-            out[:, sel, :] = sp.table[x].reshape(B, n, sp.width)
-            return
+            return sp.table[x].reshape(B, n, sp.width)
         if sp.kind == "add":
             a, b = bufs[sp.ins[0]], bufs[sp.ins[1]]
             if sp.out == "grid":
                 res = np.empty((B * n, sp.width), np.float32)
                 residual(np.ascontiguousarray(a[:, sel, :].reshape(B * n, -1)),
                          np.ascontiguousarray(b[:, sel, :].reshape(B * n, -1)), sp.ma, sp.mb, sp.s, res)
-                out[:, sel, :] = res.reshape(B, n, -1)
-            else:
-                res = np.empty((B, n), np.float32)
-                residual(np.ascontiguousarray(a[:, sel]), np.ascontiguousarray(b[:, sel]), sp.ma, sp.mb, sp.s, res)
-                out[:, sel] = res
-            return
+                return res.reshape(B, n, -1)
+            res = np.empty((B, n), np.float32)
+            residual(np.ascontiguousarray(a[:, sel]), np.ascontiguousarray(b[:, sel]), sp.ma, sp.mb, sp.s, res)
+            return res
         u = bufs[sp.ins[0]]
         if sp.kind == "conv":
+            out = np.empty((B, n, sp.width), np.int64 if sp.logits else np.float32)
             step = max(1, CHUNK_ROWS // max(B, 1))
             for c0 in range(0, n, step):
                 part = sel[c0:c0 + step]
                 k = len(part)
                 x = u[:, plan.index[i][part], :].reshape(B * k, -1)  # (B*k, taps*cin) integers
                 acc = x @ sp.wmat  # exact: 127 * sum|w| per column < 2**24 (checked at load)
-                out[:, part, :] = self._act(sp, acc, sp.b, sp.m).reshape(B, k, -1)
-            return
+                out[:, c0:c0 + k, :] = self._act(sp, acc, sp.b, sp.m).reshape(B, k, -1)
+            return out
         x = u[:, :-1, :].reshape(B, -1) if self.specs[sp.ins[0]].out == "grid" else u
         acc = x @ sp.wmat[:, sel]  # exact: 127 * sum|w| per column < 2**24 (checked at load)
-        out[:, sel] = self._act(sp, acc, sp.b[sel], None if sp.m is None else sp.m[sel])
+        return self._act(sp, acc, sp.b[sel], None if sp.m is None else sp.m[sel])
 
     @staticmethod
     def _act(sp, acc, b, m):
@@ -362,16 +376,16 @@ class Graph:
     def head(self, plan: Plan, bufs: list, pos: np.ndarray, width: int = 256) -> np.ndarray:
         """Tables (B, len(pos), width) of the given positions."""
         sp = self.specs[-1]
-        lg = bufs[sp.ins[0]]
-        B = lg.shape[0]
+        syms = bufs[-1]  # the symbols (kept in the head's slot)
         if sp.out == "grid":
-            rows = lg[:, pos, :]
+            rows = self.compute(self.lazy, plan, syms, bufs, pos)
         else:
-            rows = lg.reshape(B, -1, self.A)[:, pos, :]
+            units = (np.asarray(pos)[:, None] * self.A + np.arange(self.A)[None, :]).reshape(-1)
+            rows = self.compute(self.lazy, plan, syms, bufs, units)
         rows = np.ascontiguousarray(rows.reshape(-1, self.A))
         out = np.empty((len(rows), width), np.float64)
         softmax_lut(rows, sp.mo, sp.so, self.lut, width, out)
-        return out.reshape(B, len(pos), width)
+        return out.reshape(syms.shape[0], len(pos), width)
 
     # -- the two passes --------------------------------------------------------------------
     def parallel(self, syms: np.ndarray, H: int | None = None, W: int | None = None, width: int = 256) -> np.ndarray:
@@ -379,12 +393,24 @@ class Graph:
         H, W = (self.H, self.W) if H is None else (H, W)
         plan = self.plan(H, W)
         P = H * W
+        bufs = self.tensors(syms, H, W)
+        out = np.empty((len(syms), P, width), np.float64)
+        for a in range(0, P, max(1, CHUNK_ROWS // max(len(syms), 1))):
+            b = min(P, a + max(1, CHUNK_ROWS // max(len(syms), 1)))
+            out[:, a:b] = self.head(plan, bufs, np.arange(a, b), width)
+        return out
+
+    def tensors(self, syms: np.ndarray, H: int, W: int) -> list:
+        """Every activation of a batch of records (the logits excepted: `head` makes those
+        for the positions it is asked for); the symbols ride in the last slot."""
+        plan = self.plan(H, W)
         syms = _with_pad(syms, self.A)
-        bufs = self.buffers(syms.shape[0], P)
-        every = [np.arange(len(r)) for r in plan.ready]
+        bufs = self.buffers(syms.shape[0], H * W)
+        bufs[-1] = syms
         for i in range(len(self.specs) - 1):
-            self.run_op(i, plan, syms, bufs, every[i])
-        return self.head(plan, bufs, np.arange(P), width)
+            if i != self.lazy:
+                self.run_op(i, plan, syms, bufs, np.arange(len(plan.ready[i])))
+        return bufs
 
     def stepper(self, B: int, H: int | None = None, W: int | None = None, width: int = 256):
         """A step pass over B records in lockstep: step(q, prev) takes the symbols at position
@@ -400,11 +426,13 @@ class Graph:
             if q == 0:
                 state["syms"] = np.full((B, P + 1), self.A, np.int64)
                 state["bufs"] = self.buffers(B, P)
+                state["bufs"][-1] = state["syms"]
             syms, bufs = state["syms"], state["bufs"]
             if q:
                 syms[:len(prev), q - 1] = prev
             for i in range(len(self.specs) - 1):
-                self.run_op(i, plan, syms, bufs, plan.at(i, q))
+                if i != self.lazy:
+                    self.run_op(i, plan, syms, bufs, plan.at(i, q))
             return self.head(plan, bufs, pos[q], width)[:, 0, :]
 
         return step
@@ -417,19 +445,18 @@ def _with_pad(syms: np.ndarray, A: int) -> np.ndarray:
     return out
 
 
-def record_lanes(n: int, R: int) -> int:
+def record_lanes(n: int, R: int, cap: int = MAX_LANES) -> int:
     """Lanes of an n-byte frame for records of R symbols: a frame of whole records gets the
-    largest divisor of its record count up to MAX_LANES (every lane then starts on a record
-    of the file); otherwise one lane per 16 KiB, at most 16 (records then start at each
-    lane's own start)."""
+    largest divisor of its record count up to `cap` (every lane then starts on a record of
+    the file); otherwise one lane per 16 KiB, at most 16 (records then start at each lane's
+    own start)."""
+    cap = max(1, min(cap, MAX_LANES))
     if n and n % R == 0:
         k = n // R
-        if k <= MAX_LANES:
-            return k
-        for L in range(MAX_LANES, 0, -1):
+        for L in range(min(k, cap), 0, -1):
             if k % L == 0:
                 return L
-    return max(1, min(16, n // TEXT_LANE_BYTES))
+    return max(1, min(16, cap, n // TEXT_LANE_BYTES))
 
 
 class Heddle:
@@ -458,18 +485,26 @@ class Heddle:
     def identity(self) -> dict:
         return {"model": self.name, "params": self.params}
 
+    def max_lanes(self) -> int:
+        """Records decoded in lockstep at most: their activations stay below BATCH_ELEMENTS."""
+        return max(1, min(MAX_LANES, BATCH_ELEMENTS // self.graph.elements(self.R)))
+
     def lanes_for(self, n: int) -> int:
-        return record_lanes(n, self.R)
+        return record_lanes(n, self.R, self.max_lanes())
 
     def teacher_chunks(self, data, starts, lengths):
         """(symbols, tables) in coding order: record by record of every lane, then step by
         step, lanes in order within a step."""
-        nl, R = len(lengths), self.R
+        nl, R, g = len(lengths), self.R, self.graph
         if nl == 0 or int(lengths[0]) == 0:
             return
         data = np.asarray(data)
         n_rec = -(-int(lengths[0]) // R)
-        per = max(1, (1 << 14) // (R * nl))  # records of every lane per chunk (about 16 K symbols)
+        # records of every lane per chunk (about 16 K symbols, activations bounded); when one
+        # record of every lane is more than that, its tables come in runs of positions
+        per = max(1, min((1 << 14) // (R * nl), BATCH_ELEMENTS // (g.elements(R) * nl)))
+        pc = R if R * nl <= 1 << 14 else max(1, (1 << 14) // nl)
+        plan = g.plan(g.H, g.W)
         for k0 in range(0, n_rec, per):
             k1 = min(n_rec, k0 + per)
             recs = np.zeros((nl, k1 - k0, R), np.int64)
@@ -480,15 +515,21 @@ class Heddle:
                     seg = data[starts[b] + lo:starts[b] + hi]
                     recs[b].reshape(-1)[:hi - lo] = seg
                     live[b].reshape(-1)[:hi - lo] = True
-            tabs = self.graph.parallel(recs.reshape(-1, R)).reshape(nl, k1 - k0, R, 256)
-            # coding order: record, position, lane
-            tabs = tabs.transpose(1, 2, 0, 3).reshape(-1, 256)
-            syms = recs.transpose(1, 2, 0).reshape(-1)
-            keep = live.transpose(1, 2, 0).reshape(-1)
-            yield syms[keep].astype(np.int32), tabs[keep]
+            bufs = g.tensors(recs.reshape(-1, R), g.H, g.W)
+            for a in range(0, R, pc):  # pc < R only with one record per chunk
+                b = min(R, a + pc)
+                tabs = g.head(plan, bufs, np.arange(a, b)).reshape(nl, k1 - k0, b - a, 256)
+                # coding order: record, position, lane
+                tabs = tabs.transpose(1, 2, 0, 3).reshape(-1, 256)
+                syms = recs[:, :, a:b].transpose(1, 2, 0).reshape(-1)
+                keep = live[:, :, a:b].transpose(1, 2, 0).reshape(-1)
+                if keep.any():
+                    yield syms[keep].astype(np.int32), tabs[keep]
 
     def stepper(self, lengths):
         nl, R = max(len(lengths), 1), self.R
+        if nl > self.max_lanes():  # never written by this model's encoder: a damaged record
+            raise ValueError(f"{nl} lanes: this model decodes at most {self.max_lanes()} at once")
         inner = self.graph.stepper(nl)
         t = [0]
         from threadpoolctl import threadpool_limits
@@ -526,8 +567,8 @@ class HeddleImage(Heddle):
         return not deep
 
     def takes_image(self, layout) -> bool:
-        """Images of up to MAX_IMAGE_POSITIONS samples per plane are coded as pixels."""
-        return layout.rows * layout.cols <= MAX_IMAGE_POSITIONS
+        """Images whose activations per plane stay within IMAGE_ELEMENTS are coded as pixels."""
+        return self.graph.elements(layout.rows * layout.cols) <= IMAGE_ELEMENTS
 
     def teacher_chunks(self, *a, **k):
         return self.bytes_model.teacher_chunks(*a, **k)
@@ -539,7 +580,7 @@ class HeddleImage(Heddle):
         return None
 
     def _plan(self, rows: int, cols: int) -> Plan:
-        if rows * cols > MAX_IMAGE_POSITIONS:
+        if self.graph.elements(rows * cols) > IMAGE_ELEMENTS:
             raise ModelError(f"a {rows} x {cols} image is too large for a heddle pixel model")
         plan = self.graph.plan(rows, cols)
         try:
@@ -553,9 +594,11 @@ class HeddleImage(Heddle):
         self._plan(rows, cols)
         for ch in range(C):
             plane = np.asarray(v[:, :, ch], np.int64).reshape(1, -1)
-            tabs = self.graph.parallel(plane, rows, cols)[0]
-            for a in range(0, rows * cols, 1 << 14):
-                yield plane[0, a:a + (1 << 14)].astype(np.int32), tabs[a:a + (1 << 14)]
+            plan = self.graph.plan(rows, cols)
+            bufs = self.graph.tensors(plane, rows, cols)
+            for a in range(0, rows * cols, 1 << 14):  # the tables in runs of 16 K samples
+                pos = np.arange(a, min(rows * cols, a + (1 << 14)))
+                yield plane[0, pos].astype(np.int32), self.graph.head(plan, bufs, pos)[0]
 
     def step_decode(self, rows: int, cols: int, C: int, deep: bool, decode, record=None) -> np.ndarray:
         from threadpoolctl import threadpool_limits
