@@ -46,6 +46,7 @@ MAX_WIDTH = 4096  # channels of a grid tensor
 MAX_LANES = 4096  # records decoded in lockstep (the container's lane limit)
 TEXT_LANE_BYTES = 16384  # lanes of a frame not made of whole records: one per 16 KiB, at most 16
 CHUNK_ROWS = 1 << 15  # rows of one product in a parallel pass
+MAX_WEIGHTS = 1 << 25  # weights of all products together (float32 copies: 128 MiB at most)
 MAX_RECORD_ELEMENTS = 1 << 24  # activations of one record (all tensors but the logits); larger: refused
 BATCH_ELEMENTS = 1 << 25  # activations of the records computed at once (bounds the lanes of a frame)
 IMAGE_ELEMENTS = 1 << 27  # activations of one image plane; larger images go as bytes (strata)
@@ -108,6 +109,7 @@ def parse_graph(params: dict, arrays: dict):
     if int(lut.min()) < 1 or int(lut.max()) > 1 << 24:
         raise ValueError("lut values must be 1..2**24")
     specs = []
+    n_weights = 0
     for i, op in enumerate(ops):
         where = f"op {i}"
         if not isinstance(op, dict) or op.get("op") not in OPS:
@@ -179,6 +181,9 @@ def parse_graph(params: dict, arrays: dict):
         w = arrays.get(f"{i}.w")
         if w is None or w.dtype != np.int8:
             raise ValueError(f"array {i}.w must be int8")
+        n_weights += w.size
+        if n_weights > MAX_WEIGHTS:  # before any copy of them is made
+            raise ValueError(f"{where}: more than {MAX_WEIGHTS:,} weights in all")
         if int(w.min(initial=0)) < -ACT_MAX:
             raise ValueError(f"{where}: weights must be -127..127")
         if kind == "conv":
@@ -244,8 +249,10 @@ class Plan:
                 ru = self.ready[sp.ins[0]]
                 ru = np.repeat(ru, u.width) if u.out == "grid" else ru
                 idx = None
-                nz = sp.wmat != 0
-                ready = np.where(nz, ru[:, None], 0).max(axis=0, initial=0)
+                o = np.argsort(-ru, kind="stable")  # rows by ready count, largest first
+                nz = sp.wmat[o] != 0  # (bool: one byte per weight)
+                first = nz.argmax(axis=0)  # for each unit, the first (largest-count) input it reads
+                ready = np.where(nz.any(axis=0), ru[o][first], 0) if len(o) else np.zeros(sp.width, np.int64)
             elif sp.kind == "add":
                 idx = None
                 ready = np.maximum(self.ready[sp.ins[0]], self.ready[sp.ins[1]])
