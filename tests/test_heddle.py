@@ -322,3 +322,15 @@ def test_markov_source_codes_at_its_entropy_rate():
     bits = 8 * len(blob) / n
     assert abs(bits / rate - 1) < 0.01, (bits, rate)
     assert math.isfinite(rate) and rate > 0.5
+
+
+def test_a_dask_cluster_gives_the_same_archive():
+    """The cluster runner builds the heddle model in its workers from the file's bytes."""
+    distributed = pytest.importorskip("distributed")
+    want = open(os.path.join(GOLDEN, "heddle-v1-digits.orig"), "rb").read() * 3
+    with distributed.LocalCluster(n_workers=2, processes=True, threads_per_worker=1, host="127.0.0.1",
+                                  dashboard_address=None) as cluster:
+        addr = cluster.scheduler_address
+        local = lcodec.pack(want, model=DIGITS, frame_size=2560)
+        assert lcodec.pack(want, model=DIGITS, frame_size=2560, cluster=addr) == local
+        assert lcodec.unpack(local, model=DIGITS, cluster=addr) == want
