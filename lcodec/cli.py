@@ -42,6 +42,7 @@ EXAMPLES = {
     "train": "lcodec train station-logs/ -o logs.lcmodel --time-limit 600\n"
              "  lcodec train --kind image scanner-7/train/ -o scans.lcmodel --time-limit 120",
     "explain": "lcodec explain station-logs/vh07_gateway.log -o vh07-costs.html",
+    "probe": "lcodec probe digits.lcmodel --records digits-test.bin",
 }
 
 
@@ -533,7 +534,7 @@ def info(path, as_json, frames):
 
 
 @main.command(epilog=_example("bench"))
-@click.argument("corpus_dir", type=click.Path(exists=True, file_okay=False))
+@click.argument("corpus_dir", type=click.Path(exists=True))
 @model_option
 @click.option("--json", "json_out", type=click.Path(dir_okay=False), default=None, help="Write the rows as JSON.")
 @click.option("--csv", "csv_out", type=click.Path(dir_okay=False), default=None, help="Write the rows as CSV.")
@@ -542,9 +543,11 @@ def info(path, as_json, frames):
 @click.option("--seed", type=int, default=0, show_default=True, help="Seed of --split.")
 @click.option("--report", "report_dir", type=click.Path(), default=None,
               help="Also write a report folder: index.html, summary.md, the rows, PNG charts (needs matplotlib).")
-@click.option("--kind", type=click.Choice(["bytes", "image"]), default="bytes", show_default=True,
+@click.option("--kind", type=click.Choice(["bytes", "image", "records"]), default="bytes", show_default=True,
               help="image: CORPUS_DIR is a folder of test images and -m a pixel model; reports bits per "
-                   "sub-pixel against PNG, WebP, JPEG-LS, JPEG 2000 and JPEG XL (needs imagecodecs).")
+                   "sub-pixel against PNG, WebP, JPEG-LS, JPEG 2000 and JPEG XL (needs imagecodecs). "
+                   "records: CORPUS_DIR is one file of fixed-size records and -m a heddle model file (the "
+                   "layer kit's); bits per symbol against PNG, JPEG-LS, JPEG XL, xz, zstd and PPMd.")
 @force_option
 @quiet_option
 @guarded
@@ -559,6 +562,10 @@ def bench(corpus_dir, model, json_out, csv_out, split, seed, report_dir, kind, f
     """
     if kind == "image":
         return _bench_images(corpus_dir, model, json_out, csv_out or report_dir or split, force, quiet)
+    if kind == "records":
+        return _bench_records(corpus_dir, model, json_out, csv_out or report_dir or split, force)
+    if not os.path.isdir(corpus_dir):
+        raise UsageError(f"{corpus_dir} is not a folder (a corpus with train/ and test/)")
     from .measure import bench as B
 
     for out in (json_out, csv_out):
@@ -615,6 +622,49 @@ def _bench_images(corpus_dir, model, json_out, unsupported, force, quiet):
     if json_out:
         atomic_write(json_out, json.dumps({"rows": rows, "totals": IB.totals(rows),
                                            "model_bytes": os.path.getsize(model)}, indent=1).encode(), force=force)
+
+
+def _bench_records(path, model, json_out, unsupported, force):
+    from .measure import recordbench as RB
+
+    if unsupported:
+        raise UsageError("--csv, --report and --split go with --kind bytes")
+    if model is None or os.path.isdir(path):
+        raise UsageError("--kind records takes one file of records and -m with a heddle model file")
+    if json_out and os.path.lexists(json_out) and not force:
+        raise UsageError(f"{json_out} exists; pass --force to overwrite it")
+    row = RB.bench_records(path, model)
+    for line in RB.format_row(row):
+        click.echo(line)
+    if json_out:
+        atomic_write(json_out, json.dumps(row, indent=1).encode(), force=force)
+
+
+@main.command(epilog=_example("probe"))
+@click.argument("model_file", type=click.Path(exists=True, dir_okay=False))
+@click.option("--records", "records_file", type=click.Path(exists=True, dir_okay=False), default=None,
+              help="A file of records (one byte per symbol) to check on; default: random records.")
+@click.option("--count", type=click.IntRange(1, 100000), default=64, show_default=True,
+              help="How many records of --records (or random ones) to use.")
+@click.option("--shape", default=None, metavar="ROWSxCOLS",
+              help="Record size for an image-sized model (default 8x8).")
+@click.option("--json", "json_out", type=click.Path(dir_okay=False), default=None, help="Write the figures as JSON.")
+@force_option
+@guarded
+def probe(model_file, records_file, count, shape, json_out, force):
+    """Check a heddle model file (the layer kit's): is it autoregressive (each position
+    perturbed in turn; a broken pair is named), do the parallel and step passes agree, are
+    the tables the same with 1 and 2 threads and other batch shapes, its integer NLL and
+    its decoding speed. Exit 1 when a check fails. No torch needed."""
+    from .measure import recordbench as RB
+
+    rep = RB.probe_file(model_file, records_file, count, shape, echo=click.echo)
+    if json_out:
+        if os.path.lexists(json_out) and not force:
+            raise UsageError(f"{json_out} exists; pass --force to overwrite it")
+        atomic_write(json_out, json.dumps(rep, indent=1).encode(), force=force)
+    if not rep.get("ok"):
+        sys.exit(1)
 
 
 @main.command(epilog=_example("explain"))

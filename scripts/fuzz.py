@@ -163,6 +163,16 @@ def make_seeds(work: str):
                           model_path=weft_path))
         with open(weft_path, "rb") as f:
             models.append(Seed("weft-model", f.read(), "model"))
+    for name in ("heddle-digits-tiny", "heddle-pixels-tiny"):  # the layer kit's graphs (JSON ops)
+        hpath = os.path.join(GOLDEN, name + ".lcmodel")
+        if os.path.isfile(hpath):
+            with open(hpath, "rb") as f:
+                models.append(Seed(name, f.read(), "model"))
+    hpath = os.path.join(GOLDEN, "heddle-digits-tiny.lcmodel")
+    if os.path.isfile(hpath):
+        hm = resolve(hpath)
+        digits = bytes(range(17)) * 15 + bytes(64)
+        seeds.append(Seed("heddle", api.pack(digits, model=hm), "archive", content=digits, model=hm, model_path=hpath))
     mpath = os.path.join(work, "small.lcm")
     modelfile.dump(mpath, {"name": "strata", "params": Strata(max_order=4, hash_log2=14).params},
                    notes="fuzz seed")

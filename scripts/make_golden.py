@@ -331,6 +331,63 @@ def golden_tessel_law():
         write_vector(name, data, model=mpath)
 
 
+def golden_heddle():
+    """Two heddle model files made with the layer kit (needs torch, scikit-learn,
+    scikit-image) and their containers: a tiny masked autoencoder over 8x8 digits (records;
+    40 of scikit-learn's bundled digits), and a tiny masked-convolution pixel model (a 24 x 20
+    crop of scikit-image's camera as a PGM)."""
+    import io
+
+    import numpy as np
+    import torch
+    from lcodec.training import kit
+
+    arc = os.path.join(HERE, "heddle-v1-digits.lcodec")
+    if not os.path.exists(arc):
+        from sklearn.datasets import load_digits
+
+        torch.manual_seed(0)
+        digits = torch.from_numpy(load_digits().images.astype(np.int64)[:200])
+        din, dh = kit.made_degrees(64, 32)
+        net = kit.HeddleNet((8, 8), 17, kit.SymbolEmbed(17, 2), [
+            kit.DegreeLinear(kit.grid_degrees(din, 2), dh), kit.Residual(kit.DegreeLinear(dh, dh)),
+            kit.DegreeLinear(dh, din.repeat_interleave(17), act="logits", strict=True)])
+        opt = torch.optim.Adam(net.parameters(), 3e-3)
+        for _ in range(60):
+            opt.zero_grad()
+            kit.nll(net, digits).backward()
+            opt.step()
+        mpath = os.path.join(HERE, "heddle-digits-tiny.lcmodel")
+        kit.export(net, mpath)
+        write_vector("heddle-v1-digits", digits[160:200].numpy().astype(np.uint8).tobytes(), model=mpath)
+    else:
+        print(f"keep {arc}")
+    arc = os.path.join(HERE, "heddle-v1-pixels.lcodec")
+    if not os.path.exists(arc):
+        import skimage.data
+        from PIL import Image
+
+        torch.manual_seed(0)
+        cam = skimage.data.camera()
+        net = kit.HeddleNet((0, 0), 256, kit.SymbolEmbed(256, 2), [
+            kit.RasterConv(2, 6, (2, 3), include_centre=False),
+            kit.Residual(kit.RasterConv(6, 6, (2, 3), include_centre=True)),
+            kit.RasterConv(6, 256, (1, 1), act="logits")])
+        x = torch.from_numpy(cam[100:164, 100:164].astype(np.int64))[None]
+        opt = torch.optim.Adam(net.parameters(), 3e-3)
+        for _ in range(40):
+            opt.zero_grad()
+            kit.nll(net, x).backward()
+            opt.step()
+        mpath = os.path.join(HERE, "heddle-pixels-tiny.lcmodel")
+        kit.export(net, mpath)
+        buf = io.BytesIO()
+        Image.fromarray(cam[300:324, 200:220]).save(buf, "PPM")
+        write_vector("heddle-v1-pixels", buf.getvalue(), model=mpath)
+    else:
+        print(f"keep {arc}")
+
+
 def main():
     os.makedirs(HERE, exist_ok=True)
     vectors = {"strata-v1-text": sample_text(1, 20_000), "strata-v1-binary": bytes(random.Random(2).randbytes(3000)) + bytes(range(256)) * 8}
@@ -348,6 +405,7 @@ def main():
     golden_tessel_structure()
     golden_tessel_law()
     golden_tessel_replicated()
+    golden_heddle()
     golden_v3_twins()
 
 

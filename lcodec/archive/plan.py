@@ -253,8 +253,8 @@ def _find_image(src: _Source, model) -> None:
     if src.size > C.MAX_FRAME_RAW:
         return
     info = analyse(bytes(_content(src)))
-    if info is None or not model.has_depth(info.layout.deep):
-        return  # not an image, or the model has no network for its depth: bytes
+    if info is None or not model.has_depth(info.layout.deep) or not getattr(model, "takes_image", bool)(info.layout):
+        return  # not an image, or the model has no network for its depth (or size): bytes
     src.image = (info.layout, info.guarantee, info.kind)
     src.size = len(info.content)
     if src.data is not None:

@@ -14,9 +14,10 @@ from .strata import Strata
 from .weft import Weft
 from .braid import Braid
 from .tessel import Tessel
+from .heddle import Heddle
 
 BUILTIN = {"strata": Strata}  # models an archive can name without a model file
-ARCHITECTURES = {"strata": Strata, "weft": Weft, "braid": Braid, "tessel": Tessel}  # what a model file may hold
+ARCHITECTURES = {"strata": Strata, "weft": Weft, "braid": Braid, "tessel": Tessel, "heddle": Heddle}  # what a model file may hold
 
 
 NAMED_IN_IDENTITY = {"weft", "tessel"}  # (tessel's golden archives were made with the name too;
@@ -48,7 +49,7 @@ class Loaded:
         return self.inner.stepper(*a, **k)
 
     def __getattr__(self, name):  # image coding entry points of a pixel model (tessel)
-        if name in ("teacher_tables", "step_decode", "has_depth", "role_tables", "set_backend"):
+        if name in ("teacher_tables", "step_decode", "has_depth", "role_tables", "set_backend", "takes_image"):
             return getattr(self.inner, name)
         raise AttributeError(name)
 
