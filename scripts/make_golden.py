@@ -348,7 +348,7 @@ def golden_heddle():
 
         torch.manual_seed(0)
         digits = torch.from_numpy(load_digits().images.astype(np.int64)[:200])
-        din, dh = kit.made_degrees(64, 32)
+        din, dh = kit.mask_degrees(64, 32)
         net = kit.HeddleNet((8, 8), 17, kit.SymbolEmbed(17, 2), [
             kit.DegreeLinear(kit.grid_degrees(din, 2), dh), kit.Residual(kit.DegreeLinear(dh, dh)),
             kit.DegreeLinear(dh, din.repeat_interleave(17), act="logits", strict=True)])

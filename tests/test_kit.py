@@ -16,7 +16,7 @@ from lcodec.training import kit  # noqa: E402
 def made(P=12, A=5, E=3, hidden=24, residual=True, seed=0):
     """A small masked autoencoder over P positions (natural order)."""
     torch.manual_seed(seed)
-    din, dh = kit.made_degrees(P, hidden)
+    din, dh = kit.mask_degrees(P, hidden)
     l1 = kit.DegreeLinear(kit.grid_degrees(din, E), dh)
     layers = [l1]
     if residual:
@@ -117,8 +117,8 @@ def test_conv_mask_types():
         kit.RasterConv(200, 8, (3, 5))
 
 
-def test_made_degrees_other_order():
-    din, dh = kit.made_degrees(4, 6, order=[2, 0, 3, 1])
+def test_mask_degrees_other_order():
+    din, dh = kit.mask_degrees(4, 6, order=[2, 0, 3, 1])
     assert din.tolist() == [2, 4, 1, 3]
     assert dh.min() >= 1 and dh.max() <= 3
 
@@ -198,14 +198,14 @@ def test_jobs_and_threads_give_the_same_archive(tmp_path):
 
 
 def test_another_coding_order(tmp_path):
-    """A MADE over another order: export puts the graph in coding order, the records are
+    """A masked autoencoder over another order: export puts the graph in coding order, the records are
     laid out in that order (kit.to_coding_order), and everything agrees."""
     import lcodec
 
     P, A, E = 12, 5, 3
     order = list(np.random.default_rng(0).permutation(P))
     torch.manual_seed(0)
-    din, dh = kit.made_degrees(P, 24, order)
+    din, dh = kit.mask_degrees(P, 24, order)
     net = kit.HeddleNet((3, 4), A, kit.SymbolEmbed(A, E), [
         kit.DegreeLinear(kit.grid_degrees(din, E), dh), kit.Residual(kit.DegreeLinear(dh, dh)),
         kit.DegreeLinear(dh, din.repeat_interleave(A), act="logits", strict=True)], order=order)

@@ -7,11 +7,11 @@ loop, and export it as a heddle model file that lcodec runs with integers only.
     kit.export(net, "digits.lcmodel")     # JSON + integer arrays + SHA-256, never code
     kit.audit(net, records)               # causality, passes, threads, float vs integer NLL
 
-Layers (layers.py): SymbolEmbed (with causal_window), DegreeLinear (made_degrees,
+Layers (layers.py): SymbolEmbed (with causal_window), DegreeLinear (mask_degrees,
 grid_degrees), RasterConv, Residual, HeddleNet. The runtime is lcodec/models/heddle.py.
 """
 from .layers import (MAX_FAN_IN, DegreeLinear, Dropout, HeddleNet, RasterConv, Residual, SymbolEmbed,  # noqa: F401
-                     causal_window, fake_quant, from_coding_order, grid_degrees, made_degrees, ste_round,
+                     causal_window, fake_quant, from_coding_order, grid_degrees, mask_degrees, ste_round,
                      to_coding_order)
 from .export import export, graph_of, integer_tables  # noqa: F401
 from .helpers import nll, sample  # noqa: F401

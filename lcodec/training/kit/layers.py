@@ -151,7 +151,7 @@ def causal_window(k: int):
     return [(0, -j) for j in range(1, k + 1)]
 
 
-def made_degrees(positions: int, hidden: int, order=None, seed: int = 0):
+def mask_degrees(positions: int, hidden: int, order=None, seed: int = 0):
     """Degrees in the masked-autoencoder style (Germain et al., 2015) for `positions` symbols
     coded in `order` (a permutation of positions; default natural): input degree of
     position p = its rank + 1; hidden degrees spread evenly over 1..positions-1. Returns
@@ -288,7 +288,7 @@ class HeddleNet(nn.Module):
         layers: the rest, in order (DegreeLinear, RasterConv, Residual, Dropout).
         order: the coding order, a permutation of the positions (order[k] is coded k-th;
             default raster). Another order needs DegreeLinear layers alone (degrees from
-            `made_degrees(..., order)`) and an embedding of each position's own symbol;
+            `mask_degrees(..., order)`) and an embedding of each position's own symbol;
             the exported model codes records whose bytes are laid out in coding order
             (`to_coding_order`).
     Shapes: x (B, H, W) long -> logits (B, H, W, alphabet).

@@ -4,7 +4,7 @@ Scenario: the sorting office of the (invented) Tarrow Valley post keeps every sc
 postcode digit at 8x8 pixels, 17 grey levels, and wants the archive as small as it can be.
 The data are scikit-learn's bundled digits (1,797 images). 360 held out for the test.
 
-    python examples/digits_made.py [WORKDIR]      (about 2 minutes on one CPU core)
+    python examples/digits_masked.py [WORKDIR]      (about 2 minutes on one CPU core)
 
 Ends with pack, unpack, verify, probe and bench through the lcodec command line.
 """
@@ -31,8 +31,8 @@ perm = np.random.default_rng(0).permutation(len(digits))
 test, train = torch.from_numpy(digits[perm[:360]]), torch.from_numpy(digits[perm[360:]])
 A, E, HIDDEN = 17, 4, 256
 
-# -- the model: embeddings, masked linear layers with MADE degrees (natural order) -------
-din, dh = kit.made_degrees(64, HIDDEN)
+# -- the model: embeddings, masked linear layers with degrees (natural order) -------
+din, dh = kit.mask_degrees(64, HIDDEN)
 net = kit.HeddleNet((8, 8), A, kit.SymbolEmbed(A, E), [
     kit.DegreeLinear(kit.grid_degrees(din, E), dh), kit.Dropout(0.3),
     kit.Residual(kit.DegreeLinear(dh, dh)), kit.Dropout(0.3),
@@ -65,7 +65,7 @@ for epoch in range(260):
 rep = kit.audit(net, test)
 model = os.path.join(work, "digits.lcmodel")
 kit.export(net, model, float_bits_per_symbol=round(rep["float_bits_per_symbol"], 5),
-           note="MADE over 8x8 digits, 17 levels")
+           note="masked autoencoder over 8x8 digits, 17 levels")
 data = os.path.join(work, "digits-test.bin")  # the 360 test digits, 64 bytes each, in order
 open(data, "wb").write(test.numpy().astype(np.uint8).tobytes())
 print(kit.sample(net, 4).numpy().reshape(4, 8, 8).transpose(1, 0, 2).reshape(8, 32))  # what it learned
