@@ -100,7 +100,7 @@ class _Plan:
                 if not single:
                     content.update(data)
             else:
-                for raw in _hash_pieces(src):
+                for raw in _file_pieces(src, 1 << 20):
                     h.update(raw)
                     if not single:
                         content.update(raw)
@@ -139,8 +139,9 @@ class _Plan:
                              f"being packed; nothing was written under the final name")
 
 
-def _hash_pieces(src: _Source, piece: int = 1 << 20):
-    """A file source's bytes in pieces, for hashing only (nothing is kept)."""
+def _file_pieces(src: _Source, piece: int):
+    """A file source's bytes in pieces of `piece` bytes; refused if the file is no longer
+    the size it had when planned. Both the sealing pass (hashing) and the frames read this."""
     try:
         with open(src.path, "rb") as f:
             left = src.size
@@ -151,6 +152,9 @@ def _hash_pieces(src: _Source, piece: int = 1 << 20):
                                      f"nothing was written under the final name")
                 left -= len(raw)
                 yield raw
+            if f.read(1):
+                raise UsageError(f"{src.path} changed while it was being packed (it grew); "
+                                 f"nothing was written under the final name")
     except OSError as e:
         raise UsageError(f"cannot read {src.path}: {e.strerror or e}") from None
 
@@ -168,21 +172,7 @@ def _read_frames(src: _Source, frame_size: int):
         for off in range(0, src.size, frame_size):
             yield src.data[off:off + frame_size]
         return
-    try:
-        with open(src.path, "rb") as f:
-            left = src.size
-            while left:
-                raw = f.read(min(frame_size, left))
-                if not raw:
-                    raise UsageError(f"{src.path} changed while it was being packed (it became shorter); "
-                                     f"nothing was written under the final name")
-                left -= len(raw)
-                yield raw
-            if f.read(1):
-                raise UsageError(f"{src.path} changed while it was being packed (it grew); "
-                                 f"nothing was written under the final name")
-    except OSError as e:
-        raise UsageError(f"cannot read {src.path}: {e.strerror or e}") from None
+    yield from _file_pieces(src, frame_size)
 
 
 def _frame_items(plans):

@@ -188,15 +188,6 @@ def _record(mv, pos: int):
         return None
 
 
-def _end(fr) -> int:
-    return fr.payload_offset + fr.coded_len
-
-
-def _intact(fr) -> bool:
-    """The record's coded bytes match their CRC-32C (so its extent is right)."""
-    return C.crc32c(fr.payload) == fr.coded_crc
-
-
 def _lenient_end(mv, pos: int):
     """Where a record at `pos` would end if its length fields are right (no CRC checked)."""
     try:
@@ -251,19 +242,19 @@ def _place(mv, first: int, lay: Layout, scan_from: int, whole: bool):
             break
         fr.index, fr.placed_by = i, "header"
         placed[i] = fr
-        pos, i = _end(fr), i + 1
+        pos, i = B.record_end(fr), i + 1
     if i == lay.n:
         return placed, [], n - pos
     # Scan after the last record walked, or inside it when its coded bytes do not check
     # (bytes deleted there shift the next record into them).
     last = placed.get(i - 1)
-    lo_scan = scan_from if last is None else (pos + 1 if _intact(last) else last.payload_offset)
+    lo_scan = scan_from if last is None else (pos + 1 if B.intact(last) else last.payload_offset)
     heads = scan_records(mv, lo_scan, n, lay.distinct_lengths())
     used = set()
     if whole:
         k = {}  # offset -> records from there to the end of the file, when the chain ends exactly there
         for q in sorted(heads, reverse=True):
-            e = _end(heads[q])
+            e = B.record_end(heads[q])
             if e == n:
                 k[q] = 1
             elif e in k:
@@ -272,7 +263,7 @@ def _place(mv, first: int, lay: Layout, scan_from: int, whole: bool):
             q, chain = min(k), []
             while q != n:
                 chain.append(q)
-                q = _end(heads[q])
+                q = B.record_end(heads[q])
             base = lay.n - len(chain)
             if (base >= i
                     and all(heads[q].raw_len == lay.raw_len(base + j) for j, q in enumerate(chain))):
@@ -280,7 +271,7 @@ def _place(mv, first: int, lay: Layout, scan_from: int, whole: bool):
                     heads[q].index, heads[q].placed_by = base + j, "end of file"
                     placed[base + j] = heads[q]
                     used.add(q)
-    spans = sorted((f.offset, _end(f)) for f in placed.values() if _intact(f))
+    spans = sorted((f.offset, B.record_end(f)) for f in placed.values() if B.intact(f))
 
     def inside(q):  # a head inside a placed, intact record is its payload's bytes, not a record
         j = bisect.bisect_right(spans, (q, n + 1)) - 1
@@ -288,16 +279,16 @@ def _place(mv, first: int, lay: Layout, scan_from: int, whole: bool):
 
     rest = sorted(q for q in heads if q not in used and not inside(q))
     rest_set = set(rest)
-    successors = {_end(heads[q]) for q in rest}
+    successors = {B.record_end(heads[q]) for q in rest}
     unplaced = []
     # Placed records by offset (frame numbers grow with offsets: every placement keeps it so).
-    by_offset = sorted((f.offset, f.index, _end(f)) for f in placed.values())
+    by_offset = sorted((f.offset, f.index, B.record_end(f)) for f in placed.values())
     work = [MAX_PATTERN_WORK]  # raw-length comparisons allowed in all: a hostile file cannot make this slow
     for s in [q for q in rest if q not in successors]:
         seg = [s]
-        while _end(heads[seg[-1]]) in rest_set and len(seg) <= len(rest):
-            seg.append(_end(heads[seg[-1]]))
-        seg_end = _end(heads[seg[-1]])
+        while B.record_end(heads[seg[-1]]) in rest_set and len(seg) <= len(rest):
+            seg.append(B.record_end(heads[seg[-1]]))
+        seg_end = B.record_end(heads[seg[-1]])
         k = bisect.bisect_left(by_offset, (s, -1, -1))
         lo = by_offset[k - 1][1] + 1 if k else 0  # the first frame number it may take
         gap_start = by_offset[k - 1][2] if k else first
@@ -331,7 +322,7 @@ def _place(mv, first: int, lay: Layout, scan_from: int, whole: bool):
             for t, q in enumerate(seg):
                 heads[q].index, heads[q].placed_by = where[0] + t, how
                 placed[where[0] + t] = heads[q]
-                bisect.insort(by_offset, (q, where[0] + t, _end(heads[q])))
+                bisect.insort(by_offset, (q, where[0] + t, B.record_end(heads[q])))
         else:
             unplaced.extend(heads[q] for q in seg)
     return placed, unplaced, 0
@@ -555,7 +546,7 @@ def salvage(blob, model=None, progress=None) -> Salvage:
                 structure += ", then records found by scanning"
             order = sorted(placed)
             top = order[-1] if order else -1
-            tail = n - (_end(placed[top]) if order else hints.end)
+            tail = n - (B.record_end(placed[top]) if order else hints.end)
             limit = min(lay.n, top + 1 + max(tail, 0) // min_rec)  # the frames that can lie in the file
             if bound and order:
                 limit = max(limit, top + 1)
@@ -564,11 +555,11 @@ def salvage(blob, model=None, progress=None) -> Salvage:
                     fr = placed[i]
                     data, why = _decode(m, fr, progress)
                     frames[i] = FrameResult(i, "good" if data is not None else "damaged", why,
-                                            (fr.offset, _end(fr)), True, data, fr.placed_by,
+                                            (fr.offset, B.record_end(fr)), True, data, fr.placed_by,
                                             data is not None and _is_record(fr))
                     continue
                 j = bisect.bisect_left(order, i)
-                a = _end(placed[order[j - 1]]) if j > 0 else hints.end
+                a = B.record_end(placed[order[j - 1]]) if j > 0 else hints.end
                 b = placed[order[j]].offset if j < len(order) else n
                 lo = order[j - 1] if j > 0 else -1
                 hi = order[j] if j < len(order) else lay.n
@@ -576,7 +567,7 @@ def salvage(blob, model=None, progress=None) -> Salvage:
                                         "is cut or shifted here)", (a, max(a, b)), hi - lo == 2 and b > a)
             why = ("record of {} raw bytes whose frame number does not fit the header, or that repeats a "
                    "frame; not used") if bound else "record of {} raw bytes whose frame number is uncertain; not used"
-            unplaced = [FrameResult(None, "unplaced", why.format(f.raw_len), (f.offset, _end(f)), True)
+            unplaced = [FrameResult(None, "unplaced", why.format(f.raw_len), (f.offset, B.record_end(f)), True)
                         for f in unplaced_recs]
     if lay is None:  # no usable header: every record found, in archive order
         structure = "records found by scanning (no usable header)"
@@ -588,7 +579,7 @@ def salvage(blob, model=None, progress=None) -> Salvage:
                 fr.index = fr.number
                 data, why = _decode(m, fr, progress)
                 pieces.append(FrameResult(fr.number, "good" if data is not None else "damaged", why,
-                                          (fr.offset, _end(fr)), True, data, "frame number"))
+                                          (fr.offset, B.record_end(fr)), True, data, "frame number"))
         heads = {} if bound else scan_records(mv, 0, n)
         q_end = -1
         for q in sorted(heads):
@@ -597,8 +588,8 @@ def salvage(blob, model=None, progress=None) -> Salvage:
             fr = heads[q]
             fr.index = len(pieces)
             data, why = _decode(m, fr, progress)
-            pieces.append(FrameResult(None, "good" if data is not None else "damaged", why, (q, _end(fr)), True, data))
-            q_end = _end(fr)
+            pieces.append(FrameResult(None, "good" if data is not None else "damaged", why, (q, B.record_end(fr)), True, data))
+            q_end = B.record_end(fr)
         if not pieces:
             raise DataError("not an lcodec archive, or too damaged: no header and no frame record could be found")
     res = Salvage(n, header, structure, model_text, lay, frames, unplaced, pieces, problems,
@@ -614,7 +605,7 @@ def salvage(blob, model=None, progress=None) -> Salvage:
         problems.append(f"{len(unplaced)} records found whose frame number is uncertain (not used)")
     if foreign:
         res.unplaced.extend(FrameResult(None, "unplaced", f"record of another archive (identity "
-                                        f"{f.archive_id.hex()}, frame {f.number}); refused", (f.offset, _end(f)), True)
+                                        f"{f.archive_id.hex()}, frame {f.number}); refused", (f.offset, B.record_end(f)), True)
                             for f in foreign)
         problems.append(f"{len(foreign)} records of another archive found and refused")
     if lay is not None and lay.n > len(frames):

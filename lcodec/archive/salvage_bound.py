@@ -32,11 +32,13 @@ def record_at(mv, pos: int):
         return None
 
 
-def _end(fr) -> int:
+def record_end(fr) -> int:
+    """Where the record ends (its coded bytes included)."""
     return fr.payload_offset + fr.coded_len
 
 
-def _intact(fr) -> bool:
+def intact(fr) -> bool:
+    """The record's coded bytes match their CRC-32C (so its extent is right)."""
     return C.crc32c(fr.payload) == fr.coded_crc
 
 
@@ -84,7 +86,7 @@ def place(mv, first: int, lay, aid: bytes | None):
                 break
             fr.index, fr.placed_by = i, "header"
             placed[i] = fr
-            pos, i = _end(fr), i + 1
+            pos, i = record_end(fr), i + 1
         if i == lay.n:
             return placed, [], [], n - pos, aid
     heads = scan(mv, 6 if aid is None else pos, n, aid)  # a damaged header: its end is unproven too
@@ -92,7 +94,7 @@ def place(mv, first: int, lay, aid: bytes | None):
         aid = majority_id(heads)
         if aid is None:
             return {}, [], list(heads.values()), 0, None
-    spans = sorted((f.offset, _end(f)) for f in placed.values() if _intact(f))
+    spans = sorted((f.offset, record_end(f)) for f in placed.values() if intact(f))
     foreign, unplaced, cands = [], [], {}
     for q in sorted(heads):
         j = bisect.bisect_right(spans, (q, n + 1)) - 1
@@ -107,7 +109,7 @@ def place(mv, first: int, lay, aid: bytes | None):
             unplaced.append(fr)
     for k, frs in cands.items():
         if len(frs) > 1:
-            good = [f for f in frs if _intact(f)]
+            good = [f for f in frs if intact(f)]
             if len(good) != 1:
                 unplaced.extend(frs)
                 continue
@@ -117,7 +119,7 @@ def place(mv, first: int, lay, aid: bytes | None):
         placed[k] = frs[0]
     # a record of another archive is found where one of ours ends and none of ours begins
     starts = {f.offset for f in placed.values()} | {f.offset for f in unplaced}
-    for e in sorted({_end(f) for f in placed.values()} | {first}):
+    for e in sorted({record_end(f) for f in placed.values()} | {first}):
         if e not in starts and e not in {f.offset for f in foreign}:
             fr = record_at(mv, e)
             if fr is not None and fr.archive_id != aid:
@@ -130,7 +132,7 @@ def pieces_in_order(mv, n: int):
     number (duplicates after the first intact one dropped), and the others."""
     heads = scan(mv, 0, n, None)
     aid = majority_id(heads)
-    mine = sorted((fr for fr in heads.values() if fr.archive_id == aid), key=lambda f: (f.number, not _intact(f)))
+    mine = sorted((fr for fr in heads.values() if fr.archive_id == aid), key=lambda f: (f.number, not intact(f)))
     out, seen = [], set()
     for fr in mine:
         if fr.number not in seen:
