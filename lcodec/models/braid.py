@@ -142,13 +142,9 @@ def _file_update(fs, slots, checks, max_order, sym, now=-1):
         r = slots[k]
         chk = checks[k]
         if not _tag_is(meta, r, chk):
-            meta[r, TOT] = 0
-            meta[r, N1] = 0
+            S._claim_row(meta, r, chk, BIG)  # tag, total, distinct bytes (N1), big row
             meta[r, N2] = 0
             meta[r, N3] = 0
-            meta[r, BIG] = 0
-            meta[r, TAG_LO] = np.uint32(chk & np.uint64(0xFFFFFFFF))
-            meta[r, TAG_HI] = np.uint32(chk >> np.uint64(32))
         n1 = np.int64(meta[r, N1])
         g = np.int64(meta[r, BIG])
         i = -1  # the byte's place in the line's list (small rows)

@@ -107,6 +107,18 @@ def _tag_is(meta, r, chk):
     return meta[r, TAG_LO] == np.uint32(chk & np.uint64(0xFFFFFFFF)) and meta[r, TAG_HI] == np.uint32(chk >> np.uint64(32))
 
 
+@inlined
+def _claim_row(meta, r, chk, big_field):
+    """Row r for the context with tag chk, empty: its total, distinct bytes and big row
+    (field big_field: braid's lines place it elsewhere) zeroed. A model with more fields
+    zeroes those itself."""
+    meta[r, TOT] = 0
+    meta[r, DIST] = 0
+    meta[r, big_field] = 0
+    meta[r, TAG_LO] = np.uint32(chk & np.uint64(0xFFFFFFFF))
+    meta[r, TAG_HI] = np.uint32(chk >> np.uint64(32))
+
+
 def big_rows_for(n_bytes: int, max_order: int) -> int:
     """Big rows one frame can need: a row takes one with the SMALL+1-th distinct byte it
     counts since it was last emptied, and each byte is counted in at most max_order + 1
@@ -229,11 +241,7 @@ def _update(rows, slots, checks, max_order, sym, nxt, seen):
         r = slots[k]
         chk = checks[k]
         if not _tag_is(meta, r, chk):
-            meta[r, TOT] = 0
-            meta[r, DIST] = 0
-            meta[r, BIG] = 0
-            meta[r, TAG_LO] = np.uint32(chk & np.uint64(0xFFFFFFFF))
-            meta[r, TAG_HI] = np.uint32(chk >> np.uint64(32))
+            _claim_row(meta, r, chk, BIG)
         nd = np.int64(meta[r, DIST])
         g = np.int64(meta[r, BIG])
         i = -1
