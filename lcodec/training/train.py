@@ -93,17 +93,7 @@ def _build(torch, cfg):
     W, E, H = cfg["window"], cfg["embed"], cfg["hidden"]
     K, D = len(cfg.get("hash_orders", ())), cfg.get("hash_embed", 0)
 
-    class RoundSTE(torch.autograd.Function):
-        @staticmethod
-        def forward(ctx, x):
-            return torch.round(x)
-
-        @staticmethod
-        def backward(ctx, g):
-            return g
-
-    def fq(x, scale, lo, hi):
-        return torch.clamp(RoundSTE.apply(x / scale), lo, hi) * scale
+    from .kit.layers import fake_quant as fq  # the kit's fake quantisation (straight-through rounding)
 
     class Net(nn.Module):
         def __init__(self):
