@@ -50,3 +50,22 @@ def v3_twin(name: str) -> bytes:
     import os
     with open(os.path.join(os.path.dirname(__file__), "golden", "v3", name + ".lcodec"), "rb") as f:
         return f.read()
+
+
+def markov_chain(seed: int, alphabet: int = 4, n: int = 1 << 17):
+    """A random stationary Markov chain over `alphabet` symbols: its transition matrix P,
+    its entropy rate H = -sum_i mu_i sum_j P_ij log2 P_ij in bits per symbol (Cover and
+    Thomas, Elements of Information Theory, ch. 4; the formula as recalled from memory; mu
+    the stationary distribution), and n symbols drawn from it starting at 0."""
+    rng = np.random.default_rng(seed)
+    P = rng.dirichlet(np.ones(alphabet) * 0.7, size=alphabet)
+    evals, evecs = np.linalg.eig(P.T)
+    mu = np.real(evecs[:, np.argmin(abs(evals - 1))])
+    mu /= mu.sum()
+    rate = float(-(mu[:, None] * P * np.log2(P)).sum())
+    u = rng.random(n)
+    cum = np.cumsum(P, axis=1)
+    x = np.zeros(n, np.int64)
+    for t in range(1, n):
+        x[t] = min(int(np.searchsorted(cum[x[t - 1]], u[t])), alphabet - 1)
+    return P, rate, x

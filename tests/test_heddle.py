@@ -16,7 +16,7 @@ from lcodec.errors import ModelError
 from lcodec.format import modelfile
 from lcodec.models import heddle_audit, load_model
 from lcodec.models.heddle import Graph
-from support import v3_twin
+from support import markov_chain, v3_twin
 
 HERE = os.path.dirname(__file__)
 GOLDEN = os.path.join(HERE, "golden")
@@ -291,20 +291,9 @@ def test_markov_source_codes_at_its_entropy_rate():
     H = -sum_i mu_i sum_j P_ij log2 P_ij (Cover and Thomas, Elements of Information Theory,
     ch. 4; the formula as recalled from memory). A heddle graph whose logits are log P of
     the previous symbol codes a long sample within 1% of H."""
-    rng = np.random.default_rng(7)
     A = 4
-    Pm = rng.dirichlet(np.ones(A) * 0.7, size=A)
-    evals, evecs = np.linalg.eig(Pm.T)
-    mu = np.real(evecs[:, np.argmin(abs(evals - 1))])
-    mu /= mu.sum()
-    rate = float(-(mu[:, None] * Pm * np.log2(Pm)).sum())
-    n = 1 << 17
-    x = np.empty(n, np.int64)
-    x[0] = 0
-    u = rng.random(n)
-    cum = np.cumsum(Pm, axis=1)
-    for t in range(1, n):
-        x[t] = min(int(np.searchsorted(cum[x[t - 1]], u[t])), A - 1)
+    Pm, rate, x = markov_chain(7, A)
+    n = len(x)
     unit = 1 / 16  # nats per logit unit
     table = np.zeros((A + 1, A), np.int8)
     table[np.arange(A), np.arange(A)] = 1  # one-hot of the previous symbol (PAD: zeros)

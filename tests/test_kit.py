@@ -7,10 +7,10 @@ import pytest
 
 torch = pytest.importorskip("torch")
 
-from lcodec.format import modelfile  # noqa: E402
 from lcodec.models import heddle_audit, load_model  # noqa: E402
 from lcodec.models.heddle import Graph, Heddle  # noqa: E402
 from lcodec.training import kit  # noqa: E402
+from support import markov_chain  # noqa: E402
 
 
 def made(P=12, A=5, E=3, hidden=24, residual=True, seed=0):
@@ -146,19 +146,9 @@ def test_a_kit_model_codes_a_markov_source_at_its_entropy_rate(tmp_path):
     convolution to logits), trained briefly, codes a long sample within 1% of H."""
     import lcodec
 
-    rng = np.random.default_rng(11)
     A = 4
-    Pm = rng.dirichlet(np.ones(A) * 0.7, size=A)
-    evals, evecs = np.linalg.eig(Pm.T)
-    mu = np.real(evecs[:, np.argmin(abs(evals - 1))])
-    mu /= mu.sum()
-    rate = float(-(mu[:, None] * Pm * np.log2(Pm)).sum())
-    n = 1 << 17
-    cum = np.cumsum(Pm, axis=1)
-    u = rng.random(n)
-    x = np.zeros(n, np.int64)
-    for t in range(1, n):
-        x[t] = min(int(np.searchsorted(cum[x[t - 1]], u[t])), A - 1)
+    Pm, rate, x = markov_chain(11, A)
+    n = len(x)
     torch.manual_seed(0)
     net = kit.HeddleNet((1, 4096), A, kit.SymbolEmbed(A, 4, kit.causal_window(1)), [
         kit.RasterConv(4, 16, (1, 1)), kit.RasterConv(16, A, (1, 1), act="logits")])
