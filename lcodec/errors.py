@@ -35,7 +35,7 @@ class UsageError(LcodecError):
 
 # Signals the CLI's handler has taken (lcodec/cli.py), in order. The handler raises at once,
 # but an exception raised while numba is entering object mode is lost there (numba
-# unpickles the called function at each entry and drops what that raises), so the decode
+# deserialises the called function at each entry and drops what that raises), so the decode
 # loop also looks here at every step (coding/coder.py) and raises what was lost.
 PENDING_SIGNALS: list = []
 
