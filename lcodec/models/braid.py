@@ -205,6 +205,37 @@ def _file_update(fs, slots, checks, max_order, sym, now=-1):
 
 
 @kernel
+def _probe_lanes(corpus, hist, m):
+    """found[b, k] <- the corpus slot of lane b's order-k context, or -1, for lanes 0..m-1:
+    every lane's and every order's probe in one pass, independent loads the processor
+    overlaps (the chain that reads them, one lane at a time, depends on each in turn)."""
+    slot2, cbase, csize, found = corpus[0], corpus[2], corpus[3], corpus[6]
+    for b in range(m):
+        h = hist[b]
+        for k in range(cbase.shape[0]):
+            x = _ctx_hash(h, k)
+            found[b, k] = _probe(slot2, cbase[k], csize[k], x, _home(cbase[k], csize[k], x))
+
+
+@kernel
+def _lanes_rows(mix, state, hist, m, max_order, hash_log2, slots2, checks2, sink):
+    """slots2[b], checks2[b] <- lane b's file rows (placed as they are first met, lane by
+    lane, order by order) for lanes 0..m-1, and a first read of each row's line. The rows
+    of a long frame are far apart in memory; read here, every lane's and every order's
+    loads are independent and the processor overlaps them, where the chain, which reads a
+    row and then decides what to do with it, would wait for each in turn."""
+    bases, gen, rmap, nxt, meta = state[2], state[4], state[5], state[6], state[1]
+    acc = np.uint32(0)
+    for b in range(m):
+        sl = slots2[b]
+        _slots(mix, b, hist[b], max_order, hash_log2, bases, gen, sl, checks2[b])
+        S._map_rows(rmap, nxt, gen, max_order, sl)
+        for k in range(max_order + 1):
+            acc ^= meta[sl[k], TAG_LO]
+    sink[0] = acc
+
+
+@kernel
 def _braid_predict(corpus, fstate, hist, slots, checks, max_order, dfile, p, mix, b):
     """p <- the braided distribution (integers, total about 2**P_BITS), top layer first:
     at each order the file's own row sits above the corpus row of the same context.
@@ -222,11 +253,6 @@ def _braid_predict(corpus, fstate, hist, slots, checks, max_order, dfile, p, mix
     now = mix[5][4]
     nlay = 0
     corder = cbase.shape[0] - 1
-    # every order's home slot first: independent loads the processor can overlap
-    for k in range(corder + 1):
-        x = _ctx_hash(hist, k)
-        j = _home(cbase[k], csize[k], x)
-        found[k] = _probe(slot2, cbase[k], csize[k], x, j)
     for s in range(256):
         p[s] = 0
     A = np.int64(ONE_A)
@@ -251,7 +277,7 @@ def _braid_predict(corpus, fstate, hist, slots, checks, max_order, dfile, p, mix
                 else:
                     A = _file_layer(fstate, r, dfile[k], p, A)
         if k <= corder:
-            j = found[k]
+            j = found[b, k]
             if j >= 0:
                 a0, b0 = np.int64(slot2[j, 1]), np.int64(slot2[j + 1, 1])
                 if use_mix:
@@ -297,11 +323,12 @@ def _after_chain(match, rc, mix, fork, b, hist, p, buf, cur, use_match, use_sse,
 @njit(cache=True, nogil=True)
 def _teacher(corpus, state, match, data, starts, lengths, t0, t1, max_order, hash_log2, dfile, out_syms, out_tab, mix, fork, rc):
     """Tables of steps t0..t1 for all active lanes, in coding order, updating state."""
-    bases, hist, gen, rmap, nxt = state[2], state[3], state[4], state[5], state[6]
-    slots = np.empty(max_order + 1, np.int64)
-    checks = np.empty(max_order + 1, np.uint64)
-    p = np.empty(256, np.int64)
+    hist, gen = state[3], state[4]
     nl = lengths.shape[0]
+    slots2 = np.empty((max(nl, 1), max_order + 1), np.int64)
+    checks2 = np.empty((max(nl, 1), max_order + 1), np.uint64)
+    sink = np.zeros(1, np.uint32)
+    p = np.empty(256, np.int64)
     use_match = match[5][3] > 0 and corpus[5][0] == 0
     use_mix = mix[5][1] != 0
     use_sse = use_match and mix[5][2] != 0
@@ -312,10 +339,10 @@ def _teacher(corpus, state, match, data, starts, lengths, t0, t1, max_order, has
         while m < nl and lengths[m] > t:
             m += 1
         mix[5][4] = t
+        _lanes_rows(mix, state, hist, m, max_order, hash_log2, slots2, checks2, sink)
+        _probe_lanes(corpus, hist, m)
         for b in range(m):
-            _slots(mix, b, hist[b], max_order, hash_log2, bases, gen, slots, checks)
-            S._map_rows(rmap, nxt, gen, max_order, slots)
-            _braid_predict(corpus, state, hist[b], slots, checks, max_order, dfile, p, mix, b)
+            _braid_predict(corpus, state, hist[b], slots2[b], checks2[b], max_order, dfile, p, mix, b)
             if use_fork:
                 _fork_keep(fork, p)
             _after_chain(match, rc, mix, fork, b, hist[b], p, data, starts[b] + t, use_match, use_sse, use_fork)
@@ -332,9 +359,7 @@ def _teacher(corpus, state, match, data, starts, lengths, t0, t1, max_order, has
                 _fork_update(fork, b, np.int64(data[starts[b] + t]), starts[b] + t)
         for b in range(m):
             sym = data[starts[b] + t]
-            _slots(mix, b, hist[b], max_order, hash_log2, bases, gen, slots, checks)
-            S._map_rows(rmap, nxt, gen, max_order, slots)
-            _file_update(state, slots, checks, max_order, sym, t if use_mix else -1)
+            _file_update(state, slots2[b], checks2[b], max_order, sym, t if use_mix else -1)
             if use_match:
                 R.update(rc, b, data, starts[b], t, np.int64(sym), hist[b])
             hist[b] = (hist[b] << np.uint64(8)) | np.uint64(sym)
@@ -348,8 +373,8 @@ def _teacher(corpus, state, match, data, starts, lengths, t0, t1, max_order, has
 def _step(corpus, state, match, starts, syms, t_prev, m_prev, m, max_order, hash_log2, dfile, out_tab, work, mix, fork, rc):
     """Decoder step: count the symbols of step t_prev (m_prev lanes), then predict m lanes.
     `work` holds the scratch arrays, made once per frame (a step is too short to allocate)."""
-    bases, hist, gen, rmap, nxt = state[2], state[3], state[4], state[5], state[6]
-    slots, checks, p = work
+    hist, gen = state[3], state[4]
+    slots2, checks2, p, sink = work
     buf = match[0]
     use_match = match[5][3] > 0 and corpus[5][0] == 0
     for b in range(m_prev):
@@ -366,20 +391,18 @@ def _step(corpus, state, match, starts, syms, t_prev, m_prev, m, max_order, hash
         for b in range(m_prev):
             _fork_update(fork, b, np.int64(syms[b]), starts[b] + t_prev)
     for b in range(m_prev):
-        sym = syms[b]
-        _slots(mix, b, hist[b], max_order, hash_log2, bases, gen, slots, checks)
-        S._map_rows(rmap, nxt, gen, max_order, slots)
-        _file_update(state, slots, checks, max_order, sym, t_prev if mix[5][1] != 0 else -1)
+        sym = syms[b]  # its rows are the ones the step before predicted it from (slots2[b])
+        _file_update(state, slots2[b], checks2[b], max_order, sym, t_prev if mix[5][1] != 0 else -1)
         if use_match:
             R.update(rc, b, buf, starts[b], t_prev, np.int64(sym), hist[b])
         hist[b] = (hist[b] << np.uint64(8)) | np.uint64(sym)
         if use_match:
             S._match_update(match, b, starts[b], t_prev, sym, hist[b], gen)
     mix[5][4] = t_prev + 1
+    _lanes_rows(mix, state, hist, m, max_order, hash_log2, slots2, checks2, sink)
+    _probe_lanes(corpus, hist, m)
     for b in range(m):
-        _slots(mix, b, hist[b], max_order, hash_log2, bases, gen, slots, checks)
-        S._map_rows(rmap, nxt, gen, max_order, slots)
-        _braid_predict(corpus, state, hist[b], slots, checks, max_order, dfile, p, mix, b)
+        _braid_predict(corpus, state, hist[b], slots2[b], checks2[b], max_order, dfile, p, mix, b)
         if use_fork:
             _fork_keep(fork, p)
         _after_chain(match, rc, mix, fork, b, hist[b], p, buf, starts[b] + t_prev + 1, use_match, use_sse, use_fork)
@@ -610,11 +633,11 @@ class Braid:
             match[4][:] = self.match_prior
         return match
 
-    def frame_corpus(self):
+    def frame_corpus(self, n_lanes: int):
         """The corpus tables with a scratch array of the frame's own (the probe results): the
         tables are shared by every thread, the scratch must not be (frames decoded in
         threads side by side wrote each other's probe results before this)."""
-        return self.corpus[:6] + (np.zeros(len(self.corpus[6]), np.int64),)
+        return self.corpus[:6] + (np.zeros((max(n_lanes, 1), len(self.corpus[6])), np.int64),)
 
     def new_mix(self, n_lanes: int, weights=None):
         """The escape weights' state for one frame: weights (from the model file's table, or
@@ -683,7 +706,7 @@ class Braid:
         rc = self.new_recall(len(lengths))
         start_cells = match[4].copy()
         start_recall = rc.cells.copy()
-        corpus = self.frame_corpus()
+        corpus = self.frame_corpus(len(lengths))
         try:
             yield from S.run_chunks(lengths, chunk_steps, lambda t0, t1, syms, tab: _teacher(
                 corpus, state, match, data, starts, lengths, t0, t1, f.max_order, hb, f._disc, syms, tab, mix, fork, rc))
@@ -702,8 +725,10 @@ class Braid:
         starts = np.zeros(len(lengths), np.int64)
         starts[1:] = np.cumsum(lengths)[:-1]
         tab = np.empty((max(len(lengths), 1), 256), np.float64)
-        mo, disc, corpus = f.max_order, f._disc, self.frame_corpus()
-        work = (np.empty(mo + 1, np.int64), np.empty(mo + 1, np.uint64), np.empty(256, np.int64))
+        mo, disc, corpus = f.max_order, f._disc, self.frame_corpus(len(lengths))
+        nl = max(len(lengths), 1)
+        work = (np.empty((nl, mo + 1), np.int64), np.empty((nl, mo + 1), np.uint64), np.empty(256, np.int64),
+                np.zeros(1, np.uint32))
         mix = self.new_mix(len(lengths))
         fork = self.new_fork(len(lengths))
         rc = self.new_recall(len(lengths))
