@@ -41,7 +41,7 @@ CONNECT_TIMEOUT_S = 15  # how long --cluster waits for the scheduler
 class ModelSpec:
     """What a worker needs to build the model: picklable, no numba state."""
 
-    kind: str  # "builtin" or "file"
+    kind: str  # "builtin", "file", or "forked" (the workers have the model: ProcessRunner)
     identity_json: str  # the container identity (sorted JSON)
     blob: bytes = b""  # the model file's bytes (kind "file")
     name: str = ""  # the model file's base name (messages and the identity's "file")
@@ -95,6 +95,8 @@ def model_for(key: str):
 
 def build(spec: ModelSpec):
     ident = json.loads(spec.identity_json)
+    if spec.kind == "forked":
+        raise RuntimeError("a forked worker lost its parent's model")
     if spec.kind == "builtin":
         return BUILTIN[ident["model"]].from_identity(ident)
     meta, arrays, sha = modelfile.parse(spec.blob, where=f"model file {spec.name}")
@@ -121,9 +123,11 @@ def _init_worker(spec: ModelSpec) -> None:
     # Ctrl-C reaches the whole process group: the parent stops the job and cleans up; a
     # worker only stops when the pool is shut down (no traceback from each worker)
     signal.signal(signal.SIGINT, signal.SIG_IGN)
+    signal.signal(signal.SIGTERM, signal.SIG_DFL)  # a forked worker must not run the parent's handler
     os.environ.setdefault("NUMBA_NUM_THREADS", "1")
-    register(spec)
-    model_for(spec.key)  # build (and compile) now, before the first task
+    if spec.key not in _MODELS:  # a forked worker has its parent's model
+        register(spec)
+        model_for(spec.key)  # build (and compile) now, before the first task
 
 
 # -- runners ---------------------------------------------------------------------------------
@@ -215,19 +219,42 @@ class InlineRunner(Runner):
         pass
 
 
+def _may_fork() -> bool:
+    """Whether worker processes may be forked from this one: the platform forks, and this
+    process runs no other thread (no Python thread, numba's thread pool never started), so
+    no lock can be copied while another thread holds it."""
+    import threading
+
+    if "fork" not in multiprocessing.get_all_start_methods() or threading.active_count() != 1:
+        return False
+    try:
+        from numba.np.ufunc import parallel
+    except ImportError:
+        return False
+    return not getattr(parallel, "_is_initialized", True)
+
+
 class ProcessRunner(Runner):
-    """--jobs N: a pool of N worker processes (forkserver, else spawn: never a bare fork of a
-    process that may hold numba's threads)."""
+    """--jobs N: a pool of N worker processes. Forked when that is safe (_may_fork): the
+    workers then share this process's model, already built, page for page until one writes
+    (a model file's tables are read-only), and start at once; a worker of a 64 MB model
+    file otherwise reads, checks and builds it again, about a second each. Else forkserver,
+    else spawn: never a bare fork of a process that holds other threads."""
 
     def __init__(self, model, jobs: int):
         from concurrent.futures import ProcessPoolExecutor
 
         super().__init__(model)
-        spec = model_spec(model)
-        self.key, self.jobs = spec.key, jobs
-        self.window = 2 * jobs
-        methods = multiprocessing.get_all_start_methods()
-        ctx = multiprocessing.get_context("forkserver" if "forkserver" in methods else "spawn")
+        self.jobs, self.window = jobs, 2 * jobs
+        if _may_fork():
+            ctx = multiprocessing.get_context("fork")
+            spec = ModelSpec("forked", json.dumps(model.identity, sort_keys=True, separators=(",", ":")))
+            _MODELS[spec.key] = model  # the workers find it built (model_for)
+        else:
+            spec = model_spec(model)
+            methods = multiprocessing.get_all_start_methods()
+            ctx = multiprocessing.get_context("forkserver" if "forkserver" in methods else "spawn")
+        self.key = spec.key
         self.pool = ProcessPoolExecutor(max_workers=jobs, mp_context=ctx, initializer=_init_worker, initargs=(spec,))
 
     def submit(self, fn, batch):
