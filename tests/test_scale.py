@@ -81,11 +81,47 @@ def test_jobs2_equals_jobs1_for_one_large_multi_frame_file(big, tmp_path):
     assert rep.ok and rep.frames == len(C.read_container(one).frames)
 
 
-def test_jobs2_equals_jobs1_with_a_learned_model_file(big):
+def test_jobs2_equals_jobs1_with_a_learned_model_file(big, monkeypatch):
+    # workers read the model file's bytes (weft's thread pool makes this process unsafe to fork)
+    monkeypatch.setattr(scale, "_may_fork", lambda: False)
     data = big[:40_000]
     one = api.pack(data, model=WEFT, frame_size=8192, jobs=1)
     assert api.pack(data, model=WEFT, frame_size=8192, jobs=2) == one
     assert api.unpack(one, model=WEFT, jobs=2) == data
+
+
+FORKED = """
+import sys
+from lcodec import api
+from lcodec.archive import runners
+assert runners._may_fork(), "a fresh process should fork its workers"
+model, data = sys.argv[1], open(sys.argv[2], "rb").read()
+two = api.pack(data, model=model, frame_size=8192, jobs=2)  # forked workers: the parent's built model
+assert api.unpack(two, model=model, jobs=2) == data
+assert two == api.pack(data, model=model, frame_size=8192, jobs=1)
+print("ok")
+"""
+
+
+def test_forked_workers_give_the_same_archive(big, tmp_path):
+    src = tmp_path / "mast.log"
+    src.write_bytes(big[:40_000])
+    r = subprocess.run([sys.executable, "-c", FORKED, os.path.join(GOLDEN, "braid-memory-tiny.lcmodel"), str(src)],
+                       capture_output=True, timeout=300)
+    assert r.returncode == 0 and r.stdout.strip() == b"ok", r.stderr.decode()[-2000:]
+
+
+def test_forking_needs_a_single_threaded_parent():
+    import threading
+
+    stop = threading.Event()
+    t = threading.Thread(target=stop.wait)
+    t.start()
+    try:
+        assert not scale._may_fork()  # another thread could hold a lock the children would copy
+    finally:
+        stop.set()
+        t.join()
 
 
 def test_golden_containers_decode_through_the_parallel_streaming_path(tmp_path):
@@ -123,10 +159,11 @@ def test_jobs_option_is_validated(tree, tmp_path):
     assert (tmp_path / "x.lcodec").read_bytes() == api.pack_paths([str(tree)])[0]
 
 
-def test_a_model_object_workers_cannot_rebuild_is_refused():
+def test_a_model_object_workers_cannot_rebuild_is_refused(monkeypatch):
     class Odd(Strata):  # not a built-in model by its type: a worker could not rebuild it
         pass
 
+    monkeypatch.setattr(scale, "_may_fork", lambda: False)
     with pytest.raises(UsageError, match="cannot be rebuilt"):
         api.pack(b"x" * 1000, model=Odd(), jobs=2)
 
