@@ -397,35 +397,52 @@ def _match_update(match, b, start, t, sym, hist, gen):
     mtab[h] = g | np.uint64(cur + 1)
 
 
+@kernel
+def _lanes_rows(state, m, max_order, hash_log2, slots2, checks2, sink):
+    """slots2[b], checks2[b] <- lane b's rows (placed as they are first met, lane by lane,
+    order by order) for lanes 0..m-1, and a first read of each row's line: the rows of a
+    long frame are far apart in memory, and read here, in one pass, their loads are
+    independent and overlap; the prediction, which reads a row and then decides what to
+    do with it, would wait for each in turn. The update reuses the same rows."""
+    rows, bases, hist, gen, rmap, nxt = state[0], state[1], state[2], state[3], state[4], state[5]
+    meta = rows[0]
+    acc = np.uint32(0)
+    for b in range(m):
+        sl = slots2[b]
+        _row_slots(hist[b], max_order, hash_log2, bases, gen, sl, checks2[b])
+        _map_rows(rmap, nxt, gen, max_order, sl)
+        for k in range(max_order + 1):
+            acc ^= meta[sl[k], TAG_LO]
+    sink[0] = acc
+
+
 @njit(cache=True, nogil=True)
 def _teacher(state, match, data, starts, lengths, t0, t1, max_order, hash_log2, disc, out_syms, out_tab):
     """Tables of steps t0..t1 for all active lanes, in coding order, updating state."""
     rows, bases, hist, gen, rmap, nxt, seen = state
-    slots = np.empty(max_order + 1, np.int64)
-    checks = np.empty(max_order + 1, np.uint64)
+    nl = lengths.shape[0]
+    slots2 = np.empty((max(nl, 1), max_order + 1), np.int64)
+    checks2 = np.empty((max(nl, 1), max_order + 1), np.uint64)
+    sink = np.zeros(1, np.uint32)
     p = np.empty(256, np.int64)
     keep = np.empty((SMALL, 3), np.int64)
     vals = np.empty(256, np.int64)
-    nl = lengths.shape[0]
     use_match = match[5][3] > 0
     i = 0
     for t in range(t0, t1):
         m = 0
         while m < nl and lengths[m] > t:
             m += 1
+        _lanes_rows(state, m, max_order, hash_log2, slots2, checks2, sink)
         for b in range(m):
-            _row_slots(hist[b], max_order, hash_log2, bases, gen, slots, checks)
-            _map_rows(rmap, nxt, gen, max_order, slots)
-            _predict(rows, slots, checks, max_order, disc, p, keep, seen, vals)
+            _predict(rows, slots2[b], checks2[b], max_order, disc, p, keep, seen, vals)
             if use_match:
                 _match_predict(match, b, p)
             _emit(p, out_tab[i + b])
             out_syms[i + b] = data[starts[b] + t]
         for b in range(m):
             sym = data[starts[b] + t]
-            _row_slots(hist[b], max_order, hash_log2, bases, gen, slots, checks)
-            _map_rows(rmap, nxt, gen, max_order, slots)
-            _update(rows, slots, checks, max_order, sym, nxt, seen)
+            _update(rows, slots2[b], checks2[b], max_order, sym, nxt, seen)
             hist[b] = (hist[b] << np.uint64(8)) | np.uint64(sym)
             if use_match:
                 _match_update(match, b, starts[b], t, sym, hist[b], gen)
@@ -439,23 +456,20 @@ def _step(state, match, starts, syms, t_prev, m_prev, m, max_order, hash_log2, d
     `work` holds the scratch arrays, made once per frame (new_work: a step is too short to
     allocate)."""
     rows, bases, hist, gen, rmap, nxt, seen = state
-    slots, checks, p, keep, vals = work
+    slots2, checks2, p, keep, vals, sink = work
     buf = match[0]
     use_match = match[5][3] > 0
     for b in range(m_prev):
         buf[starts[b] + t_prev] = syms[b]
     for b in range(m_prev):
-        sym = syms[b]
-        _row_slots(hist[b], max_order, hash_log2, bases, gen, slots, checks)
-        _map_rows(rmap, nxt, gen, max_order, slots)
-        _update(rows, slots, checks, max_order, sym, nxt, seen)
+        sym = syms[b]  # its rows are the ones the step before predicted it from
+        _update(rows, slots2[b], checks2[b], max_order, sym, nxt, seen)
         hist[b] = (hist[b] << np.uint64(8)) | np.uint64(sym)
         if use_match:
             _match_update(match, b, starts[b], t_prev, sym, hist[b], gen)
+    _lanes_rows(state, m, max_order, hash_log2, slots2, checks2, sink)
     for b in range(m):
-        _row_slots(hist[b], max_order, hash_log2, bases, gen, slots, checks)
-        _map_rows(rmap, nxt, gen, max_order, slots)
-        _predict(rows, slots, checks, max_order, disc, p, keep, seen, vals)
+        _predict(rows, slots2[b], checks2[b], max_order, disc, p, keep, seen, vals)
         if use_match:
             _match_predict(match, b, p)
         _emit(p, out_tab[b])
@@ -672,8 +686,9 @@ class Strata:
         starts[1:] = np.cumsum(lengths)[:-1]
         tab = np.empty((max(len(lengths), 1), 256), np.float64)
         mo, disc = self.max_order, self._disc
-        work = (np.empty(mo + 1, np.int64), np.empty(mo + 1, np.uint64), np.empty(256, np.int64),
-                np.empty((SMALL, 3), np.int64), np.empty(256, np.int64))
+        nl = max(len(lengths), 1)
+        work = (np.empty((nl, mo + 1), np.int64), np.empty((nl, mo + 1), np.uint64), np.empty(256, np.int64),
+                np.empty((SMALL, 3), np.int64), np.empty(256, np.int64), np.zeros(1, np.uint32))
         t = [-1]
 
         def step(prev_syms, m_prev, m):
