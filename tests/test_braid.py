@@ -740,7 +740,7 @@ def test_file_rows_match_python_integers(seed):
             checks = np.array([(gen << 32) | (2 * int(r) + 1 + int(rng.random() < 0.002)) for r in slots], np.uint64)
             top = rows.get(int(slots[-1]))
             halved[0] |= bool(top and top["tag"] == checks[-1] and top["cnt"].get(sym, 0) >= S.COUNT_LIMIT)
-            B._file_update(fs, slots, checks, max_order, sym, t)
+            B._file_update(fs, slots[None], checks[None], 0, max_order, sym, t)  # lane 0 of one
             _ref_file_update(rows, slots.tolist(), checks.tolist(), sym, t)
             if t % 37 and t < steps - 1:
                 continue

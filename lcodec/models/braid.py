@@ -132,15 +132,15 @@ def _slots(mix, b, hist, max_order, hash_log2, bases, gen, slots, checks):
 
 
 @kernel
-def _file_update(fs, slots, checks, max_order, sym, now=-1):
-    """Count `sym` in the file's rows from the highest order down, stopping below the first
+def _file_update(fs, slots, checks, b, max_order, sym, now=-1):
+    """Count `sym` in lane b's file rows (slots[b], checks[b]) from the highest order down, stopping below the first
     order that knew it (strata's update exclusion, with its halving at 255). A row left by
     an earlier frame, or by another context of the same slot (another tag), starts empty;
     a big row it held is not used again in this frame."""
     big, meta, m8, nxt = fs[0], fs[1], fs[7], fs[6]
     for k in range(max_order, -1, -1):
-        r = slots[k]
-        chk = checks[k]
+        r = slots[b, k]
+        chk = checks[b, k]
         if not _tag_is(meta, r, chk):
             S._claim_row(meta, r, chk, BIG)  # tag, total, distinct bytes (N1), big row
             meta[r, N2] = 0
@@ -199,22 +199,27 @@ def _file_update(fs, slots, checks, max_order, sym, now=-1):
         if c != 0:
             if now >= 0:  # the rows below saw their context too
                 for k2 in range(k - 1, -1, -1):
-                    if _tag_is(meta, slots[k2], checks[k2]):
-                        meta[slots[k2], LAST] = np.uint32(now)
+                    if _tag_is(meta, slots[b, k2], checks[b, k2]):
+                        meta[slots[b, k2], LAST] = np.uint32(now)
             break
 
 
 @kernel
-def _probe_lanes(corpus, hist, m):
+def _probe_lanes(corpus, hist, m, sink):
     """found[b, k] <- the corpus slot of lane b's order-k context, or -1, for lanes 0..m-1:
     every lane's and every order's probe in one pass, independent loads the processor
     overlaps (the chain that reads them, one lane at a time, depends on each in turn)."""
-    slot2, cbase, csize, found = corpus[0], corpus[2], corpus[3], corpus[6]
+    slot2, ent, cbase, csize, found = corpus[0], corpus[1], corpus[2], corpus[3], corpus[6]
+    acc = np.uint16(0)
     for b in range(m):
         h = hist[b]
         for k in range(cbase.shape[0]):
             x = _ctx_hash(h, k)
-            found[b, k] = _probe(slot2, cbase[k], csize[k], x, _home(cbase[k], csize[k], x))
+            j = _probe(slot2, cbase[k], csize[k], x, _home(cbase[k], csize[k], x))
+            found[b, k] = j
+            if j >= 0:  # and the row's first entries
+                acc ^= ent[slot2[j, 1]]
+    sink[0] = acc
 
 
 @kernel
@@ -239,7 +244,8 @@ def _lanes_rows(mix, state, hist, m, max_order, hash_log2, slots2, checks2, sink
 def _braid_predict(corpus, fstate, hist, slots, checks, max_order, dfile, p, mix, b):
     """p <- the braided distribution (integers, total about 2**P_BITS), top layer first:
     at each order the file's own row sits above the corpus row of the same context.
-    With the escape weights on (mix[5][1] != 0), each layer used is recorded for lane b."""
+    Lane b's file rows are slots[b], checks[b]; with the escape weights on (mix[5][1] != 0),
+    each layer used is recorded for lane b."""
     slot2, ent, cbase, csize, dcorp, mode, found = corpus
     fmeta = fstate[1]
     use_file = mode[0] == 0
@@ -258,8 +264,8 @@ def _braid_predict(corpus, fstate, hist, slots, checks, max_order, dfile, p, mix
     A = np.int64(ONE_A)
     for k in range(max(max_order, corder), -1, -1):
         if use_file and k <= max_order:
-            r = slots[k]
-            if _tag_is(fmeta, r, checks[k]) and fmeta[r, TOT] > 0:
+            r = slots[b, k]
+            if _tag_is(fmeta, r, checks[b, k]) and fmeta[r, TOT] > 0:
                 if use_mix:
                     rec = lrec[b, nlay]
                     rec[0] = 1
@@ -340,9 +346,9 @@ def _teacher(corpus, state, match, data, starts, lengths, t0, t1, max_order, has
             m += 1
         mix[5][4] = t
         _lanes_rows(mix, state, hist, m, max_order, hash_log2, slots2, checks2, sink)
-        _probe_lanes(corpus, hist, m)
+        _probe_lanes(corpus, hist, m, sink)
         for b in range(m):
-            _braid_predict(corpus, state, hist[b], slots2[b], checks2[b], max_order, dfile, p, mix, b)
+            _braid_predict(corpus, state, hist[b], slots2, checks2, max_order, dfile, p, mix, b)
             if use_fork:
                 _fork_keep(fork, p)
             _after_chain(match, rc, mix, fork, b, hist[b], p, data, starts[b] + t, use_match, use_sse, use_fork)
@@ -359,7 +365,7 @@ def _teacher(corpus, state, match, data, starts, lengths, t0, t1, max_order, has
                 _fork_update(fork, b, np.int64(data[starts[b] + t]), starts[b] + t)
         for b in range(m):
             sym = data[starts[b] + t]
-            _file_update(state, slots2[b], checks2[b], max_order, sym, t if use_mix else -1)
+            _file_update(state, slots2, checks2, b, max_order, sym, t if use_mix else -1)
             if use_match:
                 R.update(rc, b, data, starts[b], t, np.int64(sym), hist[b])
             hist[b] = (hist[b] << np.uint64(8)) | np.uint64(sym)
@@ -392,7 +398,7 @@ def _step(corpus, state, match, starts, syms, t_prev, m_prev, m, max_order, hash
             _fork_update(fork, b, np.int64(syms[b]), starts[b] + t_prev)
     for b in range(m_prev):
         sym = syms[b]  # its rows are the ones the step before predicted it from (slots2[b])
-        _file_update(state, slots2[b], checks2[b], max_order, sym, t_prev if mix[5][1] != 0 else -1)
+        _file_update(state, slots2, checks2, b, max_order, sym, t_prev if mix[5][1] != 0 else -1)
         if use_match:
             R.update(rc, b, buf, starts[b], t_prev, np.int64(sym), hist[b])
         hist[b] = (hist[b] << np.uint64(8)) | np.uint64(sym)
@@ -400,9 +406,9 @@ def _step(corpus, state, match, starts, syms, t_prev, m_prev, m, max_order, hash
             S._match_update(match, b, starts[b], t_prev, sym, hist[b], gen)
     mix[5][4] = t_prev + 1
     _lanes_rows(mix, state, hist, m, max_order, hash_log2, slots2, checks2, sink)
-    _probe_lanes(corpus, hist, m)
+    _probe_lanes(corpus, hist, m, sink)
     for b in range(m):
-        _braid_predict(corpus, state, hist[b], slots2[b], checks2[b], max_order, dfile, p, mix, b)
+        _braid_predict(corpus, state, hist[b], slots2, checks2, max_order, dfile, p, mix, b)
         if use_fork:
             _fork_keep(fork, p)
         _after_chain(match, rc, mix, fork, b, hist[b], p, buf, starts[b] + t_prev + 1, use_match, use_sse, use_fork)
