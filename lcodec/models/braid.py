@@ -241,6 +241,20 @@ def _lanes_rows(mix, state, hist, m, max_order, hash_log2, slots2, checks2, sink
 
 
 @kernel
+def _touch_updates(match, rc, hist, syms, m, use_match, sink):
+    """A first read of the repeat model's and the corpus memory's index entries that the
+    updates of lanes 0..m-1 (lane b coded syms[b]) will look up: every lane's in one pass,
+    so the loads overlap; nothing is written but sink."""
+    if not use_match:
+        return
+    acc = np.uint32(0)
+    for b in range(m):
+        h = (hist[b] << np.uint64(8)) | np.uint64(syms[b])
+        acc ^= S._match_touch(match, h) ^ R.touch(rc, b, np.int64(syms[b]), hist[b])
+    sink[0] = acc
+
+
+@kernel
 def _braid_predict(corpus, fstate, hist, slots, checks, max_order, dfile, p, mix, b):
     """p <- the braided distribution (integers, total about 2**P_BITS), top layer first:
     at each order the file's own row sits above the corpus row of the same context.
@@ -354,6 +368,7 @@ def _teacher(corpus, state, match, data, starts, lengths, t0, t1, max_order, has
             _after_chain(match, rc, mix, fork, b, hist[b], p, data, starts[b] + t, use_match, use_sse, use_fork)
             S._emit(p, out_tab[i + b])
             out_syms[i + b] = data[starts[b] + t]
+        _touch_updates(match, rc, hist, out_syms[i:i + m], m, use_match, sink)
         if use_mix:  # every lane's weights update before any count changes
             for b in range(m):
                 _mix_update(mix, corpus, state, dfile, b, np.int64(data[starts[b] + t]))
@@ -385,6 +400,7 @@ def _step(corpus, state, match, starts, syms, t_prev, m_prev, m, max_order, hash
     use_match = match[5][3] > 0 and corpus[5][0] == 0
     for b in range(m_prev):
         buf[starts[b] + t_prev] = syms[b]
+    _touch_updates(match, rc, hist, syms, m_prev, use_match, sink)
     if mix[5][1] != 0:
         for b in range(m_prev):
             _mix_update(mix, corpus, state, dfile, b, np.int64(syms[b]))

@@ -219,6 +219,20 @@ def _verify(text, q, buf, start, cur):
     return n
 
 
+@inlined
+def touch(rc, b, sym, before):
+    """A first read of the index entries update(rc, b, ..., sym, before) will look up: the
+    same hashes, nothing written. The steps read every lane's entries in one pass, so
+    their loads overlap instead of waiting one lane at a time."""
+    if rc.on == 0:
+        return np.uint32(0)
+    hist = (before << np.uint64(8)) | np.uint64(sym)
+    older = (rc.older[b] << np.uint64(8)) | (before >> np.uint64(56))
+    h1 = _hash(hist, older, rc.long_len)
+    h2 = _hash(hist, older, rc.min_len)
+    return np.uint32(rc.long[h1 >> np.uint64(rc.long_shift)]) ^ np.uint32(rc.short[h2 >> np.uint64(rc.short_shift)])
+
+
 @kernel
 def update(rc, b, buf, start, t, sym, before):
     """After lane b coded sym (at buf[start + t]; before: its history without sym):

@@ -397,6 +397,13 @@ def _match_update(match, b, start, t, sym, hist, gen):
     mtab[h] = g | np.uint64(cur + 1)
 
 
+@inlined
+def _match_touch(match, hist):
+    """A first read of the entry _match_update will index for the context `hist` (the
+    history with the new byte), nothing written: read for every lane in one pass."""
+    return np.uint32(match[1][_match_hash(hist, match[5])] & np.uint64(0xFFFFFFFF))
+
+
 @kernel
 def _lanes_rows(state, m, max_order, hash_log2, slots2, checks2, sink):
     """slots2[b], checks2[b] <- lane b's rows (placed as they are first met, lane by lane,
