@@ -60,10 +60,10 @@ def test_rows_and_blend_match_python_integers(seed):
                               np.uint64)
             top = rows.get(int(slots[-1]))
             halved |= bool(top and top["tag"] == checks[-1] and top["cnt"][sym] >= S.COUNT_LIMIT)
-            S._update(lines, slots, checks, max_order, sym, nxt, seen)
+            S._update(lines, slots[None], checks[None], 0, max_order, sym, nxt, seen)
             _ref_update(rows, slots.tolist(), checks.tolist(), sym)
             if t % 23 == 0 or t == steps - 1:
-                S._predict(lines, slots, checks, max_order, disc, p, keep, seen, vals)
+                S._predict(lines, slots[None], checks[None], 0, max_order, disc, p, keep, seen, vals)
                 assert p.tolist() == _ref_predict(rows, slots.tolist(), checks.tolist(), disc.tolist()), t
                 meta = lines[0]
                 for r, ref in rows.items():

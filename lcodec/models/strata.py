@@ -166,8 +166,9 @@ def _take_big(meta, m8, big, r, nxt, field):
 
 
 @kernel
-def _predict(rows, slots, checks, max_order, disc, p, keep, seen, vals):
-    """Blend orders 0..max_order into p (integers, total about 2**P_BITS).
+def _predict(rows, slots, checks, b, max_order, disc, p, keep, seen, vals):
+    """Blend orders 0..max_order of lane b's rows (slots[b], checks[b]) into p (integers,
+    total about 2**P_BITS).
 
     disc[k] holds order k's discounts (in 1/F of a count) for counts 1, 2 and >= 3.
     Each order maps every byte's value x to ((n * one + esc * x) * inv) >> 32, n from the
@@ -185,8 +186,8 @@ def _predict(rows, slots, checks, max_order, disc, p, keep, seen, vals):
     for i in range(nd_all):
         vals[i] = base
     for k in range(max_order + 1):
-        r = slots[k]
-        if not _tag_is(meta, r, checks[k]):
+        r = slots[b, k]
+        if not _tag_is(meta, r, checks[b, k]):
             continue
         t = np.int64(meta[r, TOT])
         if t == 0:
@@ -231,15 +232,15 @@ def _predict(rows, slots, checks, max_order, disc, p, keep, seen, vals):
 
 
 @kernel
-def _update(rows, slots, checks, max_order, sym, nxt, seen):
-    """Count `sym` from the highest order down, stopping below the first order that knew it.
+def _update(rows, slots, checks, b, max_order, sym, nxt, seen):
+    """Count `sym` in lane b's rows (slots[b], checks[b]) from the highest order down, stopping below the first order that knew it.
     A row left by an earlier frame or another context (another tag) starts empty; a big
     row it held is not used again in this frame (nxt[1]: big rows handed out). A byte new
     to the frame is new to every order, down to order 0: it joins seen (see _predict)."""
     meta, m8, big = rows
     for k in range(max_order, -1, -1):
-        r = slots[k]
-        chk = checks[k]
+        r = slots[b, k]
+        chk = checks[b, k]
         if not _tag_is(meta, r, chk):
             _claim_row(meta, r, chk, BIG)
         nd = np.int64(meta[r, DIST])
@@ -442,14 +443,14 @@ def _teacher(state, match, data, starts, lengths, t0, t1, max_order, hash_log2, 
             m += 1
         _lanes_rows(state, m, max_order, hash_log2, slots2, checks2, sink)
         for b in range(m):
-            _predict(rows, slots2[b], checks2[b], max_order, disc, p, keep, seen, vals)
+            _predict(rows, slots2, checks2, b, max_order, disc, p, keep, seen, vals)
             if use_match:
                 _match_predict(match, b, p)
             _emit(p, out_tab[i + b])
             out_syms[i + b] = data[starts[b] + t]
         for b in range(m):
             sym = data[starts[b] + t]
-            _update(rows, slots2[b], checks2[b], max_order, sym, nxt, seen)
+            _update(rows, slots2, checks2, b, max_order, sym, nxt, seen)
             hist[b] = (hist[b] << np.uint64(8)) | np.uint64(sym)
             if use_match:
                 _match_update(match, b, starts[b], t, sym, hist[b], gen)
@@ -470,13 +471,13 @@ def _step(state, match, starts, syms, t_prev, m_prev, m, max_order, hash_log2, d
         buf[starts[b] + t_prev] = syms[b]
     for b in range(m_prev):
         sym = syms[b]  # its rows are the ones the step before predicted it from
-        _update(rows, slots2[b], checks2[b], max_order, sym, nxt, seen)
+        _update(rows, slots2, checks2, b, max_order, sym, nxt, seen)
         hist[b] = (hist[b] << np.uint64(8)) | np.uint64(sym)
         if use_match:
             _match_update(match, b, starts[b], t_prev, sym, hist[b], gen)
     _lanes_rows(state, m, max_order, hash_log2, slots2, checks2, sink)
     for b in range(m):
-        _predict(rows, slots2[b], checks2[b], max_order, disc, p, keep, seen, vals)
+        _predict(rows, slots2, checks2, b, max_order, disc, p, keep, seen, vals)
         if use_match:
             _match_predict(match, b, p)
         _emit(p, out_tab[b])
