@@ -64,3 +64,24 @@ def test_version_2_damaged_identity_is_refused(ident):
     blob = head + C.struct.pack("<I", C.crc32c(head + ident)) + ident + b"\0" * C.MIN_RECORD
     with pytest.raises(DataError, match="header damaged"):
         C.read_header(blob)
+
+
+def test_deeply_nested_identity_is_refused_whatever_the_recursion_limit():
+    """A model identity nested 5,000 deep is refused by the depth limit of
+    decode_identity, not by Python's recursion limit: with the limit raised (as another
+    library in the same process did, which made scripts/fuzz.py's crafted archives pass
+    after tests/test_layers.py), the answer is the same."""
+    import sys
+
+    deep = b'{"model":"strata","preset":"o6m","x":' + b"[" * 5000 + b"]" * 5000 + b"}"
+    old = sys.getrecursionlimit()
+    try:
+        for limit in (old, 100_000):
+            sys.setrecursionlimit(limit)
+            with pytest.raises(DataError, match="model identity is not readable"):
+                C.decode_identity(1, deep)
+    finally:
+        sys.setrecursionlimit(old)
+    # brackets inside strings are not nesting; lcodec's own identities (depth 3) still read
+    ok = b'{"model":"strata","note":"' + b"[" * 40 + b'","params":{"discount":[[13,18,24]]}}'
+    assert C.decode_identity(1, ok)["params"]["discount"] == [[13, 18, 24]]

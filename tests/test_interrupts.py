@@ -120,3 +120,61 @@ def test_train_terminated(tmp_path):
     assert p.returncode == 143, rest.decode()
     assert "terminated (SIGTERM)" in rest.decode().strip().splitlines()[-1]
     assert os.listdir(out_dir) == []
+
+
+def _group_gone(pgid: int, wait: float = 10.0) -> bool:
+    """Whether every process of the group (lcodec and its workers) has ended."""
+    t0 = time.monotonic()
+    while time.monotonic() - t0 < wait:
+        try:
+            os.killpg(pgid, 0)
+        except ProcessLookupError:
+            return True
+        time.sleep(0.05)
+    return False
+
+
+def _group_terminated(args, folder, started, timeout=120):
+    """Start lcodec in a process group of its own; once started(folder), SIGTERM to the whole
+    group (as a service manager or `kill -TERM -PGID` does), so the workers get it too."""
+    p = subprocess.Popen([sys.executable, "-m", "lcodec", *args], stdout=subprocess.PIPE, stderr=subprocess.PIPE,
+                         start_new_session=True)
+    t0 = time.monotonic()
+    while not started(folder):
+        if p.poll() is not None:
+            pytest.fail(f"lcodec ended before the signal: {p.returncode} {p.communicate()[1].decode()}")
+        if time.monotonic() - t0 > timeout:
+            os.killpg(p.pid, signal.SIGKILL)
+            pytest.fail("lcodec never started its work")
+        time.sleep(0.02)
+    time.sleep(0.3)
+    os.killpg(p.pid, signal.SIGTERM)
+    _, err = p.communicate(timeout=timeout)
+    gone = _group_gone(p.pid)
+    if not gone:
+        os.killpg(p.pid, signal.SIGKILL)
+    return p.returncode, err.decode(), gone
+
+
+def test_pack_with_workers_group_terminated(tmp_path, big):
+    src, _ = big
+    out = tmp_path / "mast.log.lcodec"
+    rc, err, gone = _group_terminated(["pack", str(src), "-o", str(out), "--frame-size", "65536", "--jobs", "2"],
+                                      tmp_path, _temp_file)
+    _check(rc, err, 143, "terminated (SIGTERM)")
+    assert gone, "worker processes outlived lcodec"
+    assert os.listdir(tmp_path) == []
+
+
+def test_unpack_with_workers_group_terminated(tmp_path, big):
+    src, data = big
+    arc = tmp_path / "in" / "mast.log.lcodec"
+    arc.parent.mkdir()
+    arc.write_bytes(lcodec.pack(data, frame_size=65536))
+    out_dir = tmp_path / "out"
+    out_dir.mkdir()
+    rc, err, gone = _group_terminated(["unpack", str(arc), "-o", str(out_dir / "mast.log"), "--jobs", "2"], out_dir,
+                                      _temp_file)
+    _check(rc, err, 143, "terminated (SIGTERM)")
+    assert gone, "worker processes outlived lcodec"
+    assert os.listdir(out_dir) == []

@@ -56,13 +56,41 @@ def scan(mv, lo: int, hi: int, aid: bytes | None) -> dict:
                 found[lo + j] = fr
             j = data.find(aid, j + 1)
         return found
+    data = bytes(mv)
+    crc = C.crc32c
     for q in range(lo, hi):
+        if not _head_checks(data, q, crc):
+            continue  # the cheap test: no record head whose CRC-32C checks starts here
         fr = record_at(mv, q)
         if fr is not None:
             found[q] = fr
             if len(found) >= MAX_SCAN_RECORDS:
                 break
     return found
+
+
+def _head_checks(data: bytes, pos: int, crc) -> bool:
+    """Whether a version-3 record head (identity, then number, raw and coded lengths,
+    method, lanes as varints of at most 8 bytes, then three CRC-32Cs) would fit at `pos`
+    with its record CRC-32C matching: the test read_record makes first, without building
+    messages or raising, so that trying every offset of a damaged file stays cheap. A
+    True is confirmed by read_record (every other check)."""
+    n = len(data)
+    p = pos + C.ARCHIVE_ID_BYTES
+    for field in range(4):  # frame number, raw length, coded length, then (after the method) lanes
+        if field == 3:
+            p += 1  # the method byte
+        for i in range(8):
+            if p >= n:
+                return False
+            p += 1
+            if not data[p - 1] & 0x80:
+                break
+        else:
+            return False
+    if p + 12 > n:
+        return False
+    return crc(data[pos:p + 8]) == int.from_bytes(data[p + 8:p + 12], "little")
 
 
 def majority_id(heads: dict) -> bytes | None:

@@ -182,6 +182,31 @@ def encode_identity(identity: dict) -> tuple[int, bytes]:
     return VERSION, json.dumps(identity, sort_keys=True, separators=(",", ":")).encode("utf-8")
 
 
+MAX_IDENTITY_DEPTH = 16  # nesting of a JSON model identity; lcodec writes at most 3 (a list of lists in params)
+
+
+def _json_depth(text: str) -> int:
+    """The deepest nesting of [ and { in JSON text, brackets inside strings not counted."""
+    depth = top = 0
+    in_str = esc = False
+    for ch in text:
+        if in_str:
+            if esc:
+                esc = False
+            elif ch == "\\":
+                esc = True
+            elif ch == '"':
+                in_str = False
+        elif ch == '"':
+            in_str = True
+        elif ch in "[{":
+            depth += 1
+            top = max(top, depth)
+        elif ch in "]}":
+            depth -= 1
+    return top
+
+
 def decode_identity(version: int, raw: bytes) -> dict:
     if version == VERSION_BOUND:  # either form, told apart by the first byte ("{" or the kind)
         version = VERSION_COMPACT if raw[:1] == bytes([IDENT_MODEL_FILE]) else VERSION
@@ -194,8 +219,12 @@ def decode_identity(version: int, raw: bytes) -> dict:
         _need(len(raw) - 33 <= MAX_MODEL_NAME and name.isprintable(), "header damaged (model identity is not readable)")
         return {"model": name, "sha256": raw[1:33].hex()}
     try:
-        identity = json.loads(raw.decode("utf-8"))
-    except (UnicodeDecodeError, ValueError, RecursionError):  # RecursionError: nesting too deep
+        text = raw.decode("utf-8")
+        # nesting refused by an explicit limit, not by the interpreter's recursion limit
+        # (which other code in the process may raise: the answer must not depend on it)
+        _need(_json_depth(text) <= MAX_IDENTITY_DEPTH, "header damaged (model identity is not readable)")
+        identity = json.loads(text)
+    except (UnicodeDecodeError, ValueError, RecursionError):
         raise DataError("header damaged (model identity is not readable)") from None
     _need(isinstance(identity, dict) and isinstance(identity.get("model"), str), "header damaged (no model identity)")
     return identity
