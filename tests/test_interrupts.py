@@ -26,22 +26,46 @@ def _text(n: int, seed: int = 0) -> bytes:
     return bytes(out[:n])
 
 
-def _run_and_signal(args, folder, sig, started, timeout=120):
-    """Start lcodec, wait until started(folder) says it is working, send `sig`, wait."""
-    p = subprocess.Popen([sys.executable, "-m", "lcodec", *args], stdout=subprocess.PIPE, stderr=subprocess.PIPE)
+def _signalled(args, folder, sig, started, timeout=120, group=False):
+    """Start lcodec, wait until started(folder) says it is working, send `sig`, wait; the
+    ended process and its stderr. group: lcodec in a process group of its own, and `sig` to
+    the whole group (as a service manager or `kill -TERM -PGID` does), so workers get it too."""
+    p = subprocess.Popen([sys.executable, "-m", "lcodec", *args], stdout=subprocess.PIPE, stderr=subprocess.PIPE,
+                         start_new_session=group)
     t0 = time.monotonic()
     while not started(folder):
         if p.poll() is not None:
             out, err = p.communicate()
             pytest.fail(f"lcodec ended before the signal: {p.returncode} {err.decode()}")
         if time.monotonic() - t0 > timeout:
-            p.kill()
+            if group:
+                os.killpg(p.pid, signal.SIGKILL)
+            else:
+                p.kill()
             pytest.fail("lcodec never started its work")
         time.sleep(0.02)
     time.sleep(0.3)
-    p.send_signal(sig)
+    if group:
+        os.killpg(p.pid, sig)
+    else:
+        p.send_signal(sig)
     out, err = p.communicate(timeout=timeout)
-    return p.returncode, err.decode()
+    return p, err.decode()
+
+
+def _run_and_signal(args, folder, sig, started, timeout=120):
+    p, err = _signalled(args, folder, sig, started, timeout)
+    return p.returncode, err
+
+
+def _packed(tmp_path, data):
+    """An archive of `data` in tmp_path/in, and an empty folder tmp_path/out to unpack into."""
+    arc = tmp_path / "in" / "mast.log.lcodec"
+    arc.parent.mkdir()
+    arc.write_bytes(lcodec.pack(data, frame_size=65536))
+    out_dir = tmp_path / "out"
+    out_dir.mkdir()
+    return arc, out_dir
 
 
 def _temp_file(folder):
@@ -92,12 +116,7 @@ def test_resumable_pack_keeps_only_its_journal(tmp_path, big):
 
 @pytest.mark.parametrize("sig,code,text", SIGNALS)
 def test_unpack_interrupted(tmp_path, big, sig, code, text):
-    src, data = big
-    arc = tmp_path / "in" / "mast.log.lcodec"
-    arc.parent.mkdir()
-    arc.write_bytes(lcodec.pack(data, frame_size=65536))
-    out_dir = tmp_path / "out"
-    out_dir.mkdir()
+    arc, out_dir = _packed(tmp_path, big[1])
     rc, err = _run_and_signal(["unpack", str(arc), "-o", str(out_dir / "mast.log")], out_dir, sig, _temp_file)
     _check(rc, err, code, text)
     assert os.listdir(out_dir) == []
@@ -135,25 +154,13 @@ def _group_gone(pgid: int, wait: float = 10.0) -> bool:
 
 
 def _group_terminated(args, folder, started, timeout=120):
-    """Start lcodec in a process group of its own; once started(folder), SIGTERM to the whole
-    group (as a service manager or `kill -TERM -PGID` does), so the workers get it too."""
-    p = subprocess.Popen([sys.executable, "-m", "lcodec", *args], stdout=subprocess.PIPE, stderr=subprocess.PIPE,
-                         start_new_session=True)
-    t0 = time.monotonic()
-    while not started(folder):
-        if p.poll() is not None:
-            pytest.fail(f"lcodec ended before the signal: {p.returncode} {p.communicate()[1].decode()}")
-        if time.monotonic() - t0 > timeout:
-            os.killpg(p.pid, signal.SIGKILL)
-            pytest.fail("lcodec never started its work")
-        time.sleep(0.02)
-    time.sleep(0.3)
-    os.killpg(p.pid, signal.SIGTERM)
-    _, err = p.communicate(timeout=timeout)
+    """SIGTERM to lcodec's whole process group once started(folder): exit code, stderr, and
+    whether every process of the group (lcodec and its workers) has ended."""
+    p, err = _signalled(args, folder, signal.SIGTERM, started, timeout, group=True)
     gone = _group_gone(p.pid)
     if not gone:
         os.killpg(p.pid, signal.SIGKILL)
-    return p.returncode, err.decode(), gone
+    return p.returncode, err, gone
 
 
 def test_pack_with_workers_group_terminated(tmp_path, big):
@@ -167,12 +174,7 @@ def test_pack_with_workers_group_terminated(tmp_path, big):
 
 
 def test_unpack_with_workers_group_terminated(tmp_path, big):
-    src, data = big
-    arc = tmp_path / "in" / "mast.log.lcodec"
-    arc.parent.mkdir()
-    arc.write_bytes(lcodec.pack(data, frame_size=65536))
-    out_dir = tmp_path / "out"
-    out_dir.mkdir()
+    arc, out_dir = _packed(tmp_path, big[1])
     rc, err, gone = _group_terminated(["unpack", str(arc), "-o", str(out_dir / "mast.log"), "--jobs", "2"], out_dir,
                                       _temp_file)
     _check(rc, err, 143, "terminated (SIGTERM)")
