@@ -427,7 +427,7 @@ def _lanes_rows(state, m, max_order, hash_log2, slots2, checks2, sink):
 @njit(cache=True, nogil=True)
 def _teacher(state, match, data, starts, lengths, t0, t1, max_order, hash_log2, disc, out_syms, out_tab):
     """Tables of steps t0..t1 for all active lanes, in coding order, updating state."""
-    rows, bases, hist, gen, rmap, nxt, seen = state
+    rows, hist, gen, nxt, seen = state[0], state[2], state[3], state[5], state[6]
     nl = lengths.shape[0]
     slots2 = np.empty((max(nl, 1), max_order + 1), np.int64)
     checks2 = np.empty((max(nl, 1), max_order + 1), np.uint64)
@@ -463,7 +463,7 @@ def _step(state, match, starts, syms, t_prev, m_prev, m, max_order, hash_log2, d
     """Decoder step: count the symbols of step t_prev (m_prev lanes), then predict m lanes.
     `work` holds the scratch arrays, made once per frame (new_work: a step is too short to
     allocate)."""
-    rows, bases, hist, gen, rmap, nxt, seen = state
+    rows, hist, gen, nxt, seen = state[0], state[2], state[3], state[5], state[6]
     slots2, checks2, p, keep, vals, sink = work
     buf = match[0]
     use_match = match[5][3] > 0
