@@ -56,10 +56,9 @@ def scan(mv, lo: int, hi: int, aid: bytes | None) -> dict:
                 found[lo + j] = fr
             j = data.find(aid, j + 1)
         return found
-    data = bytes(mv)
     crc = C.crc32c
     for q in range(lo, hi):
-        if not _head_checks(data, q, crc):
+        if not _head_checks(mv, q, crc):
             continue  # the cheap test: no record head whose CRC-32C checks starts here
         fr = record_at(mv, q)
         if fr is not None:
@@ -69,7 +68,7 @@ def scan(mv, lo: int, hi: int, aid: bytes | None) -> dict:
     return found
 
 
-def _head_checks(data: bytes, pos: int, crc) -> bool:
+def _head_checks(data, pos: int, crc) -> bool:
     """Whether a version-3 record head (identity, then number, raw and coded lengths,
     method, lanes as varints of at most 8 bytes, then three CRC-32Cs) would fit at `pos`
     with its record CRC-32C matching: the test read_record makes first, without building
