@@ -109,7 +109,9 @@ class _PythonLoop:
         return plain
 
 
-@pytest.mark.parametrize("lanes", [1, 3, 16])
+# lanes 1-4: the coder hands the step's symbols back packed in one integer (coder.PACKED);
+# 5 and 16: through the symbols-by-step array
+@pytest.mark.parametrize("lanes", [1, 2, 3, 4, 5, 16])
 def test_compiled_decode_loop_matches_the_python_loop(stdlib_text, lanes):
     data = stdlib_text[:30_000]
     m = Strata()
@@ -126,3 +128,18 @@ def test_compiled_decode_loop_matches_the_python_loop(stdlib_text, lanes):
         except Exception as e:  # noqa: BLE001 - the type is what is compared
             outs.append(type(e))
     assert outs[0] == outs[1]
+
+
+@pytest.mark.parametrize("lanes", [1, 2, 3, 5])
+def test_compiled_loop_counts_sub_frame_checks_across_packed_steps(stdlib_text, lanes):
+    """The compiled loop calls the range decoder directly between sub-frame checks and
+    hands over to the checked decoder at each one: a frame crossing a check decodes, and a
+    damaged one is refused by both loops alike."""
+    from lcodec.coding import CHECK_EVERY
+    data = (stdlib_text * 3)[:CHECK_EVERY + 999]
+    m = Strata()
+    payload, _ = encode_frame(m, data, lanes, checks=True)
+    assert decode_frame(m, payload, len(data), lanes, checks=True) == data
+    assert decode_frame(_PythonLoop(m), payload, len(data), lanes, checks=True) == data
+    with pytest.raises(ValueError):  # the words of another frame length: a check fails
+        decode_frame(m, payload[:len(payload) // 3], len(data), lanes, checks=True)

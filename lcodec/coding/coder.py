@@ -36,6 +36,7 @@ import numpy as np
 import constriction
 
 from .. import errors
+from ..errors import PENDING_SIGNALS
 
 CODERS = {"queue": 1, "stack": 2}
 _FAMILY = constriction.stream.model.Categorical(perfect=False)
@@ -156,37 +157,73 @@ def encode_frame(model, data: bytes, lanes: int, coder: str = "queue", checks: b
     return np.asarray(words, "<u4").tobytes(), nll
 
 
-# Decoders in use by a model's compiled decode loop, by key: [decoder, the exception it
-# raised, the model's table buffer, the symbols by step]. The loop runs the model's step
-# and asks step_symbols for the step's symbols without leaving compiled code between steps
-# (one object-mode call per step, where a Python loop paid the dispatch of every model
-# array, 5-15 us, per step). Only integers cross into object mode: the tables and the
-# symbols are arrays both sides already hold (bind_tables), since passing an array in or
-# out of object mode costs about 0.3-0.5 us each way.
+# Decoders in use by a model's compiled decode loop, by key (_Live). The loop runs the
+# model's step and asks step_symbols for the step's symbols without leaving compiled code
+# between steps (one object-mode call per step, where a Python loop paid the dispatch of
+# every model array, 5-15 us, per step). Only integers cross into object mode: the tables
+# are an array both sides already hold (bind_tables), since passing an array in or out of
+# object mode costs about 0.3-0.5 us each way; a step of at most PACKED symbols returns
+# them packed in its integer (8 bits each, lane 0 lowest), where storing them into the
+# symbols by step cost another 0.35 us, most of a one-lane step's Python side.
 _LIVE: dict = {}
 _KEYS = itertools.count(1)
+PACKED = 4  # steps of at most this many symbols return them in step_symbols' integer
+
+
+class _Live:
+    """One decode loop's side of step_symbols: the range decoder (and its sub-frame
+    checks, counted here so that a step between two checks calls the decoder directly),
+    the first exception, the table buffer and its view for the last step's width, the
+    symbols by step."""
+
+    __slots__ = ("dec", "checked", "err", "tab", "m", "view", "by_step")
+
+    def __init__(self, dec, by_step):
+        self.checked = dec if isinstance(dec, CheckedDecoder) else None
+        self.dec = dec.dec if self.checked is not None else dec
+        self.err, self.tab, self.m, self.view, self.by_step = None, None, -1, None, by_step
 
 
 def bind_tables(key: int, tab: np.ndarray) -> None:
     """The array a model's decode loop writes each step's tables into (rows 0..m-1)."""
-    _LIVE[key][2] = tab
+    live = _LIVE[key]
+    live.tab, live.m, live.view = tab, -1, None
 
 
 def step_symbols(key: int, m: int, t: int) -> int:
-    """Decode step t's m symbols under the bound tables into row t of the symbols by step;
-    m, or -1 when the coded data cannot be decoded (the exception is kept for decode_frame
-    to raise)."""
-    slot = _LIVE[key]
-    stop = errors.pending_interruption()  # a signal whose exception object mode lost
-    if stop is not None:
-        slot[1] = stop
+    """Decode step t's m symbols under the bound tables. m <= PACKED: returns them packed
+    (8 bits each, lane 0 in the lowest bits); else writes them to row t of the symbols by
+    step and returns m. -1 when the coded data cannot be decoded (the exception is kept for
+    decode_frame to raise)."""
+    live = _LIVE[key]
+    if PENDING_SIGNALS:  # a signal whose exception object mode lost
+        live.err = errors.pending_interruption()
         return -1
+    if live.m != m:
+        live.m, live.view = m, live.tab[:m]
     try:
-        slot[3][t, :m] = slot[0].decode(_FAMILY, slot[2][:m])
-        return m
+        ch = live.checked
+        if ch is None or m < ch.left:
+            if ch is not None:
+                ch.left -= m
+            got = live.dec.decode(_FAMILY, live.view)
+        else:
+            got = ch.decode(_FAMILY, live.view)
     except Exception as e:  # noqa: BLE001 - raised again by decode_frame, outside compiled code
-        slot[1] = e
+        live.err = e
         return -1
+    if m == 1:
+        return got.item()
+    if m == 2:
+        a, b = got.tolist()
+        return a | b << 8
+    if m <= PACKED:
+        v = 0
+        for i, x in enumerate(got.tolist()):
+            v |= x << (8 * i)
+        return v
+    live.by_step[t, :m] = got
+    return m
 
 
 def decode_frame(model, payload: bytes, n: int, lanes: int, coder: str = "queue", checks: bool = False) -> bytes:
@@ -214,11 +251,11 @@ def decode_frame(model, payload: bytes, n: int, lanes: int, coder: str = "queue"
     try:
         if run is not None:
             key = next(_KEYS)
-            _LIVE[key] = [dec, None, None, by_step]
+            _LIVE[key] = _Live(dec, by_step)
             try:
                 done = run(key, active, by_step)
             finally:
-                err = _LIVE.pop(key)[1]
+                err = _LIVE.pop(key).err
             if err is None:  # the step whose object-mode call lost a signal's exception stops here
                 err = errors.pending_interruption()
             if err is not None:

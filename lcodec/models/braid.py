@@ -55,7 +55,7 @@ from .braid_layers import (  # noqa: F401 - the names stay importable from here
     SYM0, CNT0, _tag_is, _file_count, _file_add, _file_layer, _file_layer_mix, _mix_update, SSE_LEVELS,
     SSE_LIMIT, _sse_predict, _sse_update)
 
-forget_if_changed(__file__, [R.__file__, S.__file__, BL.__file__, BF.__file__])  # kernels here inline those modules' kernels
+forget_if_changed(__file__, [R.__file__, S.__file__, BL.__file__, BF.__file__, C.__file__])  # kernels here inline those modules' kernels
 
 P_BITS = S.P_BITS
 F = S.F

@@ -33,7 +33,9 @@ from numba import njit, objmode
 from numba.core.errors import NumbaWarning
 
 from ..coding import coder as C
-from .kernel_cache import inlined, kernel
+from .kernel_cache import forget_if_changed, inlined, kernel
+
+forget_if_changed(__file__, [C.__file__])  # the decode loop's kernels read coder.PACKED
 
 # The decode loops below hand each step to the coder in object mode (the GIL is taken for
 # that call only; the model's work between calls runs without it).
@@ -554,14 +556,21 @@ def _decode_steps(state, match, starts, max_order, hash_log2, disc, tab, work, k
 @njit(cache=True, nogil=True)
 def _symbols_of_step(key, tab, m, prev, by_step, t):
     """Ask the coder (object mode, coder.step_symbols) for step t's m symbols under the
-    tables tab[:m] (bound to the key beforehand); it writes them to by_step[t], and they
-    are copied to prev. False when they cannot be decoded."""
+    tables tab[:m] (bound to the key beforehand); they come packed in its answer (m <=
+    coder.PACKED) or in by_step[t], and go to prev and by_step[t]. False when they cannot
+    be decoded."""
     with objmode(got="int64"):
         got = C.step_symbols(key, m, t)
-    if got != m:
+    if got < 0:
         return False
-    for b in range(m):
-        prev[b] = by_step[t, b]
+    if m <= C.PACKED:
+        for b in range(m):
+            s = (got >> (8 * b)) & 255
+            prev[b] = s
+            by_step[t, b] = s
+    else:
+        for b in range(m):
+            prev[b] = by_step[t, b]
     return True
 
 
