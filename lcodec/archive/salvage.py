@@ -217,7 +217,7 @@ def scan_records(mv, lo: int, hi: int, lengths: set | None = None) -> dict:
                 j = data.find(pat, j + 1)
         offsets = sorted(cands)
     else:
-        offsets = range(lo, hi)
+        offsets = B.head_offsets(mv, lo, hi, False)  # the cheap test, every offset at once
     for q in offsets:
         fr = _record(mv, q)
         if fr is not None:
