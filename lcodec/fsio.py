@@ -6,7 +6,7 @@ import shutil
 import stat
 import tempfile
 
-from .errors import DataError, UsageError
+from .errors import DataError, UsageError, raise_pending
 
 ARCHIVE_EXT = ".lcodec"
 
@@ -47,6 +47,7 @@ def atomic_write(path: str, data: bytes, force: bool = False, mode: int | None =
             f.flush()
             os.fsync(f.fileno())
         os.chmod(tmp, stat.S_IMODE(mode) if mode is not None else 0o666 & ~_umask())
+        raise_pending()  # a signal taken before this point, its exception lost: no final name
         os.replace(tmp, path)
     except OSError as e:
         _remove_quietly(tmp)
@@ -89,7 +90,11 @@ class OutFile:
 
     def __exit__(self, et, ev, tb):
         if et is None:
-            self.commit()
+            try:
+                self.commit()
+            except BaseException:
+                self.abort()
+                raise
         else:
             self.abort()
 
@@ -100,11 +105,13 @@ class OutFile:
     def commit(self) -> None:
         if self.f is None:
             return
+        raise_pending()  # a signal taken while the work ran, its exception lost: no final name
         try:
             self.sync()
             self.f.close()
             self.f = None
             os.chmod(self.tmp, stat.S_IMODE(self.mode) if self.mode is not None else 0o666 & ~_umask())
+            raise_pending()
             os.replace(self.tmp, self.path)
         except OSError as e:
             self.abort()
