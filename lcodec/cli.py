@@ -26,7 +26,7 @@ import click  # noqa: E402
 from .version import __version__  # noqa: E402
 from . import errors  # noqa: E402
 from .errors import LcodecError, Terminated, UsageError  # noqa: E402
-from .fsio import ARCHIVE_EXT, atomic_write, map_input, map_stream, read_input  # noqa: E402
+from .fsio import ARCHIVE_EXT, atomic_write, map_input, map_stream, read_input, remove_live_temporaries  # noqa: E402
 
 EXAMPLES = {
     "pack": "lcodec pack station-logs/ -o station-logs" + ARCHIVE_EXT + " --jobs auto\n"
@@ -118,6 +118,7 @@ def _quiet_lost_signal(unraisable) -> None:
 
 
 def _interrupted(name: str, code: int):
+    remove_live_temporaries()  # one the interruption reached before its `with` or `try` began
     click.echo(f"lcodec: {name}; stopped, nothing was written under the final name and no temporary "
                f"file was left (a --resume job keeps its journal)", err=True)
     sys.exit(code)

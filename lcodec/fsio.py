@@ -1,8 +1,10 @@
 """Safe file-system work: atomic writes, no silent overwrites, inputs never touched."""
 from __future__ import annotations
 
+import contextlib
 import os
 import shutil
+import signal
 import stat
 import tempfile
 
@@ -28,6 +30,36 @@ def _umask() -> int:
     return old
 
 
+_HELD = (signal.SIGINT, signal.SIGTERM)
+_LIVE: set = set()  # OutFiles whose temporary file exists and is neither committed nor removed
+
+
+@contextlib.contextmanager
+def signals_held():
+    """SIGINT and SIGTERM held back (blocked in this thread, delivered when the block ends)
+    while a temporary file is created and its name recorded: an interruption between the
+    two would leave a file nobody knows to remove."""
+    if not hasattr(signal, "pthread_sigmask"):
+        yield
+        return
+    old = signal.pthread_sigmask(signal.SIG_BLOCK, _HELD)
+    try:
+        yield
+    finally:
+        signal.pthread_sigmask(signal.SIG_SETMASK, old)
+
+
+def remove_live_temporaries() -> None:
+    """Remove the temporary file of every OutFile with a made-up temporary name that is
+    neither committed nor removed (the CLI calls this when interrupted: a signal can land
+    between an OutFile's creation and the `with` or `try` that would remove it). A fixed
+    temporary name (tmp_name: a resumable job's partial archive) is its caller's to keep or
+    remove."""
+    for out in list(_LIVE):
+        if out.made_up_name:
+            out.abort()
+
+
 def atomic_write(path: str, data: bytes, force: bool = False, mode: int | None = None) -> None:
     """Write via a temporary name in the same folder, fsync, then rename into place.
     The file gets `mode`, or what a plain open() would give (0o666 less the umask), not
@@ -38,7 +70,8 @@ def atomic_write(path: str, data: bytes, force: bool = False, mode: int | None =
         raise UsageError(f"{path} is a folder; give a file name")
     folder = os.path.dirname(os.path.abspath(path))
     try:
-        fd, tmp = tempfile.mkstemp(prefix="." + os.path.basename(path) + ".", suffix=".part", dir=folder)
+        with signals_held():  # no interruption between the file's creation and the try below
+            fd, tmp = tempfile.mkstemp(prefix="." + os.path.basename(path) + ".", suffix=".part", dir=folder)
     except OSError as e:
         raise _os_error("write into", folder, e) from None
     try:
@@ -69,19 +102,23 @@ class OutFile:
             raise UsageError(f"{path} exists; pass --force to overwrite it")
         if os.path.isdir(path):
             raise UsageError(f"{path} is a folder; give a file name")
-        self.path, self.mode, self.keep = path, mode, False
+        self.path, self.mode, self.keep, self.made_up_name = path, mode, False, tmp_name is None
         folder = os.path.dirname(os.path.abspath(path))
+        self.f = None
         try:
-            if tmp_name is None:
-                fd, self.tmp = tempfile.mkstemp(prefix="." + os.path.basename(path) + ".", suffix=".part", dir=folder)
-                self.f = os.fdopen(fd, "w+b")
-            else:
-                self.tmp = os.path.join(folder, tmp_name)
-                if resume and os.path.isfile(self.tmp) and not os.path.islink(self.tmp):
-                    self.f = open(self.tmp, "r+b")
-                else:
-                    fd = os.open(self.tmp, os.O_RDWR | os.O_CREAT | os.O_TRUNC | os.O_NOFOLLOW, 0o600)
+            with signals_held():  # created and recorded (remove_live_temporaries) with no interruption between
+                if tmp_name is None:
+                    fd, self.tmp = tempfile.mkstemp(prefix="." + os.path.basename(path) + ".", suffix=".part",
+                                                    dir=folder)
                     self.f = os.fdopen(fd, "w+b")
+                else:
+                    self.tmp = os.path.join(folder, tmp_name)
+                    if resume and os.path.isfile(self.tmp) and not os.path.islink(self.tmp):
+                        self.f = open(self.tmp, "r+b")
+                    else:
+                        fd = os.open(self.tmp, os.O_RDWR | os.O_CREAT | os.O_TRUNC | os.O_NOFOLLOW, 0o600)
+                        self.f = os.fdopen(fd, "w+b")
+                _LIVE.add(self)
         except OSError as e:
             raise _os_error("write into", folder, e) from None
 
@@ -113,6 +150,7 @@ class OutFile:
             os.chmod(self.tmp, stat.S_IMODE(self.mode) if self.mode is not None else 0o666 & ~_umask())
             raise_pending()
             os.replace(self.tmp, self.path)
+            _LIVE.discard(self)
         except OSError as e:
             self.abort()
             raise _os_error("write", self.path, e) from None
@@ -126,6 +164,7 @@ class OutFile:
             self.f = None
         if not self.keep:
             _remove_quietly(self.tmp)
+        _LIVE.discard(self)
 
 
 def _remove_quietly(p: str) -> None:
