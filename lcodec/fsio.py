@@ -69,12 +69,12 @@ def atomic_write(path: str, data: bytes, force: bool = False, mode: int | None =
     if os.path.isdir(path):
         raise UsageError(f"{path} is a folder; give a file name")
     folder = os.path.dirname(os.path.abspath(path))
+    tmp = None
     try:
-        with signals_held():  # no interruption between the file's creation and the try below
+        # no interruption between the file's creation and `tmp` naming it (a signal held
+        # back here is taken as the block ends, and the handlers below then remove it)
+        with signals_held():
             fd, tmp = tempfile.mkstemp(prefix="." + os.path.basename(path) + ".", suffix=".part", dir=folder)
-    except OSError as e:
-        raise _os_error("write into", folder, e) from None
-    try:
         with os.fdopen(fd, "wb") as f:
             f.write(data)
             f.flush()
@@ -83,10 +83,13 @@ def atomic_write(path: str, data: bytes, force: bool = False, mode: int | None =
         raise_pending()  # a signal taken before this point, its exception lost: no final name
         os.replace(tmp, path)
     except OSError as e:
+        if tmp is None:
+            raise _os_error("write into", folder, e) from None
         _remove_quietly(tmp)
         raise _os_error("write", path, e) from None
     except BaseException:
-        _remove_quietly(tmp)
+        if tmp is not None:
+            _remove_quietly(tmp)
         raise
 
 
