@@ -26,7 +26,7 @@ import click  # noqa: E402
 from .version import __version__  # noqa: E402
 from . import errors  # noqa: E402
 from .errors import LcodecError, Terminated, UsageError  # noqa: E402
-from .fsio import ARCHIVE_EXT, atomic_write, map_input, map_stream, read_input  # noqa: E402
+from .fsio import ARCHIVE_EXT, atomic_write, map_input, map_stream, read_input, remove_live_temporaries  # noqa: E402
 
 EXAMPLES = {
     "pack": "lcodec pack station-logs/ -o station-logs" + ARCHIVE_EXT + " --jobs auto\n"
@@ -90,15 +90,35 @@ def _on_signal(signum, frame):
 
 def _catch_signals() -> None:
     """SIGINT and SIGTERM become exceptions in the main thread (not in worker processes,
-    which start with their own handlers)."""
+    which start with their own handlers). Where Python runs the handler in a place that
+    cannot raise (a ctypes callback such as llvmlite's while numba compiles, a finaliser),
+    its exception is lost and Python would print it as "Exception ignored": the signal is
+    recorded all the same (errors.PENDING_SIGNALS), raised at the next progress report and
+    before any output gets its final name (errors.raise_pending), so that print is dropped."""
     import threading
 
     if threading.current_thread() is threading.main_thread():
         signal.signal(signal.SIGINT, _on_signal)
         signal.signal(signal.SIGTERM, _on_signal)
+        if sys.unraisablehook is not _quiet_lost_signal:
+            global _NEXT_UNRAISABLEHOOK
+            _NEXT_UNRAISABLEHOOK = sys.unraisablehook
+            sys.unraisablehook = _quiet_lost_signal
+
+
+_NEXT_UNRAISABLEHOOK = sys.unraisablehook
+
+
+def _quiet_lost_signal(unraisable) -> None:
+    """sys.unraisablehook: the signal handler's own exception, lost where it was raised, is
+    not printed (it is recorded and raised later); anything else goes to the usual hook."""
+    if isinstance(unraisable.exc_value, (KeyboardInterrupt, Terminated)) and errors.PENDING_SIGNALS:
+        return
+    _NEXT_UNRAISABLEHOOK(unraisable)
 
 
 def _interrupted(name: str, code: int):
+    remove_live_temporaries()  # one the interruption reached before its `with` or `try` began
     click.echo(f"lcodec: {name}; stopped, nothing was written under the final name and no temporary "
                f"file was left (a --resume job keeps its journal)", err=True)
     sys.exit(code)
@@ -146,6 +166,7 @@ class Progress:
             self.bar.__enter__()
 
     def __call__(self, n: int):
+        errors.raise_pending()  # a signal whose exception was lost: stop here
         if self.bar:
             self.bar.update(n)
 
@@ -768,7 +789,10 @@ def train(corpus, output, kind, time_limit, preset, seed, max_bytes, memory, ada
     """
     from .training import train as T
 
-    echo = lambda m: click.echo(m, err=True)  # noqa: E731
+    def echo(m):
+        errors.raise_pending()  # each progress line is a point where a lost signal stops training
+        click.echo(m, err=True)
+
     if kind == "image":
         if max_bytes is not None or memory is not None:
             raise UsageError("--max-bytes and --memory go with --kind bytes")

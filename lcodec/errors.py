@@ -46,3 +46,15 @@ def pending_interruption() -> BaseException | None:
     if not PENDING_SIGNALS:
         return None
     return Terminated() if PENDING_SIGNALS[0] == signal.SIGTERM else KeyboardInterrupt()
+
+
+def raise_pending() -> None:
+    """Raise the interruption of a signal the CLI's handler took (pending_interruption), if
+    any. A handler's exception can be lost where Python runs the handler (numba's entry into
+    object mode, a ctypes callback such as llvmlite's while numba compiles, a finaliser:
+    Python prints "Exception ignored" there and goes on), so outputs are never committed and
+    long work never goes on after a signal: fsio checks here before every rename into a
+    final name, and the CLI at each progress report."""
+    stop = pending_interruption()
+    if stop is not None:
+        raise stop

@@ -1,12 +1,14 @@
 """Safe file-system work: atomic writes, no silent overwrites, inputs never touched."""
 from __future__ import annotations
 
+import contextlib
 import os
 import shutil
+import signal
 import stat
 import tempfile
 
-from .errors import DataError, UsageError
+from .errors import DataError, UsageError, raise_pending
 
 ARCHIVE_EXT = ".lcodec"
 
@@ -28,6 +30,36 @@ def _umask() -> int:
     return old
 
 
+_HELD = (signal.SIGINT, signal.SIGTERM)
+_LIVE: set = set()  # OutFiles whose temporary file exists and is neither committed nor removed
+
+
+@contextlib.contextmanager
+def signals_held():
+    """SIGINT and SIGTERM held back (blocked in this thread, delivered when the block ends)
+    while a temporary file is created and its name recorded: an interruption between the
+    two would leave a file nobody knows to remove."""
+    if not hasattr(signal, "pthread_sigmask"):
+        yield
+        return
+    old = signal.pthread_sigmask(signal.SIG_BLOCK, _HELD)
+    try:
+        yield
+    finally:
+        signal.pthread_sigmask(signal.SIG_SETMASK, old)
+
+
+def remove_live_temporaries() -> None:
+    """Remove the temporary file of every OutFile with a made-up temporary name that is
+    neither committed nor removed (the CLI calls this when interrupted: a signal can land
+    between an OutFile's creation and the `with` or `try` that would remove it). A fixed
+    temporary name (tmp_name: a resumable job's partial archive) is its caller's to keep or
+    remove."""
+    for out in list(_LIVE):
+        if out.made_up_name:
+            out.abort()
+
+
 def atomic_write(path: str, data: bytes, force: bool = False, mode: int | None = None) -> None:
     """Write via a temporary name in the same folder, fsync, then rename into place.
     The file gets `mode`, or what a plain open() would give (0o666 less the umask), not
@@ -37,22 +69,27 @@ def atomic_write(path: str, data: bytes, force: bool = False, mode: int | None =
     if os.path.isdir(path):
         raise UsageError(f"{path} is a folder; give a file name")
     folder = os.path.dirname(os.path.abspath(path))
+    tmp = None
     try:
-        fd, tmp = tempfile.mkstemp(prefix="." + os.path.basename(path) + ".", suffix=".part", dir=folder)
-    except OSError as e:
-        raise _os_error("write into", folder, e) from None
-    try:
+        # no interruption between the file's creation and `tmp` naming it (a signal held
+        # back here is taken as the block ends, and the handlers below then remove it)
+        with signals_held():
+            fd, tmp = tempfile.mkstemp(prefix="." + os.path.basename(path) + ".", suffix=".part", dir=folder)
         with os.fdopen(fd, "wb") as f:
             f.write(data)
             f.flush()
             os.fsync(f.fileno())
         os.chmod(tmp, stat.S_IMODE(mode) if mode is not None else 0o666 & ~_umask())
+        raise_pending()  # a signal taken before this point, its exception lost: no final name
         os.replace(tmp, path)
     except OSError as e:
+        if tmp is None:
+            raise _os_error("write into", folder, e) from None
         _remove_quietly(tmp)
         raise _os_error("write", path, e) from None
     except BaseException:
-        _remove_quietly(tmp)
+        if tmp is not None:
+            _remove_quietly(tmp)
         raise
 
 
@@ -68,19 +105,23 @@ class OutFile:
             raise UsageError(f"{path} exists; pass --force to overwrite it")
         if os.path.isdir(path):
             raise UsageError(f"{path} is a folder; give a file name")
-        self.path, self.mode, self.keep = path, mode, False
+        self.path, self.mode, self.keep, self.made_up_name = path, mode, False, tmp_name is None
         folder = os.path.dirname(os.path.abspath(path))
+        self.f = None
         try:
-            if tmp_name is None:
-                fd, self.tmp = tempfile.mkstemp(prefix="." + os.path.basename(path) + ".", suffix=".part", dir=folder)
-                self.f = os.fdopen(fd, "w+b")
-            else:
-                self.tmp = os.path.join(folder, tmp_name)
-                if resume and os.path.isfile(self.tmp) and not os.path.islink(self.tmp):
-                    self.f = open(self.tmp, "r+b")
-                else:
-                    fd = os.open(self.tmp, os.O_RDWR | os.O_CREAT | os.O_TRUNC | os.O_NOFOLLOW, 0o600)
+            with signals_held():  # created and recorded (remove_live_temporaries) with no interruption between
+                if tmp_name is None:
+                    fd, self.tmp = tempfile.mkstemp(prefix="." + os.path.basename(path) + ".", suffix=".part",
+                                                    dir=folder)
                     self.f = os.fdopen(fd, "w+b")
+                else:
+                    self.tmp = os.path.join(folder, tmp_name)
+                    if resume and os.path.isfile(self.tmp) and not os.path.islink(self.tmp):
+                        self.f = open(self.tmp, "r+b")
+                    else:
+                        fd = os.open(self.tmp, os.O_RDWR | os.O_CREAT | os.O_TRUNC | os.O_NOFOLLOW, 0o600)
+                        self.f = os.fdopen(fd, "w+b")
+                _LIVE.add(self)
         except OSError as e:
             raise _os_error("write into", folder, e) from None
 
@@ -89,7 +130,11 @@ class OutFile:
 
     def __exit__(self, et, ev, tb):
         if et is None:
-            self.commit()
+            try:
+                self.commit()
+            except BaseException:
+                self.abort()
+                raise
         else:
             self.abort()
 
@@ -100,12 +145,15 @@ class OutFile:
     def commit(self) -> None:
         if self.f is None:
             return
+        raise_pending()  # a signal taken while the work ran, its exception lost: no final name
         try:
             self.sync()
             self.f.close()
             self.f = None
             os.chmod(self.tmp, stat.S_IMODE(self.mode) if self.mode is not None else 0o666 & ~_umask())
+            raise_pending()
             os.replace(self.tmp, self.path)
+            _LIVE.discard(self)
         except OSError as e:
             self.abort()
             raise _os_error("write", self.path, e) from None
@@ -119,6 +167,7 @@ class OutFile:
             self.f = None
         if not self.keep:
             _remove_quietly(self.tmp)
+        _LIVE.discard(self)
 
 
 def _remove_quietly(p: str) -> None:

@@ -23,7 +23,7 @@ import time
 
 ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
 HARNESS = os.path.join(ROOT, "fuzz", "harness.py")
-TARGETS = ["descriptor", "images", "container", "modelfile", "salvage"]
+TARGETS = ["descriptor", "images", "container", "modelfile", "salvage-scan", "salvage"]
 MAX_LEN = {"modelfile": 1 << 15}  # inputs up to this long (the golden weft and tessel model files fit)
 STATS = re.compile(r"#(\d+)\s+(?:DONE|pulse|NEW|REDUCE|INITED)\s+cov: (\d+) ft: (\d+) corp: (\d+)/\S+.*?exec/s: (\d+)")
 

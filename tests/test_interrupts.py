@@ -141,6 +141,63 @@ def test_train_terminated(tmp_path):
     assert os.listdir(out_dir) == []
 
 
+# A signal whose handler runs where Python cannot raise: inside a ctypes callback (what
+# llvmlite's object-cache callback is while numba compiles a kernel: the window in which
+# test_train_terminated's SIGTERM was lost under load on 2026-12-05, its "Exception ignored
+# on calling ctypes callback function ... lcodec.errors.Terminated" in the captured stderr
+# and train running on to exit 0). The handler's exception is dropped there; the work then
+# tries to give its output a final name.
+LOST_IN_CALLBACK = r"""
+import ctypes, os, signal, sys
+from lcodec import cli, fsio
+
+@cli.guarded
+def work(path, signum):
+    def callback():
+        os.kill(os.getpid(), signum)  # taken at once: the handler runs inside this callback
+        sum(range(1000))
+    ctypes.CFUNCTYPE(None)(callback)()
+    fsio.atomic_write(path, b"kestrel-ridge gust report\n")
+
+work(sys.argv[1], int(sys.argv[2]))
+"""
+
+
+@pytest.mark.parametrize("sig,code,text", SIGNALS)
+def test_signal_lost_in_a_callback_still_stops_before_the_final_name(tmp_path, sig, code, text):
+    out = tmp_path / "report.txt"
+    p = subprocess.run([sys.executable, "-c", LOST_IN_CALLBACK, str(out), str(int(sig))], capture_output=True,
+                       timeout=120)
+    _check(p.returncode, p.stderr.decode(), code, text)  # one line: the lost exception is not printed
+    assert os.listdir(tmp_path) == []
+
+
+# A signal that lands after an output's temporary file is made and before the `with` that
+# would remove it (an unpack SIGINTed just after its temporary file appeared left
+# ".mast.log.*.part" behind, 1 of 50 runs under load, 2026-12-05).
+BEFORE_THE_WITH = r"""
+import os, sys
+from lcodec import cli, fsio
+
+@cli.guarded
+def work(path, signum):
+    out = fsio.OutFile(path)
+    os.kill(os.getpid(), signum)  # the handler raises here, before the with below
+    with out:
+        out.f.write(b"vale-of-tess tremor log\n")
+
+work(sys.argv[1], int(sys.argv[2]))
+"""
+
+
+@pytest.mark.parametrize("sig,code,text", SIGNALS)
+def test_signal_before_the_output_is_guarded_leaves_no_temporary_file(tmp_path, sig, code, text):
+    p = subprocess.run([sys.executable, "-c", BEFORE_THE_WITH, str(tmp_path / "tremor.log"), str(int(sig))],
+                       capture_output=True, timeout=120)
+    _check(p.returncode, p.stderr.decode(), code, text)
+    assert os.listdir(tmp_path) == []
+
+
 def _group_gone(pgid: int, wait: float = 10.0) -> bool:
     """Whether every process of the group (lcodec and its workers) has ended."""
     t0 = time.monotonic()

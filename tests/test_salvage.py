@@ -24,7 +24,7 @@ from lcodec.format import modelfile
 from lcodec.format import container as C
 from lcodec.archive import salvage as S
 from lcodec.cli import main as cli_group
-from lcodec.errors import ModelError
+from lcodec.errors import DataError, ModelError
 from lcodec.models.strata import Strata
 from support import stdlib_file  # noqa: E402
 
@@ -342,3 +342,55 @@ def test_every_offset_scan_finds_what_read_record_finds():
     got = SB.scan(mv, 0, len(mv), None)
     assert sorted(got) == sorted(want) and len(want) >= 10
     assert all(got[q].raw_len == want[q].raw_len and got[q].number == want[q].number for q in want)
+
+
+def _read_record_everywhere(mv, version):
+    """The reference: read_record (container.py, the strict reader's own check) at every offset."""
+    out = []
+    for q in range(len(mv)):
+        if _read_record_or_none(mv, q, version) is not None:
+            out.append(q)
+    return out
+
+
+@pytest.mark.parametrize("version", [1, 3])
+def test_every_offset_head_test_keeps_exactly_what_read_record_accepts(version):
+    """salvage_bound.head_offsets (numpy: where varints end, the method byte, the stored
+    CRC-32C, then one CRC-32C per surviving offset) followed by read_record must accept the
+    same offsets as read_record alone at every offset, for version-3 heads and for version
+    1/2 heads (salvage.scan_records), on damaged archives, random bytes, zeros, and a
+    buffer that straddles the numpy block boundary (SCAN_BLOCK made small)."""
+    from lcodec.archive import salvage_bound as SB
+
+    text = b"".join(b"%d kestrel-ridge gust=%d\n" % (1_700_000_000 + 11 * k, k % 29) for k in range(200))
+    v3 = api.pack(text, frame_size=300)
+    v1 = open(os.path.join(os.path.dirname(__file__), "golden", "strata-v1-text.lcodec"), "rb").read()
+    rng = random.Random(version)
+    bufs = [v3, v1, bytes(300), rng.randbytes(2000)]
+    for _ in range(40):
+        b = bytearray(rng.choice([v3, v1]))
+        for _ in range(rng.randrange(1, 6)):
+            b[rng.randrange(len(b))] = rng.randrange(256)
+        bufs.append(bytes(b[rng.randrange(40):]))
+    wants = [_read_record_everywhere(memoryview(b), version) for b in bufs]
+    for block in (SB.SCAN_BLOCK, 97):
+        old = SB.SCAN_BLOCK
+        SB.SCAN_BLOCK = block
+        try:
+            for b, want in zip(bufs, wants):
+                mv = memoryview(b)
+                got = [q for q in SB.head_offsets(mv, 0, len(mv), version == 3)
+                       if _read_record_or_none(mv, q, version) is not None]
+                assert got == want
+                if version == 1:
+                    assert sorted(S.scan_records(mv, 0, len(mv))) == want
+        finally:
+            SB.SCAN_BLOCK = old
+    assert sum(map(len, wants)) >= 20  # the archives' own records were among them
+
+
+def _read_record_or_none(mv, q, version):
+    try:
+        return C.read_record(mv, q, -1, None, version)
+    except DataError:
+        return None

@@ -17,7 +17,7 @@ import hashlib
 import os
 from dataclasses import dataclass, field
 
-from ..errors import CeilingError, DataError, UsageError
+from ..errors import CeilingError, DataError, UsageError, raise_pending
 from ..format import container as C
 from ..frames import decode_record, frame_fields, image_guarantee
 from ..fsio import OutFile, _remove_quietly, safe_member_path
@@ -408,6 +408,7 @@ def unpack_to_dir(blob, out_dir: str, model=None, force: bool = False, progress=
         os.makedirs(tmp)
         cont, _ = decode_stream(blob, sink, model, progress, jobs=jobs, cluster=cluster, workers=workers)
         written, folders = sink.written, sink.folders
+        raise_pending()  # a signal whose exception was lost (errors.raise_pending): no final name
         if not exists:
             os.rename(tmp, out_dir)
         else:  # --force into an existing folder: move each file into place

@@ -41,7 +41,7 @@ import os
 import re
 from dataclasses import dataclass, field
 
-from ..errors import DataError, LcodecError, ModelError, UsageError
+from ..errors import DataError, LcodecError, ModelError, UsageError, raise_pending
 from ..format import container as C
 from ..frames import decode_record, image_guarantee
 from ..fsio import atomic_write, safe_member_path, _remove_quietly
@@ -217,7 +217,7 @@ def scan_records(mv, lo: int, hi: int, lengths: set | None = None) -> dict:
                 j = data.find(pat, j + 1)
         offsets = sorted(cands)
     else:
-        offsets = range(lo, hi)
+        offsets = B.head_offsets(mv, lo, hi, False)  # the cheap test, every offset at once
     for q in offsets:
         fr = _record(mv, q)
         if fr is not None:
@@ -795,6 +795,7 @@ def _write_members(res: Salvage, out_dir: str, keep_damaged: bool) -> None:
                 os.chmod(target, r.mode & KEPT_MODE_BITS)
                 if r.mtime_ns:
                     os.utime(target, ns=(r.mtime_ns, r.mtime_ns))
+        raise_pending()  # a signal whose exception was lost (errors.raise_pending): no final name
         if not exists:
             os.rename(tmp, out_dir)
         else:  # --force into an existing folder: each file moved into place, never through a link

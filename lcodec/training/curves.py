@@ -3,6 +3,8 @@ from __future__ import annotations
 
 import os
 
+from ..errors import raise_pending
+
 
 def write_curve_png(curve: list, path: str, title: str) -> str | None:
     """Train and validation bits per byte against time; None when matplotlib is missing."""
@@ -26,6 +28,7 @@ def write_curve_png(curve: list, path: str, title: str) -> str | None:
     tmp = path + ".part"
     try:
         fig.savefig(tmp, format="png")
+        raise_pending()  # a signal whose exception was lost (errors.raise_pending): no final name
         os.replace(tmp, path)
     except BaseException:  # an interrupt or a full disk: no temporary file left behind
         try:
