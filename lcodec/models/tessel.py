@@ -6,7 +6,12 @@ samples already coded. For each sub-pixel (row r, column c, channel ch):
 
     pred   the median edge predictor on W, N, NW (published as part of LOCO-I), for
            channel ch > 0 plus the residual of channel ch-1 of the same pixel
-           (chan_shift), clamped to the sample range
+           (chan_shift), clamped to the sample range. With colour "rct" (a later model
+           version; lcodec/models/colour.py), an RGB image is coded as G, B, R and channels
+           B and R are seen as the chroma planes B - G and R - G of the reversible component
+           transform (ITU-T T.800 Annex G): their neighbours, differences and median
+           prediction are taken in the chroma plane, and pred = that prediction + G of
+           the pixel, clamped to the sample range
     slots  15 integer contexts, each quantised to 63 levels (`_q`: sign and magnitude in
            half-octaves): N-NW, NW-W, NE-N, W-WW, NN-N, NNE-NE, NEE-NE, the residuals
            of W, N, NW, NE and WW, the residuals of channels ch-1 and ch-2 of this pixel,
@@ -55,6 +60,12 @@ CHUNK = 8192  # symbols per teacher-pass batch
 HI_OFFSET = 128  # 16-bit residuals are offset so that -128..127 all have high byte 0
 FLAG_BIG_ENDIAN, FLAG_SIGNED = 1, 2
 PAYLOAD_VERSION = 1
+# colour modes (the internal `shift` of `_context`): 0 none, 1 the residual of channel ch-1 added to
+# the prediction (params chan_shift), COLOUR_RCT: params colour "rct" (lcodec/models/colour.py)
+COLOUR_RCT = 2
+COLOUR_MODES = ("shift", "rct")
+RCT_ORDER = (1, 2, 0)  # RGB coded as G, B, R: channel 0 first, so the chroma planes B-G, R-G fit 8 bits
+RCT_BACK = (2, 0, 1)  # coded order back to R, G, B
 N_CLASSES = 16  # activity classes of the adaptive counts
 COUNT_LIMIT = 4096  # a context's counts are halved past this total, to keep adapting
 CTX_BASE = {"r8": 0, "r16h": N_CLASSES, "r16l": 2 * N_CLASSES}  # rows of the count table
@@ -113,23 +124,32 @@ def _q(d):
 
 
 @njit(cache=True, nogil=True)
+def _pv(v, r, c, ch, sub):
+    """A sample of the plane being coded: channel ch, or with `sub` its difference from channel 0
+    of the same pixel (the colour mode's chroma planes)."""
+    return v[r, c, ch] - v[r, c, 0] if sub else v[r, c, ch]
+
+
+@njit(cache=True, nogil=True)
 def _context(v, e, r, c, ch, cols, maxv, shift, idx):
     """Prediction and the 14 neighbourhood slots (as embedding rows) of sub-pixel (r, c, ch).
     Reads only samples coded before it (rows above up to column c+2, this row left of c,
-    channels before ch of this pixel)."""
+    channels before ch of this pixel). With shift == COLOUR_RCT on 3 channels (coded G, B, R),
+    channels 1 and 2 are seen as their difference from channel 0 (`_pv`)."""
+    sub = shift == COLOUR_RCT and v.shape[2] == 3 and ch > 0
     if c > 0:
-        W = v[r, c - 1, ch]
+        W = _pv(v, r, c - 1, ch, sub)
     elif r > 0:
-        W = v[r - 1, c, ch]
+        W = _pv(v, r - 1, c, ch, sub)
     else:
         W = 0
-    WW = v[r, c - 2, ch] if c > 1 else W
-    N = v[r - 1, c, ch] if r > 0 else W
-    NW = v[r - 1, c - 1, ch] if (r > 0 and c > 0) else N
-    NE = v[r - 1, c + 1, ch] if (r > 0 and c + 1 < cols) else N
-    NEE = v[r - 1, c + 2, ch] if (r > 0 and c + 2 < cols) else NE
-    NN = v[r - 2, c, ch] if r > 1 else N
-    NNE = v[r - 2, c + 1, ch] if (r > 1 and c + 1 < cols) else NE
+    WW = _pv(v, r, c - 2, ch, sub) if c > 1 else W
+    N = _pv(v, r - 1, c, ch, sub) if r > 0 else W
+    NW = _pv(v, r - 1, c - 1, ch, sub) if (r > 0 and c > 0) else N
+    NE = _pv(v, r - 1, c + 1, ch, sub) if (r > 0 and c + 1 < cols) else N
+    NEE = _pv(v, r - 1, c + 2, ch, sub) if (r > 0 and c + 2 < cols) else NE
+    NN = _pv(v, r - 2, c, ch, sub) if r > 1 else N
+    NNE = _pv(v, r - 2, c + 1, ch, sub) if (r > 1 and c + 1 < cols) else NE
     eW = e[r, c - 1, ch] if c > 0 else 0
     eWW = e[r, c - 2, ch] if c > 1 else 0
     eN = e[r - 1, c, ch] if r > 0 else 0
@@ -145,7 +165,9 @@ def _context(v, e, r, c, ch, cols, maxv, shift, idx):
         p = N + W - NW
     e1 = e[r, c, ch - 1] if ch >= 1 else 0
     e2 = e[r, c, ch - 2] if ch >= 2 else 0
-    if shift:
+    if sub:  # chroma plane: its median prediction plus this pixel's channel 0, in sample range
+        p = min(max(p + v[r, c, 0], 0), maxv)
+    elif shift:
         p += e1
         p = min(max(p, 0), maxv)
     idx[0] = 0 * Q + _q(N - NW)
@@ -569,6 +591,8 @@ def raster_features(v: np.ndarray, shift: int, with_ctx: bool = False):
     """(embedding rows (n, N_SLOTS), symbols (n,), roles (n,): 0 r8, 1 r16h, 2 r16l) of every
     sub-symbol of samples v (rows, cols, channels; uint8 or uint16), in raster order."""
     rows, cols, C = v.shape
+    if shift == COLOUR_RCT and C == 3:
+        v = v[:, :, RCT_ORDER]
     deep = v.dtype == np.uint16
     P = 2 if deep else 1
     n = rows * cols * C * P
@@ -594,9 +618,13 @@ class Tessel:
     def __init__(self, params: dict, arrays: dict, backend: str = "numpy"):
         p = params
         if not isinstance(p, dict) or not {"embed", "hidden", "chan_shift", "roles", "bytes"} <= set(p) <= {
-                "embed", "hidden", "chan_shift", "roles", "bytes", "adapt", "structure", "law"}:
+                "embed", "hidden", "chan_shift", "roles", "bytes", "adapt", "structure", "law", "colour"}:
             raise ValueError("tessel needs embed, hidden, chan_shift, roles and bytes "
-                             "(and optionally adapt, structure, law)")
+                             "(and optionally adapt, structure, law, colour)")
+        if p.get("colour", "shift") not in COLOUR_MODES:  # absent: "shift" (older files)
+            raise ValueError(f"colour must be one of {', '.join(COLOUR_MODES)}")
+        if p.get("colour") == "rct" and p["chan_shift"] != 1:
+            raise ValueError("colour rct goes with chan_shift 1 (used for layouts other than RGB)")
         adapt = p.get("adapt", {})
         if not isinstance(adapt, dict) or not set(adapt) <= set(p["roles"]) or not all(
                 type(k) is int and 0 <= k <= 1 << 16 for k in adapt.values()):
@@ -656,7 +684,7 @@ class Tessel:
             self.role_params[role] = dict(rp, window=N_SLOTS, embed=E, hidden=H)
         self.params = p
         self.arrays = arrays
-        self.shift = int(p["chan_shift"])
+        self.shift = COLOUR_RCT if p.get("colour") == "rct" else int(p["chan_shift"])
         self.bytes_model = Strata()  # preset o6m: side bytes and byte-mode frames
         self.set_backend(backend)
 
@@ -839,4 +867,4 @@ class Tessel:
                     else:
                         hi, lo = zero, table("r8", m, cls[:m].copy(), keys[:m].copy())
                     _apply(v, e, r0, r1, t, ch, deep, preds, hi, lo)
-        return v
+        return v[:, :, RCT_BACK] if self.shift == COLOUR_RCT and C == 3 else v

@@ -383,7 +383,7 @@ def read_images(paths: list[str], echo=print) -> list[tuple[str, np.ndarray]]:
 def train_image(corpus: list[str], out: str, time_limit: float = 120.0, preset: str = "small",
                 seed: int = 0, echo=print, force: bool = False, chan_shift: int = 1, adapt_k=str(ADAPT_K),
                 structure_k: int = STRUCTURE_K, law: bool = True, augment: bool = True,
-                record_names: bool = False) -> dict:
+                record_names: bool = False, colour: str = "shift") -> dict:
     """Fit a tessel pixel model: one network per role present in the corpus (8-bit samples;
     16-bit high and low bytes), quantisation-aware, then export and measure it. With
     `augment`, the training images' mirrored, flipped and transposed copies join the
@@ -392,7 +392,13 @@ def train_image(corpus: list[str], out: str, time_limit: float = 120.0, preset: 
         import torch
     except ImportError:
         raise UsageError("training needs torch: run scripts/setup.sh (installs torch==2.13.0)") from None
-    from ..models.tessel import EMB_ROWS, N_SLOTS, Tessel, raster_features
+    from ..models.tessel import COLOUR_MODES, COLOUR_RCT, EMB_ROWS, N_SLOTS, Tessel, raster_features
+
+    if colour not in COLOUR_MODES:
+        raise UsageError(f"unknown colour mode {colour!r} (have: {', '.join(COLOUR_MODES)})")
+    if colour == "rct" and chan_shift != 1:
+        raise UsageError("colour rct goes with chan_shift 1")
+    mode = COLOUR_RCT if colour == "rct" else chan_shift
 
     if preset not in IMAGE_PRESETS:
         raise UsageError(f"unknown preset {preset!r} (have: {', '.join(IMAGE_PRESETS)})")
@@ -429,7 +435,7 @@ def train_image(corpus: list[str], out: str, time_limit: float = 120.0, preset: 
         originals = int(sum(v.size for v in parts["train"]))
         copies = augmented(parts["train"]) if augment else []
         parts["train"] += copies
-        feats = {k: [raster_features(np.ascontiguousarray(v), chan_shift) for v in vs] for k, vs in parts.items()}
+        feats = {k: [raster_features(np.ascontiguousarray(v), mode) for v in vs] for k, vs in parts.items()}
         roles = ("r16h", "r16l") if deep else ("r8",)
         for j, role in enumerate(roles):
             got = {}
@@ -501,6 +507,8 @@ def train_image(corpus: list[str], out: str, time_limit: float = 120.0, preset: 
                     echo("  validation stopped improving")
                 break
     params = {"embed": cfg["embed"], "hidden": cfg["hidden"], "chan_shift": chan_shift, "roles": {}, "bytes": "o6m"}
+    if colour != "shift":  # absent means "shift", so that models trained without it read as before
+        params["colour"] = colour
     arrays = {}
     for r, net in nets.items():
         if best_state[r] is not None:
