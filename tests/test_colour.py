@@ -11,7 +11,8 @@ import pytest
 
 import lcodec
 from lcodec.models.colour import rct_forward, rct_forward_int, rct_inverse, rct_inverse_int, rct_luma_of
-from lcodec.models.tessel import COLOUR_RCT, RCT_ORDER, Tessel, coding_order, raster_features
+from lcodec.models.tessel import (COLOUR_RCT, COLOUR_RCT_GRAD, HI_SLOT, Q, RCT_ORDER, Tessel, coding_order,
+                                  raster_features)
 
 from test_images import LAW, STRUCT, _pgm, _sample, _tables, random_tessel
 
@@ -19,9 +20,9 @@ PIL = pytest.importorskip("PIL.Image", reason="Pillow is needed (pip install -e 
 GOLDEN = os.path.join(os.path.dirname(__file__), "golden")
 
 
-def rct_model(**kw):
+def rct_model(colour="rct", **kw):
     m = random_tessel(**kw)
-    return Tessel(dict(m.params, colour="rct"), m.arrays)
+    return Tessel(dict(m.params, colour=colour), m.arrays)
 
 
 # -- the transform -------------------------------------------------------------------------------
@@ -110,21 +111,51 @@ def _reference_symbols(v, deep):
     return out
 
 
+def _reference_grad_levels(v):
+    """Plain Python integers: colour rct-grad's last slot for each 8-bit sample (raster order
+    of the coded channels G, B, R): 0 for G; for B and R, 16 q(G - G_W) + q(G - G_N) with G_W,
+    G_N the pixel's left and upper G (left falls back to upper, upper to left, both to G), and
+    q(d) = 8 + sign(d) * min(bit length of |d|, 7)."""
+    rows, cols, _ = v.shape
+    G = [[int(v[r, c, 1]) for c in range(cols)] for r in range(rows)]
+
+    def q(d):
+        return 8 + (1 if d >= 0 else -1) * min(abs(d).bit_length(), 7)
+    out = []
+    for r in range(rows):
+        for c in range(cols):
+            g = G[r][c]
+            gw = G[r][c - 1] if c > 0 else (G[r - 1][c] if r > 0 else g)
+            gn = G[r - 1][c] if r > 0 else gw
+            out += [0, 16 * q(g - gw) + q(g - gn), 16 * q(g - gw) + q(g - gn)]
+    return out
+
+
 @pytest.mark.parametrize("deep", [False, True])
 def test_rct_symbols_match_a_python_integer_reference(deep):
     """Random RGB samples (full range, so the chroma reach both ends and the clamp acts) and a
-    photograph: the symbols of the encoder's features equal the plain-Python recomputation."""
+    photograph: the symbols of the encoder's features equal the plain-Python recomputation, for
+    both rct modes (same prediction); rct-grad's last slot equals its recomputation for 8-bit
+    samples, and 16-bit samples keep the high byte there."""
     rng = np.random.default_rng(11)
     imgs = [rng.integers(0, 65536 if deep else 256, (9, 13, 3)), _sample("astronaut", 12, 15).astype(np.int64)]
     for v in imgs:
         v = v.astype(np.uint16 if deep else np.uint8)
-        _, syms, _ = raster_features(v, COLOUR_RCT)
+        idx0, syms, _ = raster_features(v, COLOUR_RCT)
         assert syms.tolist() == _reference_symbols(v, deep)
+        idx, syms2, _ = raster_features(v, COLOUR_RCT_GRAD)
+        assert np.array_equal(syms2, syms) and np.array_equal(idx[:, :HI_SLOT], idx0[:, :HI_SLOT])
+        if deep:
+            assert np.array_equal(idx, idx0)
+        else:
+            assert (idx0[:, HI_SLOT] == HI_SLOT * Q).all()
+            assert (idx[:, HI_SLOT] - HI_SLOT * Q).tolist() == _reference_grad_levels(v)
 
 
-def test_rct_leaves_other_layouts_as_chan_shift_1():
+@pytest.mark.parametrize("colour", ["rct", "rct-grad"])
+def test_rct_leaves_other_layouts_as_chan_shift_1(colour):
     """Grey, two-channel and RGBA images: colour rct gives exactly chan_shift 1's tables."""
-    old, new = random_tessel(structure=STRUCT), rct_model(structure=STRUCT)
+    old, new = random_tessel(structure=STRUCT), rct_model(colour, structure=STRUCT)
     v = _sample("astronaut", 10, 12)
     for a in (v[:, :, :1], v[:, :, :2], np.concatenate([v, v[:, :, :1]], axis=2)):
         a = np.ascontiguousarray(a)
@@ -132,14 +163,15 @@ def test_rct_leaves_other_layouts_as_chan_shift_1():
     assert not np.array_equal(_tables(old, v, False), _tables(new, v, False))  # RGB does change
 
 
+@pytest.mark.parametrize("colour", ["rct", "rct-grad"])
 @pytest.mark.parametrize("stages", [None, "structure", "law"])
 @pytest.mark.parametrize("kind", ["rgb8", "rgb16"])
-def test_rct_parallel_pass_equals_step_pass(kind, stages):
+def test_rct_parallel_pass_equals_step_pass(kind, stages, colour):
     """The encoder's teacher-forced tables equal the decoder's step tables bit for bit, and the
     decoded samples are the originals (channel order restored), numpy and torch backends."""
     from lcodec.frames.imageframe import decode_image_frame, encode_image_frame
     from lcodec.inputs.layout import Layout, region_values, values_region
-    m = rct_model(structure=STRUCT if stages else None, law=LAW if stages == "law" else None)
+    m = rct_model(colour, structure=STRUCT if stages else None, law=LAW if stages == "law" else None)
     a = _sample("astronaut", 13, 17)
     a, lay_args = (a.astype(np.uint16) * 257 + 5, (2, 0)) if kind == "rgb16" else (a, (1, 0))
     lay = Layout(5, a.shape[0], a.shape[1], 3, *lay_args)
@@ -155,11 +187,12 @@ def test_rct_parallel_pass_equals_step_pass(kind, stages):
     assert np.array_equal(_tables(m, v, lay.deep), par)
 
 
-def test_rct_causal_property():
+@pytest.mark.parametrize("colour", ["rct", "rct-grad"])
+def test_rct_causal_property(colour):
     """Germain et al., 2015: a table depends only on sub-symbols coded before it. Original
     channel ch is coded as channel RCT_ORDER.index(ch); changing it changes no table up to
     its own position in coding order and some table after it."""
-    m = rct_model(structure=STRUCT)
+    m = rct_model(colour, structure=STRUCT)
     v = _sample("astronaut", 5, 7)
     rows, cols, C = v.shape
     base = _tables(m, v, False)
@@ -217,11 +250,13 @@ def test_rct_round_trips_every_depth_and_layout(layout, rct_file):
 def test_colour_parameter_is_checked_and_old_models_read_as_shift():
     m = random_tessel()
     assert "colour" not in m.params and m.shift == 1  # an older file: no key, as before
-    for bad in ("RCT", "ycocg", 1, None):
+    for bad in ("RCT", "rct_grad", 1, None):
         with pytest.raises(ValueError, match="colour"):
             Tessel(dict(m.params, colour=bad), m.arrays)
     with pytest.raises(ValueError, match="chan_shift 1"):
         Tessel(dict(m.params, colour="rct", chan_shift=0), m.arrays)
+    with pytest.raises(ValueError, match="chan_shift 1"):
+        Tessel(dict(m.params, colour="rct-grad", chan_shift=0), m.arrays)
     assert Tessel(dict(m.params, colour="shift"), m.arrays).shift == 1
 
 
@@ -257,3 +292,31 @@ def test_golden_colour_containers_decode_exactly(name):
     else:  # reference reader: numpy
         want = skd.astronaut()[200:224, 180:210].astype(np.uint16) * 251 + 7
         assert np.array_equal(np.load(io.BytesIO(orig)), want)
+
+
+@pytest.mark.parametrize("colour", ["rct", "bogus"])
+def test_train_image_cli_colour(colour, tmp_path):
+    """train --kind image --colour rct writes the mode into the model file's parameters, and a
+    PPM packed with it round-trips (Pillow reads the samples back); an unknown mode is a usage
+    error (exit 2, no traceback)."""
+    import subprocess
+    import sys
+    pytest.importorskip("torch")
+    d = tmp_path / "plates"
+    d.mkdir()
+    for n in ("astronaut", "chelsea", "coffee"):
+        (d / f"{n}.ppm").write_bytes(_pgm(_sample(n, 30, 36)))
+    out = tmp_path / "m.lcmodel"
+    r = subprocess.run([sys.executable, "-m", "lcodec", "train", "--kind", "image", str(d), "-o", str(out),
+                        "--time-limit", "2", "--preset", "tiny", "--colour", colour], capture_output=True, text=True,
+                       env=dict(os.environ, PYTHONPATH=os.getcwd()))
+    if colour == "bogus":
+        assert r.returncode == 2 and "Traceback" not in r.stderr and "rct" in r.stderr
+        return
+    assert r.returncode == 0, r.stderr
+    from lcodec.models import load_model
+    assert load_model(str(out)).inner.params["colour"] == "rct"
+    a = _sample("astronaut", 20, 24)
+    blob = lcodec.pack(_pgm(a), model=str(out))
+    assert lcodec.info(blob)["frames"][0]["method"] == "modelled/image"
+    assert np.array_equal(np.asarray(PIL.open(io.BytesIO(lcodec.unpack(blob, model=str(out))))), a)

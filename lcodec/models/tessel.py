@@ -63,7 +63,8 @@ PAYLOAD_VERSION = 1
 # colour modes (the internal `shift` of `_context`): 0 none, 1 the residual of channel ch-1 added to
 # the prediction (params chan_shift), COLOUR_RCT: params colour "rct" (lcodec/models/colour.py)
 COLOUR_RCT = 2
-COLOUR_MODES = ("shift", "rct")
+COLOUR_RCT_GRAD = 3  # colour "rct-grad": rct, and an 8-bit chroma sample's last slot holds G's gradients here
+COLOUR_MODES = ("shift", "rct", "rct-grad")
 RCT_ORDER = (1, 2, 0)  # RGB coded as G, B, R: channel 0 first, so the chroma planes B-G, R-G fit 8 bits
 RCT_BACK = (2, 0, 1)  # coded order back to R, G, B
 N_CLASSES = 16  # activity classes of the adaptive counts
@@ -136,7 +137,7 @@ def _context(v, e, r, c, ch, cols, maxv, shift, idx):
     Reads only samples coded before it (rows above up to column c+2, this row left of c,
     channels before ch of this pixel). With shift == COLOUR_RCT on 3 channels (coded G, B, R),
     channels 1 and 2 are seen as their difference from channel 0 (`_pv`)."""
-    sub = shift == COLOUR_RCT and v.shape[2] == 3 and ch > 0
+    sub = shift >= COLOUR_RCT and v.shape[2] == 3 and ch > 0
     if c > 0:
         W = _pv(v, r, c - 1, ch, sub)
     elif r > 0:
@@ -196,7 +197,24 @@ def _context(v, e, r, c, ch, cols, maxv, shift, idx):
     idx[N_SLOTS] = (((r & 1) << 7) | ((c & 1) << 6) | (np.int64(W == NW) << 5) | (np.int64(N == NW) << 4)
                     | (np.int64(W == WW) << 3) | (np.int64(N == NN) << 2)
                     | (0 if b == 0 else (1 if b <= 3 else (2 if b <= 6 else 3))))
+    idx[N_SLOTS + 1] = 0  # the last slot's level for an 8-bit sample (a 16-bit low byte: the high byte)
+    if sub and shift == COLOUR_RCT_GRAD:  # G here against G at W and at N (W and N as above)
+        g = v[r, c, 0]
+        gw = v[r, c - 1, 0] if c > 0 else (v[r - 1, c, 0] if r > 0 else g)
+        gn = v[r - 1, c, 0] if r > 0 else gw
+        idx[N_SLOTS + 1] = 16 * _q16(g - gw) + _q16(g - gn)
     return p
+
+
+@njit(cache=True, nogil=True)
+def _q16(d):
+    """A signed difference in 15 levels 1..15: 8 for 0, then 8 +- the bit length of |d| (at most 7)."""
+    a = d if d >= 0 else -d
+    b = 0
+    while a and b < 7:
+        b += 1
+        a >>= 1
+    return 8 + b if d >= 0 else 8 - b
 
 
 @njit(cache=True, nogil=True)
@@ -470,7 +488,7 @@ def _teacher(v, deep, shift, e, idx, syms, preds, ctx, ctx2):
     rows, cols, C = v.shape
     maxv = 65535 if deep else 255
     P = 2 if deep else 1
-    tmp = np.empty(N_SLOTS + 1, np.int64)
+    tmp = np.empty(N_SLOTS + 2, np.int64)
     k = 0
     for r in range(rows):
         for c in range(cols):
@@ -495,7 +513,7 @@ def _teacher(v, deep, shift, e, idx, syms, preds, ctx, ctx2):
                 else:
                     for j in range(N_SLOTS - 1):
                         idx[k, j] = tmp[j]
-                    idx[k, HI_SLOT] = HI_SLOT * Q
+                    idx[k, HI_SLOT] = HI_SLOT * Q + tmp[N_SLOTS + 1]
                     syms[k] = (x - p) & 0xFF
                     ctx[k] = tmp[HI_SLOT]
                     ctx2[k] = tmp[N_SLOTS]
@@ -509,14 +527,14 @@ def _gather(v, e, r0, r1, t, ch, shift, deep, idx, preds, cls, keys):
     """Contexts of channel ch of the pixels on wavefront step t, rows r0..r1-1."""
     cols = v.shape[1]
     maxv = 65535 if deep else 255
-    tmp = np.empty(N_SLOTS + 1, np.int64)
+    tmp = np.empty(N_SLOTS + 2, np.int64)
     for i in range(r1 - r0):
         r = r0 + i
         c = t - DELAY * r
         preds[i] = _context(v, e, r, c, ch, cols, maxv, shift, tmp)
         for j in range(N_SLOTS - 1):
             idx[i, j] = tmp[j]
-        idx[i, HI_SLOT] = HI_SLOT * Q
+        idx[i, HI_SLOT] = HI_SLOT * Q + (0 if deep else tmp[N_SLOTS + 1])
         cls[i] = tmp[HI_SLOT]
         keys[i] = tmp[N_SLOTS]
 
@@ -591,7 +609,7 @@ def raster_features(v: np.ndarray, shift: int, with_ctx: bool = False):
     """(embedding rows (n, N_SLOTS), symbols (n,), roles (n,): 0 r8, 1 r16h, 2 r16l) of every
     sub-symbol of samples v (rows, cols, channels; uint8 or uint16), in raster order."""
     rows, cols, C = v.shape
-    if shift == COLOUR_RCT and C == 3:
+    if shift >= COLOUR_RCT and C == 3:
         v = v[:, :, RCT_ORDER]
     deep = v.dtype == np.uint16
     P = 2 if deep else 1
@@ -623,7 +641,7 @@ class Tessel:
                              "(and optionally adapt, structure, law, colour)")
         if p.get("colour", "shift") not in COLOUR_MODES:  # absent: "shift" (older files)
             raise ValueError(f"colour must be one of {', '.join(COLOUR_MODES)}")
-        if p.get("colour") == "rct" and p["chan_shift"] != 1:
+        if p.get("colour", "shift") != "shift" and p["chan_shift"] != 1:
             raise ValueError("colour rct goes with chan_shift 1 (used for layouts other than RGB)")
         adapt = p.get("adapt", {})
         if not isinstance(adapt, dict) or not set(adapt) <= set(p["roles"]) or not all(
@@ -684,7 +702,7 @@ class Tessel:
             self.role_params[role] = dict(rp, window=N_SLOTS, embed=E, hidden=H)
         self.params = p
         self.arrays = arrays
-        self.shift = COLOUR_RCT if p.get("colour") == "rct" else int(p["chan_shift"])
+        self.shift = {"rct": COLOUR_RCT, "rct-grad": COLOUR_RCT_GRAD}.get(p.get("colour"), int(p["chan_shift"]))
         self.bytes_model = Strata()  # preset o6m: side bytes and byte-mode frames
         self.set_backend(backend)
 
@@ -867,4 +885,4 @@ class Tessel:
                     else:
                         hi, lo = zero, table("r8", m, cls[:m].copy(), keys[:m].copy())
                     _apply(v, e, r0, r1, t, ch, deep, preds, hi, lo)
-        return v[:, :, RCT_BACK] if self.shift == COLOUR_RCT and C == 3 else v
+        return v[:, :, RCT_BACK] if self.shift >= COLOUR_RCT and C == 3 else v

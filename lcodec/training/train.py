@@ -392,13 +392,13 @@ def train_image(corpus: list[str], out: str, time_limit: float = 120.0, preset: 
         import torch
     except ImportError:
         raise UsageError("training needs torch: run scripts/setup.sh (installs torch==2.13.0)") from None
-    from ..models.tessel import COLOUR_MODES, COLOUR_RCT, EMB_ROWS, N_SLOTS, Tessel, raster_features
+    from ..models.tessel import COLOUR_MODES, COLOUR_RCT, COLOUR_RCT_GRAD, EMB_ROWS, N_SLOTS, Tessel, raster_features
 
     if colour not in COLOUR_MODES:
         raise UsageError(f"unknown colour mode {colour!r} (have: {', '.join(COLOUR_MODES)})")
-    if colour == "rct" and chan_shift != 1:
-        raise UsageError("colour rct goes with chan_shift 1")
-    mode = COLOUR_RCT if colour == "rct" else chan_shift
+    if colour != "shift" and chan_shift != 1:
+        raise UsageError(f"colour {colour} goes with chan_shift 1")
+    mode = {"rct": COLOUR_RCT, "rct-grad": COLOUR_RCT_GRAD}.get(colour, chan_shift)
 
     if preset not in IMAGE_PRESETS:
         raise UsageError(f"unknown preset {preset!r} (have: {', '.join(IMAGE_PRESETS)})")
