@@ -759,10 +759,13 @@ def explain(file, model, output, png_out, frame_size, view_bytes, force, quiet):
                    "before; rct: coded as G, then the chroma B - G and R - G of the reversible component "
                    "transform (ITU-T T.800 Annex G), each predicted in its own plane; rct-grad: rct, and an 8-bit chroma "
                    "sample also sees how G changes from its left and upper neighbours.")
+@click.option("--predictor", type=click.Choice(["med", "gap"]), default="med", show_default=True,
+              help="Images: the fixed predictor under the network. med: the median edge detector; gap: "
+                   "gradient-adjusted prediction.")
 @force_option
 @guarded
 def train(corpus, output, kind, time_limit, preset, seed, max_bytes, memory, adapt_k, structure_k, law, record_names,
-          augment, colour, force):
+          augment, colour, predictor, force):
     """Train a model on files and folders of one kind; write a model file.
 
     A tenth of the files is held out for validation; progress shows validation bits per
@@ -779,7 +782,7 @@ def train(corpus, output, kind, time_limit, preset, seed, max_bytes, memory, ada
             raise UsageError("--max-bytes and --memory go with --kind bytes")
         T.train_image(list(corpus), output, time_limit or 120.0, preset or "small", seed, echo=echo, force=force,
                       adapt_k=adapt_k, structure_k=structure_k, law=law, augment=augment, record_names=record_names,
-                      colour=colour)
+                      colour=colour, predictor=predictor)
     else:
         T.train(list(corpus), output, time_limit or 600.0, preset or T.DEFAULT_PRESET, seed, max_bytes, echo=echo,
                 force=force, memory=None if memory is None else parse_size(memory, "--memory"),

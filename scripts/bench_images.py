@@ -211,7 +211,8 @@ def same_kind(args, root):
         if args.model_dir and os.path.exists(os.path.join(args.model_dir, f"same-{kind}.lcmodel")):
             model = os.path.join(args.model_dir, f"same-{kind}.lcmodel")
         else:
-            train_image([d["train"]], model, time_limit=args.time_limit, force=True, colour=args.colour)
+            train_image([d["train"]], model, time_limit=args.time_limit, force=True, colour=args.colour,
+                        predictor=args.predictor)
         msize = os.path.getsize(model)
         rows = [IB.bench_file(f, model) for f in IB.image_files([d["test"]])]
         print(f"\n== same-kind {kind}: {d['test']} (model {msize:,} bytes)")
@@ -249,6 +250,8 @@ def main():
                     "grey8, rgb8, medical16)")
     ap.add_argument("--colour", default="shift", choices=["shift", "rct", "rct-grad"],
                     help="with --same-kind: the colour mode the models are trained with (train --colour)")
+    ap.add_argument("--predictor", default="med", choices=["med", "gap"],
+                    help="with --same-kind: the predictor the models are trained with (train --predictor)")
     args = ap.parse_args()
     root = args.keep or tempfile.mkdtemp(prefix="lcodec-images-")
     if args.same_kind:

@@ -349,6 +349,24 @@ def golden_tessel_colour():
     write_vector("tessel-c1-rgb16", buf.getvalue(), model=mpath)
 
 
+def golden_tessel_gap():
+    """The law model file with predictor gap (gradient-adjusted prediction under the network) as
+    a fifth model file, and containers made with it: an 8-bit PGM crop of scikit-image's camera
+    and a 16-bit NPY (a crop of its moon times 53, plus 1000)."""
+    import io
+
+    import numpy as np
+    import skimage.data as skd
+
+    mpath = os.path.join(HERE, "tessel-tiny-gap.lcmodel")
+    derive_tessel("tessel-tiny-law.lcmodel", mpath, lambda params: params.update(predictor="gap"))
+    pgm = b"P5\n# bay-3 plate 9\n40 32\n255\n" + skd.camera()[220:252, 300:340].tobytes()
+    buf = io.BytesIO()
+    np.save(buf, skd.moon()[60:92, 100:140].astype(np.uint16) * 53 + 1000)
+    write_vector("tessel-g1-pgm", pgm, model=mpath)
+    write_vector("tessel-g1-npy16", buf.getvalue(), model=mpath)
+
+
 def golden_heddle():
     """Two heddle model files made with the layer kit (needs torch, scikit-learn,
     scikit-image) and their containers: a tiny masked autoencoder over 8x8 digits (records;
@@ -424,6 +442,7 @@ def main():
     golden_tessel_law()
     golden_tessel_replicated()
     golden_tessel_colour()
+    golden_tessel_gap()
     golden_heddle()
     golden_v3_twins()
 

@@ -45,6 +45,7 @@ from contextlib import contextmanager
 import numpy as np
 from numba import njit
 
+from .tessel_predict import _gap, _pv, _q16
 from .weft import BACKENDS
 from .strata import Strata
 
@@ -125,14 +126,7 @@ def _q(d):
 
 
 @njit(cache=True, nogil=True)
-def _pv(v, r, c, ch, sub):
-    """A sample of the plane being coded: channel ch, or with `sub` its difference from channel 0
-    of the same pixel (the colour mode's chroma planes)."""
-    return v[r, c, ch] - v[r, c, 0] if sub else v[r, c, ch]
-
-
-@njit(cache=True, nogil=True)
-def _context(v, e, r, c, ch, cols, maxv, shift, idx):
+def _context(v, e, r, c, ch, cols, maxv, shift, gap, idx):
     """Prediction and the 14 neighbourhood slots (as embedding rows) of sub-pixel (r, c, ch).
     Reads only samples coded before it (rows above up to column c+2, this row left of c,
     channels before ch of this pixel). With shift == COLOUR_RCT on 3 channels (coded G, B, R),
@@ -156,14 +150,19 @@ def _context(v, e, r, c, ch, cols, maxv, shift, idx):
     eN = e[r - 1, c, ch] if r > 0 else 0
     eNW = e[r - 1, c - 1, ch] if (r > 0 and c > 0) else 0
     eNE = e[r - 1, c + 1, ch] if (r > 0 and c + 1 < cols) else 0
-    mn = min(N, W)
-    mx = max(N, W)
-    if NW >= mx:
-        p = mn
-    elif NW <= mn:
-        p = mx
+    if gap:  # gradient-adjusted prediction instead (params predictor "gap")
+        p = _gap(W, WW, N, NW, NE, NN, NNE, 16 if maxv > 255 else 1)
+        if not sub:
+            p = min(max(p, 0), maxv)
     else:
-        p = N + W - NW
+        mn = min(N, W)
+        mx = max(N, W)
+        if NW >= mx:
+            p = mn
+        elif NW <= mn:
+            p = mx
+        else:
+            p = N + W - NW
     e1 = e[r, c, ch - 1] if ch >= 1 else 0
     e2 = e[r, c, ch - 2] if ch >= 2 else 0
     if sub:  # chroma plane: its median prediction plus this pixel's channel 0, in sample range
@@ -204,17 +203,6 @@ def _context(v, e, r, c, ch, cols, maxv, shift, idx):
         gn = v[r - 1, c, 0] if r > 0 else gw
         idx[N_SLOTS + 1] = 16 * _q16(g - gw) + _q16(g - gn)
     return p
-
-
-@njit(cache=True, nogil=True)
-def _q16(d):
-    """A signed difference in 15 levels 1..15: 8 for 0, then 8 +- the bit length of |d| (at most 7)."""
-    a = d if d >= 0 else -d
-    b = 0
-    while a and b < 7:
-        b += 1
-        a >>= 1
-    return 8 + b if d >= 0 else 8 - b
 
 
 @njit(cache=True, nogil=True)
@@ -482,7 +470,7 @@ def _mix_chunk(tab, ctx, syms, gid, Ks, counts, tots, mid, ctx2, K2s, counts2, t
 
 
 @njit(cache=True, nogil=True)
-def _teacher(v, deep, shift, e, idx, syms, preds, ctx, ctx2):
+def _teacher(v, deep, shift, gap, e, idx, syms, preds, ctx, ctx2):
     """Every sub-symbol of a known image, in raster order (row, column, channel, byte):
     embedding rows, symbols; fills the residual plane e as it goes."""
     rows, cols, C = v.shape
@@ -493,7 +481,7 @@ def _teacher(v, deep, shift, e, idx, syms, preds, ctx, ctx2):
     for r in range(rows):
         for c in range(cols):
             for ch in range(C):
-                p = _context(v, e, r, c, ch, cols, maxv, shift, tmp)
+                p = _context(v, e, r, c, ch, cols, maxv, shift, gap, tmp)
                 x = v[r, c, ch]
                 e[r, c, ch] = x - p
                 if deep:
@@ -523,7 +511,7 @@ def _teacher(v, deep, shift, e, idx, syms, preds, ctx, ctx2):
 
 
 @njit(cache=True, nogil=True)
-def _gather(v, e, r0, r1, t, ch, shift, deep, idx, preds, cls, keys):
+def _gather(v, e, r0, r1, t, ch, shift, gap, deep, idx, preds, cls, keys):
     """Contexts of channel ch of the pixels on wavefront step t, rows r0..r1-1."""
     cols = v.shape[1]
     maxv = 65535 if deep else 255
@@ -531,7 +519,7 @@ def _gather(v, e, r0, r1, t, ch, shift, deep, idx, preds, cls, keys):
     for i in range(r1 - r0):
         r = r0 + i
         c = t - DELAY * r
-        preds[i] = _context(v, e, r, c, ch, cols, maxv, shift, tmp)
+        preds[i] = _context(v, e, r, c, ch, cols, maxv, shift, gap, tmp)
         for j in range(N_SLOTS - 1):
             idx[i, j] = tmp[j]
         idx[i, HI_SLOT] = HI_SLOT * Q + (0 if deep else tmp[N_SLOTS + 1])
@@ -605,7 +593,7 @@ def check_net(params: dict, arrays: dict, prefix: str) -> None:
         raise ValueError("biases out of range")
 
 
-def raster_features(v: np.ndarray, shift: int, with_ctx: bool = False):
+def raster_features(v: np.ndarray, shift: int, with_ctx: bool = False, gap: int = 0):
     """(embedding rows (n, N_SLOTS), symbols (n,), roles (n,): 0 r8, 1 r16h, 2 r16l) of every
     sub-symbol of samples v (rows, cols, channels; uint8 or uint16), in raster order."""
     rows, cols, C = v.shape
@@ -621,7 +609,7 @@ def raster_features(v: np.ndarray, shift: int, with_ctx: bool = False):
     preds = np.empty(rows * cols * C, np.int64)
     ctx = np.empty(n, np.int16)
     ctx2 = np.empty(n, np.int16)
-    _teacher(vi, deep, shift, e, idx, syms, preds, ctx, ctx2)
+    _teacher(vi, deep, shift, gap, e, idx, syms, preds, ctx, ctx2)
     roles = np.tile(np.array([1, 2], np.int8), n // 2) if deep else np.zeros(n, np.int8)
     if with_ctx:
         return idx, syms, roles, ctx, ctx2
@@ -636,11 +624,14 @@ class Tessel:
     def __init__(self, params: dict, arrays: dict, backend: str = "numpy"):
         p = params
         if not isinstance(p, dict) or not {"embed", "hidden", "chan_shift", "roles", "bytes"} <= set(p) <= {
-                "embed", "hidden", "chan_shift", "roles", "bytes", "adapt", "structure", "law", "colour"}:
+                "embed", "hidden", "chan_shift", "roles", "bytes", "adapt", "structure", "law", "colour", "predictor"}:
             raise ValueError("tessel needs embed, hidden, chan_shift, roles and bytes "
-                             "(and optionally adapt, structure, law, colour)")
+                             "(and optionally adapt, structure, law, colour, predictor)")
         if p.get("colour", "shift") not in COLOUR_MODES:  # absent: "shift" (older files)
             raise ValueError(f"colour must be one of {', '.join(COLOUR_MODES)}")
+        if p.get("predictor", "med") not in ("med", "gap"):  # absent: "med" (older files)
+            raise ValueError("predictor must be med or gap")
+        self.gap = int(p.get("predictor") == "gap")
         if p.get("colour", "shift") != "shift" and p["chan_shift"] != 1:
             raise ValueError("colour rct goes with chan_shift 1 (used for layouts other than RGB)")
         adapt = p.get("adapt", {})
@@ -738,7 +729,7 @@ class Tessel:
 
     def teacher(self, v: np.ndarray):
         """(embedding rows, symbols, roles) of every sub-symbol in raster order."""
-        return raster_features(v, self.shift)
+        return raster_features(v, self.shift, gap=self.gap)
 
     def teacher_tables(self, v: np.ndarray, deep: bool):
         """Yield (symbols, tables) in coding order, chunk by chunk (the encoder's pass).
@@ -747,7 +738,7 @@ class Tessel:
         rows, cols, C = v.shape
         P = 2 if deep else 1
         vv = v.astype(np.uint16) if deep else v.astype(np.uint8)
-        idx, syms, roles, ctx, ctx2 = raster_features(vv, self.shift, with_ctx=True)
+        idx, syms, roles, ctx, ctx2 = raster_features(vv, self.shift, with_ctx=True, gap=self.gap)
         order = coding_order(rows, cols, C, P)
         names = ("r16h", "r16l") if deep else ("r8",)
         K = np.array([self.adapt.get(r, 0) for r in ROLES], np.int64)
@@ -875,7 +866,7 @@ class Tessel:
                 if m <= 0:
                     continue
                 for ch in range(C):
-                    _gather(v, e, r0, r1, t, ch, self.shift, deep, idx, preds, cls, keys)
+                    _gather(v, e, r0, r1, t, ch, self.shift, self.gap, deep, idx, preds, cls, keys)
                     if deep:
                         hi = table("r16h", m, N_CLASSES + cls[:m], N_KEYS + keys[:m])
                         idx[:m, HI_SLOT] = HI_SLOT * Q + hi
