@@ -754,7 +754,7 @@ def explain(file, model, output, png_out, frame_size, view_bytes, force, quiet):
 @click.option("--augment/--no-augment", default=True, show_default=True,
               help="Images: train also on each training image mirrored, flipped and transposed (while the "
                    "training samples stay under 16.8 million); decoding costs nothing more.")
-@click.option("--colour", type=click.Choice(["shift", "rct", "rct-grad"]), default="shift", show_default=True,
+@click.option("--colour", type=click.Choice(["shift", "rct", "rct-grad"]), default="rct-grad", show_default=True,
               help="Images: how RGB is seen. shift: each channel's prediction plus the residual of the channel "
                    "before; rct: coded as G, then the chroma B - G and R - G of the reversible component "
                    "transform (ITU-T T.800 Annex G), each predicted in its own plane; rct-grad: rct, and an 8-bit chroma "

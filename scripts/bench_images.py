@@ -248,7 +248,7 @@ def main():
     ap.add_argument("--model-dir", default=None, help="with --same-kind: reuse same-KIND.lcmodel from here")
     ap.add_argument("--kinds", default=None, help="with --same-kind: only these kinds (comma-separated: "
                     "grey8, rgb8, medical16)")
-    ap.add_argument("--colour", default="shift", choices=["shift", "rct", "rct-grad"],
+    ap.add_argument("--colour", default="rct-grad", choices=["shift", "rct", "rct-grad"],
                     help="with --same-kind: the colour mode the models are trained with (train --colour)")
     ap.add_argument("--predictor", default="med", choices=["med", "gap"],
                     help="with --same-kind: the predictor the models are trained with (train --predictor)")

@@ -294,11 +294,11 @@ def test_golden_colour_containers_decode_exactly(name):
         assert np.array_equal(np.load(io.BytesIO(orig)), want)
 
 
-@pytest.mark.parametrize("colour", ["rct", "bogus"])
+@pytest.mark.parametrize("colour", ["rct", None, "bogus"])
 def test_train_image_cli_colour(colour, tmp_path):
-    """train --kind image --colour rct writes the mode into the model file's parameters, and a
-    PPM packed with it round-trips (Pillow reads the samples back); an unknown mode is a usage
-    error (exit 2, no traceback)."""
+    """train --kind image --colour rct writes the mode into the model file's parameters (by
+    default rct-grad, for RGB training images), and a PPM packed with it round-trips (Pillow
+    reads the samples back); an unknown mode is a usage error (exit 2, no traceback)."""
     import subprocess
     import sys
     pytest.importorskip("torch")
@@ -308,14 +308,15 @@ def test_train_image_cli_colour(colour, tmp_path):
         (d / f"{n}.ppm").write_bytes(_pgm(_sample(n, 30, 36)))
     out = tmp_path / "m.lcmodel"
     r = subprocess.run([sys.executable, "-m", "lcodec", "train", "--kind", "image", str(d), "-o", str(out),
-                        "--time-limit", "2", "--preset", "tiny", "--colour", colour], capture_output=True, text=True,
+                        "--time-limit", "2", "--preset", "tiny"] + (["--colour", colour] if colour else []),
+                       capture_output=True, text=True,
                        env=dict(os.environ, PYTHONPATH=os.getcwd()))
     if colour == "bogus":
         assert r.returncode == 2 and "Traceback" not in r.stderr and "rct" in r.stderr
         return
     assert r.returncode == 0, r.stderr
     from lcodec.models import load_model
-    assert load_model(str(out)).inner.params["colour"] == "rct"
+    assert load_model(str(out)).inner.params["colour"] == (colour or "rct-grad")
     a = _sample("astronaut", 20, 24)
     blob = lcodec.pack(_pgm(a), model=str(out))
     assert lcodec.info(blob)["frames"][0]["method"] == "modelled/image"
