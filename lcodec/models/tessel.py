@@ -11,7 +11,11 @@ samples already coded. For each sub-pixel (row r, column c, channel ch):
            B and R are seen as the chroma planes B - G and R - G of the reversible component
            transform (ITU-T T.800 Annex G): their neighbours, differences and median
            prediction are taken in the chroma plane, and pred = that prediction + G of
-           the pixel, clamped to the sample range
+           the pixel, clamped to the sample range. With predictor "gap" (a later model
+           version; lcodec/models/tessel_predict.py), gradient-adjusted prediction on W, WW,
+           N, NW, NE, NN, NNE takes the median predictor's place, clamped to the sample range;
+           colour rct-grad: as rct, and for an 8-bit chroma sample the last slot holds G's
+           change from W and from N at this pixel (15 x 15 levels)
     slots  15 integer contexts, each quantised to 63 levels (`_q`: sign and magnitude in
            half-octaves): N-NW, NW-W, NE-N, W-WW, NN-N, NNE-NE, NEE-NE, the residuals
            of W, N, NW, NE and WW, the residuals of channels ch-1 and ch-2 of this pixel,
