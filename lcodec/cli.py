@@ -759,7 +759,7 @@ def explain(file, model, output, png_out, frame_size, view_bytes, force, quiet):
                    "before; rct: coded as G, then the chroma B - G and R - G of the reversible component "
                    "transform (ITU-T T.800 Annex G), each predicted in its own plane; rct-grad: rct, and an 8-bit chroma "
                    "sample also sees how G changes from its left and upper neighbours.")
-@click.option("--predictor", type=click.Choice(["med", "gap"]), default="med", show_default=True,
+@click.option("--predictor", type=click.Choice(["med", "gap"]), default="gap", show_default=True,
               help="Images: the fixed predictor under the network. med: the median edge detector; gap: "
                    "gradient-adjusted prediction.")
 @force_option

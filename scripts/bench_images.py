@@ -250,7 +250,7 @@ def main():
                     "grey8, rgb8, medical16)")
     ap.add_argument("--colour", default="rct-grad", choices=["shift", "rct", "rct-grad"],
                     help="with --same-kind: the colour mode the models are trained with (train --colour)")
-    ap.add_argument("--predictor", default="med", choices=["med", "gap"],
+    ap.add_argument("--predictor", default="gap", choices=["med", "gap"],
                     help="with --same-kind: the predictor the models are trained with (train --predictor)")
     args = ap.parse_args()
     root = args.keep or tempfile.mkdtemp(prefix="lcodec-images-")

@@ -316,7 +316,8 @@ def test_train_image_cli_colour(colour, tmp_path):
         return
     assert r.returncode == 0, r.stderr
     from lcodec.models import load_model
-    assert load_model(str(out)).inner.params["colour"] == (colour or "rct-grad")
+    params = load_model(str(out)).inner.params
+    assert params["colour"] == (colour or "rct-grad") and params["predictor"] == "gap"  # the defaults
     a = _sample("astronaut", 20, 24)
     blob = lcodec.pack(_pgm(a), model=str(out))
     assert lcodec.info(blob)["frames"][0]["method"] == "modelled/image"

@@ -383,7 +383,7 @@ def read_images(paths: list[str], echo=print) -> list[tuple[str, np.ndarray]]:
 def train_image(corpus: list[str], out: str, time_limit: float = 120.0, preset: str = "small",
                 seed: int = 0, echo=print, force: bool = False, chan_shift: int = 1, adapt_k=str(ADAPT_K),
                 structure_k: int = STRUCTURE_K, law: bool = True, augment: bool = True,
-                record_names: bool = False, colour: str = "rct-grad", predictor: str = "med") -> dict:
+                record_names: bool = False, colour: str = "rct-grad", predictor: str = "gap") -> dict:
     """Fit a tessel pixel model: one network per role present in the corpus (8-bit samples;
     16-bit high and low bytes), quantisation-aware, then export and measure it. With
     `augment`, the training images' mirrored, flipped and transposed copies join the
