@@ -775,10 +775,18 @@ def explain(file, model, output, png_out, frame_size, view_bytes, force, quiet):
 @click.option("--augment/--no-augment", default=True, show_default=True,
               help="Images: train also on each training image mirrored, flipped and transposed (while the "
                    "training samples stay under 16.8 million); decoding costs nothing more.")
+@click.option("--colour", type=click.Choice(["shift", "rct", "rct-grad"]), default="rct-grad", show_default=True,
+              help="Images: how RGB is seen. shift: each channel's prediction plus the residual of the channel "
+                   "before; rct: coded as G, then the chroma B - G and R - G of the reversible component "
+                   "transform (ITU-T T.800 Annex G), each predicted in its own plane; rct-grad: rct, and an 8-bit chroma "
+                   "sample also sees how G changes from its left and upper neighbours.")
+@click.option("--predictor", type=click.Choice(["med", "gap"]), default="gap", show_default=True,
+              help="Images: the fixed predictor under the network. med: the median edge detector; gap: "
+                   "gradient-adjusted prediction.")
 @force_option
 @guarded
 def train(corpus, output, kind, time_limit, preset, seed, max_bytes, memory, adapt_k, structure_k, law, record_names,
-          augment, force):
+          augment, colour, predictor, force):
     """Train a model on files and folders of one kind; write a model file.
 
     A tenth of the files is held out for validation; progress shows validation bits per
@@ -797,7 +805,8 @@ def train(corpus, output, kind, time_limit, preset, seed, max_bytes, memory, ada
         if max_bytes is not None or memory is not None:
             raise UsageError("--max-bytes and --memory go with --kind bytes")
         T.train_image(list(corpus), output, time_limit or 120.0, preset or "small", seed, echo=echo, force=force,
-                      adapt_k=adapt_k, structure_k=structure_k, law=law, augment=augment, record_names=record_names)
+                      adapt_k=adapt_k, structure_k=structure_k, law=law, augment=augment, record_names=record_names,
+                      colour=colour, predictor=predictor)
     else:
         T.train(list(corpus), output, time_limit or 600.0, preset or T.DEFAULT_PRESET, seed, max_bytes, echo=echo,
                 force=force, memory=None if memory is None else parse_size(memory, "--memory"),

@@ -205,11 +205,14 @@ def same_kind(args, root):
     out = {"load_before": os.getloadavg(), "kinds": {}}
     summary = []
     for kind, d in sets.items():
+        if args.kinds and kind not in args.kinds.split(","):
+            continue
         model = os.path.join(root, f"same-{kind}.lcmodel")
         if args.model_dir and os.path.exists(os.path.join(args.model_dir, f"same-{kind}.lcmodel")):
             model = os.path.join(args.model_dir, f"same-{kind}.lcmodel")
         else:
-            train_image([d["train"]], model, time_limit=args.time_limit, force=True)
+            train_image([d["train"]], model, time_limit=args.time_limit, force=True, colour=args.colour,
+                        predictor=args.predictor)
         msize = os.path.getsize(model)
         rows = [IB.bench_file(f, model) for f in IB.image_files([d["test"]])]
         print(f"\n== same-kind {kind}: {d['test']} (model {msize:,} bytes)")
@@ -243,6 +246,12 @@ def main():
                     help="the same-kind bench: a model per kind (8-bit grey, RGB, 16-bit) trained on tiles "
                          "of the images whose other tiles it is tested on")
     ap.add_argument("--model-dir", default=None, help="with --same-kind: reuse same-KIND.lcmodel from here")
+    ap.add_argument("--kinds", default=None, help="with --same-kind: only these kinds (comma-separated: "
+                    "grey8, rgb8, medical16)")
+    ap.add_argument("--colour", default="rct-grad", choices=["shift", "rct", "rct-grad"],
+                    help="with --same-kind: the colour mode the models are trained with (train --colour)")
+    ap.add_argument("--predictor", default="gap", choices=["med", "gap"],
+                    help="with --same-kind: the predictor the models are trained with (train --predictor)")
     args = ap.parse_args()
     root = args.keep or tempfile.mkdtemp(prefix="lcodec-images-")
     if args.same_kind:

@@ -842,6 +842,7 @@ def test_train_image_cli(tmp_path):
     params = load_model(str(out)).inner.params  # the defaults: both per-image stages
     assert params["adapt"] == {"r8": 4096} and params["structure"] == {"k": {"r8": 32}, "cap": 12, "decay": 0, "blend": 1}
     assert "law" not in params  # the law stage is for 16-bit samples only
+    assert "colour" not in params and params["predictor"] == "gap"  # grey images: no colour mode; gap by default
     data = _pgm(_sample("page", 30, 30))
     blob = lcodec.pack(data, model=str(out))
     assert lcodec.info(blob)["frames"][0]["method"] == "modelled/image"

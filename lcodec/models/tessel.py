@@ -6,7 +6,16 @@ samples already coded. For each sub-pixel (row r, column c, channel ch):
 
     pred   the median edge predictor on W, N, NW (published as part of LOCO-I), for
            channel ch > 0 plus the residual of channel ch-1 of the same pixel
-           (chan_shift), clamped to the sample range
+           (chan_shift), clamped to the sample range. With colour "rct" (a later model
+           version; lcodec/models/colour.py), an RGB image is coded as G, B, R and channels
+           B and R are seen as the chroma planes B - G and R - G of the reversible component
+           transform (ITU-T T.800 Annex G): their neighbours, differences and median
+           prediction are taken in the chroma plane, and pred = that prediction + G of
+           the pixel, clamped to the sample range. With predictor "gap" (a later model
+           version; lcodec/models/tessel_predict.py), gradient-adjusted prediction on W, WW,
+           N, NW, NE, NN, NNE takes the median predictor's place, clamped to the sample range;
+           colour rct-grad: as rct, and for an 8-bit chroma sample the last slot holds G's
+           change from W and from N at this pixel (15 x 15 levels)
     slots  15 integer contexts, each quantised to 63 levels (`_q`: sign and magnitude in
            half-octaves): N-NW, NW-W, NE-N, W-WW, NN-N, NNE-NE, NEE-NE, the residuals
            of W, N, NW, NE and WW, the residuals of channels ch-1 and ch-2 of this pixel,
@@ -40,6 +49,7 @@ from contextlib import contextmanager
 import numpy as np
 from numba import njit
 
+from .tessel_predict import _gap, _pv, _q16
 from .weft import BACKENDS
 from .strata import Strata
 
@@ -55,6 +65,13 @@ CHUNK = 8192  # symbols per teacher-pass batch
 HI_OFFSET = 128  # 16-bit residuals are offset so that -128..127 all have high byte 0
 FLAG_BIG_ENDIAN, FLAG_SIGNED = 1, 2
 PAYLOAD_VERSION = 1
+# colour modes (the internal `shift` of `_context`): 0 none, 1 the residual of channel ch-1 added to
+# the prediction (params chan_shift), COLOUR_RCT: params colour "rct" (lcodec/models/colour.py)
+COLOUR_RCT = 2
+COLOUR_RCT_GRAD = 3  # colour "rct-grad": rct, and an 8-bit chroma sample's last slot holds G's gradients here
+COLOUR_MODES = ("shift", "rct", "rct-grad")
+RCT_ORDER = (1, 2, 0)  # RGB coded as G, B, R: channel 0 first, so the chroma planes B-G, R-G fit 8 bits
+RCT_BACK = (2, 0, 1)  # coded order back to R, G, B
 N_CLASSES = 16  # activity classes of the adaptive counts
 COUNT_LIMIT = 4096  # a context's counts are halved past this total, to keep adapting
 CTX_BASE = {"r8": 0, "r16h": N_CLASSES, "r16l": 2 * N_CLASSES}  # rows of the count table
@@ -113,39 +130,48 @@ def _q(d):
 
 
 @njit(cache=True, nogil=True)
-def _context(v, e, r, c, ch, cols, maxv, shift, idx):
+def _context(v, e, r, c, ch, cols, maxv, shift, gap, idx):
     """Prediction and the 14 neighbourhood slots (as embedding rows) of sub-pixel (r, c, ch).
     Reads only samples coded before it (rows above up to column c+2, this row left of c,
-    channels before ch of this pixel)."""
+    channels before ch of this pixel). With shift == COLOUR_RCT on 3 channels (coded G, B, R),
+    channels 1 and 2 are seen as their difference from channel 0 (`_pv`)."""
+    sub = shift >= COLOUR_RCT and v.shape[2] == 3 and ch > 0
     if c > 0:
-        W = v[r, c - 1, ch]
+        W = _pv(v, r, c - 1, ch, sub)
     elif r > 0:
-        W = v[r - 1, c, ch]
+        W = _pv(v, r - 1, c, ch, sub)
     else:
         W = 0
-    WW = v[r, c - 2, ch] if c > 1 else W
-    N = v[r - 1, c, ch] if r > 0 else W
-    NW = v[r - 1, c - 1, ch] if (r > 0 and c > 0) else N
-    NE = v[r - 1, c + 1, ch] if (r > 0 and c + 1 < cols) else N
-    NEE = v[r - 1, c + 2, ch] if (r > 0 and c + 2 < cols) else NE
-    NN = v[r - 2, c, ch] if r > 1 else N
-    NNE = v[r - 2, c + 1, ch] if (r > 1 and c + 1 < cols) else NE
+    WW = _pv(v, r, c - 2, ch, sub) if c > 1 else W
+    N = _pv(v, r - 1, c, ch, sub) if r > 0 else W
+    NW = _pv(v, r - 1, c - 1, ch, sub) if (r > 0 and c > 0) else N
+    NE = _pv(v, r - 1, c + 1, ch, sub) if (r > 0 and c + 1 < cols) else N
+    NEE = _pv(v, r - 1, c + 2, ch, sub) if (r > 0 and c + 2 < cols) else NE
+    NN = _pv(v, r - 2, c, ch, sub) if r > 1 else N
+    NNE = _pv(v, r - 2, c + 1, ch, sub) if (r > 1 and c + 1 < cols) else NE
     eW = e[r, c - 1, ch] if c > 0 else 0
     eWW = e[r, c - 2, ch] if c > 1 else 0
     eN = e[r - 1, c, ch] if r > 0 else 0
     eNW = e[r - 1, c - 1, ch] if (r > 0 and c > 0) else 0
     eNE = e[r - 1, c + 1, ch] if (r > 0 and c + 1 < cols) else 0
-    mn = min(N, W)
-    mx = max(N, W)
-    if NW >= mx:
-        p = mn
-    elif NW <= mn:
-        p = mx
+    if gap:  # gradient-adjusted prediction instead (params predictor "gap")
+        p = _gap(W, WW, N, NW, NE, NN, NNE, 16 if maxv > 255 else 1)
+        if not sub:
+            p = min(max(p, 0), maxv)
     else:
-        p = N + W - NW
+        mn = min(N, W)
+        mx = max(N, W)
+        if NW >= mx:
+            p = mn
+        elif NW <= mn:
+            p = mx
+        else:
+            p = N + W - NW
     e1 = e[r, c, ch - 1] if ch >= 1 else 0
     e2 = e[r, c, ch - 2] if ch >= 2 else 0
-    if shift:
+    if sub:  # chroma plane: its median prediction plus this pixel's channel 0, in sample range
+        p = min(max(p + v[r, c, 0], 0), maxv)
+    elif shift:
         p += e1
         p = min(max(p, 0), maxv)
     idx[0] = 0 * Q + _q(N - NW)
@@ -174,6 +200,12 @@ def _context(v, e, r, c, ch, cols, maxv, shift, idx):
     idx[N_SLOTS] = (((r & 1) << 7) | ((c & 1) << 6) | (np.int64(W == NW) << 5) | (np.int64(N == NW) << 4)
                     | (np.int64(W == WW) << 3) | (np.int64(N == NN) << 2)
                     | (0 if b == 0 else (1 if b <= 3 else (2 if b <= 6 else 3))))
+    idx[N_SLOTS + 1] = 0  # the last slot's level for an 8-bit sample (a 16-bit low byte: the high byte)
+    if sub and shift == COLOUR_RCT_GRAD:  # G here against G at W and at N (W and N as above)
+        g = v[r, c, 0]
+        gw = v[r, c - 1, 0] if c > 0 else (v[r - 1, c, 0] if r > 0 else g)
+        gn = v[r - 1, c, 0] if r > 0 else gw
+        idx[N_SLOTS + 1] = 16 * _q16(g - gw) + _q16(g - gn)
     return p
 
 
@@ -442,18 +474,18 @@ def _mix_chunk(tab, ctx, syms, gid, Ks, counts, tots, mid, ctx2, K2s, counts2, t
 
 
 @njit(cache=True, nogil=True)
-def _teacher(v, deep, shift, e, idx, syms, preds, ctx, ctx2):
+def _teacher(v, deep, shift, gap, e, idx, syms, preds, ctx, ctx2):
     """Every sub-symbol of a known image, in raster order (row, column, channel, byte):
     embedding rows, symbols; fills the residual plane e as it goes."""
     rows, cols, C = v.shape
     maxv = 65535 if deep else 255
     P = 2 if deep else 1
-    tmp = np.empty(N_SLOTS + 1, np.int64)
+    tmp = np.empty(N_SLOTS + 2, np.int64)
     k = 0
     for r in range(rows):
         for c in range(cols):
             for ch in range(C):
-                p = _context(v, e, r, c, ch, cols, maxv, shift, tmp)
+                p = _context(v, e, r, c, ch, cols, maxv, shift, gap, tmp)
                 x = v[r, c, ch]
                 e[r, c, ch] = x - p
                 if deep:
@@ -473,7 +505,7 @@ def _teacher(v, deep, shift, e, idx, syms, preds, ctx, ctx2):
                 else:
                     for j in range(N_SLOTS - 1):
                         idx[k, j] = tmp[j]
-                    idx[k, HI_SLOT] = HI_SLOT * Q
+                    idx[k, HI_SLOT] = HI_SLOT * Q + tmp[N_SLOTS + 1]
                     syms[k] = (x - p) & 0xFF
                     ctx[k] = tmp[HI_SLOT]
                     ctx2[k] = tmp[N_SLOTS]
@@ -483,18 +515,18 @@ def _teacher(v, deep, shift, e, idx, syms, preds, ctx, ctx2):
 
 
 @njit(cache=True, nogil=True)
-def _gather(v, e, r0, r1, t, ch, shift, deep, idx, preds, cls, keys):
+def _gather(v, e, r0, r1, t, ch, shift, gap, deep, idx, preds, cls, keys):
     """Contexts of channel ch of the pixels on wavefront step t, rows r0..r1-1."""
     cols = v.shape[1]
     maxv = 65535 if deep else 255
-    tmp = np.empty(N_SLOTS + 1, np.int64)
+    tmp = np.empty(N_SLOTS + 2, np.int64)
     for i in range(r1 - r0):
         r = r0 + i
         c = t - DELAY * r
-        preds[i] = _context(v, e, r, c, ch, cols, maxv, shift, tmp)
+        preds[i] = _context(v, e, r, c, ch, cols, maxv, shift, gap, tmp)
         for j in range(N_SLOTS - 1):
             idx[i, j] = tmp[j]
-        idx[i, HI_SLOT] = HI_SLOT * Q
+        idx[i, HI_SLOT] = HI_SLOT * Q + (0 if deep else tmp[N_SLOTS + 1])
         cls[i] = tmp[HI_SLOT]
         keys[i] = tmp[N_SLOTS]
 
@@ -565,10 +597,12 @@ def check_net(params: dict, arrays: dict, prefix: str) -> None:
         raise ValueError("biases out of range")
 
 
-def raster_features(v: np.ndarray, shift: int, with_ctx: bool = False):
+def raster_features(v: np.ndarray, shift: int, with_ctx: bool = False, gap: int = 0):
     """(embedding rows (n, N_SLOTS), symbols (n,), roles (n,): 0 r8, 1 r16h, 2 r16l) of every
     sub-symbol of samples v (rows, cols, channels; uint8 or uint16), in raster order."""
     rows, cols, C = v.shape
+    if shift >= COLOUR_RCT and C == 3:
+        v = v[:, :, RCT_ORDER]
     deep = v.dtype == np.uint16
     P = 2 if deep else 1
     n = rows * cols * C * P
@@ -579,7 +613,7 @@ def raster_features(v: np.ndarray, shift: int, with_ctx: bool = False):
     preds = np.empty(rows * cols * C, np.int64)
     ctx = np.empty(n, np.int16)
     ctx2 = np.empty(n, np.int16)
-    _teacher(vi, deep, shift, e, idx, syms, preds, ctx, ctx2)
+    _teacher(vi, deep, shift, gap, e, idx, syms, preds, ctx, ctx2)
     roles = np.tile(np.array([1, 2], np.int8), n // 2) if deep else np.zeros(n, np.int8)
     if with_ctx:
         return idx, syms, roles, ctx, ctx2
@@ -594,9 +628,16 @@ class Tessel:
     def __init__(self, params: dict, arrays: dict, backend: str = "numpy"):
         p = params
         if not isinstance(p, dict) or not {"embed", "hidden", "chan_shift", "roles", "bytes"} <= set(p) <= {
-                "embed", "hidden", "chan_shift", "roles", "bytes", "adapt", "structure", "law"}:
+                "embed", "hidden", "chan_shift", "roles", "bytes", "adapt", "structure", "law", "colour", "predictor"}:
             raise ValueError("tessel needs embed, hidden, chan_shift, roles and bytes "
-                             "(and optionally adapt, structure, law)")
+                             "(and optionally adapt, structure, law, colour, predictor)")
+        if p.get("colour", "shift") not in COLOUR_MODES:  # absent: "shift" (older files)
+            raise ValueError(f"colour must be one of {', '.join(COLOUR_MODES)}")
+        if p.get("predictor", "med") not in ("med", "gap"):  # absent: "med" (older files)
+            raise ValueError("predictor must be med or gap")
+        self.gap = int(p.get("predictor") == "gap")
+        if p.get("colour", "shift") != "shift" and p["chan_shift"] != 1:
+            raise ValueError("colour rct goes with chan_shift 1 (used for layouts other than RGB)")
         adapt = p.get("adapt", {})
         if not isinstance(adapt, dict) or not set(adapt) <= set(p["roles"]) or not all(
                 type(k) is int and 0 <= k <= 1 << 16 for k in adapt.values()):
@@ -656,7 +697,7 @@ class Tessel:
             self.role_params[role] = dict(rp, window=N_SLOTS, embed=E, hidden=H)
         self.params = p
         self.arrays = arrays
-        self.shift = int(p["chan_shift"])
+        self.shift = {"rct": COLOUR_RCT, "rct-grad": COLOUR_RCT_GRAD}.get(p.get("colour"), int(p["chan_shift"]))
         self.bytes_model = Strata()  # preset o6m: side bytes and byte-mode frames
         self.set_backend(backend)
 
@@ -692,7 +733,7 @@ class Tessel:
 
     def teacher(self, v: np.ndarray):
         """(embedding rows, symbols, roles) of every sub-symbol in raster order."""
-        return raster_features(v, self.shift)
+        return raster_features(v, self.shift, gap=self.gap)
 
     def teacher_tables(self, v: np.ndarray, deep: bool):
         """Yield (symbols, tables) in coding order, chunk by chunk (the encoder's pass).
@@ -701,7 +742,7 @@ class Tessel:
         rows, cols, C = v.shape
         P = 2 if deep else 1
         vv = v.astype(np.uint16) if deep else v.astype(np.uint8)
-        idx, syms, roles, ctx, ctx2 = raster_features(vv, self.shift, with_ctx=True)
+        idx, syms, roles, ctx, ctx2 = raster_features(vv, self.shift, with_ctx=True, gap=self.gap)
         order = coding_order(rows, cols, C, P)
         names = ("r16h", "r16l") if deep else ("r8",)
         K = np.array([self.adapt.get(r, 0) for r in ROLES], np.int64)
@@ -829,7 +870,7 @@ class Tessel:
                 if m <= 0:
                     continue
                 for ch in range(C):
-                    _gather(v, e, r0, r1, t, ch, self.shift, deep, idx, preds, cls, keys)
+                    _gather(v, e, r0, r1, t, ch, self.shift, self.gap, deep, idx, preds, cls, keys)
                     if deep:
                         hi = table("r16h", m, N_CLASSES + cls[:m], N_KEYS + keys[:m])
                         idx[:m, HI_SLOT] = HI_SLOT * Q + hi
@@ -839,4 +880,4 @@ class Tessel:
                     else:
                         hi, lo = zero, table("r8", m, cls[:m].copy(), keys[:m].copy())
                     _apply(v, e, r0, r1, t, ch, deep, preds, hi, lo)
-        return v
+        return v[:, :, RCT_BACK] if self.shift >= COLOUR_RCT and C == 3 else v

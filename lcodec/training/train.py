@@ -383,7 +383,7 @@ def read_images(paths: list[str], echo=print) -> list[tuple[str, np.ndarray]]:
 def train_image(corpus: list[str], out: str, time_limit: float = 120.0, preset: str = "small",
                 seed: int = 0, echo=print, force: bool = False, chan_shift: int = 1, adapt_k=str(ADAPT_K),
                 structure_k: int = STRUCTURE_K, law: bool = True, augment: bool = True,
-                record_names: bool = False) -> dict:
+                record_names: bool = False, colour: str = "rct-grad", predictor: str = "gap") -> dict:
     """Fit a tessel pixel model: one network per role present in the corpus (8-bit samples;
     16-bit high and low bytes), quantisation-aware, then export and measure it. With
     `augment`, the training images' mirrored, flipped and transposed copies join the
@@ -392,7 +392,15 @@ def train_image(corpus: list[str], out: str, time_limit: float = 120.0, preset: 
         import torch
     except ImportError:
         raise UsageError("training needs torch: run scripts/setup.sh (installs torch==2.13.0)") from None
-    from ..models.tessel import EMB_ROWS, N_SLOTS, Tessel, raster_features
+    from ..models.tessel import COLOUR_MODES, COLOUR_RCT, COLOUR_RCT_GRAD, EMB_ROWS, N_SLOTS, Tessel, raster_features
+
+    if colour not in COLOUR_MODES:
+        raise UsageError(f"unknown colour mode {colour!r} (have: {', '.join(COLOUR_MODES)})")
+    if colour != "shift" and chan_shift != 1:
+        raise UsageError(f"colour {colour} goes with chan_shift 1")
+    if predictor not in ("med", "gap"):
+        raise UsageError(f"unknown predictor {predictor!r} (have: med, gap)")
+    mode = {"rct": COLOUR_RCT, "rct-grad": COLOUR_RCT_GRAD}.get(colour, chan_shift)
 
     if preset not in IMAGE_PRESETS:
         raise UsageError(f"unknown preset {preset!r} (have: {', '.join(IMAGE_PRESETS)})")
@@ -429,7 +437,7 @@ def train_image(corpus: list[str], out: str, time_limit: float = 120.0, preset: 
         originals = int(sum(v.size for v in parts["train"]))
         copies = augmented(parts["train"]) if augment else []
         parts["train"] += copies
-        feats = {k: [raster_features(np.ascontiguousarray(v), chan_shift) for v in vs] for k, vs in parts.items()}
+        feats = {k: [raster_features(np.ascontiguousarray(v), mode, gap=int(predictor == "gap")) for v in vs] for k, vs in parts.items()}
         roles = ("r16h", "r16l") if deep else ("r8",)
         for j, role in enumerate(roles):
             got = {}
@@ -501,6 +509,10 @@ def train_image(corpus: list[str], out: str, time_limit: float = 120.0, preset: 
                     echo("  validation stopped improving")
                 break
     params = {"embed": cfg["embed"], "hidden": cfg["hidden"], "chan_shift": chan_shift, "roles": {}, "bytes": "o6m"}
+    if colour != "shift" and any(v.shape[2] == 3 for _, v in imgs):  # absent means "shift" (older
+        params["colour"] = colour  # files); recorded only where it changes something: RGB training images
+    if predictor != "med":  # absent means "med"
+        params["predictor"] = predictor
     arrays = {}
     for r, net in nets.items():
         if best_state[r] is not None:
