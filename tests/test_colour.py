@@ -14,7 +14,7 @@ from lcodec.models.colour import rct_forward, rct_forward_int, rct_inverse, rct_
 from lcodec.models.tessel import (COLOUR_RCT, COLOUR_RCT_GRAD, HI_SLOT, Q, RCT_ORDER, Tessel, coding_order,
                                   raster_features)
 
-from test_images import LAW, STRUCT, _pgm, _sample, _tables, random_tessel
+from test_images import LAW, STRUCT, _pgm, _sample, _tables, check_step_equals_parallel, random_tessel
 
 PIL = pytest.importorskip("PIL.Image", reason="Pillow is needed (pip install -e .[test])")
 GOLDEN = os.path.join(os.path.dirname(__file__), "golden")
@@ -169,22 +169,10 @@ def test_rct_leaves_other_layouts_as_chan_shift_1(colour):
 def test_rct_parallel_pass_equals_step_pass(kind, stages, colour):
     """The encoder's teacher-forced tables equal the decoder's step tables bit for bit, and the
     decoded samples are the originals (channel order restored), numpy and torch backends."""
-    from lcodec.frames.imageframe import decode_image_frame, encode_image_frame
-    from lcodec.inputs.layout import Layout, region_values, values_region
     m = rct_model(colour, structure=STRUCT if stages else None, law=LAW if stages == "law" else None)
     a = _sample("astronaut", 13, 17)
     a, lay_args = (a.astype(np.uint16) * 257 + 5, (2, 0)) if kind == "rgb16" else (a, (1, 0))
-    lay = Layout(5, a.shape[0], a.shape[1], 3, *lay_args)
-    raw = b"head!" + values_region(a, lay) + b"tail"
-    payload, _, _ = encode_image_frame(m, raw, lay)
-    rec = []
-    assert decode_image_frame(m, payload, len(raw), rec) == raw
-    step = np.concatenate(rec)
-    v = region_values(raw, lay)
-    par = _tables(m, v, lay.deep)
-    assert np.array_equal(step, par) and (par == np.floor(par)).all() and (par >= 1).all()
-    m.set_backend("torch")
-    assert np.array_equal(_tables(m, v, lay.deep), par)
+    check_step_equals_parallel(m, a, lay_args)
 
 
 @pytest.mark.parametrize("colour", ["rct", "rct-grad"])

@@ -530,9 +530,16 @@ def test_parallel_pass_equals_step_pass(kind, adapt):
         a, lay_args = (_sample("astronaut", 9, 12).astype(np.uint16) * 257), (2, 0)
     else:
         a, lay_args = _sample("camera", 21, 10), (1, 0)
+    check_step_equals_parallel(m, a, lay_args)
+
+
+def check_step_equals_parallel(m, a, lay_args):
+    """Samples a (rows, columns[, channels]) framed between other bytes, coded and decoded
+    with m: the decode gives the bytes back, and the decoder's step tables equal the
+    teacher-forced tables bit for bit (positive integers, float64), on both backends."""
+    from lcodec.inputs.layout import Layout, values_region
     if a.ndim == 2:
         a = a[:, :, None]
-    from lcodec.inputs.layout import Layout, values_region
     lay = Layout(5, a.shape[0], a.shape[1], a.shape[2], *lay_args)
     raw = b"head!" + values_region(a, lay) + b"tail"
     payload, _, _ = encode_image_frame(m, raw, lay)

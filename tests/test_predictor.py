@@ -10,7 +10,7 @@ import pytest
 import lcodec
 from lcodec.models.tessel import COLOUR_RCT, RCT_ORDER, Tessel, raster_features
 
-from test_images import LAW, STRUCT, _pgm, _sample, _tables, random_tessel
+from test_images import LAW, STRUCT, _pgm, _sample, check_step_equals_parallel, random_tessel
 
 GOLDEN = os.path.join(os.path.dirname(__file__), "golden")
 
@@ -100,25 +100,13 @@ def test_gap_symbols_match_a_python_integer_reference(layout, rct):
 @pytest.mark.parametrize("stages", [None, "structure", "law"])
 @pytest.mark.parametrize("kind", ["grey8", "rgb8-rct", "grey16", "rgb16"])
 def test_gap_parallel_pass_equals_step_pass(kind, stages):
-    from lcodec.frames.imageframe import decode_image_frame, encode_image_frame
-    from lcodec.inputs.layout import Layout, region_values, values_region
     m = gap_model("rct" if kind.endswith("rct") else "shift", structure=STRUCT if stages else None,
                   law=LAW if stages == "law" else None)
     a = _sample("astronaut" if kind.startswith("rgb") else "camera", 13, 17)
-    if a.ndim == 2:
-        a = a[:, :, None]
     deep = "16" in kind
     if deep:
         a = a.astype(np.uint16) * 257 + 5
-    lay = Layout(5, a.shape[0], a.shape[1], a.shape[2], 2 if deep else 1, 0)
-    raw = b"head!" + values_region(a, lay) + b"tail"
-    payload, _, _ = encode_image_frame(m, raw, lay)
-    rec = []
-    assert decode_image_frame(m, payload, len(raw), rec) == raw
-    par = _tables(m, region_values(raw, lay), deep)
-    assert np.array_equal(np.concatenate(rec), par) and (par == np.floor(par)).all() and (par >= 1).all()
-    m.set_backend("torch")
-    assert np.array_equal(_tables(m, region_values(raw, lay), deep), par)
+    check_step_equals_parallel(m, a, (2 if deep else 1, 0))
 
 
 def test_gap_round_trips_and_parameter_checked(tmp_path):
