@@ -30,6 +30,7 @@ chooses where); a minimised one becomes a regression test in tests/test_fuzz_reg
 """
 from __future__ import annotations
 
+import contextlib
 import json
 import logging
 import os
@@ -222,29 +223,33 @@ def _scan_decode(model, fr) -> bytes:
     return raw
 
 
+@contextlib.contextmanager
+def _salvage_decoding_with(decode):
+    """salvage's frame decoder replaced by `decode` while the block runs."""
+    S.decode_record = decode
+    try:
+        yield
+    finally:
+        S.decode_record = _REAL_DECODE
+
+
 def _learn_seed_records() -> None:
     """Decode every seed once with the real decoder, remembering each record's content."""
-    S.decode_record = _learning_decode
-    try:
+    with _salvage_decoding_with(_learning_decode):
         for s in seeds("salvage"):
             try:
                 S.salvage(_split(s, reseal_archive))
             except REFUSALS:
                 pass
-    finally:
-        S.decode_record = _REAL_DECODE
 
 
 def t_salvage_scan(data: bytes) -> None:
     blob = _split(data, reseal_archive)
-    S.decode_record = _scan_decode
-    try:
-        res = S.salvage(blob)
-        res.report()
-    except REFUSALS:
-        return
-    finally:
-        S.decode_record = _REAL_DECODE
+    with _salvage_decoding_with(_scan_decode):
+        try:
+            S.salvage(blob).report()
+        except REFUSALS:
+            return
 
 
 def t_modelfile(data: bytes) -> None:
