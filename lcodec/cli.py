@@ -60,26 +60,6 @@ def _silence_stdout():
         pass
 
 
-def _kernels_without_blas():
-    """Load numba's compiled-kernel support with scipy hidden for that one import.
-
-    The first kernel a process runs makes numba look for scipy's BLAS (for its np.dot),
-    which imports scipy.linalg: about 0.2 s and 13 MB, a third of what packing a 40 KB
-    file costs beyond the imports. No lcodec kernel calls BLAS, so pack, unpack and verify
-    let that look fail fast; scipy stays importable for anything that needs it later
-    (the image readers, the bench). Nothing is hidden when scipy is loaded already."""
-    if "scipy" in sys.modules or "numba.np.arraymath" in sys.modules:
-        return
-    sys.modules["scipy"] = None  # makes `import scipy...` raise ImportError
-    try:
-        import numba.np.arraymath  # noqa: F401
-    except Exception:  # leave numba to report whatever it reports at the first kernel
-        pass
-    finally:
-        if sys.modules.get("scipy", 0) is None:
-            del sys.modules["scipy"]
-
-
 def _on_signal(signum, frame):
     # once: a second signal during the cleanup must not cut it short
     signal.signal(signal.SIGINT, signal.SIG_IGN)
@@ -285,7 +265,6 @@ def pack(inputs, output, model, frame_size, jobs, cluster, per_file, resume, no_
     multi-member archive (paths, sizes, modes and SHA-256 of each member are kept).
     Frames are read, coded and written as they go: memory does not grow with the input.
     """
-    _kernels_without_blas()
     from . import api
 
     jobs, cluster = _where(jobs, cluster)
@@ -398,7 +377,6 @@ def unpack(archive, output, model, force, salvage_mode, keep_damaged, report_pat
     written under the final name. With --salvage, a damaged archive gives back what is
     undamaged (see README.md, "Damaged archives").
     """
-    _kernels_without_blas()
     from . import api
 
     jobs, cluster = _where(jobs, cluster)
@@ -461,7 +439,6 @@ def unpack(archive, output, model, force, salvage_mode, keep_damaged, report_pat
 @guarded
 def verify(archive, against, model, threads, jobs, cluster, ceiling, quiet):
     """Decode an archive and check every checksum; exit 0 when exact, 1 when not."""
-    _kernels_without_blas()
     from . import api
 
     jobs, cluster = _where(jobs, cluster)

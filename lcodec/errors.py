@@ -34,9 +34,10 @@ class UsageError(LcodecError):
 
 
 # Signals the CLI's handler has taken (lcodec/cli.py), in order. The handler raises at once,
-# but an exception raised while numba is entering object mode is lost there (numba
-# deserialises the called function at each entry and drops what that raises), so the decode
-# loop also looks here at every step (coding/coder.py) and raises what was lost.
+# but an exception raised where Python cannot pass it on is lost there (at the edge of the
+# ctypes callback through which a compiled decode loop asks the coder for each step's
+# symbols, and in llvmlite's callbacks while numba compiles), so the decode loop also looks
+# here at every step (coding/coder.py) and raises what was lost.
 PENDING_SIGNALS: list = []
 
 
@@ -50,8 +51,8 @@ def pending_interruption() -> BaseException | None:
 
 def raise_pending() -> None:
     """Raise the interruption of a signal the CLI's handler took (pending_interruption), if
-    any. A handler's exception can be lost where Python runs the handler (numba's entry into
-    object mode, a ctypes callback such as llvmlite's while numba compiles, a finaliser:
+    any. A handler's exception can be lost where Python runs the handler (the edge of a ctypes
+    callback: the decode loop's, or llvmlite's while numba compiles; a finaliser:
     Python prints "Exception ignored" there and goes on), so outputs are never committed and
     long work never goes on after a signal: fsio checks here before every rename into a
     final name, and the CLI at each progress report."""

@@ -349,9 +349,16 @@ def _journal_frames(path) -> int:
         return 0
 
 
+def _more_text(big: bytes) -> list[bytes]:
+    """Six distinct texts made from `big` (about 0.8 MB): enough that a resumable job runs
+    past its first journal sync (JOURNAL_EVERY_S) on a quiet machine. 4 KB frames cost
+    little since the kernels stopped allocating, and two copies were done in 0.3 s."""
+    return [big, big[::-1], big.swapcase(), big.upper(), big.lower()[::-1], big.replace(b" ", b"\t")]
+
+
 def test_one_archive_job_resumes_after_sigkill_with_the_same_bytes(tree, big, tmp_path):
-    (tree / "big.txt").write_bytes(big)
-    (tree / "big-reversed.txt").write_bytes(big[::-1])
+    for i, text in enumerate(_more_text(big)):
+        (tree / ("big.txt" if i == 0 else f"big.txt.{i}")).write_bytes(text)
     out = tmp_path / "site.lcodec"
     journal = tmp_path / ".site.lcodec.lcodec-journal"
     args = ["pack", tree, "-o", out, "--frame-size", 4096, "--resume", "--jobs", 2]
@@ -370,9 +377,10 @@ def test_one_archive_job_resumes_after_sigkill_with_the_same_bytes(tree, big, tm
 
 
 def test_resume_refuses_a_changed_input(tree, big, tmp_path):
-    # twice the text: one process codes 300 KB in about one journal interval on a quiet
-    # machine, and could finish before the job is caught with 4 frames journalled
-    (tree / "big.txt").write_bytes(big + big[::-1])
+    # six texts: one process could otherwise finish before the job is caught with 4 frames
+    # journalled (_more_text)
+    for i, text in enumerate(_more_text(big)):
+        (tree / ("big.txt" if i == 0 else f"big.txt.{i}")).write_bytes(text)
     out = tmp_path / "site.lcodec"
     journal = tmp_path / ".site.lcodec.lcodec-journal"
     args = ["pack", tree, "-o", out, "--frame-size", 4096, "--resume"]

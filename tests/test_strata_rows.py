@@ -74,9 +74,10 @@ def test_rows_and_blend_match_python_integers(seed):
 
 
 def test_emit_is_the_exact_float_of_each_count():
-    """The coder's table is p + 1 as float64; _emit builds it from the bits of 2**52 (a
-    vector operation) instead of converting. It must equal Python's own int -> float for
-    every integer below 2**52, the edges included (the models' counts are below 2**24)."""
+    """The coder's table is p + 1 as float64; _emit converts through int32 (a vector
+    operation) instead of int64. It must equal Python's own int -> float for every value
+    up to the int32 limit, the edges included; the models' values stay far below it (the
+    next test)."""
     from numba import njit
 
     @njit
@@ -84,9 +85,28 @@ def test_emit_is_the_exact_float_of_each_count():
         S._emit(p, out)
 
     rng = np.random.default_rng(7)
-    for hi in (2, 1 << 24, 1 << 40, (1 << 52) - 1):
+    for hi in (2, 1 << 21, 1 << 24, (1 << 31) - 1):
         p = rng.integers(0, hi, 256).astype(np.int64)
         p[0], p[1] = 0, hi - 1
         out = np.empty(256, np.float64)
         emit(p, out)
         assert [float(x) for x in out] == [float(int(x) + 1) for x in p]
+
+
+def test_the_models_tables_stay_far_below_the_int32_limit(stdlib_text):
+    """_emit's int32 conversion needs every p + 1 below 2**31. A table's total is about
+    2**P_BITS (2**20), so no entry comes near; checked on real text for strata and for the
+    default braid recipe (the golden tiny model, escape weights, repeats and secondary
+    estimation on)."""
+    import os
+
+    from lcodec.coding.coder import lane_layout
+    from lcodec.models import load_model
+
+    data = np.frombuffer(stdlib_text[:60_000], np.uint8)
+    golden = os.path.join(os.path.dirname(__file__), "golden", "braid-mixed-tiny.lcmodel")
+    for model in (S.Strata(), load_model(golden)):
+        for lanes in (1, 16):
+            starts, lengths = lane_layout(len(data), lanes)
+            top = max(float(tab.max()) for _, tab in model.teacher_chunks(data, starts, lengths))
+            assert 1 < top < 2.0 ** 24, (model, lanes, top)

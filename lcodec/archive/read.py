@@ -23,7 +23,7 @@ from ..frames import decode_record, frame_fields, image_guarantee
 from ..fsio import OutFile, _remove_quietly, safe_member_path
 from ..inputs.images import rebuild
 from ..models import for_identity
-from ..models.tessel import limit_blas, one_blas_thread
+from ..models.tessel_common import limit_blas, one_blas_thread
 from . import runners
 from .plan import KEPT_MODE_BITS
 

@@ -30,6 +30,7 @@ stop the decoder within CHECK_EVERY symbols, not at the claimed length. Each che
 """
 from __future__ import annotations
 
+import ctypes
 import itertools
 
 import numpy as np
@@ -159,12 +160,15 @@ def encode_frame(model, data: bytes, lanes: int, coder: str = "queue", checks: b
 
 # Decoders in use by a model's compiled decode loop, by key (_Live). The loop runs the
 # model's step and asks step_symbols for the step's symbols without leaving compiled code
-# between steps (one object-mode call per step, where a Python loop paid the dispatch of
-# every model array, 5-15 us, per step). Only integers cross into object mode: the tables
-# are an array both sides already hold (bind_tables), since passing an array in or out of
-# object mode costs about 0.3-0.5 us each way; a step of at most PACKED symbols returns
-# them packed in its integer (8 bits each, lane 0 lowest), where storing them into the
-# symbols by step cost another 0.35 us, most of a one-lane step's Python side.
+# between steps (one call per step, where a Python loop paid the dispatch of every model
+# array, 5-15 us, per step). The call goes through ASK, a C function pointer (a ctypes
+# callback) that the loop receives as an argument: 0.2 us a call, where numba's object
+# mode took 1.0 us, and nothing for numba to compile when a process starts (object mode
+# was compiled afresh in every process, 0.1 s, and pulled in all of numba's lowering
+# registries, another 0.25 s and 15 MB). Only integers cross: the tables are an array both
+# sides already hold (bind_tables); a step of at most PACKED symbols returns them packed
+# in its integer (8 bits each, lane 0 lowest), where storing them into the symbols by step
+# cost another 0.35 us, most of a one-lane step's Python side.
 _LIVE: dict = {}
 _KEYS = itertools.count(1)
 PACKED = 4  # steps of at most this many symbols return them in step_symbols' integer
@@ -196,7 +200,7 @@ def step_symbols(key: int, m: int, t: int) -> int:
     step and returns m. -1 when the coded data cannot be decoded (the exception is kept for
     decode_frame to raise)."""
     live = _LIVE[key]
-    if PENDING_SIGNALS:  # a signal whose exception object mode lost
+    if PENDING_SIGNALS:  # a signal whose exception was lost at the callback's edge (_ask)
         live.err = errors.pending_interruption()
         return -1
     if live.m != m:
@@ -224,6 +228,27 @@ def step_symbols(key: int, m: int, t: int) -> int:
         return v
     live.by_step[t, :m] = got
     return m
+
+
+STEP_CALL = ctypes.CFUNCTYPE(ctypes.c_int64, ctypes.c_int64, ctypes.c_int64, ctypes.c_int64)
+
+
+def _ask(key: int, m: int, t: int) -> int:
+    """ASK's Python side: step_symbols(key, m, t) + 1, so that 0 is the one answer that
+    stops the loop. ctypes answers 0 by itself when an exception escapes a callback (it
+    reports it to sys.unraisablehook and goes on): that happens only to a signal's
+    exception raised at this function's edge, which PENDING_SIGNALS keeps for
+    decode_frame to raise."""
+    try:
+        return step_symbols(key, m, t) + 1
+    except BaseException as e:  # noqa: BLE001 - a signal's exception inside the call: kept, raised by decode_frame
+        live = _LIVE.get(key)
+        if live is not None and live.err is None:
+            live.err = e
+        return 0
+
+
+ASK = STEP_CALL(_ask)  # kept alive here for the life of the process: compiled loops hold its address
 
 
 def decode_frame(model, payload: bytes, n: int, lanes: int, coder: str = "queue", checks: bool = False) -> bytes:
@@ -256,7 +281,7 @@ def decode_frame(model, payload: bytes, n: int, lanes: int, coder: str = "queue"
                 done = run(key, active, by_step)
             finally:
                 err = _LIVE.pop(key).err
-            if err is None:  # the step whose object-mode call lost a signal's exception stops here
+            if err is None:  # the step whose callback lost a signal's exception stops here
                 err = errors.pending_interruption()
             if err is not None:
                 raise err

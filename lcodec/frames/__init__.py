@@ -33,7 +33,7 @@ def code_frame(model, work) -> tuple[bytes, float, bool, dict | None]:
 
 
 def _raise_pending() -> None:
-    """A signal taken while numba entered object mode comes out as some other error (or
+    """A signal taken at the edge of the decode loop's callback comes out as some other error (or
     none): raise the interruption instead of calling the frame damaged."""
     stop = pending_interruption()
     if stop is not None:

@@ -22,7 +22,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from ..models.tessel import FLAG_BIG_ENDIAN, FLAG_SIGNED, MAX_SAMPLES
+from ..models.tessel_common import FLAG_BIG_ENDIAN, FLAG_SIGNED, MAX_SAMPLES
 from .layout import FLAG_RECORD, Layout
 from .pngfilter import _unfilter
 

@@ -14,7 +14,7 @@ import numpy as np
 
 from ..errors import DataError
 from ..format.container import read_uvarint, uvarint
-from ..models.tessel import FLAG_BIG_ENDIAN, FLAG_SIGNED, MAX_SAMPLES, PAYLOAD_VERSION
+from ..models.tessel_common import FLAG_BIG_ENDIAN, FLAG_SIGNED, MAX_SAMPLES, PAYLOAD_VERSION
 
 FLAG_RECORD = 4  # the content is a pixel record (pixel-exact); else the file's own bytes
 REPLICATED_VERSION = 2  # payload version of a frame whose samples are an exact block replication

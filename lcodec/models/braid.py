@@ -35,7 +35,6 @@ from __future__ import annotations
 import threading
 
 import numpy as np
-from numba import njit
 
 from ..coding import coder as C
 from . import recall as R
@@ -340,15 +339,22 @@ def _after_chain(match, rc, mix, fork, b, hist, p, buf, cur, use_match, use_sse,
         _fork_predict(fork, b, hist, p, buf, cur, e)
 
 
-@njit(cache=True, nogil=True)
-def _teacher(corpus, state, match, data, starts, lengths, t0, t1, max_order, hash_log2, dfile, out_syms, out_tab, mix, fork, rc):
-    """Tables of steps t0..t1 for all active lanes, in coding order, updating state."""
+def new_work(n_lanes: int, max_order: int) -> tuple:
+    """Scratch of _teacher and _step, made once per frame: each lane's row slots and tags
+    per order, the distribution, a sink."""
+    nl = max(n_lanes, 1)
+    return (np.empty((nl, max_order + 1), np.int64), np.empty((nl, max_order + 1), np.uint64),
+            np.empty(256, np.int64), np.zeros(1, np.uint32))
+
+
+@kernel
+def _teacher(corpus, state, match, data, starts, lengths, t0, t1, max_order, hash_log2, dfile, out_syms, out_tab, mix, fork, rc,
+             work):
+    """Tables of steps t0..t1 for all active lanes, in coding order, updating state. work:
+    new_work's scratch (the kernel allocates nothing)."""
     hist, gen = state[3], state[4]
     nl = lengths.shape[0]
-    slots2 = np.empty((max(nl, 1), max_order + 1), np.int64)
-    checks2 = np.empty((max(nl, 1), max_order + 1), np.uint64)
-    sink = np.zeros(1, np.uint32)
-    p = np.empty(256, np.int64)
+    slots2, checks2, p, sink = work
     use_match = match[5][3] > 0 and corpus[5][0] == 0
     use_mix = mix[5][1] != 0
     use_sse = use_match and mix[5][2] != 0
@@ -431,15 +437,14 @@ def _step(corpus, state, match, starts, syms, t_prev, m_prev, m, max_order, hash
         S._emit(p, out_tab[b])
 
 
-@njit(cache=True, nogil=True)
-def _decode_steps(corpus, state, match, starts, max_order, hash_log2, dfile, tab, work, mix, fork, rc, key, active,
-                  by_step):
+@kernel
+def _decode_steps(corpus, state, match, starts, max_order, hash_log2, dfile, tab, work, mix, fork, rc, ask, key,
+                  active, by_step, prev):
     """Every decoder step of a frame in one compiled loop (as strata's _decode_steps)."""
-    prev = np.zeros(by_step.shape[1], np.int32)
     for t in range(active.shape[0]):
         _step(corpus, state, match, starts, prev, t - 1, active[t - 1] if t else 0, active[t], max_order, hash_log2,
               dfile, tab, work, mix, fork, rc)
-        if not S._symbols_of_step(key, tab, active[t], prev, by_step, t):
+        if not S._symbols_of_step(ask, key, tab, active[t], prev, by_step, t):
             return t
     return active.shape[0]
 
@@ -729,9 +734,11 @@ class Braid:
         start_cells = match[4].copy()
         start_recall = rc.cells.copy()
         corpus = self.frame_corpus(len(lengths))
+        work = new_work(len(lengths), f.max_order)
         try:
             yield from S.run_chunks(lengths, chunk_steps, lambda t0, t1, syms, tab: _teacher(
-                corpus, state, match, data, starts, lengths, t0, t1, f.max_order, hb, f._disc, syms, tab, mix, fork, rc))
+                corpus, state, match, data, starts, lengths, t0, t1, f.max_order, hb, f._disc, syms, tab, mix, fork, rc,
+                work))
             if match_stats is not None:
                 match_stats += np.maximum(match[4].astype(np.int64) - start_cells, 0)
             if recall_stats is not None:
@@ -748,9 +755,7 @@ class Braid:
         starts[1:] = np.cumsum(lengths)[:-1]
         tab = np.empty((max(len(lengths), 1), 256), np.float64)
         mo, disc, corpus = f.max_order, f._disc, self.frame_corpus(len(lengths))
-        nl = max(len(lengths), 1)
-        work = (np.empty((nl, mo + 1), np.int64), np.empty((nl, mo + 1), np.uint64), np.empty(256, np.int64),
-                np.zeros(1, np.uint32))
+        work = new_work(len(lengths), mo)
         mix = self.new_mix(len(lengths))
         fork = self.new_fork(len(lengths))
         rc = self.new_recall(len(lengths))
@@ -763,8 +768,8 @@ class Braid:
 
         def run(key, active, by_step):
             C.bind_tables(key, tab)
-            return _decode_steps(corpus, state, match, starts, mo, hl, disc, tab, work, mix, fork, rc, key, active,
-                                 by_step)
+            return _decode_steps(corpus, state, match, starts, mo, hl, disc, tab, work, mix, fork, rc, C.ASK, key,
+                                 active, by_step, np.zeros(by_step.shape[1], np.int32))
 
         step.run = run
 

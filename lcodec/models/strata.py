@@ -26,21 +26,13 @@ and taken over on update).
 from __future__ import annotations
 
 import threading
-import warnings
 
 import numpy as np
-from numba import njit, objmode
-from numba.core.errors import NumbaWarning
 
 from ..coding import coder as C
 from .kernel_cache import forget_if_changed, inlined, kernel
 
 forget_if_changed(__file__, [C.__file__])  # the decode loop's kernels read coder.PACKED
-
-# The decode loops below hand each step to the coder in object mode (the GIL is taken for
-# that call only; the model's work between calls runs without it).
-warnings.filterwarnings("ignore", message="Code running in object mode won't allow parallel execution",
-                        category=NumbaWarning)
 
 P_BITS = 20  # fixed-point total of the blended distribution
 F = 16  # discount is expressed in sixteenths of a count
@@ -426,17 +418,13 @@ def _lanes_rows(state, m, max_order, hash_log2, slots2, checks2, sink):
     sink[0] = acc
 
 
-@njit(cache=True, nogil=True)
-def _teacher(state, match, data, starts, lengths, t0, t1, max_order, hash_log2, disc, out_syms, out_tab):
-    """Tables of steps t0..t1 for all active lanes, in coding order, updating state."""
+@kernel
+def _teacher(state, match, data, starts, lengths, t0, t1, max_order, hash_log2, disc, out_syms, out_tab, work):
+    """Tables of steps t0..t1 for all active lanes, in coding order, updating state. work:
+    new_work's scratch (the kernel allocates nothing)."""
     rows, hist, gen, nxt, seen = state[0], state[2], state[3], state[5], state[6]
     nl = lengths.shape[0]
-    slots2 = np.empty((max(nl, 1), max_order + 1), np.int64)
-    checks2 = np.empty((max(nl, 1), max_order + 1), np.uint64)
-    sink = np.zeros(1, np.uint32)
-    p = np.empty(256, np.int64)
-    keep = np.empty((SMALL, 3), np.int64)
-    vals = np.empty(256, np.int64)
+    slots2, checks2, p, keep, vals, sink = work
     use_match = match[5][3] > 0
     i = 0
     for t in range(t0, t1):
@@ -464,7 +452,7 @@ def _teacher(state, match, data, starts, lengths, t0, t1, max_order, hash_log2, 
 def _step(state, match, starts, syms, t_prev, m_prev, m, max_order, hash_log2, disc, out_tab, work):
     """Decoder step: count the symbols of step t_prev (m_prev lanes), then predict m lanes.
     `work` holds the scratch arrays, made once per frame (new_work: a step is too short to
-    allocate)."""
+    allocate, and no kernel allocates)."""
     rows, hist, gen, nxt, seen = state[0], state[2], state[3], state[5], state[6]
     slots2, checks2, p, keep, vals, sink = work
     buf = match[0]
@@ -485,21 +473,15 @@ def _step(state, match, starts, syms, t_prev, m_prev, m, max_order, hash_log2, d
         _emit(p, out_tab[b])
 
 
-_TWO52 = 4503599627370496.0  # 2.0 ** 52
-_TWO52_BITS = np.uint64(0x4330000000000000)  # its bits
-
-
 @inlined
 def _emit(p, out):
-    """out <- p + 1 as float64 (the coder's table), exactly: the integer n < 2**52 is put
-    in the mantissa of 2**52 (bits 0x433 << 52 | n) and 2**52 taken off. Both loops are
-    vector operations; a plain conversion of int64 to float64 is not one on this
-    processor's vector unit."""
-    bits = out.view(np.uint64)
+    """out <- p + 1 as float64 (the coder's table), exactly. Every p[s] lies in 0..2**21 (a
+    table's total is about 2**P_BITS), so p[s] + 1 converts through int32, which this
+    processor's vector unit converts to float64 eight at a time (36 ns a table, against 50
+    for building the float's bits by hand and 135 for a plain int64 conversion, which it
+    cannot vectorise); nothing is rounded either way."""
     for s in range(256):
-        bits[s] = np.uint64(p[s] + 1) | _TWO52_BITS
-    for s in range(256):
-        out[s] -= _TWO52
+        out[s] = np.float64(np.int32(p[s] + 1))
 
 
 _local = threading.local()
@@ -527,6 +509,15 @@ def _pool_give(state):
         pool["busy"] = False
 
 
+def new_work(n_lanes: int, max_order: int) -> tuple:
+    """Scratch of _teacher and _step, made once per frame: each lane's row slots and tags
+    per order, the distribution, the short rows' kept bytes, the followed values, a sink."""
+    nl = max(n_lanes, 1)
+    return (np.empty((nl, max_order + 1), np.int64), np.empty((nl, max_order + 1), np.uint64),
+            np.empty(256, np.int64), np.empty((SMALL, 3), np.int64), np.empty(256, np.int64),
+            np.zeros(1, np.uint32))
+
+
 def run_chunks(lengths: np.ndarray, chunk_steps: int, run):
     """The encoder pass chunk by chunk of steps: run(t0, t1, syms, tab) fills the buffers
     for steps t0..t1 of every active lane and returns how many rows it wrote."""
@@ -539,28 +530,28 @@ def run_chunks(lengths: np.ndarray, chunk_steps: int, run):
         yield syms[:k], tab[:k]
 
 
-@njit(cache=True, nogil=True)
-def _decode_steps(state, match, starts, max_order, hash_log2, disc, tab, work, key, active, by_step):
+@kernel
+def _decode_steps(state, match, starts, max_order, hash_log2, disc, tab, work, ask, key, active, by_step, prev):
     """Every decoder step of a frame in one compiled loop (coder.decode_frame's fast path):
-    the same _step calls as the Python loop, the symbols from coder.step_symbols. Returns
-    the steps done (fewer when the coded data could not be decoded)."""
-    prev = np.zeros(by_step.shape[1], np.int32)
+    the same _step calls as the Python loop, the symbols from coder.step_symbols through
+    ask (coder.ASK). prev: int32 zeros, one per lane (the loop allocates nothing, so it
+    needs neither numba's reference counts nor, when loaded from the cache, numba's array
+    module). Returns the steps done (fewer when the coded data could not be decoded)."""
     for t in range(active.shape[0]):
         _step(state, match, starts, prev, t - 1, active[t - 1] if t else 0, active[t], max_order, hash_log2, disc, tab,
               work)
-        if not _symbols_of_step(key, tab, active[t], prev, by_step, t):
+        if not _symbols_of_step(ask, key, tab, active[t], prev, by_step, t):
             return t
     return active.shape[0]
 
 
-@njit(cache=True, nogil=True)
-def _symbols_of_step(key, tab, m, prev, by_step, t):
-    """Ask the coder (object mode, coder.step_symbols) for step t's m symbols under the
-    tables tab[:m] (bound to the key beforehand); they come packed in its answer (m <=
-    coder.PACKED) or in by_step[t], and go to prev and by_step[t]. False when they cannot
-    be decoded."""
-    with objmode(got="int64"):
-        got = C.step_symbols(key, m, t)
+@inlined
+def _symbols_of_step(ask, key, tab, m, prev, by_step, t):
+    """Ask the coder (ask: coder.ASK, a C function pointer to coder.step_symbols) for step
+    t's m symbols under the tables tab[:m] (bound to the key beforehand); they come packed
+    in its answer (m <= coder.PACKED) or in by_step[t], and go to prev and by_step[t].
+    False when they cannot be decoded (ask answers 0)."""
+    got = ask(key, m, t) - 1
     if got < 0:
         return False
     if m <= C.PACKED:
@@ -688,8 +679,9 @@ class Strata:
         (state, mtab), hb = self.new_state(n, len(lengths)), self.hash_bits(n)
         match = self.new_match(data, mtab, lengths)
         try:
+            work = new_work(len(lengths), self.max_order)
             yield from run_chunks(lengths, chunk_steps, lambda t0, t1, syms, tab: _teacher(
-                state, match, data, starts, lengths, t0, t1, self.max_order, hb, self._disc, syms, tab))
+                state, match, data, starts, lengths, t0, t1, self.max_order, hb, self._disc, syms, tab, work))
         finally:
             _pool_give(state)
 
@@ -703,9 +695,7 @@ class Strata:
         starts[1:] = np.cumsum(lengths)[:-1]
         tab = np.empty((max(len(lengths), 1), 256), np.float64)
         mo, disc = self.max_order, self._disc
-        nl = max(len(lengths), 1)
-        work = (np.empty((nl, mo + 1), np.int64), np.empty((nl, mo + 1), np.uint64), np.empty(256, np.int64),
-                np.empty((SMALL, 3), np.int64), np.empty(256, np.int64), np.zeros(1, np.uint32))
+        work = new_work(len(lengths), mo)
         t = [-1]
 
         def step(prev_syms, m_prev, m):
@@ -715,7 +705,8 @@ class Strata:
 
         def run(key, active, by_step):
             C.bind_tables(key, tab)
-            return _decode_steps(state, match, starts, mo, hl, disc, tab, work, key, active, by_step)
+            return _decode_steps(state, match, starts, mo, hl, disc, tab, work, C.ASK, key, active, by_step,
+                                 np.zeros(by_step.shape[1], np.int32))
 
         step.run = run
         step.close = lambda: _pool_give(state)

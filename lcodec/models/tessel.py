@@ -43,8 +43,6 @@ integers, so their tables agree bit for bit.
 from __future__ import annotations
 
 import math
-import threading
-from contextlib import contextmanager
 
 import numpy as np
 from numba import njit
@@ -52,6 +50,8 @@ from numba import njit
 from .tessel_predict import _gap, _pv, _q16
 from .weft import BACKENDS
 from .strata import Strata
+from .tessel_common import (FLAG_BIG_ENDIAN, FLAG_SIGNED, MAX_SAMPLES, PAYLOAD_VERSION,  # noqa: F401 - this module's interface
+                            limit_blas, one_blas_thread)
 
 Q = 63  # levels per slot
 QMID = 31
@@ -60,11 +60,8 @@ HI_SLOT = 14
 EMB_ROWS = HI_SLOT * Q + 256
 DELAY = 3  # wavefront: row r runs DELAY columns behind row r-1 (neighbours reach c+2)
 ROLES = ("r8", "r16h", "r16l")
-MAX_SAMPLES = 1 << 24  # samples in one image frame (the decoder holds 8 bytes per sample); larger: bytes
 CHUNK = 8192  # symbols per teacher-pass batch
 HI_OFFSET = 128  # 16-bit residuals are offset so that -128..127 all have high byte 0
-FLAG_BIG_ENDIAN, FLAG_SIGNED = 1, 2
-PAYLOAD_VERSION = 1
 # colour modes (the internal `shift` of `_context`): 0 none, 1 the residual of channel ch-1 added to
 # the prediction (params chan_shift), COLOUR_RCT: params colour "rct" (lcodec/models/colour.py)
 COLOUR_RCT = 2
@@ -543,30 +540,6 @@ def _apply(v, e, r0, r1, t, ch, deep, preds, hi, lo):
             x = (p + lo[i]) & 0xFF
         v[r, c, ch] = x
         e[r, c, ch] = x - p
-
-
-_BLAS = {"lock": threading.Lock()}
-
-
-def limit_blas() -> None:
-    """BLAS on one thread from the first image decoded on, for the rest of the process (the
-    products are small: one thread is faster). The setting is process-wide and deliberately
-    not restored: restoring it after each decode made OpenBLAS change its thread count back
-    and forth, and a decode in 2 threads after such a change ran at 4,800-16,000 pixels per
-    second against 274,000-283,000 with the limit kept (load about 3; docs/notes/model-tessel.md,
-    "Decoding threads"). Asked on every call (about 0.4 ms), so that a BLAS library loaded
-    since the last call is limited too."""
-    from threadpoolctl import threadpool_limits
-
-    with _BLAS["lock"]:
-        threadpool_limits(limits=1, user_api="blas")
-
-
-@contextmanager
-def one_blas_thread():
-    """`limit_blas` around a decode (kept after it)."""
-    limit_blas()
-    yield
 
 
 def wavefront_rows(t: int, rows: int, cols: int) -> tuple[int, int]:
