@@ -65,6 +65,8 @@ def _on_signal(signum, frame):
     signal.signal(signal.SIGINT, signal.SIG_IGN)
     signal.signal(signal.SIGTERM, signal.SIG_IGN)
     errors.PENDING_SIGNALS.append(int(signum))  # for code that may lose the exception below
+    if errors.HOLDING[0]:
+        return  # inside fsio.signals_held: raised when the block ends
     raise Terminated() if signum == signal.SIGTERM else KeyboardInterrupt()
 
 

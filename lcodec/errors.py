@@ -39,6 +39,9 @@ class UsageError(LcodecError):
 # symbols, and in llvmlite's callbacks while numba compiles), so the decode loop also looks
 # here at every step (coding/coder.py) and raises what was lost.
 PENDING_SIGNALS: list = []
+# Depth of fsio.signals_held blocks now running: while it is above 0, the CLI's handler only
+# records its signal, and the outermost block raises it when it ends.
+HOLDING = [0]
 
 
 def pending_interruption() -> BaseException | None:

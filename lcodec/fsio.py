@@ -8,7 +8,7 @@ import signal
 import stat
 import tempfile
 
-from .errors import DataError, UsageError, raise_pending
+from .errors import HOLDING, PENDING_SIGNALS, DataError, UsageError, raise_pending
 
 ARCHIVE_EXT = ".lcodec"
 
@@ -36,17 +36,26 @@ _LIVE: set = set()  # OutFiles whose temporary file exists and is neither commit
 
 @contextlib.contextmanager
 def signals_held():
-    """SIGINT and SIGTERM held back (blocked in this thread, delivered when the block ends)
-    while a temporary file is created and its name recorded: an interruption between the
-    two would leave a file nobody knows to remove."""
-    if not hasattr(signal, "pthread_sigmask"):
-        yield
-        return
-    old = signal.pthread_sigmask(signal.SIG_BLOCK, _HELD)
+    """SIGINT and SIGTERM held back while the block runs, raised when it ends: a temporary
+    file's creation and the record of its name, constriction's first call (coding/coder.py).
+    Two holds, since blocking a signal in this thread does not stop the kernel from handing
+    it to another thread of the process (numpy's BLAS threads), after which Python runs the
+    handler in the main thread all the same:
+    * the CLI's handler, run inside the block, records the signal and returns
+      (errors.HOLDING); the outermost block raises it when it ends;
+    * where the platform has pthread_sigmask, the signals are also blocked in this thread,
+      and delivered when the block ends."""
+    old = signal.pthread_sigmask(signal.SIG_BLOCK, _HELD) if hasattr(signal, "pthread_sigmask") else None
+    before = len(PENDING_SIGNALS)
+    HOLDING[0] += 1
     try:
         yield
     finally:
-        signal.pthread_sigmask(signal.SIG_SETMASK, old)
+        HOLDING[0] -= 1
+        if old is not None:
+            signal.pthread_sigmask(signal.SIG_SETMASK, old)
+    if not HOLDING[0] and len(PENDING_SIGNALS) > before:
+        raise_pending()
 
 
 def remove_live_temporaries() -> None:

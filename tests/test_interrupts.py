@@ -237,3 +237,46 @@ def test_unpack_with_workers_group_terminated(tmp_path, big):
     _check(rc, err, 143, "terminated (SIGTERM)")
     assert gone, "worker processes outlived lcodec"
     assert os.listdir(out_dir) == []
+
+
+def test_constrictions_first_numpy_call_holds_signals_back(monkeypatch):
+    # coder._first_numpy_call makes constriction load numpy's array interface with SIGINT
+    # held back (a KeyboardInterrupt raised inside that load once made its Rust side panic):
+    # a SIGINT sent during the call arrives only after it has returned, and the signal mask
+    # is as before afterwards
+    import constriction
+
+    from lcodec import cli, errors
+    from lcodec.coding import coder
+
+    done = []
+    real = constriction.stream.queue.RangeEncoder
+
+    class Interrupted:  # constriction's classes cannot be subclassed: a wrapper
+        def __init__(self):
+            self.inner = real()
+
+        def encode(self, *a):
+            os.kill(os.getpid(), signal.SIGINT)
+            time.sleep(0.05)  # an unheld SIGINT would be raised in here
+            self.inner.encode(*a)
+            done.append(True)
+
+        def get_compressed(self):
+            return self.inner.get_compressed()
+
+    monkeypatch.setattr(constriction.stream.queue, "RangeEncoder", Interrupted)
+    monkeypatch.setattr(errors, "PENDING_SIGNALS", errors.PENDING_SIGNALS)  # restored as it was
+    before = list(errors.PENDING_SIGNALS)
+    mask = signal.pthread_sigmask(signal.SIG_BLOCK, [])
+    handlers = signal.getsignal(signal.SIGINT), signal.getsignal(signal.SIGTERM)
+    signal.signal(signal.SIGINT, cli._on_signal)  # the CLI's handler, as in `lcodec unpack`
+    try:
+        with pytest.raises(KeyboardInterrupt):
+            coder._first_numpy_call()
+    finally:
+        signal.signal(signal.SIGINT, handlers[0])
+        signal.signal(signal.SIGTERM, handlers[1])
+        errors.PENDING_SIGNALS[:] = before
+    assert done == [True]
+    assert signal.pthread_sigmask(signal.SIG_BLOCK, []) == mask

@@ -38,9 +38,30 @@ import constriction
 
 from .. import errors
 from ..errors import PENDING_SIGNALS
+from ..fsio import signals_held
 
 CODERS = {"queue": 1, "stack": 2}
 _FAMILY = constriction.stream.model.Categorical(perfect=False)
+
+
+def _first_numpy_call() -> None:
+    """constriction's first call with a numpy array loads numpy's array interface into its
+    Rust side; a KeyboardInterrupt raised by our signal handler inside that load made it
+    panic (a 4-line message on stderr before ours, seen once when a SIGINT landed at
+    start-up: docs/notes/2026-12-05-hardening.md). So that first call is made here, once
+    per process, with SIGINT and SIGTERM held back (delivered when the call returns): a
+    one-symbol round trip, which also checks the coder's answer."""
+    with signals_held():
+        tab = np.ones((1, 256), np.float64)
+        enc = constriction.stream.queue.RangeEncoder()
+        enc.encode(np.array([7], np.int32), _FAMILY, tab)
+        got = constriction.stream.queue.RangeDecoder(enc.get_compressed()).decode(_FAMILY, tab)
+    if int(got[0]) != 7:
+        raise RuntimeError("constriction's range coder failed a one-symbol round trip")
+
+
+_first_numpy_call()
+
 CHECK_EVERY = 1 << 16  # symbols between sub-frame checks
 _UNIFORM2 = np.ones((2, 256), np.float64)
 
