@@ -161,6 +161,29 @@ def test_damaged_header_still_finds_frames_by_scanning(single):
     assert res.content is None  # nothing can prove it: only a marked output
 
 
+def test_unreadable_version_byte_scans_the_archive_once(single, monkeypatch):
+    # with the version byte damaged, salvage learns from one every-offset scan that the
+    # records are version 3, and places them by their frame numbers from that same scan
+    from lcodec.archive import salvage_bound as B
+
+    b = bytearray(single["blob"])
+    b[4] ^= 0xFF  # the version byte
+    b[6:14] = b"\xff" * 8  # and no header to lay the frames out
+    calls = []
+    real = B.scan
+
+    def counted(mv, lo, hi, aid):
+        calls.append((lo, hi, aid))
+        return real(mv, lo, hi, aid)
+
+    monkeypatch.setattr(B, "scan", counted)
+    res = S.salvage(bytes(b))
+    assert res.header == "unreadable" and res.layout is None
+    frames = [single["data"][i:i + FRAME] for i in range(0, len(single["data"]), FRAME)]
+    assert [p.data for p in res.pieces] == frames
+    assert calls.count((0, len(b), None)) == 1, calls
+
+
 def test_damaged_identity_length_still_places_every_frame(single):
     # The identity length (the varint before the member-table length and the header CRC)
     # changed: the header's first record is no longer where it says, so the records are

@@ -523,10 +523,12 @@ def salvage(blob, model=None, progress=None) -> Salvage:
         problems.append("header damaged (its checksum does not match): its fields are used as hints only")
     m, model_text = _choose_model(hints, header, model, problems)
     frames, unplaced, pieces, structure = {}, [], [], ""
+    heads3 = None  # every version-3 record head, when the scan below was made (kept for pieces_in_order)
     if hints is not None and hints.version in C.SUPPORTED_VERSIONS:
         bound = hints.version == C.VERSION_BOUND
     else:  # the version byte is unreadable: version-3 records say what they are
-        bound = bool(B.scan(mv, 0, n, None))
+        heads3 = B.scan(mv, 0, n, None)
+        bound = bool(heads3)
     min_rec = C.min_record(C.VERSION_BOUND if bound else 1)
     foreign = []
     if lay is not None:
@@ -574,7 +576,7 @@ def salvage(blob, model=None, progress=None) -> Salvage:
         if header == "unreadable":
             problems.insert(0, "header unreadable")
         if bound:  # by the frame numbers they carry, the records of the identity most carry
-            mine, foreign, _ = B.pieces_in_order(mv, n)
+            mine, foreign, _ = B.pieces_in_order(mv, n, heads3)
             for fr in mine:
                 fr.index = fr.number
                 data, why = _decode(m, fr, progress)

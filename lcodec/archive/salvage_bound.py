@@ -186,10 +186,12 @@ def place(mv, first: int, lay, aid: bytes | None):
     return placed, foreign, unplaced, 0, aid
 
 
-def pieces_in_order(mv, n: int):
+def pieces_in_order(mv, n: int, heads: dict | None = None):
     """No usable header: the version-3 records of the identity most records carry, by frame
-    number (duplicates after the first intact one dropped), and the others."""
-    heads = scan(mv, 0, n, None)
+    number (duplicates after the first intact one dropped), and the others. heads: the
+    every-offset scan of mv[:n] (scan(mv, 0, n, None)) when the caller has made it already."""
+    if heads is None:
+        heads = scan(mv, 0, n, None)
     aid = majority_id(heads)
     mine = sorted((fr for fr in heads.values() if fr.archive_id == aid), key=lambda f: (f.number, not intact(f)))
     out, seen = [], set()
