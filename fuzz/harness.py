@@ -167,7 +167,7 @@ def t_salvage(data: bytes) -> None:
     if hints is not None and hints.content_size > MAX_DECODE:
         return  # salvage does no bounded ceiling of its own: large claims are the unpack target's
     try:
-        res = S.salvage(blob)
+        res = S.salvage(blob, ceiling=MAX_DECODE)  # frames found by scanning claim lengths of their own
         res.report()
     except REFUSALS:
         return

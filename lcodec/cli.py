@@ -407,7 +407,7 @@ def unpack(archive, output, model, force, salvage_mode, keep_damaged, report_pat
         bar = Progress(min(hints.content_size, 1 << 40) if hints else 0, "salvaging", quiet)
         try:
             res = S.salvage_to(blob, output, model, keep_damaged, force, report_path, archive_name=archive,
-                               progress=bar)
+                               progress=bar, ceiling=ceiling)
         finally:
             bar.close()
         if not (quiet and res.ok):

@@ -1,9 +1,14 @@
 """Every crash or hang the coverage-guided fuzzing (fuzz/harness.py) finds becomes a test
-here, with its input (tests/fuzz_found/). One so far: the `salvage-scan` run of
-2026-12-05 stopped at libFuzzer's memory limit (2,048 MB) after 222,062 executions; the
-input it was running (salvage-scan-rss-2026-12-05) is harmless on its own (about 230 MB,
-the process's start), the memory had grown in every execution (see
-test_every_offset_head_test_keeps_no_memory_under_instrumentation). This file also checks
+here, with its input (tests/fuzz_found/). Two so far:
+* the `salvage-scan` run of 2026-12-05 stopped at libFuzzer's memory limit (2,048 MB) after
+  222,062 executions; the input it was running (salvage-scan-rss-2026-12-05) is harmless on
+  its own (about 230 MB, the process's start), the memory had grown in every execution (see
+  test_every_offset_head_test_keeps_no_memory_under_instrumentation);
+* the `salvage` run of 2026-12-05 (third session) hung after 113,548 executions
+  (salvage-hang-2026-12-05): a damaged header claiming 2 bytes of content, and a
+  version-2 record found by scanning that claims far more. Version-2 frames have no
+  sub-frame checks, so salvage decoded all of the claim (16 s under the fuzzer); salvage
+  now takes the output ceiling over the frames' claims (test_salvage_keeps_to_its_ceiling). This file also checks
 the harness's targets accept their own seeds, so that a regression input runs the same code."""
 import importlib.util
 import os
@@ -28,7 +33,29 @@ FOUND_DIR = os.path.join(HERE, "fuzz_found")
 # (target, input) for each crash, hang or memory-limit stop found
 FOUND: list[tuple[str, bytes]] = [
     ("salvage-scan", open(os.path.join(FOUND_DIR, "salvage-scan-rss-2026-12-05"), "rb").read()),
+    ("salvage", open(os.path.join(FOUND_DIR, "salvage-hang-2026-12-05"), "rb").read()),
 ]
+
+
+def test_salvage_keeps_to_its_ceiling(monkeypatch):
+    # the hang's archive: salvage with the harness's ceiling decodes at most that many bytes
+    # of content over all frames, and reports the frame past it
+    from lcodec.archive import salvage as S
+
+    data = open(os.path.join(FOUND_DIR, "salvage-hang-2026-12-05"), "rb").read()
+    blob = H._split(data, H.reseal_archive)
+    asked = []
+    real = S.decode_record
+
+    def counted(model, fr):
+        asked.append(fr.raw_len)
+        return real(model, fr)
+
+    monkeypatch.setattr(S, "decode_record", counted)
+    res = S.salvage(blob, ceiling=H.MAX_DECODE)
+    assert sum(asked) <= H.MAX_DECODE
+    lines = " ".join(p.reason for p in [*res.frames.values(), *res.pieces])
+    assert "output ceiling" in lines, lines
 
 
 @pytest.mark.parametrize("target", sorted(H.TARGETS))

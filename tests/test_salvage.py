@@ -280,6 +280,25 @@ def test_cli_keep_damaged_marks_and_zero_fills(three, tmp_path):
     assert got["station/sub/bisect.py"] == three["files"]["station/sub/bisect.py"]
 
 
+def test_cli_salvage_keeps_to_the_output_ceiling_over_the_frames_it_finds(single, tmp_path):
+    # no readable header, so no claim to refuse up front: the frames found by scanning are
+    # decoded while their claimed lengths fit --output-ceiling, and the rest are reported
+    b = bytearray(single["blob"])
+    b[6:14] = b"\xff" * 8
+    arc = tmp_path / "t.lcodec"
+    arc.write_bytes(bytes(b))
+    r = run_cli("unpack", arc, "-o", tmp_path / "t", "--salvage", "--keep-damaged", "--output-ceiling", "5K")
+    assert r.exit_code == 1
+    rep = json.loads((tmp_path / "t.salvage.json").read_text())
+    # 2 x 2,048 bytes fit in 5,120; the next two frames do not, the last one's 808 bytes do
+    assert [("ceiling" in p["reason"], p["status"]) for p in rep["pieces"]] == [
+        (False, "good"), (False, "good"), (True, "damaged"), (True, "damaged"), (False, "good")]
+    marked = (tmp_path / ("t" + S.DAMAGED_SUFFIX)).read_bytes()
+    assert marked.startswith(single["data"][:2 * FRAME])
+    r = run_cli("unpack", arc, "-o", tmp_path / "u", "--salvage", "--keep-damaged")
+    assert "past the output ceiling" not in (tmp_path / "u.salvage.json").read_text()
+
+
 def test_cli_single_file(single, tmp_path):
     arc = tmp_path / "t.lcodec"
     arc.write_bytes(single["blob"])

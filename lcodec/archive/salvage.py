@@ -493,7 +493,15 @@ def _rebuilt(data: bytes, record: bool) -> bytes:
         raise DataError("a recovered pixel record cannot be rebuilt into an image file") from None
 
 
-def _decode(model, fr, progress) -> tuple[bytes | None, str]:
+def _decode(model, fr, progress, budget=None) -> tuple[bytes | None, str]:
+    """(content, "") or (None, what is wrong). budget: [bytes of content the frames may
+    still claim] (the output ceiling), or None for no ceiling; a frame whose claimed length
+    passes it is not decoded. A version-1/2 frame has no sub-frame checks, so its claim is
+    the work its decoding would take, whatever its coded bytes hold."""
+    if budget is not None:
+        if fr.raw_len > budget[0]:
+            return None, f"claims {fr.raw_len:,} bytes, past the output ceiling's {budget[0]:,} left"
+        budget[0] -= fr.raw_len
     try:
         return decode_record(model, fr), ""
     except DataError as e:
@@ -504,11 +512,14 @@ def _decode(model, fr, progress) -> tuple[bytes | None, str]:
             progress(fr.raw_len)
 
 
-def salvage(blob, model=None, progress=None) -> Salvage:
+def salvage(blob, model=None, progress=None, ceiling: int | None = None) -> Salvage:
     """Analyse a (possibly damaged) archive and decode every frame that can be; nothing is
     written. Raises DataError only when no part of an archive can be found (or an intact
     header is unusable), ModelError when the model it needs is missing or wrong (as
-    unpack does)."""
+    unpack does). ceiling: at most this many bytes of content are decoded, over all frames
+    (their claimed lengths; a frame past it is reported damaged, not decoded); None: no
+    ceiling."""
+    budget = None if ceiling is None else [int(ceiling)]
     mv = memoryview(blob)
     n = len(mv)
     problems = []
@@ -555,7 +566,7 @@ def salvage(blob, model=None, progress=None) -> Salvage:
             for i in range(limit):
                 if i in placed:
                     fr = placed[i]
-                    data, why = _decode(m, fr, progress)
+                    data, why = _decode(m, fr, progress, budget)
                     frames[i] = FrameResult(i, "good" if data is not None else "damaged", why,
                                             (fr.offset, B.record_end(fr)), True, data, fr.placed_by,
                                             data is not None and _is_record(fr))
@@ -579,7 +590,7 @@ def salvage(blob, model=None, progress=None) -> Salvage:
             mine, foreign, _ = B.pieces_in_order(mv, n, heads3)
             for fr in mine:
                 fr.index = fr.number
-                data, why = _decode(m, fr, progress)
+                data, why = _decode(m, fr, progress, budget)
                 pieces.append(FrameResult(fr.number, "good" if data is not None else "damaged", why,
                                           (fr.offset, B.record_end(fr)), True, data, "frame number"))
         heads = {} if bound else scan_records(mv, 0, n)
@@ -589,7 +600,7 @@ def salvage(blob, model=None, progress=None) -> Salvage:
                 continue  # inside the record before: its payload's bytes
             fr = heads[q]
             fr.index = len(pieces)
-            data, why = _decode(m, fr, progress)
+            data, why = _decode(m, fr, progress, budget)
             pieces.append(FrameResult(None, "good" if data is not None else "damaged", why, (q, B.record_end(fr)), True, data))
             q_end = B.record_end(fr)
         if not pieces:
@@ -713,19 +724,21 @@ def default_report_path(output: str) -> str:
 
 
 def salvage_to(blob, output: str, model=None, keep_damaged: bool = False, force: bool = False,
-               report_path: str | None = None, archive_name: str | None = None, progress=None) -> Salvage:
+               report_path: str | None = None, archive_name: str | None = None, progress=None,
+               ceiling: int | None = None) -> Salvage:
     """Salvage `blob` and write what is proven good: a single-file archive's content to
     `output` (only when every frame is good and the SHA-256 matches), a member archive's
     members into the folder `output` (each only when its SHA-256 matches). With
     keep_damaged, damaged content is also written, as NAME.lcodec-damaged, zero-filled
     where damaged. The report (JSON) goes to `report_path` (default OUTPUT.salvage.json),
-    always. Every output is written atomically; none is overwritten unless force."""
+    always. Every output is written atomically; none is overwritten unless force. ceiling:
+    as salvage's."""
     report_path = report_path or default_report_path(output)
     damaged_path = os.path.normpath(output) + DAMAGED_SUFFIX
     for p in (output, report_path, damaged_path if keep_damaged else None):
         if p and os.path.lexists(p) and not force:
             raise UsageError(f"{p} exists; pass --force to overwrite it")
-    res = salvage(blob, model, progress)
+    res = salvage(blob, model, progress, ceiling)
     failed = None
     try:
         if res.members is not None:
