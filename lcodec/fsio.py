@@ -7,6 +7,7 @@ import shutil
 import signal
 import stat
 import tempfile
+import threading
 
 from .errors import HOLDING, PENDING_SIGNALS, DataError, UsageError, raise_pending
 
@@ -41,20 +42,22 @@ def signals_held():
     Two holds, since blocking a signal in this thread does not stop the kernel from handing
     it to another thread of the process (numpy's BLAS threads), after which Python runs the
     handler in the main thread all the same:
-    * the CLI's handler, run inside the block, records the signal and returns
-      (errors.HOLDING); the outermost block raises it when it ends;
+    * in the main thread (where Python runs signal handlers), the CLI's handler, run inside
+      the block, records the signal and returns (errors.HOLDING); the outermost block
+      raises it when it ends. A block in another thread leaves the handler as it is;
     * where the platform has pthread_sigmask, the signals are also blocked in this thread,
       and delivered when the block ends."""
     old = signal.pthread_sigmask(signal.SIG_BLOCK, _HELD) if hasattr(signal, "pthread_sigmask") else None
+    main = threading.current_thread() is threading.main_thread()
     before = len(PENDING_SIGNALS)
-    HOLDING[0] += 1
+    HOLDING[0] += main
     try:
         yield
     finally:
-        HOLDING[0] -= 1
+        HOLDING[0] -= main
         if old is not None:
             signal.pthread_sigmask(signal.SIG_SETMASK, old)
-    if not HOLDING[0] and len(PENDING_SIGNALS) > before:
+    if main and not HOLDING[0] and len(PENDING_SIGNALS) > before:
         raise_pending()
 
 
