@@ -3,7 +3,7 @@ import numpy as np
 import pytest
 from scipy.stats import entropy
 
-from lcodec.coding.coder import decode_frame, encode_frame, lane_layout, active_lanes
+from lcodec.coding.coder import decode_frame, encode_frame, lane_layout, active_lanes, step_widths
 from lcodec.models.strata import Strata
 
 FRAME_FIXED_BYTES = 8  # range/ANS coder flush: at most two 32-bit words beyond the NLL (docs/FORMAT.md)
@@ -91,6 +91,9 @@ def test_lane_layout_covers_every_byte_once():
             assert (np.sort(cover) == np.arange(n)).all()
             act = active_lanes(lengths, int(lengths[0]) if n else 0)
             assert act.sum() == n
+            # the decoder's loops take the same widths as three numbers (step_widths)
+            lo, nl, n_hi = step_widths(lengths).tolist()
+            assert [nl if t < lo else n_hi for t in range(len(act))] == act.tolist()
 
 
 class _PythonLoop:

@@ -439,14 +439,15 @@ def _step(corpus, state, match, starts, syms, t_prev, m_prev, m, max_order, hash
 
 @kernel
 def _decode_steps(corpus, state, match, starts, max_order, hash_log2, dfile, tab, work, mix, fork, rc, ask, key,
-                  active, by_step, prev):
+                  widths, by_step, prev):
     """Every decoder step of a frame in one compiled loop (as strata's _decode_steps)."""
-    for t in range(active.shape[0]):
-        _step(corpus, state, match, starts, prev, t - 1, active[t - 1] if t else 0, active[t], max_order, hash_log2,
+    for t in range(by_step.shape[0]):
+        m = S._width(widths, t)
+        _step(corpus, state, match, starts, prev, t - 1, S._width(widths, t - 1) if t else 0, m, max_order, hash_log2,
               dfile, tab, work, mix, fork, rc)
-        if not S._symbols_of_step(ask, key, tab, active[t], prev, by_step, t):
+        if not S._symbols_of_step(ask, key, tab, m, prev, by_step, t):
             return t
-    return active.shape[0]
+    return by_step.shape[0]
 
 
 # -- the file's tables: one idle set per thread, reused across frames -----------------------
@@ -766,10 +767,10 @@ class Braid:
             t[0] += 1
             return tab[:m]
 
-        def run(key, active, by_step):
+        def run(key, widths, by_step):
             C.bind_tables(key, tab)
             return _decode_steps(corpus, state, match, starts, mo, hl, disc, tab, work, mix, fork, rc, C.ASK, key,
-                                 active, by_step, np.zeros(by_step.shape[1], np.int32))
+                                 widths, by_step, np.zeros(by_step.shape[1], np.int32))
 
         step.run = run
 

@@ -531,18 +531,26 @@ def run_chunks(lengths: np.ndarray, chunk_steps: int, run):
 
 
 @kernel
-def _decode_steps(state, match, starts, max_order, hash_log2, disc, tab, work, ask, key, active, by_step, prev):
+def _decode_steps(state, match, starts, max_order, hash_log2, disc, tab, work, ask, key, widths, by_step, prev):
     """Every decoder step of a frame in one compiled loop (coder.decode_frame's fast path):
     the same _step calls as the Python loop, the symbols from coder.step_symbols through
-    ask (coder.ASK). prev: int32 zeros, one per lane (the loop allocates nothing, so it
-    needs neither numba's reference counts nor, when loaded from the cache, numba's array
+    ask (coder.ASK). widths: coder.step_widths (the lanes of each step); by_step: one row
+    per step. prev: int32 zeros, one per lane (the loop allocates nothing, so it needs
+    neither numba's reference counts nor, when loaded from the cache, numba's array
     module). Returns the steps done (fewer when the coded data could not be decoded)."""
-    for t in range(active.shape[0]):
-        _step(state, match, starts, prev, t - 1, active[t - 1] if t else 0, active[t], max_order, hash_log2, disc, tab,
-              work)
-        if not _symbols_of_step(ask, key, tab, active[t], prev, by_step, t):
+    for t in range(by_step.shape[0]):
+        m = _width(widths, t)
+        _step(state, match, starts, prev, t - 1, _width(widths, t - 1) if t else 0, m, max_order, hash_log2, disc,
+              tab, work)
+        if not _symbols_of_step(ask, key, tab, m, prev, by_step, t):
             return t
-    return active.shape[0]
+    return by_step.shape[0]
+
+
+@inlined
+def _width(widths, t):
+    """Lanes active at step t (coder.step_widths: [lo, all lanes, lanes longer than lo])."""
+    return widths[1] if t < widths[0] else widths[2]
 
 
 @inlined
@@ -703,9 +711,9 @@ class Strata:
             t[0] += 1
             return tab[:m]
 
-        def run(key, active, by_step):
+        def run(key, widths, by_step):
             C.bind_tables(key, tab)
-            return _decode_steps(state, match, starts, mo, hl, disc, tab, work, C.ASK, key, active, by_step,
+            return _decode_steps(state, match, starts, mo, hl, disc, tab, work, C.ASK, key, widths, by_step,
                                  np.zeros(by_step.shape[1], np.int32))
 
         step.run = run
