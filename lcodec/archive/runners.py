@@ -269,6 +269,24 @@ class ProcessRunner(Runner):
             raise UsageError("a worker process died (out of memory, or killed); nothing was written "
                              "under the final name") from None
 
+    def __exit__(self, exc_type, exc, tb):
+        if exc_type is not None:
+            self.stop_workers()
+        self.close()
+
+    def stop_workers(self):
+        """An error or an interruption left the job: what the workers are doing is not
+        wanted. They get SIGTERM now (their handler is the default: they end at once)
+        instead of being waited for; the pool, seeing them gone, fails what is pending and
+        releases its queues. A wait could otherwise hang: a worker ended mid-task by the
+        same signal (a process group's SIGTERM) can leave the pool's queues as no live
+        process reads them."""
+        for proc in list((getattr(self.pool, "_processes", None) or {}).values()):
+            try:
+                proc.terminate()
+            except (OSError, AttributeError):  # already gone
+                pass
+
     def close(self):
         self.pool.shutdown(wait=True, cancel_futures=True)
 
