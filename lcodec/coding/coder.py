@@ -343,16 +343,16 @@ def step_widths(lengths: np.ndarray) -> np.ndarray:
 
 
 def active_lanes(lengths: np.ndarray, n_steps: int) -> np.ndarray:
-    """Number of lanes still active (length > t) at each step t (int64). Lane lengths
-    differ by at most one (lane_layout), so this is one fill and at most one slice, with
-    no temporaries as long as the frame (a 64 MiB claim in one lane is 64 Mi steps)."""
+    """Number of lanes still active (length > t) at each step t (int64), as an array (the
+    bench's explanations and the tests; the decoder takes step_widths). For a lane_layout
+    frame this is step_widths spelled out: one fill and at most one slice."""
     lengths = np.asarray(lengths)
     if len(lengths) == 0 or n_steps == 0:
         return np.zeros(n_steps, np.int64)
-    lo, hi = int(lengths.min()), int(lengths.max())
-    if hi - lo > 1:  # not a lane_layout: the general rule
+    if int(lengths.max()) - int(lengths.min()) > 1:  # not a lane_layout: the general rule
         asc = np.sort(lengths)
         return (len(lengths) - np.searchsorted(asc, np.arange(n_steps), side="right")).astype(np.int64)
-    out = np.full(n_steps, len(lengths), np.int64)
-    out[lo:] = int((lengths > lo).sum())
+    lo, nl, n_hi = step_widths(lengths).tolist()
+    out = np.full(n_steps, nl, np.int64)
+    out[lo:] = n_hi
     return out
