@@ -331,40 +331,43 @@ def golden_tessel_law():
         write_vector(name, data, model=mpath)
 
 
+def _tessel_variant(model_name: str, edit, raster_name: str, raster: bytes, npy_name: str, npy) -> None:
+    """A model file derived from the law model file by `edit` (its params), and two
+    containers made with it: an 8-bit raster file and a 16-bit NPY of the array `npy`."""
+    import io
+
+    import numpy as np
+
+    mpath = os.path.join(HERE, model_name)
+    derive_tessel("tessel-tiny-law.lcmodel", mpath, edit)
+    buf = io.BytesIO()
+    np.save(buf, npy)
+    write_vector(raster_name, raster, model=mpath)
+    write_vector(npy_name, buf.getvalue(), model=mpath)
+
+
 def golden_tessel_colour():
     """The law model file with colour mode rct (RGB coded as G, B - G, R - G; lcodec/models/colour.py)
     as a fourth model file, and containers made with it: an 8-bit PPM crop of scikit-image's
     coffee and a 16-bit RGB NPY (a crop of its astronaut times 251, plus 7)."""
-    import io
-
     import numpy as np
     import skimage.data as skd
 
-    mpath = os.path.join(HERE, "tessel-tiny-rct.lcmodel")
-    derive_tessel("tessel-tiny-law.lcmodel", mpath, lambda params: params.update(colour="rct"))
     ppm = b"P6\n# bay-3 colour plate 7\n40 32\n255\n" + skd.coffee()[120:152, 300:340].tobytes()
-    buf = io.BytesIO()
-    np.save(buf, skd.astronaut()[200:224, 180:210].astype(np.uint16) * 251 + 7)
-    write_vector("tessel-c1-ppm", ppm, model=mpath)
-    write_vector("tessel-c1-rgb16", buf.getvalue(), model=mpath)
+    _tessel_variant("tessel-tiny-rct.lcmodel", lambda params: params.update(colour="rct"), "tessel-c1-ppm", ppm,
+                    "tessel-c1-rgb16", skd.astronaut()[200:224, 180:210].astype(np.uint16) * 251 + 7)
 
 
 def golden_tessel_gap():
     """The law model file with predictor gap (gradient-adjusted prediction under the network) as
     a fifth model file, and containers made with it: an 8-bit PGM crop of scikit-image's camera
     and a 16-bit NPY (a crop of its moon times 53, plus 1000)."""
-    import io
-
     import numpy as np
     import skimage.data as skd
 
-    mpath = os.path.join(HERE, "tessel-tiny-gap.lcmodel")
-    derive_tessel("tessel-tiny-law.lcmodel", mpath, lambda params: params.update(predictor="gap"))
     pgm = b"P5\n# bay-3 plate 9\n40 32\n255\n" + skd.camera()[220:252, 300:340].tobytes()
-    buf = io.BytesIO()
-    np.save(buf, skd.moon()[60:92, 100:140].astype(np.uint16) * 53 + 1000)
-    write_vector("tessel-g1-pgm", pgm, model=mpath)
-    write_vector("tessel-g1-npy16", buf.getvalue(), model=mpath)
+    _tessel_variant("tessel-tiny-gap.lcmodel", lambda params: params.update(predictor="gap"), "tessel-g1-pgm", pgm,
+                    "tessel-g1-npy16", skd.moon()[60:92, 100:140].astype(np.uint16) * 53 + 1000)
 
 
 def golden_heddle():
