@@ -517,8 +517,11 @@ def info(path, as_json, frames):
                + ", ".join(f"{n} {m}" for m, n in sorted(methods.items())) + ")")
     if frames:
         for f in d["frames"]:
+            im = f.get("image", {})
+            shape = (f", image {im['rows']} x {im['columns']} x {im['channels']}, {im['bits_per_sample']}-bit"
+                     + (f", {im['bands']} bands" if "bands" in im else "") if "rows" in im else "")
             click.echo(f"    #{f['index']}: {f['raw_bytes']} -> {f['coded_bytes']} bytes, {f['method']}, "
-                       f"{f['lanes']} lanes, crc32c {f['crc32c']}")
+                       f"{f['lanes']} lanes, crc32c {f['crc32c']}{shape}")
     imgs = [f["image"] for f in d["frames"] if "image" in f and "rows" in f["image"]]
     if imgs:
         n = sum(i["rows"] * i["columns"] * i["channels"] for i in imgs)

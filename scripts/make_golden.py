@@ -448,10 +448,7 @@ def main():
     golden_tessel_gap()
     golden_heddle()
     golden_v3_twins()
-
-
-if __name__ == "__main__":
-    main()
+    golden_tessel_bands()
 
 
 def golden_v3_twins():
@@ -492,3 +489,34 @@ def golden_v3_twins():
         with open(twin, "wb") as f:
             f.write(lcodec.pack(orig, model=model, frame_size=cont.frame_size))
         print(f"wrote {twin}")
+
+
+def golden_tessel_bands():
+    """Image frames in bands (payload version 3), with the encoder's band rule lowered (256
+    samples and 8 rows a band) so that small crops get several bands: an 8-bit PGM crop of
+    scikit-image's camera (structure model), an 8-bit PPM crop of its coffee (rct model) and
+    a 16-bit NPY (a camera crop times 61, plus 900; law model). The test applies the same
+    rule before it re-encodes them."""
+    import io
+
+    import numpy as np
+    import skimage.data as skd
+
+    from lcodec.inputs import layout
+
+    keep = layout.BAND_SAMPLES, layout.BAND_MIN_ROWS
+    layout.BAND_SAMPLES, layout.BAND_MIN_ROWS = 256, 8
+    try:
+        pgm = b"P5\n# bay-5 plate 2, banded\n30 40\n255\n" + skd.camera()[260:300, 40:70].tobytes()
+        write_vector("tessel-b3-pgm", pgm, model=os.path.join(HERE, "tessel-tiny-structure.lcmodel"))
+        ppm = b"P6\n# bay-5 colour plate 3, banded\n24 32\n255\n" + skd.coffee()[60:92, 420:444].tobytes()
+        write_vector("tessel-b3-ppm", ppm, model=os.path.join(HERE, "tessel-tiny-rct.lcmodel"))
+        buf = io.BytesIO()
+        np.save(buf, skd.camera()[100:148, 380:404].astype(np.uint16) * 61 + 900)
+        write_vector("tessel-b3-npy16", buf.getvalue(), model=os.path.join(HERE, "tessel-tiny-law.lcmodel"))
+    finally:
+        layout.BAND_SAMPLES, layout.BAND_MIN_ROWS = keep
+
+
+if __name__ == "__main__":
+    main()

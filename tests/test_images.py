@@ -1123,8 +1123,8 @@ def test_replicated_descriptor_refused(factors, why):
     ok = bytes([2]) + b"".join(uvarint(x) for x in (0, 4, 6, 1, 1, 0, 2, 3))
     lay, pos = read_descriptor(ok + bytes(8), 24)
     assert (lay.rep_rows, lay.rep_cols, pos) == (2, 3, len(ok))
-    with pytest.raises(DataError, match="unknown image payload version"):
-        read_descriptor(bytes([3]) + ok[1:] + bytes(8), 24)
+    with pytest.raises(DataError, match="unknown image payload version"):  # 3 is banded (test_image_bands.py)
+        read_descriptor(bytes([4]) + ok[1:] + bytes(8), 24)
 
 
 # -- pixel models on the one pipeline: every runner, streaming, --resume, --per-file ------------

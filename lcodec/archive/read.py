@@ -73,14 +73,15 @@ def _check_member_table(cont: C.Container) -> None:
 def _decoded_frames(cont: C.Container, m, jobs: int, cluster, workers: int = 1):
     """(frame, raw or None, problem or None) for every frame in order. --jobs 1 decodes
     here, one frame at a time (with workers > 1: that many threads, a bounded window
-    ahead); otherwise a runner decodes a bounded window ahead."""
+    ahead; a lone frame's image bands side by side); otherwise a runner decodes a bounded
+    window ahead."""
     if (jobs is None or jobs <= 1) and cluster is None and workers > 1 and len(cont.frames) > 1:
         yield from _threaded_frames(cont, m, workers)
         return
     if (jobs is None or jobs <= 1) and cluster is None:
         for fr in cont.frames:
             try:
-                yield fr, decode_record(m, fr), None
+                yield fr, decode_record(m, fr, max(1, workers)), None
             except DataError as e:
                 yield fr, None, str(e)
         return
@@ -227,15 +228,17 @@ def decode_stream(blob, sink: Sink, model=None, progress=None, keep_going: bool 
 def decode(blob, model=None, progress=None, keep_going: bool = False, workers: int = 1) -> Decoded:
     """Decode every frame and check every checksum. With keep_going, damaged frames are
     recorded in `problems` (and left as None) instead of raising at the first one. With
-    workers > 1, frames are decoded by that many threads (the output is the same)."""
+    workers > 1, frames (a lone frame: its image bands) are decoded by that many threads
+    (the output is the same)."""
     cont = C.read_container(blob)
     m = for_identity(cont.identity, model)
     _check_member_table(cont)
     out = Decoded(cont, [])
+    bands = workers if len(cont.frames) == 1 else 1
 
     def one(fr):
         try:
-            return decode_record(m, fr), None
+            return decode_record(m, fr, bands), None
         except DataError as e:
             return None, e
 

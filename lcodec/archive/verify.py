@@ -145,6 +145,8 @@ def _frame_info(f: C.Frame) -> dict:
                           "bits_per_subpixel": 8.0 * f.coded_len / (lay.rows * lay.cols * lay.channels)}
             if lay.replicated:  # coded: one sample per block; unpack repeats it
                 d["image"]["replicated"] = [lay.rep_rows, lay.rep_cols]
+            if lay.bands > 1:  # coded rows in bands, one coder stream each (decoded side by side)
+                d["image"]["bands"] = lay.bands
         except DataError as e:
             d["image"] = {"damaged": str(e)}
     return d

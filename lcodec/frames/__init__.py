@@ -41,10 +41,11 @@ def _raise_pending() -> None:
 
 
 def decode_one(model, index: int, method: int, raw_len: int, lanes: int, raw_crc: int, coded_crc: int,
-               payload, checks: bool = False) -> tuple[bytes | None, str | None]:
+               payload, checks: bool = False, threads: int = 1) -> tuple[bytes | None, str | None]:
     """One frame record's fields -> (content bytes, None), or (None, what is wrong).
     checks: the coded words carry sub-frame checks (version 3): decoding stops at the
-    first that fails, long before a made-up claimed length is reached."""
+    first that fails, long before a made-up claimed length is reached. threads: an image
+    frame's bands are decoded side by side by that many threads."""
     if C.crc32c(payload) != coded_crc:
         return None, f"frame {index} damaged (CRC-32C of its coded bytes does not match)"
     if method == C.METHOD_STORED:
@@ -53,7 +54,7 @@ def decode_one(model, index: int, method: int, raw_len: int, lanes: int, raw_crc
         if not is_pixel_model(model):
             return None, f"frame {index} damaged (an image frame in an archive of a byte model)"
         try:
-            raw = decode_image_frame(model, payload, raw_len, checks=checks)
+            raw = decode_image_frame(model, payload, raw_len, checks=checks, threads=threads)
         except DataError as e:
             return None, str(e)
         except SubframeCheckFailed as e:
@@ -78,10 +79,10 @@ def decode_one(model, index: int, method: int, raw_len: int, lanes: int, raw_crc
     return raw, None
 
 
-def decode_record(model, fr: C.Frame) -> bytes:
+def decode_record(model, fr: C.Frame, threads: int = 1) -> bytes:
     """One frame of a read container -> its content; DataError when it is damaged."""
     raw, problem = decode_one(model, fr.index, fr.method, fr.raw_len, fr.lanes, fr.raw_crc, fr.coded_crc,
-                              fr.payload, fr.checks)
+                              fr.payload, fr.checks, threads)
     if problem:
         raise DataError(problem)
     return raw

@@ -3,10 +3,13 @@
 The content is `prefix | pixel region | suffix` (inputs/layout.py). The frame payload is
 the layout's plain descriptor followed by one range-coder stream: first the prefix and
 suffix bytes (coded with the built-in strata model, one lane), then the samples (coded
-with the pixel model in wavefront order).
+with the pixel model in wavefront order). A large image is coded in horizontal bands
+(`layout.choose_bands`), each band as an image of its own in a stream of its own (the side
+bytes open the first), so that threads can decode the bands side by side.
 """
 from __future__ import annotations
 
+import threading
 from dataclasses import dataclass, replace
 
 import constriction
@@ -15,7 +18,8 @@ import numpy as np
 from ..coding import CheckedDecoder, CheckedEncoder
 from ..errors import ModelError
 from ..format import container as C
-from ..inputs.layout import Layout, read_descriptor, region_values, replication, side_bytes, values_region
+from ..inputs.layout import (Layout, choose_bands, read_descriptor, region_values, replication, side_bytes,
+                             values_region)
 
 _FAMILY = constriction.stream.model.Categorical(perfect=False)
 
@@ -48,15 +52,15 @@ def code_image(model, work: ImageWork) -> tuple[bytes, float, bool, dict | None]
     return C.frame_record(len(raw), coded, C.METHOD_IMAGE, 1, C.crc32c(raw)), nll_side + nll_pix, False, figures
 
 
-def encode_image_frame(model, raw: bytes, lay: Layout, checks: bool = True) -> tuple[bytes, float, float]:
+def encode_image_frame(model, raw: bytes, lay: Layout, checks: bool = True, bands: int | None = None
+                       ) -> tuple[bytes, float, float]:
     """(payload, NLL bits of the side bytes, NLL bits of the samples). checks: with
-    sub-frame checks (what container version 3 holds)."""
+    sub-frame checks (what container version 3 holds). bands: how many bands to code the
+    samples in (None: `choose_bands`, the encoder's rule; tests and measurements pick)."""
     lay.check(len(raw))
-    enc = constriction.stream.queue.RangeEncoder()
-    if checks:
-        enc = CheckedEncoder(enc)
     side = side_bytes(raw, lay)
-    nll_side = nll_pix = 0.0
+    nll_side = 0.0
+    enc = _encoder(checks)
     if side:
         arr = np.frombuffer(side, np.uint8)
         for syms, tab in model.teacher_chunks(arr, np.zeros(1, np.int64), np.array([len(arr)], np.int64)):
@@ -68,11 +72,24 @@ def encode_image_frame(model, raw: bytes, lay: Layout, checks: bool = True) -> t
     if (fr, fc) != (1, 1):  # code one sample of each block; the decoder repeats it
         lay = replace(lay, rep_rows=fr, rep_cols=fc)
         v = np.ascontiguousarray(v[::fr, ::fc])
-    for syms, tab in model.teacher_tables(v, lay.deep):
-        enc.encode(np.ascontiguousarray(syms, np.int32), _FAMILY, tab)
-        nll_pix += _nll(syms, tab)
-    words = np.asarray(enc.get_compressed(), "<u4").tobytes()
-    return lay.descriptor() + words, nll_side, nll_pix
+    n_bands = choose_bands(*v.shape) if bands is None else bands
+    lay = replace(lay, bands=n_bands)
+    lay.check(len(raw))
+    streams, nll_pix = [], 0.0
+    for b, (r0, r1) in enumerate(lay.band_bounds()):
+        if b:
+            enc = _encoder(checks)
+        for syms, tab in model.teacher_tables(np.ascontiguousarray(v[r0:r1]), lay.deep):
+            enc.encode(np.ascontiguousarray(syms, np.int32), _FAMILY, tab)
+            nll_pix += _nll(syms, tab)
+        streams.append(np.asarray(enc.get_compressed(), "<u4").tobytes())
+    head = lay.descriptor([len(w) // 4 for w in streams[:-1]])
+    return head + b"".join(streams), nll_side, nll_pix
+
+
+def _encoder(checks: bool):
+    enc = constriction.stream.queue.RangeEncoder()
+    return CheckedEncoder(enc) if checks else enc
 
 
 def _nll(syms, tab) -> float:
@@ -80,19 +97,21 @@ def _nll(syms, tab) -> float:
     return float(-np.log2(chosen / tab.sum(axis=1)).sum())
 
 
-def decode_image_frame(model, payload, raw_len: int, record=None, checks: bool = True) -> bytes:
+def decode_image_frame(model, payload, raw_len: int, record=None, checks: bool = True, threads: int = 1) -> bytes:
     """checks: the words carry sub-frame checks (container version 3); the first that
-    fails raises SubframeCheckFailed and decoding stops there."""
+    fails raises SubframeCheckFailed and decoding stops there. threads: a banded frame's
+    bands are decoded side by side by that many threads (the samples are the same);
+    `record` (a list: every table, in coding order) decodes them one after another."""
     lay, pos = read_descriptor(payload, raw_len)
     if not model.has_depth(lay.deep):
         raise ModelError(f"this model has no network for {8 * lay.bps}-bit samples")
     words = np.frombuffer(bytes(payload[pos:]), "<u4").astype(np.uint32)
-    dec = constriction.stream.queue.RangeDecoder(words)
-    if checks:
-        dec = CheckedDecoder(dec)
+    cuts = np.cumsum((0, *lay.band_words, len(words) - sum(lay.band_words)))
+    decoders = [_decoder(words[a:b], checks) for a, b in zip(cuts[:-1], cuts[1:])]
     n_side = raw_len - lay.region_len
     side = np.empty(n_side, np.uint8)
     if n_side:
+        dec = decoders[0]
         step = model.stepper(np.array([n_side], np.int64))
         prev = np.zeros(1, np.int32)
         try:
@@ -104,10 +123,62 @@ def decode_image_frame(model, payload, raw_len: int, record=None, checks: bool =
         finally:
             if hasattr(step, "close"):
                 step.close()
-    v = model.step_decode(lay.rows // lay.rep_rows, lay.cols // lay.rep_cols, lay.channels, lay.deep,
-                          lambda tab: dec.decode(_FAMILY, np.ascontiguousarray(tab, np.float64)), record)
+    cols, C = lay.cols // lay.rep_cols, lay.channels
+    stop = threading.Event()
+
+    def band(b: int, r0: int, r1: int) -> np.ndarray:
+        dec = decoders[b]
+
+        def decode(tab):
+            if stop.is_set():
+                raise _Stopped
+            return dec.decode(_FAMILY, np.ascontiguousarray(tab, np.float64))
+        return model.step_decode(r1 - r0, cols, C, lay.deep, decode, record)
+
+    bounds = lay.band_bounds()
+    if threads <= 1 or lay.bands == 1 or record is not None:
+        parts = [band(b, r0, r1) for b, (r0, r1) in enumerate(bounds)]
+    else:
+        parts = _side_by_side(band, bounds, min(threads, lay.bands), stop)
+    v = parts[0] if len(parts) == 1 else np.concatenate(parts, axis=0)
     if lay.replicated:
         v = np.repeat(np.repeat(v, lay.rep_rows, axis=0), lay.rep_cols, axis=1)
     region = values_region(v, lay)
     sb = side.tobytes()
     return sb[:lay.offset] + region + sb[lay.offset:]
+
+
+class _Stopped(Exception):
+    """A band's decoder stopped because another band failed or the caller was interrupted."""
+
+
+def _decoder(words, checks: bool):
+    dec = constriction.stream.queue.RangeDecoder(np.ascontiguousarray(words))
+    return CheckedDecoder(dec) if checks else dec
+
+
+def _side_by_side(band, bounds, threads: int, stop: threading.Event) -> list:
+    """Every band decoded by a pool of `threads` threads (the calling thread waits). The first
+    failure, or an interruption of the waiting thread, stops the other bands at their next
+    step; the failure of the lowest band that failed is raised."""
+    from concurrent.futures import FIRST_EXCEPTION, ThreadPoolExecutor, wait
+
+    from ..models.tessel_common import limit_blas
+
+    limit_blas()  # in the calling thread too: a limit asked only inside the pool is not always seen
+    pool = ThreadPoolExecutor(threads, thread_name_prefix="lcodec-band")
+    futs = []
+    try:
+        futs = [pool.submit(band, b, r0, r1) for b, (r0, r1) in enumerate(bounds)]
+        wait(futs, return_when=FIRST_EXCEPTION)
+    except BaseException:
+        stop.set()
+        raise
+    finally:
+        if any(f.done() and f.exception() is not None for f in futs):
+            stop.set()
+        pool.shutdown(wait=True, cancel_futures=True)
+    for f in futs:
+        if not f.cancelled() and f.exception() is not None and not isinstance(f.exception(), _Stopped):
+            raise f.exception()
+    return [f.result() for f in futs]

@@ -18,7 +18,16 @@ from ..models.tessel_common import FLAG_BIG_ENDIAN, FLAG_SIGNED, MAX_SAMPLES, PA
 
 FLAG_RECORD = 4  # the content is a pixel record (pixel-exact); else the file's own bytes
 REPLICATED_VERSION = 2  # payload version of a frame whose samples are an exact block replication
+BANDED_VERSION = 3  # payload version of a frame whose samples are coded in bands (one stream each)
 MAX_REPEAT = 16  # the largest replication factor looked for (per axis)
+MAX_BANDS = 64  # bands a reader accepts in one image frame
+# The encoder's band rule: an image of S coded samples gets min(S // BAND_SAMPLES, coded rows
+# // BAND_MIN_ROWS, BAND_LIMIT) bands (none below 2). Chosen by measurement
+# (docs/notes/model-tessel.md, "Bands"): a band restarts the per-image adaptive stages and
+# sees no row above it, so every band costs a little size; it buys a decoder thread.
+BAND_SAMPLES = 1 << 19
+BAND_MIN_ROWS = 128
+BAND_LIMIT = 16
 
 @dataclass(frozen=True)
 class Layout:
@@ -30,6 +39,8 @@ class Layout:
     flags: int = 0  # FLAG_BIG_ENDIAN, FLAG_SIGNED (2-byte samples), FLAG_RECORD
     rep_rows: int = 1  # every sample repeats over blocks of rep_rows x rep_cols (1, 1: none)
     rep_cols: int = 1
+    bands: int = 1  # horizontal bands of the coded rows, each its own coder stream (1: one stream)
+    band_words: tuple = ()  # read from a frame: the 32-bit word counts of streams 0 .. bands-2
 
     @property
     def region_len(self) -> int:
@@ -45,7 +56,9 @@ class Layout:
               and self.rows * self.cols * self.channels <= MAX_SAMPLES
               and 0 <= self.offset and self.offset + self.region_len <= raw_len
               and 1 <= self.rep_rows <= MAX_REPEAT and 1 <= self.rep_cols <= MAX_REPEAT
-              and self.rows % self.rep_rows == 0 and self.cols % self.rep_cols == 0)
+              and self.rows % self.rep_rows == 0 and self.cols % self.rep_cols == 0
+              and 1 <= self.bands <= min(MAX_BANDS, self.rows // self.rep_rows)
+              and len(self.band_words) == (self.bands - 1 if self.band_words else 0))
         if not ok:
             raise ValueError("impossible image layout")
 
@@ -53,11 +66,32 @@ class Layout:
     def replicated(self) -> bool:
         return (self.rep_rows, self.rep_cols) != (1, 1)
 
-    def descriptor(self) -> bytes:
+    @property
+    def coded_rows(self) -> int:
+        return self.rows // self.rep_rows
+
+    def band_bounds(self) -> list[tuple[int, int]]:
+        """(first, end) coded row of each band: band b holds rows b R // B .. (b+1) R // B."""
+        R, B = self.coded_rows, self.bands
+        return [(b * R // B, (b + 1) * R // B) for b in range(B)]
+
+    def descriptor(self, band_words=()) -> bytes:
+        """The plain descriptor; a banded layout's needs the word counts of its streams but
+        the last (band_words)."""
         head = (self.offset, self.rows, self.cols, self.channels, self.bps, self.flags)
+        if self.bands > 1:
+            if len(band_words) != self.bands - 1:
+                raise ValueError("a banded descriptor needs the word counts of all streams but the last")
+            return bytes([BANDED_VERSION]) + b"".join(
+                uvarint(x) for x in head + (self.rep_rows, self.rep_cols, self.bands, *band_words))
         if self.replicated:
             return bytes([REPLICATED_VERSION]) + b"".join(uvarint(x) for x in head + (self.rep_rows, self.rep_cols))
         return bytes([PAYLOAD_VERSION]) + b"".join(uvarint(x) for x in head)
+
+
+def choose_bands(rows: int, cols: int, channels: int) -> int:
+    """How many bands the encoder codes an image of this coded size in (1: one stream)."""
+    return max(1, min(rows * cols * channels // BAND_SAMPLES, rows // BAND_MIN_ROWS, BAND_LIMIT))
 
 
 def _repeat_factor(same: np.ndarray) -> int:
@@ -112,20 +146,34 @@ def side_bytes(raw, lay: Layout) -> bytes:
 
 
 def read_descriptor(payload, raw_len: int) -> tuple[Layout, int]:
+    """(layout, where the coded words start). A banded layout carries its streams' word
+    counts (all but the last) in band_words."""
     mv = memoryview(payload)
-    if len(mv) < 1 or mv[0] not in (PAYLOAD_VERSION, REPLICATED_VERSION):
+    if len(mv) < 1 or mv[0] not in (PAYLOAD_VERSION, REPLICATED_VERSION, BANDED_VERSION):
         raise DataError("image frame damaged (unknown image payload version)")
     pos, vals = 1, []
-    for _ in range(6 if mv[0] == PAYLOAD_VERSION else 8):  # offset rows cols channels bytes flags [rep_rows rep_cols]
+    # offset rows cols channels bytes flags [rep_rows rep_cols [bands]]
+    for _ in range({PAYLOAD_VERSION: 6, REPLICATED_VERSION: 8, BANDED_VERSION: 9}[mv[0]]):
         x, pos = read_uvarint(mv, pos, "image frame damaged")
         vals.append(x)
     if mv[0] == REPLICATED_VERSION and vals[6:] == [1, 1]:
         raise DataError("image frame damaged (replication factors 1 x 1)")
-    lay = Layout(*vals)
+    words = ()
+    if mv[0] == BANDED_VERSION:
+        if not 2 <= vals[8] <= MAX_BANDS:
+            raise DataError(f"image frame damaged ({vals[8]} bands: a banded frame has 2 to {MAX_BANDS})")
+        w = []
+        for _ in range(vals[8] - 1):
+            x, pos = read_uvarint(mv, pos, "image frame damaged")
+            w.append(x)
+        words = tuple(w)
+    lay = Layout(*vals, band_words=words)
     try:
         lay.check(raw_len)
     except ValueError:
         raise DataError("image frame damaged (impossible image layout)") from None
     if (len(mv) - pos) % 4:
         raise DataError("image frame damaged (coded words are not whole 32-bit words)")
+    if 4 * sum(words) > len(mv) - pos:
+        raise DataError("image frame damaged (its band streams claim more words than it holds)")
     return lay, pos

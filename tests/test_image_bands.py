@@ -1,0 +1,215 @@
+"""Image frames coded in bands (payload version 3, docs/FORMAT.md "Image frames"): every band
+is an image of its own in a coder stream of its own, so threads decode bands side by side.
+Round trips with the committed tiny pixel models, encoder tables == decoder tables band by
+band, the same bytes with 1 to 3 threads, damage in one band's stream, the descriptor's
+checks, the encoder's band rule, and the golden banded containers."""
+import io
+import os
+import threading
+import time
+import warnings
+
+import numpy as np
+import pytest
+
+import lcodec
+from lcodec import api
+from lcodec.coding import SubframeCheckFailed
+from lcodec.errors import DataError
+from lcodec.frames import decode_one
+from lcodec.frames.imageframe import _side_by_side, _Stopped, decode_image_frame, encode_image_frame
+from lcodec.format import container as C
+from lcodec.inputs import layout as L
+from lcodec.inputs.layout import Layout, read_descriptor, values_region
+from lcodec.models import load_model
+from support import v3_twin
+
+GOLDEN = os.path.join(os.path.dirname(__file__), "golden")
+MODELS = {"grey8": "tessel-tiny-structure.lcmodel", "rgb8": "tessel-tiny-rct.lcmodel",
+          "grey16": "tessel-tiny-law.lcmodel", "gap8": "tessel-tiny-gap.lcmodel"}
+
+
+def _model(kind):
+    return load_model(os.path.join(GOLDEN, MODELS[kind]))
+
+
+def _image(kind, rows=36, cols=22):
+    """Real samples (crops of scikit-image's photographs), framed between other bytes."""
+    import skimage.data as skd
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        if kind == "rgb8":
+            a, bps = skd.coffee()[100:100 + rows, 200:200 + cols], 1
+        elif kind == "grey16":
+            a, bps = skd.camera()[200:200 + rows, 150:150 + cols].astype(np.uint16) * 61 + 900, 2
+        else:
+            a, bps = skd.camera()[200:200 + rows, 150:150 + cols], 1
+    a = np.ascontiguousarray(a if a.ndim == 3 else a[:, :, None])
+    lay = Layout(6, a.shape[0], a.shape[1], a.shape[2], bps)
+    return b"front!" + values_region(a, lay) + b"back", lay, a
+
+
+@pytest.mark.parametrize("kind", ["grey8", "rgb8", "grey16", "gap8"])
+@pytest.mark.parametrize("bands", [2, 3, 5])
+def test_bands_round_trip_and_tables(kind, bands):
+    """Decoded with 1, 2 and 3 threads to the same bytes; the decoder's tables, band after band,
+    equal the encoder's tables of each band coded as an image of its own (parallel pass ==
+    step pass); every band's rows are the layout's split of the coded rows."""
+    m = _model(kind)
+    raw, lay, a = _image(kind)
+    payload, _, nll = encode_image_frame(m, raw, lay, bands=bands)
+    got, pos = read_descriptor(payload, len(raw))
+    assert payload[0] == L.BANDED_VERSION and got.bands == bands and len(got.band_words) == bands - 1
+    bounds = got.band_bounds()
+    assert bounds[0][0] == 0 and bounds[-1][1] == lay.rows
+    assert all(r1 - r0 in (lay.rows // bands, lay.rows // bands + 1) for r0, r1 in bounds)
+    for threads in (1, 2, 3):
+        assert decode_image_frame(m, payload, len(raw), threads=threads) == raw
+    rec = []
+    assert decode_image_frame(m, payload, len(raw), record=rec) == raw
+    inner = m.inner
+    want = np.concatenate([t for r0, r1 in bounds
+                           for _, t in inner.teacher_tables(np.ascontiguousarray(a[r0:r1]), lay.deep)])
+    step = np.concatenate(rec)
+    assert step.dtype == want.dtype == np.float64 and np.array_equal(step, want)
+    # the streams are independent: band 1 alone, coded as its own image, gives its stream's words
+    one, _, _ = encode_image_frame(m, b"" + values_region(a[bounds[1][0]:bounds[1][1]], Layout(
+        0, bounds[1][1] - bounds[1][0], lay.cols, lay.channels, lay.bps)), Layout(
+        0, bounds[1][1] - bounds[1][0], lay.cols, lay.channels, lay.bps))
+    words = payload[pos:]
+    start = 4 * got.band_words[0]
+    end = start + 4 * (got.band_words[1] if bands > 2 else len(words) // 4 - got.band_words[0])
+    assert words[start:end] == one[len(one) - (end - start):]
+
+
+def test_bands_cost_little_and_one_stream_is_unchanged():
+    """bands=1 writes the version-1 payload (no band fields), byte for byte what the encoder
+    wrote before bands existed; more bands cost a little (the adaptive stages restart)."""
+    m = _model("grey8")
+    raw, lay, _ = _image("grey8", 64, 48)
+    one, _, nll1 = encode_image_frame(m, raw, lay, bands=1)
+    assert one[0] == L.PAYLOAD_VERSION and encode_image_frame(m, raw, lay)[0] == one  # small: no bands
+    two, _, nll2 = encode_image_frame(m, raw, lay, bands=2)
+    assert nll1 < nll2 < 1.1 * nll1
+
+
+def test_band_rule():
+    """The encoder's rule (constants in lcodec.inputs.layout): no bands below 2 x BAND_SAMPLES
+    samples or 2 x BAND_MIN_ROWS rows; then one band per BAND_SAMPLES samples, at most
+    BAND_LIMIT, each at least BAND_MIN_ROWS rows."""
+    assert L.choose_bands(512, 512, 3) == 1  # 786,432 samples: one stream
+    assert L.choose_bands(1024, 1024, 1) == 2
+    assert L.choose_bands(1411, 1411, 3) == 11
+    assert L.choose_bands(200, 8000, 1) == 1  # wide and short: rows too few for two bands
+    assert L.choose_bands(4096, 4096, 3) == L.BAND_LIMIT
+    for rows, cols, ch in ((1024, 1024, 1), (3000, 3000, 1), (700, 4000, 4)):
+        b = L.choose_bands(rows, cols, ch)
+        assert rows // b >= L.BAND_MIN_ROWS and rows * cols * ch // b >= L.BAND_SAMPLES
+
+
+def test_api_packs_large_images_in_bands(monkeypatch, tmp_path):
+    """Through the archive layer: a PGM above the (lowered) band threshold is packed in bands,
+    `info` shows them, and unpack with 1 and 2 threads gives the file back."""
+    monkeypatch.setattr(L, "BAND_SAMPLES", 256)
+    monkeypatch.setattr(L, "BAND_MIN_ROWS", 8)
+    raw, lay, a = _image("grey8", 40, 30)
+    pgm = b"P5\n30 40\n255\n" + a.tobytes()
+    model = os.path.join(GOLDEN, MODELS["grey8"])
+    blob = lcodec.pack(pgm, model=model)
+    frame = lcodec.info(blob)["frames"][0]
+    assert frame["image"]["bands"] == 4  # min(1200 // 256, 40 // 8)
+    assert lcodec.unpack(blob, model=model) == pgm
+    assert b"".join(api.decode(blob, model=model, workers=2).frames) == pgm
+
+
+def _damaged(kind="grey8", bands=3):
+    m = _model(kind)
+    raw, lay, _ = _image(kind, 60, 40)
+    payload, _, _ = encode_image_frame(m, raw, lay, bands=bands)
+    got, pos = read_descriptor(payload, len(raw))
+    return m, raw, payload, got, pos
+
+
+@pytest.mark.parametrize("threads", [1, 2, 3])
+def test_damage_in_one_band_is_reported(threads):
+    """Words of the last band's stream changed: the frame is reported damaged with 1 to 3
+    threads (never other bytes), and the other bands' streams still decode on their own."""
+    m, raw, payload, got, pos = _damaged()
+    bad = bytearray(payload)
+    last = pos + 4 * sum(got.band_words)
+    for k in range(last, len(bad), 7):
+        bad[k] ^= 0x5A
+    try:
+        out = decode_image_frame(m, bytes(bad), len(raw), threads=threads)
+    except Exception:  # a failed sub-frame check, or words the range decoder refuses
+        out = None
+    assert out != raw
+    rec = C.crc32c(bytes(bad))
+    value, problem = decode_one(m, 0, C.METHOD_IMAGE, len(raw), 1, C.crc32c(raw), rec, bytes(bad), True, threads)
+    assert value is None and problem.startswith("frame 0 damaged")
+
+
+def test_descriptor_checks():
+    """A banded descriptor is refused when it claims fewer than 2 or more than MAX_BANDS bands,
+    more bands than coded rows, or streams longer than the words it holds."""
+    head = lambda *v: bytes([L.BANDED_VERSION]) + b"".join(C.uvarint(x) for x in v)  # noqa: E731
+    raw_len = 6 * 4
+    ok = head(0, 6, 4, 1, 1, 0, 1, 1, 2, 1) + bytes(8)
+    lay, pos = read_descriptor(ok, raw_len)
+    assert lay.bands == 2 and lay.band_words == (1,) and lay.band_bounds() == [(0, 3), (3, 6)]
+    for bad, why in ((head(0, 6, 4, 1, 1, 0, 1, 1, 1) + bytes(8), "1 bands"),
+                     (head(0, 6, 4, 1, 1, 0, 1, 1, 65) + bytes(8), "65 bands"),
+                     (head(0, 6, 4, 1, 1, 0, 1, 1, 7, 1, 1, 1, 1, 1, 1) + bytes(8), "impossible"),
+                     (head(0, 6, 4, 1, 1, 0, 3, 1, 3, 1, 1) + bytes(8), "impossible"),  # 2 coded rows
+                     (head(0, 6, 4, 1, 1, 0, 1, 1, 2, 3) + bytes(8), "claim more words")):
+        with pytest.raises(DataError, match=why):
+            read_descriptor(bad, raw_len)
+
+
+def test_side_by_side_stops_the_other_bands():
+    """A band that fails stops the others at their next step (they see the stop flag), and the
+    failure of the lowest failing band is raised, not the others' stop."""
+    stop = threading.Event()
+    steps = []
+
+    def band(b, r0, r1):
+        if b == 1:
+            time.sleep(0.05)
+            raise SubframeCheckFailed(0, 65536)
+        for k in range(2000):  # would take 20 s unless stopped
+            if stop.is_set():
+                raise _Stopped
+            steps.append(k)
+            time.sleep(0.01)
+        return b
+
+    t = time.monotonic()
+    with pytest.raises(SubframeCheckFailed):
+        _side_by_side(band, [(0, 1), (1, 2), (2, 3)], 3, stop)
+    assert time.monotonic() - t < 10 and len(steps) < 1000
+
+
+GOLDEN_BANDS = sorted(f[:-7] for f in os.listdir(GOLDEN) if f.startswith("tessel-b3-") and f.endswith(".lcodec"))
+
+
+def test_golden_banded_vectors_exist():
+    assert GOLDEN_BANDS == ["tessel-b3-npy16", "tessel-b3-pgm", "tessel-b3-ppm"]
+
+
+@pytest.mark.parametrize("name", GOLDEN_BANDS)
+def test_golden_banded_containers(name, monkeypatch):
+    """The committed banded containers (scripts/make_golden.py, `golden_tessel_bands`, with the
+    band rule lowered so that small images get bands): they decode to the original bytes with
+    1 and 2 threads, and today's encoder under the same rule writes the same bytes."""
+    monkeypatch.setattr(L, "BAND_SAMPLES", 256)
+    monkeypatch.setattr(L, "BAND_MIN_ROWS", 8)
+    model = os.path.join(GOLDEN, {"pgm": MODELS["grey8"], "ppm": MODELS["rgb8"], "npy16": MODELS["grey16"]}[
+        name.split("-")[-1]])
+    blob = open(os.path.join(GOLDEN, name + ".lcodec"), "rb").read()
+    orig = open(os.path.join(GOLDEN, name + ".orig"), "rb").read()
+    assert lcodec.info(blob)["frames"][0]["image"]["bands"] >= 3
+    assert lcodec.unpack(blob, model=model) == orig
+    assert b"".join(api.decode(blob, model=model, workers=2).frames) == orig
+    assert lcodec.pack(orig, model=model) == blob
+    if name.endswith("npy16"):  # reference reader: numpy
+        assert np.load(io.BytesIO(orig)).dtype == np.dtype("<u2")
