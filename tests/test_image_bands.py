@@ -94,17 +94,23 @@ def test_bands_cost_little_and_one_stream_is_unchanged():
 
 
 def test_band_rule():
-    """The encoder's rule (constants in lcodec.inputs.layout): no bands below 2 x BAND_SAMPLES
-    samples or 2 x BAND_MIN_ROWS rows; then one band per BAND_SAMPLES samples, at most
-    BAND_LIMIT, each at least BAND_MIN_ROWS rows."""
-    assert L.choose_bands(512, 512, 3) == 1  # 786,432 samples: one stream
-    assert L.choose_bands(1024, 1024, 1) == 2
-    assert L.choose_bands(1411, 1411, 3) == 11
+    """The encoder's rule (constants in lcodec.inputs.layout): the largest power of two at most
+    min(samples // BAND_SAMPLES, rows // BAND_MIN_ROWS, BAND_LIMIT); none below 2."""
+    assert (L.BAND_SAMPLES, L.BAND_MIN_ROWS, L.BAND_LIMIT) == (1 << 18, 128, 16)
+    assert L.choose_bands(512, 512, 1) == 1  # 262,144 samples: one stream
+    assert L.choose_bands(512, 512, 3) == 2  # 786,432 samples: 3 -> 2
+    assert L.choose_bands(1024, 1024, 1) == 4
+    assert L.choose_bands(1411, 1411, 1) == 4  # 7 -> 4
+    assert L.choose_bands(1411, 1411, 3) == 8  # min(22, 1411 // 128 = 11) -> 8
     assert L.choose_bands(200, 8000, 1) == 1  # wide and short: rows too few for two bands
+    assert L.choose_bands(300, 8000, 1) == 2
     assert L.choose_bands(4096, 4096, 3) == L.BAND_LIMIT
-    for rows, cols, ch in ((1024, 1024, 1), (3000, 3000, 1), (700, 4000, 4)):
-        b = L.choose_bands(rows, cols, ch)
-        assert rows // b >= L.BAND_MIN_ROWS and rows * cols * ch // b >= L.BAND_SAMPLES
+    for rows in range(1, 3000, 7):
+        for cols, ch in ((1, 1), (333, 1), (1024, 3), (4000, 4)):
+            b = L.choose_bands(rows, cols, ch)
+            assert b & (b - 1) == 0 and 1 <= b <= L.BAND_LIMIT
+            if b > 1:
+                assert rows // b >= L.BAND_MIN_ROWS and rows * cols * ch // b >= L.BAND_SAMPLES
 
 
 def test_api_packs_large_images_in_bands(monkeypatch, tmp_path):
