@@ -219,3 +219,50 @@ def test_golden_banded_containers(name, monkeypatch):
     assert lcodec.pack(orig, model=model) == blob
     if name.endswith("npy16"):  # reference reader: numpy
         assert np.load(io.BytesIO(orig)).dtype == np.dtype("<u2")
+
+
+@pytest.fixture(scope="module")
+def banded_archive(tmp_path_factory):
+    """A 1024 x 1536 PGM (scikit-image's camera, flipped and turned six ways) packed with the
+    tiny grey model: 4 bands by the encoder's own rule."""
+    import skimage.data as skd
+    cam = skd.camera()
+    a = np.ascontiguousarray(np.block([[cam, cam[:, ::-1]], [cam[::-1], cam.T], [cam.T[::-1], cam[::-1, ::-1]]]))
+    pgm = b"P5\n1024 1536\n255\n" + a.tobytes()
+    model = os.path.join(GOLDEN, MODELS["grey8"])
+    arc = tmp_path_factory.mktemp("banded") / "plate.pgm.lcodec"
+    arc.write_bytes(lcodec.pack(pgm, model=model))
+    assert lcodec.info(arc.read_bytes())["frames"][0]["image"]["bands"] == 4
+    return arc, model
+
+
+@pytest.mark.skipif(os.name != "posix", reason="POSIX signals")
+@pytest.mark.parametrize("sig,code,text", [("SIGINT", 130, "interrupted (SIGINT)"), ("SIGTERM", 143, "terminated (SIGTERM)")])
+def test_unpack_with_band_threads_interrupted(tmp_path, banded_archive, sig, code, text):
+    """A signal while `unpack --threads 2` decodes a banded image: exit 130 / 143 with one line,
+    nothing under the output's name, no temporary file (the band threads stop)."""
+    import signal
+    import subprocess
+    import sys
+
+    arc, model = banded_archive
+    out = tmp_path / "out"
+    out.mkdir()
+    p = subprocess.Popen([sys.executable, "-m", "lcodec", "unpack", str(arc), "-o", str(out / "plate.pgm"), "-m", model,
+                          "--threads", "2"], stdout=subprocess.PIPE, stderr=subprocess.PIPE)
+    time.sleep(1.5)  # imports and the model load take about 0.7 s; decoding takes several seconds
+    p.send_signal(getattr(signal, sig))
+    _, err = p.communicate(timeout=120)
+    lines = [ln for ln in err.decode().splitlines() if ln.strip()]
+    assert p.returncode == code and len(lines) == 1 and text in lines[0], err
+    assert os.listdir(out) == []
+
+
+def test_info_shows_bands(banded_archive):
+    """`lcodec info --frames` names the image and its bands, from the descriptor alone."""
+    from click.testing import CliRunner
+
+    from lcodec.cli import main
+    arc, _ = banded_archive
+    res = CliRunner().invoke(main, ["info", str(arc), "--frames"])
+    assert res.exit_code == 0 and "image 1536 x 1024 x 1, 8-bit, 4 bands" in res.output, res.output
