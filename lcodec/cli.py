@@ -163,8 +163,8 @@ model_option = click.option("-m", "--model", "model", type=click.Path(dir_okay=F
 force_option = click.option("--force", is_flag=True, help="Overwrite an existing output.")
 threads_option = click.option("--threads", type=click.IntRange(1, 64), default=1, show_default=True,
                               help="Frames decoded side by side by threads of this process (images: one "
-                                   "frame each; any model). Same output. --jobs uses worker processes "
-                                   "instead; give one or the other.")
+                                   "frame each, a large image's bands; any model). Same output. --jobs uses "
+                                   "worker processes instead; give one or the other.")
 quiet_option = click.option("-q", "--quiet", is_flag=True, help="No progress or summary on stderr.")
 
 
