@@ -47,6 +47,7 @@ import math
 import numpy as np
 from numba import njit
 
+from .tessel_net import FusedNet
 from .tessel_predict import _gap, _pv, _q16
 from .weft import BACKENDS
 from .strata import Strata
@@ -689,6 +690,8 @@ class Tessel:
             arr = {k: self.arrays[role + "." + k] for k in ("emb", "w1", "b1", "w2", "b2")}
             arr["lut"] = self.arrays["lut"]
             self.kernels[role] = BACKENDS[backend](rp, arr)
+        # the numpy backend's tables through tessel_net (the same integers, a faster first layer)
+        self.nets = {r: FusedNet(k, Q, HI_SLOT) for r, k in self.kernels.items()} if backend == "numpy" else {}
 
     def has_depth(self, deep: bool) -> bool:
         return ("r16h" in self.kernels) if deep else ("r8" in self.kernels)
@@ -702,7 +705,10 @@ class Tessel:
 
     # -- pixels ----------------------------------------------------------------------------
     def role_tables(self, role: str, idx: np.ndarray) -> np.ndarray:
-        return self.kernels[role].tables(idx)
+        """Tables of the sub-symbols with embedding rows idx (n, N_SLOTS), each column within
+        its slot's rows (as `_context` makes them)."""
+        net = self.nets.get(role)
+        return net.tables(idx) if net is not None else self.kernels[role].tables(idx)
 
     def teacher(self, v: np.ndarray):
         """(embedding rows, symbols, roles) of every sub-symbol in raster order."""
