@@ -754,10 +754,13 @@ def test_law_tables_follow_the_two_sided_geometric_law():
 def test_law_stage_stays_exact_at_the_limits():
     """`_mix_law` with stage-2 entries near their largest (2**32) and near 1, law rows at both
     ends of the scale, evidence at both caps: integers in 1..2**53, equal to a plain-Python
-    recomputation (Python integers as the reference)."""
-    from lcodec.models.tessel import MIX_ONE, N_CTX, N_LEVELS, _mix_law, law_tables, weight_table
+    recomputation (Python integers as the reference), and `_law_evidence` moves the evidence
+    by the code lengths under A and under the law row."""
+    from lcodec.models.tessel import (LOG2_TAB, MIX_ONE, N_CTX, N_LEVELS, _law_evidence, _mix_law, law_normed,
+                                      law_tables, weight_table)
     cap = 12
     wtab, law = weight_table(cap), law_tables()
+    lawq, lawsum = law_normed()
     tab = np.full((3, 256), float((1 << 45) - 1))
     tab[1, :] = 1.0
     tab[2, :] = np.arange(1, 257) * float(1 << 24)
@@ -767,17 +770,27 @@ def test_law_stage_stays_exact_at_the_limits():
     D[0], D[1] = 256 * cap, -256 * cap
     qa, tb, sums, out = (np.empty((3, 256), np.int64), np.empty((3, 256), np.int64), np.empty((3, 2), np.int64),
                          np.empty((3, 256)))
-    _mix_law(tab, ctx, lrow, law, D, wtab, cap, qa, tb, sums, out)
+    _mix_law(tab, ctx, lrow, lawq, lawsum, D, wtab, cap, qa, sums, out)
     assert (out >= 1).all() and out.max() < 2 ** 53 and (out == np.floor(out)).all()
+
+    def ilog(x):  # `_ilog` in Python integers
+        b = x.bit_length() - 1
+        return b * 256 + int(LOG2_TAB[((x >> (b - 8)) if b >= 8 else (x << (8 - b))) & 255])
+    syms = np.array([0, 128, 255], np.int64)
+    D0 = D.copy()
+    _law_evidence(ctx, syms, D, cap, lrow, law, qa, tb, sums)
     for i in range(3):
         t = [int(x) for x in tab[i]]
         inv = (1 << 44) // sum(t)
         q = [(x * inv) >> 24 for x in t]
         b = [int(x) for x in law[lrow[i]]]
-        wb = int(wtab[(int(D[i]) >> 4) + 16 * cap])
+        wb = int(wtab[(int(D0[i]) >> 4) + 16 * cap])
         invb = (1 << 44) // sum(b)
-        assert qa[i].tolist() == q and tb[i].tolist() == b and sums[i].tolist() == [sum(q) + 256, sum(b)]
+        assert qa[i].tolist() == q and sums[i].tolist() == [sum(q) + 256, sum(b)]
         assert out[i].tolist() == [float((MIX_ONE - wb) * x + wb * ((y * invb) >> 24) + 1) for x, y in zip(q, b)]
+        s = int(syms[i])
+        d = int(D0[i]) + (ilog(sum(q) + 256) - ilog(q[s] + 1)) - (ilog(sum(b)) - ilog(b[s]))
+        assert int(D[i]) == min(max(d, -256 * cap), 256 * cap)
 
 
 def test_law_stage_learns_a_small_noisy_scan(model_file, tmp_path):

@@ -47,6 +47,7 @@ import math
 import numpy as np
 from numba import njit
 
+from .tessel_net import FusedNet
 from .tessel_predict import _gap, _pv, _q16
 from .weft import BACKENDS
 from .strata import Strata
@@ -348,17 +349,28 @@ def _law_rows(cls, his, A, Nc, lrow):
 
 
 @njit(cache=True, nogil=True)
-def _mix_law(tab, ctx, lrow, law, D, wtab, cap, qa, tb, sums, out):
+def _mix_law(tab, ctx, lrow, lawq, lawsum, D, wtab, cap, qa, sums, out):
     """The law stage: A = tab (what the stages before gave), B = the law table's row lrow,
-    weighed like `_mix2` by the evidence D of the row's context (role, activity class)."""
+    weighed like `_mix2` by the evidence D of the row's context (role, activity class). B's
+    normalised row and its sum are constants of the row (`law_normed`): out is what
+    `_weigh_row` gives on the law row, without normalising it again for every sub-symbol."""
     for i in range(tab.shape[0]):
         sums[i, 0] = _norm_row(tab, i, qa)
-        sb = np.int64(0)
+        sums[i, 1] = lawsum[lrow[i]]
+        wb = wtab[(D[ctx[i]] >> 4) + 16 * cap]
+        wa = MIX_ONE - wb
+        lq = lawq[lrow[i]]
         for j in range(256):
-            tb[i, j] = law[lrow[i], j]  # 1 .. 2**20 + 1
-            sb += tb[i, j]
-        sums[i, 1] = sb
-        _weigh_row(qa, tb, i, sb, wtab[(D[ctx[i]] >> 4) + 16 * cap], out)
+            out[i, j] = np.float64(wa * qa[i, j] + wb * lq[j] + 1)  # <= 2**12 * 2**20 + 1 < 2**53
+
+
+@njit(cache=True, nogil=True)
+def _law_evidence(ctx, syms, D, cap, lrow, law, qa, tb, sums):
+    """After a group: the law stage's evidence (`_evidence`), B's entry of each symbol being
+    its law row's (put where `_evidence` reads it)."""
+    for i in range(ctx.shape[0]):
+        tb[i, syms[i]] = law[lrow[i], syms[i]]
+    _evidence(ctx, syms, D, cap, 0, qa, tb, sums)
 
 
 @njit(cache=True, nogil=True)
@@ -391,6 +403,17 @@ def _root8() -> list:
 
 
 _LAW = []
+_LAWQ = []
+
+
+def law_normed() -> tuple:
+    """(the law tables' rows normalised as `_weigh_row` normalises B: row * (2**44 // sum) >> 24,
+    each below 2**20 + 1; their sums), int64, built once per process."""
+    if not _LAWQ:
+        law = law_tables()
+        tot = law.sum(axis=1)  # about 2**20 + 256 each
+        _LAWQ.append(((law * ((np.int64(1) << 44) // tot)[:, None]) >> 24, tot))  # law <= tot: < 2**45
+    return _LAWQ[0]
 
 
 def law_tables() -> np.ndarray:
@@ -432,7 +455,7 @@ def law_tables() -> np.ndarray:
 
 @njit(cache=True, nogil=True)
 def _mix_chunk(tab, ctx, syms, gid, Ks, counts, tots, mid, ctx2, K2s, counts2, tots2, D, wtab, cap, decay,
-               qa, tb, sums, out, blend, D1, limit, lcls, lhi, lrow, law, A, Nc, D3, wtab3, cap3, out3):
+               qa, tb, sums, out, blend, D1, limit, lcls, lhi, lrow, law, lawq, lawsum, A, Nc, D3, wtab3, cap3, out3):
     """The encoder's side of the adaptive counts: group by group (one wavefront step and
     sub-symbol, as the decoder sees them), every table from the state before the group,
     then the group's symbols counted in lane order. Stage 1: the network mixed with the
@@ -463,8 +486,8 @@ def _mix_chunk(tab, ctx, syms, gid, Ks, counts, tots, mid, ctx2, K2s, counts2, t
             out[i:j] = mid[i:j]
         if limit > 0:
             _law_rows(lcls[i:j], lhi[i:j], A, Nc, lrow[i:j])
-            _mix_law(out[i:j], ctx[i:j], lrow[i:j], law, D3, wtab3, cap3, qa[i:j], tb[i:j], sums[i:j], out3[i:j])
-            _evidence(ctx[i:j], syms[i:j], D3, cap3, 0, qa[i:j], tb[i:j], sums[i:j])
+            _mix_law(out[i:j], ctx[i:j], lrow[i:j], lawq, lawsum, D3, wtab3, cap3, qa[i:j], sums[i:j], out3[i:j])
+            _law_evidence(ctx[i:j], syms[i:j], D3, cap3, lrow[i:j], law, qa[i:j], tb[i:j], sums[i:j])
             if lhi[i] >= 0:
                 _law_count(lcls[i:j], lhi[i:j], syms[i:j], A, Nc, limit)
         i = j
@@ -689,6 +712,8 @@ class Tessel:
             arr = {k: self.arrays[role + "." + k] for k in ("emb", "w1", "b1", "w2", "b2")}
             arr["lut"] = self.arrays["lut"]
             self.kernels[role] = BACKENDS[backend](rp, arr)
+        # the numpy backend's tables through tessel_net (the same integers, a faster first layer)
+        self.nets = {r: FusedNet(k, Q, HI_SLOT) for r, k in self.kernels.items()} if backend == "numpy" else {}
 
     def has_depth(self, deep: bool) -> bool:
         return ("r16h" in self.kernels) if deep else ("r8" in self.kernels)
@@ -702,7 +727,10 @@ class Tessel:
 
     # -- pixels ----------------------------------------------------------------------------
     def role_tables(self, role: str, idx: np.ndarray) -> np.ndarray:
-        return self.kernels[role].tables(idx)
+        """Tables of the sub-symbols with embedding rows idx (n, N_SLOTS), each column within
+        its slot's rows (as `_context` makes them)."""
+        net = self.nets.get(role)
+        return net.tables(idx) if net is not None else self.kernels[role].tables(idx)
 
     def teacher(self, v: np.ndarray):
         """(embedding rows, symbols, roles) of every sub-symbol in raster order."""
@@ -735,6 +763,7 @@ class Tessel:
         # high byte of its sample (-1 for a high byte); scale sums and evidence per image
         limit = self.law_limit if deep else 0
         law = law_tables() if limit else np.zeros((1, 256), np.int64)
+        lawq, lawsum = law_normed() if limit else (law, np.ones(1, np.int64))
         lcls = np.zeros(len(syms), np.int64)
         lhi = np.full(len(syms), -1, np.int64)
         if deep:  # raster order: high byte, low byte of each sample; contexts as `_teacher` sets them
@@ -769,7 +798,8 @@ class Tessel:
                 _mix_chunk(tab, ctx[o].astype(np.int64), cs, gid[i:j], K[roles[o]], counts, tots, mid,
                            ctx2[o].astype(np.int64), K2[roles[o]], counts2, tots2, D, self.wtab, self.cap,
                            self.decay, qa, tb, np.empty((m2, 2), np.int64), out, self.blend, D1,
-                           limit, lcls[o], lhi[o], lrow[:len(o)], law, A, Nc, D3, self.law_wtab, self.law_cap, out3)
+                           limit, lcls[o], lhi[o], lrow[:len(o)], law, lawq, lawsum, A, Nc, D3, self.law_wtab,
+                           self.law_cap, out3)
                 tab = out3
             yield cs, tab
             i = j
@@ -797,6 +827,7 @@ class Tessel:
         qa, tb, sums = np.empty((cap, 256), np.int64), np.empty((cap, 256), np.int64), np.empty((cap, 2), np.int64)
         limit = self.law_limit if deep else 0
         law = law_tables() if limit else None
+        lawq, lawsum = law_normed() if limit else (None, None)
         A, Nc, D3 = np.zeros(N_CLASSES, np.int64), np.zeros(N_CLASSES, np.int64), np.zeros(N_CTX, np.int64)
         lrow = np.empty(cap, np.int64)
         mixed3 = np.empty((cap, 256), np.float64)
@@ -818,7 +849,7 @@ class Tessel:
                 tab = mixed2[:m]
             if limit:
                 _law_rows(cls[:m], no_hi[:m] if his is None else his, A, Nc, lrow[:m])
-                _mix_law(tab, ctx, lrow[:m], law, D3, self.law_wtab, self.law_cap, qa3[:m], tb3[:m], sums3[:m],
+                _mix_law(tab, ctx, lrow[:m], lawq, lawsum, D3, self.law_wtab, self.law_cap, qa3[:m], sums3[:m],
                          mixed3[:m])
                 tab = mixed3[:m]
             if record is not None:
@@ -831,7 +862,7 @@ class Tessel:
             if K2:
                 _update2(ctx2, syms, counts2, tots2, D, self.cap, self.decay, qa[:m], tb[:m], sums[:m])
             if limit:
-                _evidence(ctx, syms, D3, self.law_cap, 0, qa3[:m], tb3[:m], sums3[:m])
+                _law_evidence(ctx, syms, D3, self.law_cap, lrow[:m], law, qa3[:m], tb3[:m], sums3[:m])
                 if his is not None:
                     _law_count(cls[:m], his, syms, A, Nc, limit)
             return syms

@@ -160,6 +160,19 @@ _POOL = None
 
 
 @njit(cache=True, nogil=True)
+def _embed_rows(ctx, emb, out):
+    """out[n] = concat(emb[ctx[n, 0]], ..., emb[ctx[n, W-1]]), as float32 (the gather without
+    numpy's temporaries). Every ctx value must be a row of emb (numba does not check): the
+    callers make them so."""
+    W, E = ctx.shape[1], emb.shape[1]
+    for n in range(ctx.shape[0]):
+        for w in range(W):
+            e = ctx[n, w]
+            for d in range(E):
+                out[n, w * E + d] = emb[e, d]
+
+
+@njit(cache=True, nogil=True)
 def _gather_inputs(ctx, emb, hemb, rows, out):
     """out[n] = concat(emb[ctx[n, 0]], ..., emb[ctx[n, W-1]], hemb[rows[n, 0]], ...), as float32."""
     W, E, D = ctx.shape[1], emb.shape[1], hemb.shape[1]
@@ -194,13 +207,13 @@ class NumpyKernels:
 
     def tables(self, ctx: np.ndarray) -> np.ndarray:
         p, N = self.p, len(ctx)
+        ctx = np.ascontiguousarray(ctx)
+        x = np.empty((N, self.w1.shape[0]), np.float32)
         if self.hemb is not None:
-            ctx = np.ascontiguousarray(ctx)
             rows = context_rows(ctx, p["hash_orders"], p["hash_bits"])
-            x = np.empty((N, self.w1.shape[0]), np.float32)
             _in_halves(N, lambda a, b: _gather_inputs(ctx[a:b], self.emb, self.hemb, rows[a:b], x[a:b]))
         else:
-            x = self.emb[ctx].reshape(N, -1).astype(np.float32)
+            _in_halves(N, lambda a, b: _embed_rows(ctx[a:b], self.emb, x[a:b]))
         # bound: |x|, |w1| <= 127, input_width terms: every partial sum < 2**24, exact
         acc = x @ self.w1
         h = np.empty(acc.shape, np.float32)
