@@ -96,12 +96,12 @@ def test_bands_cost_little_and_one_stream_is_unchanged():
 def test_band_rule():
     """The encoder's rule (constants in lcodec.inputs.layout): the largest power of two at most
     min(samples // BAND_SAMPLES, rows // BAND_MIN_ROWS, BAND_LIMIT); none below 2."""
-    assert (L.BAND_SAMPLES, L.BAND_MIN_ROWS, L.BAND_LIMIT) == (1 << 18, 128, 16)
-    assert L.choose_bands(512, 512, 1) == 1  # 262,144 samples: one stream
-    assert L.choose_bands(512, 512, 3) == 2  # 786,432 samples: 3 -> 2
-    assert L.choose_bands(1024, 1024, 1) == 4
-    assert L.choose_bands(1411, 1411, 1) == 4  # 7 -> 4
-    assert L.choose_bands(1411, 1411, 3) == 8  # min(22, 1411 // 128 = 11) -> 8
+    assert (L.BAND_SAMPLES, L.BAND_MIN_ROWS, L.BAND_LIMIT) == (1 << 19, 128, 16)
+    assert L.choose_bands(512, 512, 3) == 1  # 786,432 samples: one stream
+    assert L.choose_bands(512, 1024, 1) == 1  # 2^19 samples: one band is no band
+    assert L.choose_bands(1024, 1024, 1) == 2
+    assert L.choose_bands(1411, 1411, 1) == 2  # 3 -> 2
+    assert L.choose_bands(1411, 1411, 3) == 8  # min(11, 1411 // 128 = 11) -> 8
     assert L.choose_bands(200, 8000, 1) == 1  # wide and short: rows too few for two bands
     assert L.choose_bands(300, 8000, 1) == 2
     assert L.choose_bands(4096, 4096, 3) == L.BAND_LIMIT
@@ -224,7 +224,7 @@ def test_golden_banded_containers(name, monkeypatch):
 @pytest.fixture(scope="module")
 def banded_archive(tmp_path_factory):
     """A 1024 x 1536 PGM (scikit-image's camera, flipped and turned six ways) packed with the
-    tiny grey model: 4 bands by the encoder's own rule."""
+    tiny grey model: 2 bands by the encoder's own rule."""
     import skimage.data as skd
     cam = skd.camera()
     a = np.ascontiguousarray(np.block([[cam, cam[:, ::-1]], [cam[::-1], cam.T], [cam.T[::-1], cam[::-1, ::-1]]]))
@@ -232,7 +232,7 @@ def banded_archive(tmp_path_factory):
     model = os.path.join(GOLDEN, MODELS["grey8"])
     arc = tmp_path_factory.mktemp("banded") / "plate.pgm.lcodec"
     arc.write_bytes(lcodec.pack(pgm, model=model))
-    assert lcodec.info(arc.read_bytes())["frames"][0]["image"]["bands"] == 4
+    assert lcodec.info(arc.read_bytes())["frames"][0]["image"]["bands"] == 2
     return arc, model
 
 
@@ -265,4 +265,4 @@ def test_info_shows_bands(banded_archive):
     from lcodec.cli import main
     arc, _ = banded_archive
     res = CliRunner().invoke(main, ["info", str(arc), "--frames"])
-    assert res.exit_code == 0 and "image 1536 x 1024 x 1, 8-bit, 4 bands" in res.output, res.output
+    assert res.exit_code == 0 and "image 1536 x 1024 x 1, 8-bit, 2 bands" in res.output, res.output

@@ -25,10 +25,12 @@ MAX_BANDS = 64  # bands a reader accepts in one image frame
 # of two bands at most min(S // BAND_SAMPLES, R // BAND_MIN_ROWS, BAND_LIMIT) (none below 2).
 # A band restarts the per-image adaptive stages and sees no row above it, so every band costs
 # a little size; it buys a decoder thread. Powers of two share out evenly over 2, 4, 8 or 16
-# threads (3 bands on 2 threads take as long as 4). Chosen by measurement
-# (docs/notes/model-tessel.md, "Bands"): a 2-megapixel grey photograph costs +0.04% in 2 or 4
-# bands, +0.14% in 8 and +0.44% in 16.
-BAND_SAMPLES = 1 << 18
+# threads (3 bands on 2 threads take as long as 4). Every band walks a whole wavefront (columns
+# + 2 x rows steps), and each step's Python runs under the GIL, so fewer, larger bands decode
+# faster in threads: a 1-megapixel 16-bit image in 2 threads took 3.8 s in 2 bands and 4.2-4.3
+# s in 4. Chosen by measurement (docs/notes/model-tessel.md, "Bands"): a 2-megapixel grey
+# photograph costs +0.04% in 2 or 4 bands, +0.14% in 8 and +0.44% in 16.
+BAND_SAMPLES = 1 << 19
 BAND_MIN_ROWS = 128
 BAND_LIMIT = 16
 
