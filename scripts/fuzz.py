@@ -735,13 +735,13 @@ def _cache_decoding(enabled: bool):
         return real
     cache = {}
 
-    def cached(model, fr):
+    def cached(model, fr, threads=1):  # threads: a lone image's bands; the output is the same
         key = (repr(getattr(model, "identity", None)), fr.method, fr.lanes, fr.raw_len, fr.raw_crc, fr.coded_crc,
                bytes(fr.payload))
         hit = cache.get(key)
         if hit is not None:
             return hit
-        raw = real(model, fr)
+        raw = real(model, fr, threads)
         if len(cache) > 20000:
             cache.clear()
         cache[key] = raw

@@ -913,8 +913,16 @@ def test_train_image_cli_16bit_law_stage(flag, tmp_path):
     buf = io.BytesIO()
     np.save(buf, a)
     blob = lcodec.pack(buf.getvalue(), model=str(out))
-    assert lcodec.info(blob)["frames"][0]["method"] == "modelled/image"
+    # a 3 s training may leave a model under which this image does not shrink: its frame is
+    # then stored, so the model's own coding of it is checked on the frame itself
+    assert lcodec.info(blob)["frames"][0]["method"] in ("modelled/image", "stored")
     assert np.array_equal(np.load(io.BytesIO(lcodec.unpack(blob, model=str(out)))), a)
+    from lcodec.inputs.layout import Layout
+    m = load_model(str(out))
+    lay = Layout(0, 30, 30, 1, 2)
+    raw = a.astype("<u2").tobytes()
+    payload, _, _ = encode_image_frame(m, raw, lay)
+    assert decode_image_frame(m, payload, len(raw)) == raw
 
 
 def test_bench_kind_image_cli(model_file, tmp_path):
