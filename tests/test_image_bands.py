@@ -17,7 +17,8 @@ from lcodec import api
 from lcodec.coding import SubframeCheckFailed
 from lcodec.errors import DataError
 from lcodec.frames import decode_one
-from lcodec.frames.imageframe import _side_by_side, _Stopped, decode_image_frame, encode_image_frame
+from lcodec.frames.forked import Stopped
+from lcodec.frames.imageframe import _side_by_side, decode_image_frame, encode_image_frame
 from lcodec.format import container as C
 from lcodec.inputs import layout as L
 from lcodec.inputs.layout import Layout, read_descriptor, values_region
@@ -175,7 +176,7 @@ def test_descriptor_checks():
 def test_side_by_side_stops_the_other_bands():
     """A band that fails stops the others at their next step (they see the stop flag), and the
     failure of the lowest failing band is raised, not the others' stop."""
-    stop = threading.Event()
+    stop = np.zeros(1, np.uint8)
     steps = []
 
     def band(b, r0, r1):
@@ -183,8 +184,8 @@ def test_side_by_side_stops_the_other_bands():
             time.sleep(0.05)
             raise SubframeCheckFailed(0, 65536)
         for k in range(2000):  # would take 20 s unless stopped
-            if stop.is_set():
-                raise _Stopped
+            if stop[0]:
+                raise Stopped
             steps.append(k)
             time.sleep(0.01)
         return b

@@ -30,6 +30,7 @@ from dataclasses import dataclass
 from ..errors import UsageError
 from ..format import modelfile
 from ..frames import code_frame, decode_one
+from ..frames.forked import may_fork
 from ..models import ARCHITECTURES, BUILTIN, Loaded
 
 BATCH_BYTES = 1 << 17  # frames per task: up to about this many raw bytes (many small files share a task)
@@ -220,18 +221,9 @@ class InlineRunner(Runner):
 
 
 def _may_fork() -> bool:
-    """Whether worker processes may be forked from this one: the platform forks, and this
-    process runs no other thread (no Python thread, numba's thread pool never started), so
-    no lock can be copied while another thread holds it."""
-    import threading
-
-    if "fork" not in multiprocessing.get_all_start_methods() or threading.active_count() != 1:
-        return False
-    try:
-        from numba.np.ufunc import parallel
-    except ImportError:
-        return False
-    return not getattr(parallel, "_is_initialized", True)
+    """frames.forked.may_fork: no other thread runs here (looked up at each call, so tests
+    can patch this name)."""
+    return may_fork()
 
 
 class ProcessRunner(Runner):

@@ -74,6 +74,9 @@ class SubframeCheckFailed(ValueError):
         super().__init__(f"sub-frame check {j} failed after {symbols:,} symbols; decoding stopped")
         self.j, self.symbols = j, symbols
 
+    def __reduce__(self):  # so that it travels back from a forked band worker as itself
+        return type(self), (self.j, self.symbols)
+
 
 def check_values(j: int) -> np.ndarray:
     return np.array([0xA7 ^ (j & 0xFF), 0x3D ^ ((j >> 8) & 0xFF)], np.int32)

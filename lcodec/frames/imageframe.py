@@ -9,7 +9,6 @@ bytes open the first), so that threads can decode the bands side by side.
 """
 from __future__ import annotations
 
-import threading
 from dataclasses import dataclass, replace
 
 import constriction
@@ -18,6 +17,7 @@ import numpy as np
 from ..coding import CheckedDecoder, CheckedEncoder
 from ..errors import ModelError
 from ..format import container as C
+from . import forked
 from ..inputs.layout import (Layout, choose_bands, read_descriptor, region_values, replication, side_bytes,
                              values_region)
 
@@ -124,23 +124,27 @@ def decode_image_frame(model, payload, raw_len: int, record=None, checks: bool =
             if hasattr(step, "close"):
                 step.close()
     cols, C = lay.cols // lay.rep_cols, lay.channels
-    stop = threading.Event()
+    workers = 1 if record is not None else min(threads, lay.bands)
+    stop = forked.shared_array((1,), np.uint8) if workers > 1 else np.zeros(1, np.uint8)
 
     def band(b: int, r0: int, r1: int) -> np.ndarray:
         dec = decoders[b]
 
         def decode(tab):
-            if stop.is_set():
-                raise _Stopped
+            if stop[0]:
+                raise forked.Stopped
             return dec.decode(_FAMILY, np.ascontiguousarray(tab, np.float64))
         return model.step_decode(r1 - r0, cols, C, lay.deep, decode, record)
 
     bounds = lay.band_bounds()
-    if threads <= 1 or lay.bands == 1 or record is not None:
+    if workers <= 1:
         parts = [band(b, r0, r1) for b, (r0, r1) in enumerate(bounds)]
+        v = parts[0] if len(parts) == 1 else np.concatenate(parts, axis=0)
+    elif BAND_PROCESSES and forked.may_fork():
+        v = forked.shared_array((lay.coded_rows, cols, C), np.int32)
+        forked.bands_in_processes(band, bounds, workers, v, stop)
     else:
-        parts = _side_by_side(band, bounds, min(threads, lay.bands), stop)
-    v = parts[0] if len(parts) == 1 else np.concatenate(parts, axis=0)
+        v = np.concatenate(_side_by_side(band, bounds, workers, stop), axis=0)
     if lay.replicated:
         v = np.repeat(np.repeat(v, lay.rep_rows, axis=0), lay.rep_cols, axis=1)
     region = values_region(v, lay)
@@ -148,19 +152,20 @@ def decode_image_frame(model, payload, raw_len: int, record=None, checks: bool =
     return sb[:lay.offset] + region + sb[lay.offset:]
 
 
-class _Stopped(Exception):
-    """A band's decoder stopped because another band failed or the caller was interrupted."""
-
-
 def _decoder(words, checks: bool):
     dec = constriction.stream.queue.RangeDecoder(np.ascontiguousarray(words))
     return CheckedDecoder(dec) if checks else dec
 
 
-def _side_by_side(band, bounds, threads: int, stop: threading.Event) -> list:
+# A banded frame's bands go to forked processes where forking is safe (frames/forked.py
+# says why processes), else to threads; tests switch this off to try the threads.
+BAND_PROCESSES = True
+
+
+def _side_by_side(band, bounds, threads: int, stop: np.ndarray) -> list:
     """Every band decoded by a pool of `threads` threads (the calling thread waits). The first
-    failure, or an interruption of the waiting thread, stops the other bands at their next
-    step; the failure of the lowest band that failed is raised."""
+    failure, or an interruption of the waiting thread, sets stop[0], which stops the other
+    bands at their next step; the failure of the lowest band that failed is raised."""
     from concurrent.futures import FIRST_EXCEPTION, ThreadPoolExecutor, wait
 
     from ..models.tessel_common import limit_blas
@@ -172,13 +177,13 @@ def _side_by_side(band, bounds, threads: int, stop: threading.Event) -> list:
         futs = [pool.submit(band, b, r0, r1) for b, (r0, r1) in enumerate(bounds)]
         wait(futs, return_when=FIRST_EXCEPTION)
     except BaseException:
-        stop.set()
+        stop[0] = 1
         raise
     finally:
         if any(f.done() and f.exception() is not None for f in futs):
-            stop.set()
+            stop[0] = 1
         pool.shutdown(wait=True, cancel_futures=True)
     for f in futs:
-        if not f.cancelled() and f.exception() is not None and not isinstance(f.exception(), _Stopped):
+        if not f.cancelled() and f.exception() is not None and not isinstance(f.exception(), forked.Stopped):
             raise f.exception()
     return [f.result() for f in futs]
