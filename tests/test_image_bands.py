@@ -50,9 +50,28 @@ def _image(kind, rows=36, cols=22):
     return b"front!" + values_region(a, lay) + b"back", lay, a
 
 
+@pytest.fixture(params=["processes", "threads"])
+def band_workers(request, monkeypatch):
+    """Both ways to decode bands side by side: forked processes (where forking is safe) and
+    threads. Yields a list that counts the forked runs, to check which way was taken. The
+    forked way is taken even where an earlier test left an idle thread behind (a cluster
+    test's): test_forked_bands.py checks that a fresh process may fork."""
+    from lcodec.frames import forked, imageframe
+    monkeypatch.setattr(imageframe, "BAND_PROCESSES", request.param == "processes")
+    monkeypatch.setattr(imageframe, "_fork_ready", lambda: True)
+    runs = []
+    real = forked.bands_in_processes
+
+    def counted(*args):
+        runs.append(1)
+        return real(*args)
+    monkeypatch.setattr(forked, "bands_in_processes", counted)
+    yield request.param, runs
+
+
 @pytest.mark.parametrize("kind", ["grey8", "rgb8", "grey16", "gap8"])
 @pytest.mark.parametrize("bands", [2, 3, 5])
-def test_bands_round_trip_and_tables(kind, bands):
+def test_bands_round_trip_and_tables(kind, bands, band_workers):
     """Decoded with 1, 2 and 3 threads to the same bytes; the decoder's tables, band after band,
     equal the encoder's tables of each band coded as an image of its own (parallel pass ==
     step pass); every band's rows are the layout's split of the coded rows."""
@@ -66,6 +85,7 @@ def test_bands_round_trip_and_tables(kind, bands):
     assert all(r1 - r0 in (lay.rows // bands, lay.rows // bands + 1) for r0, r1 in bounds)
     for threads in (1, 2, 3):
         assert decode_image_frame(m, payload, len(raw), threads=threads) == raw
+    assert len(band_workers[1]) == (2 if band_workers[0] == "processes" else 0)
     rec = []
     assert decode_image_frame(m, payload, len(raw), record=rec) == raw
     inner = m.inner
@@ -138,7 +158,7 @@ def _damaged(kind="grey8", bands=3):
 
 
 @pytest.mark.parametrize("threads", [1, 2, 3])
-def test_damage_in_one_band_is_reported(threads):
+def test_damage_in_one_band_is_reported(threads, band_workers):
     """Words of the last band's stream changed: the frame is reported damaged with 1 to 3
     threads (never other bytes), and the other bands' streams still decode on their own."""
     m, raw, payload, got, pos = _damaged()

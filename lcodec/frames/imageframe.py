@@ -140,7 +140,7 @@ def decode_image_frame(model, payload, raw_len: int, record=None, checks: bool =
     if workers <= 1:
         parts = [band(b, r0, r1) for b, (r0, r1) in enumerate(bounds)]
         v = parts[0] if len(parts) == 1 else np.concatenate(parts, axis=0)
-    elif BAND_PROCESSES and forked.may_fork():
+    elif BAND_PROCESSES and _fork_ready():
         v = forked.shared_array((lay.coded_rows, cols, C), np.int32)
         forked.bands_in_processes(band, bounds, workers, v, stop)
     else:
@@ -160,6 +160,15 @@ def _decoder(words, checks: bool):
 # A banded frame's bands go to forked processes where forking is safe (frames/forked.py
 # says why processes), else to threads; tests switch this off to try the threads.
 BAND_PROCESSES = True
+
+
+def _fork_ready() -> bool:
+    """Whether the bands may go to forked workers; an encoder's idle helper thread (left by
+    `pack --verify`, or an earlier pack in this process) is ended first."""
+    from ..models.weft import close_pool
+
+    close_pool()
+    return forked.may_fork()
 
 
 def _side_by_side(band, bounds, threads: int, stop: np.ndarray) -> list:

@@ -159,6 +159,15 @@ def _in_halves(n: int, kernel) -> None:
 _POOL = None
 
 
+def close_pool() -> None:
+    """End the helper thread of `_in_halves`, if one was started (the next big chunk starts
+    it again): a process about to fork workers must run no other thread."""
+    global _POOL
+    pool, _POOL = _POOL, None
+    if pool is not None:
+        pool.shutdown(wait=True)
+
+
 @njit(cache=True, nogil=True)
 def _embed_rows(ctx, emb, out):
     """out[n] = concat(emb[ctx[n, 0]], ..., emb[ctx[n, W-1]]), as float32 (the gather without
