@@ -163,7 +163,8 @@ model_option = click.option("-m", "--model", "model", type=click.Path(dir_okay=F
 force_option = click.option("--force", is_flag=True, help="Overwrite an existing output.")
 threads_option = click.option("--threads", type=click.IntRange(1, 64), default=1, show_default=True,
                               help="Frames decoded side by side by threads of this process (images: one "
-                                   "frame each, a large image's bands; any model). Same output. --jobs uses "
+                                   "frame each; any model). A lone large image's bands go to N forked "
+                                   "workers (threads where forking is not safe). Same output. --jobs uses "
                                    "worker processes instead; give one or the other.")
 quiet_option = click.option("-q", "--quiet", is_flag=True, help="No progress or summary on stderr.")
 
@@ -206,7 +207,8 @@ def _jobs_value(ctx, param, value):
 
 jobs_option = click.option("-j", "--jobs", "jobs", default=None, callback=_jobs_value, metavar="N",
                            help="Code frames in N worker processes (0 or 'auto': every core). The archive "
-                                "is the same bytes for any N. Default 1. Byte and pixel models alike.")
+                                "is the same bytes for any N. Default 1. Byte and pixel models alike. "
+                                "Unpacking one large image, N workers decode its bands.")
 cluster_option = click.option("--cluster", "cluster", default=None, metavar="ADDRESS",
                               help="Run the coding on an existing dask.distributed cluster, given its "
                                    "scheduler's address (tcp://HOST:PORT). Same bytes as a local run.")

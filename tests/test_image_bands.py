@@ -136,7 +136,13 @@ def test_band_rule():
 
 def test_api_packs_large_images_in_bands(monkeypatch, tmp_path):
     """Through the archive layer: a PGM above the (lowered) band threshold is packed in bands,
-    `info` shows them, and unpack with 1 and 2 threads gives the file back."""
+    `info` shows them, and unpack with 1 and 2 threads, and with --jobs 2 (a lone frame: its
+    bands go to the workers, not the frame to one worker's pool), gives the file back."""
+    from lcodec.frames import forked, imageframe
+    runs = []
+    real = forked.bands_in_processes
+    monkeypatch.setattr(forked, "bands_in_processes", lambda *a: (runs.append(1), real(*a))[1])
+    monkeypatch.setattr(imageframe, "_fork_ready", lambda: True)  # an earlier test may leave a thread
     monkeypatch.setattr(L, "BAND_SAMPLES", 256)
     monkeypatch.setattr(L, "BAND_MIN_ROWS", 8)
     raw, lay, a = _image("grey8", 40, 30)
@@ -147,6 +153,9 @@ def test_api_packs_large_images_in_bands(monkeypatch, tmp_path):
     assert frame["image"]["bands"] == 4  # min(1200 // 256, 40 // 8)
     assert lcodec.unpack(blob, model=model) == pgm
     assert b"".join(api.decode(blob, model=model, workers=2).frames) == pgm
+    assert len(runs) == 1
+    assert lcodec.unpack(blob, model=model, jobs=2) == pgm
+    assert len(runs) == 2
 
 
 def _damaged(kind="grey8", bands=3):

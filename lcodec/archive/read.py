@@ -74,7 +74,10 @@ def _decoded_frames(cont: C.Container, m, jobs: int, cluster, workers: int = 1):
     """(frame, raw or None, problem or None) for every frame in order. --jobs 1 decodes
     here, one frame at a time (with workers > 1: that many threads, a bounded window
     ahead; a lone frame's image bands side by side); otherwise a runner decodes a bounded
-    window ahead."""
+    window ahead. A lone frame with --jobs N is decoded here, its image bands by N workers
+    (a pool would give the one frame to one worker)."""
+    if jobs is not None and jobs > 1 and cluster is None and len(cont.frames) == 1:
+        jobs, workers = 1, jobs
     if (jobs is None or jobs <= 1) and cluster is None and workers > 1 and len(cont.frames) > 1:
         yield from _threaded_frames(cont, m, workers)
         return
