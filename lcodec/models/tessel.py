@@ -469,25 +469,30 @@ def _mix_chunk(tab, ctx, syms, gid, Ks, counts, tots, mid, ctx2, K2s, counts2, t
         j = i
         while j < n and gid[j] == gid[i]:
             j += 1
+        m = j - i  # the stages' rows live in scratch of one group (in cache), not of the chunk
         K = Ks[i]
         K2 = K2s[i]
+        q, t, s = qa[:m], tb[:m], sums[:m]
+        fin = out3[i:j] if limit > 0 else out[i:j]
+        two = out[:m] if limit > 0 else fin
+        one = mid[:m]
         if K > 0 and blend:
-            _mix2(tab[i:j], ctx[i:j], K, counts, D1, wtab, cap, qa[i:j], tb[i:j], sums[i:j], mid[i:j])
-            _update2(ctx[i:j], syms[i:j], counts, tots, D1, cap, decay, qa[i:j], tb[i:j], sums[i:j])
+            _mix2(tab[i:j], ctx[i:j], K, counts, D1, wtab, cap, q, t, s, one)
+            _update2(ctx[i:j], syms[i:j], counts, tots, D1, cap, decay, q, t, s)
         elif K > 0:
-            _mix(tab[i:j], ctx[i:j], K, counts, mid[i:j])
+            _mix(tab[i:j], ctx[i:j], K, counts, one)
             _update(ctx[i:j], syms[i:j], counts, tots)
         else:
-            mid[i:j] = tab[i:j]
+            one = tab[i:j]
         if K2 > 0:
-            _mix2(mid[i:j], ctx2[i:j], K2, counts2, D, wtab, cap, qa[i:j], tb[i:j], sums[i:j], out[i:j])
-            _update2(ctx2[i:j], syms[i:j], counts2, tots2, D, cap, decay, qa[i:j], tb[i:j], sums[i:j])
+            _mix2(one, ctx2[i:j], K2, counts2, D, wtab, cap, q, t, s, two)
+            _update2(ctx2[i:j], syms[i:j], counts2, tots2, D, cap, decay, q, t, s)
         else:
-            out[i:j] = mid[i:j]
+            two[:] = one
         if limit > 0:
             _law_rows(lcls[i:j], lhi[i:j], A, Nc, lrow[i:j])
-            _mix_law(out[i:j], ctx[i:j], lrow[i:j], lawq, lawsum, D3, wtab3, cap3, qa[i:j], sums[i:j], out3[i:j])
-            _law_evidence(ctx[i:j], syms[i:j], D3, cap3, lrow[i:j], law, qa[i:j], tb[i:j], sums[i:j])
+            _mix_law(two, ctx[i:j], lrow[i:j], lawq, lawsum, D3, wtab3, cap3, q, s, fin)
+            _law_evidence(ctx[i:j], syms[i:j], D3, cap3, lrow[i:j], law, q, t, s)
             if lhi[i] >= 0:
                 _law_count(lcls[i:j], lhi[i:j], syms[i:j], A, Nc, limit)
         i = j
@@ -791,8 +796,12 @@ class Tessel:
             else:
                 tab[:] = self.role_tables("r8", ci)
             if K.any() or K2.any() or limit:
-                mid, out = np.empty_like(tab), np.empty_like(tab)
-                m2 = len(o) if (K2.any() or self.blend or limit) else 0
+                g = gid[i:j]
+                cut = np.flatnonzero(np.diff(g)) + 1
+                gm = int(np.diff(np.concatenate(([0], cut, [len(g)]))).max())  # the largest group
+                mid = np.empty((gm, 256), np.float64)
+                out = np.empty((gm, 256), np.float64) if limit else np.empty_like(tab)
+                m2 = gm if (K2.any() or self.blend or limit) else 0
                 qa, tb = np.empty((m2, 256), np.int64), np.empty((m2, 256), np.int64)
                 out3 = np.empty_like(tab) if limit else out
                 _mix_chunk(tab, ctx[o].astype(np.int64), cs, gid[i:j], K[roles[o]], counts, tots, mid,
