@@ -55,24 +55,26 @@ def band_workers(request, monkeypatch):
     """Both ways to decode bands side by side: forked processes (where forking is safe) and
     threads. Yields a list that counts the forked runs, to check which way was taken. The
     forked way is taken even where an earlier test left an idle thread behind (a cluster
-    test's): test_forked_bands.py checks that a fresh process may fork."""
+    test's; weft's helper thread is still ended first): test_forked_bands.py checks that a
+    fresh process may fork."""
     from lcodec.frames import forked, imageframe
     monkeypatch.setattr(imageframe, "BAND_PROCESSES", request.param == "processes")
-    monkeypatch.setattr(imageframe, "_fork_ready", lambda: True)
+    monkeypatch.setattr(forked, "may_fork", lambda: True)
     runs = []
-    real = forked.bands_in_processes
+    real = forked.in_processes
 
     def counted(*args):
         runs.append(1)
         return real(*args)
-    monkeypatch.setattr(forked, "bands_in_processes", counted)
+    monkeypatch.setattr(forked, "in_processes", counted)
     yield request.param, runs
 
 
 @pytest.mark.parametrize("kind", ["grey8", "rgb8", "grey16", "gap8"])
 @pytest.mark.parametrize("bands", [2, 3, 5])
 def test_bands_round_trip_and_tables(kind, bands, band_workers):
-    """Decoded with 1, 2 and 3 threads to the same bytes; the decoder's tables, band after band,
+    """Decoded with 1, 2 and 3 threads to the same bytes, and coded by 2 and 3 workers to the
+    same payload; the decoder's tables, band after band,
     equal the encoder's tables of each band coded as an image of its own (parallel pass ==
     step pass); every band's rows are the layout's split of the coded rows."""
     m = _model(kind)
@@ -85,7 +87,9 @@ def test_bands_round_trip_and_tables(kind, bands, band_workers):
     assert all(r1 - r0 in (lay.rows // bands, lay.rows // bands + 1) for r0, r1 in bounds)
     for threads in (1, 2, 3):
         assert decode_image_frame(m, payload, len(raw), threads=threads) == raw
-    assert len(band_workers[1]) == (2 if band_workers[0] == "processes" else 0)
+    for workers in (2, 3):  # bands coded side by side: the same bytes
+        assert encode_image_frame(m, raw, lay, bands=bands, workers=workers)[0] == payload
+    assert len(band_workers[1]) == (4 if band_workers[0] == "processes" else 0)
     rec = []
     assert decode_image_frame(m, payload, len(raw), record=rec) == raw
     inner = m.inner
@@ -137,12 +141,13 @@ def test_band_rule():
 def test_api_packs_large_images_in_bands(monkeypatch, tmp_path):
     """Through the archive layer: a PGM above the (lowered) band threshold is packed in bands,
     `info` shows them, and unpack with 1 and 2 threads, and with --jobs 2 (a lone frame: its
-    bands go to the workers, not the frame to one worker's pool), gives the file back."""
+    bands go to the workers, not the frame to one worker's pool), gives the file back; packing
+    with --jobs 2 codes the bands in 2 workers, in memory and to a file, to the same bytes."""
     from lcodec.frames import forked, imageframe
     runs = []
-    real = forked.bands_in_processes
-    monkeypatch.setattr(forked, "bands_in_processes", lambda *a: (runs.append(1), real(*a))[1])
-    monkeypatch.setattr(imageframe, "_fork_ready", lambda: True)  # an earlier test may leave a thread
+    real = forked.in_processes
+    monkeypatch.setattr(forked, "in_processes", lambda *a: (runs.append(1), real(*a))[1])
+    monkeypatch.setattr(forked, "may_fork", lambda: True)  # an earlier test may leave a thread
     monkeypatch.setattr(L, "BAND_SAMPLES", 256)
     monkeypatch.setattr(L, "BAND_MIN_ROWS", 8)
     raw, lay, a = _image("grey8", 40, 30)
@@ -156,6 +161,15 @@ def test_api_packs_large_images_in_bands(monkeypatch, tmp_path):
     assert len(runs) == 1
     assert lcodec.unpack(blob, model=model, jobs=2) == pgm
     assert len(runs) == 2
+    assert lcodec.pack(pgm, model=model, jobs=2) == blob  # a lone image's bands coded by 2 workers
+    assert len(runs) == 3
+    src = tmp_path / "plate.pgm"
+    src.write_bytes(pgm)
+    one, two = tmp_path / "one.lcodec", tmp_path / "two.lcodec"
+    lcodec.pack_to([str(src)], str(one), model=model)
+    lcodec.pack_to([str(src)], str(two), model=model, jobs=2)
+    assert one.read_bytes() == two.read_bytes() and len(runs) == 4
+    assert lcodec.unpack(two.read_bytes(), model=model) == pgm
 
 
 def _damaged(kind="grey8", bands=3):

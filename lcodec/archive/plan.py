@@ -20,7 +20,7 @@ from __future__ import annotations
 
 import hashlib
 import os
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 
 from ..errors import UsageError
 from ..format import container as C
@@ -76,6 +76,17 @@ class _Plan:
         self.sealed = False
         self.archive_id = None
         self.next_index = 0  # the frame number of the next record coded (the writer's count)
+        self.band_workers = 1  # a lone image's bands coded by that many forked processes
+
+    def lone_image_jobs(self, jobs, cluster) -> int | None:
+        """--jobs N for a plan of one image frame: coded here (the returned jobs, 1), its
+        bands by N forked workers (a pool would give the one frame to one worker). Other
+        plans: jobs unchanged."""
+        if (cluster is None and jobs is not None and jobs > 1 and self.n_frames == 1
+                and self.sources and self.sources[0].image is not None):
+            self.band_workers = jobs
+            return 1
+        return jobs
 
     def header(self) -> bytes:
         return C.header_bytes(self.content_size, self.content_sha, self.n_frames, self.frame_size,
@@ -128,6 +139,8 @@ class _Plan:
                     if self.skip_check:
                         self.skip_check(index, raw)
                     yield len(raw)  # kept from an interrupted run: not coded again
+                elif isinstance(work, ImageWork) and self.band_workers > 1:
+                    yield replace(work, workers=self.band_workers)
                 else:
                     yield work
                 index += 1

@@ -30,7 +30,7 @@ from dataclasses import dataclass
 from ..errors import UsageError
 from ..format import modelfile
 from ..frames import code_frame, decode_one
-from ..frames.forked import may_fork
+from ..frames.forked import before_fork, may_fork
 from ..models import ARCHITECTURES, BUILTIN, Loaded
 
 BATCH_BYTES = 1 << 17  # frames per task: up to about this many raw bytes (many small files share a task)
@@ -239,6 +239,7 @@ class ProcessRunner(Runner):
         super().__init__(model)
         self.jobs, self.window = jobs, 2 * jobs
         if _may_fork():
+            before_fork()
             ctx = multiprocessing.get_context("fork")
             spec = ModelSpec("forked", json.dumps(model.identity, sort_keys=True, separators=(",", ":")))
             _MODELS[spec.key] = model  # the workers find it built (model_for)

@@ -100,7 +100,7 @@ def _pack_plan(plan: _Plan, m, jobs: int, cluster, progress, t0: float) -> tuple
     """Code one plan into archive bytes in memory (the bytes API)."""
     stats = PackStats(raw_bytes=plan.content_size)
     buf = io.BytesIO()
-    with runners.runner(m, jobs, cluster) as r:
+    with runners.runner(m, plan.lone_image_jobs(jobs, cluster), cluster) as r:
         _write_plan_to(buf, plan, r, stats, progress)
     blob = buf.getvalue()
     stats.coded_bytes = len(blob)
@@ -170,7 +170,7 @@ def pack_to(paths: list[str], output, model=None, frame_size: int = DEFAULT_FRAM
     try:
         f = out.f
         start = journal.prepare(out, plan) if journal else 0
-        with runners.runner(m, jobs, cluster) as r:
+        with runners.runner(m, plan.lone_image_jobs(jobs, cluster), cluster) as r:
             if journal is None:
                 _write_plan_to(f, plan, r, stats, progress)
             else:

@@ -1,6 +1,6 @@
 """Work split over forked processes that share this one's memory: the bands of one large
-image (imageframe), and the test that says when forking is safe (archive's `--jobs` pool
-uses it too).
+image, decoded or encoded (imageframe), and the test that says when forking is safe
+(archive's `--jobs` pool uses it too).
 
 Why processes and not threads: a band's wavefront calls a compiled kernel about twenty
 times per table, and each call hands Python's global lock over. Two band threads in one
@@ -36,6 +36,15 @@ def may_fork() -> bool:
     return not getattr(parallel, "_is_initialized", True)
 
 
+def before_fork() -> None:
+    """BLAS on one thread (`limit_blas`, for the rest of the process) before any fork: a
+    forked child has none of OpenBLAS's pool threads, and a product large enough to be split
+    over them (an encoder's chunk) waited for them forever there."""
+    from ..models.tessel_common import limit_blas
+
+    limit_blas()
+
+
 class Stopped(Exception):
     """A band's decoder stopped because another band failed or the caller was interrupted."""
 
@@ -55,18 +64,20 @@ def shared_array(shape, dtype) -> np.ndarray:
     return np.frombuffer(buf, dtype, count=count).reshape(shape)
 
 
-def bands_in_processes(band, bounds, workers: int, out: np.ndarray, stop: np.ndarray) -> None:
-    """Decode every band into `out` (shared memory, `shared_array`), rows r0:r1 for band
-    (r0, r1), with `workers` processes: this one takes bands 0, w, 2w, ..., forked child k
-    bands k, k + w, .... band(b, r0, r1) returns the band's samples; it must raise Stopped
-    once stop[0] is set (shared memory too). The first failure sets stop[0], so the other
-    bands end at their next step; the failure of the lowest band that failed is raised.
-    An interruption here stops and reaps every child before it goes on."""
-    children = []  # [pid, read fd or -1, its bands], until reaped
+def in_processes(work, count: int, workers: int, stop: np.ndarray) -> list:
+    """[work(0), ..., work(count - 1)] computed by `workers` processes: this one takes items
+    0, w, 2w, ..., forked child k items k, k + w, .... A child's results come back pickled
+    (work may instead write into shared memory, `shared_array`, and return None). work must
+    raise Stopped once stop[0] is set (shared memory too): the first failure sets it, so the
+    other items end at their next step, and the failure of the lowest item that failed is
+    raised. An interruption here stops and reaps every child before it goes on."""
+    before_fork()
+    children = []  # [pid, read fd or -1, its items], until reaped
+    results: list = [None] * count
     failures: dict[int, BaseException] = {}
     try:
         for k in range(1, workers):
-            mine = list(range(k, len(bounds), workers))
+            mine = list(range(k, count, workers))
             if not mine:
                 continue
             r, w = os.pipe()
@@ -78,10 +89,13 @@ def bands_in_processes(band, bounds, workers: int, out: np.ndarray, stop: np.nda
                 raise
             if pid == 0:  # the child: never returns
                 os.close(r)
-                _child(band, bounds, mine, out, stop, w)
+                _child(work, mine, stop, w)
             os.close(w)
             children.append([pid, r, mine])
-        failures.update(_run(band, bounds, range(0, len(bounds), workers), out, stop))
+        done, failed = _run(work, range(0, count, workers), stop)
+        for k, got in done.items():
+            results[k] = got
+        failures.update(failed)
         if failures:
             _end(children)
         while children:
@@ -92,7 +106,10 @@ def bands_in_processes(band, bounds, workers: int, out: np.ndarray, stop: np.nda
             _, status = os.waitpid(pid, 0)
             children.pop(0)
             if report:
-                failures.update({b: _revive(e) for b, e in pickle.loads(report).items()})
+                done, failed = pickle.loads(report)
+                for k, got in done.items():
+                    results[k] = got
+                failures.update({k: _revive(e) for k, e in failed.items()})
             elif not failures and not stop[0]:
                 code = os.waitstatus_to_exitcode(status)
                 raise WorkerDied(f"a band worker ended without its result (exit status {code}); "
@@ -102,39 +119,53 @@ def bands_in_processes(band, bounds, workers: int, out: np.ndarray, stop: np.nda
         _end(children)
         _reap(children)
         raise
-    real = {b: e for b, e in failures.items() if not isinstance(e, Stopped)}
+    real = {k: e for k, e in failures.items() if not isinstance(e, Stopped)}
     if real:
         raise real[min(real)]
+    return results
 
 
-def _run(band, bounds, mine, out, stop) -> dict:
-    """Decode the bands `mine` in order into `out` -> {band: failure} (the first, if any)."""
-    for b in mine:
+def bands_in_processes(band, bounds, workers: int, out: np.ndarray, stop: np.ndarray) -> None:
+    """Decode every band into `out` (shared memory, `shared_array`), rows r0:r1 for band
+    (r0, r1) = bounds[b], with `workers` processes (`in_processes`); band(b, r0, r1) returns
+    the band's samples."""
+    def one(b: int) -> None:
+        r0, r1 = bounds[b]
+        out[r0:r1] = band(b, r0, r1)
+    in_processes(one, len(bounds), workers, stop)
+
+
+def _run(work, mine, stop) -> tuple[dict, dict]:
+    """work(k) for the items `mine` in order -> ({item: result}, {item: failure}): the
+    first failure, if any, sets stop[0] and ends the run."""
+    done = {}
+    for k in mine:
         if stop[0]:
             break
-        r0, r1 = bounds[b]
         try:
-            out[r0:r1] = band(b, r0, r1)
+            done[k] = work(k)
         except Stopped:
             break
         except (KeyboardInterrupt, SystemExit):
             raise
         except BaseException as e:  # a constriction panic is a BaseException: damage all the same
             stop[0] = 1
-            return {b: e}
-    return {}
+            return done, {k: e}
+    return done, {}
 
 
-def _child(band, bounds, mine, out, stop, w) -> None:
-    """A forked band worker: decode its bands into `out`, report {band: failure} (empty when
-    all went well) on pipe w, and leave at once with os._exit (no exit handlers, no flushed
-    buffers: those are the parent's)."""
+def _child(work, mine, stop, w) -> None:
+    """A forked worker: its items, then (results, failures) pickled on pipe w; it leaves at
+    once with os._exit (no exit handlers, no flushed buffers: those are the parent's)."""
     code = 0
     try:
         signal.signal(signal.SIGINT, signal.SIG_DFL)
         signal.signal(signal.SIGTERM, signal.SIG_DFL)
-        failures = {b: _portable(e) for b, e in _run(band, bounds, mine, out, stop).items()}
-        view = memoryview(pickle.dumps(failures))
+        from ..models.weft import forget_pool
+
+        forget_pool()
+        done, failed = _run(work, mine, stop)
+        view = memoryview(pickle.dumps((done, {k: _portable(e) for k, e in failed.items()})))
         while view:
             view = view[os.write(w, view):]
     except BaseException:

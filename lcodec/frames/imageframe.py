@@ -33,6 +33,7 @@ class ImageWork:
     layout: Layout
     guarantee: str  # "byte-exact" (the file's bytes) or "pixel-exact" (a pixel record)
     kind: str  # the input format's name (png, tiff, ...)
+    workers: int = 1  # a large image's bands coded by that many forked processes (pack --jobs, lone image)
 
     def __len__(self) -> int:
         return len(self.data)
@@ -43,7 +44,7 @@ def code_image(model, work: ImageWork) -> tuple[bytes, float, bool, dict | None]
     A byte-exact image that does not shrink is stored; a pixel record never is (its
     frame says that unpack rebuilds a file)."""
     raw, lay = work.data, work.layout
-    coded, nll_side, nll_pix = encode_image_frame(model, raw, lay)
+    coded, nll_side, nll_pix = encode_image_frame(model, raw, lay, workers=work.workers)
     if len(coded) >= len(raw) and work.guarantee == "byte-exact":
         return C.frame_record(len(raw), raw, C.METHOD_STORED, 1, C.crc32c(raw)), 8.0 * len(raw), True, None
     figures = {"kind": work.kind, "guarantee": work.guarantee, "samples": lay.rows * lay.cols * lay.channels,
@@ -52,11 +53,13 @@ def code_image(model, work: ImageWork) -> tuple[bytes, float, bool, dict | None]
     return C.frame_record(len(raw), coded, C.METHOD_IMAGE, 1, C.crc32c(raw)), nll_side + nll_pix, False, figures
 
 
-def encode_image_frame(model, raw: bytes, lay: Layout, checks: bool = True, bands: int | None = None
-                       ) -> tuple[bytes, float, float]:
+def encode_image_frame(model, raw: bytes, lay: Layout, checks: bool = True, bands: int | None = None,
+                       workers: int = 1) -> tuple[bytes, float, float]:
     """(payload, NLL bits of the side bytes, NLL bits of the samples). checks: with
     sub-frame checks (what container version 3 holds). bands: how many bands to code the
-    samples in (None: `choose_bands`, the encoder's rule; tests and measurements pick)."""
+    samples in (None: `choose_bands`, the encoder's rule; tests and measurements pick).
+    workers: the bands are coded by that many forked processes where forking is safe (the
+    same bytes; otherwise one after another here)."""
     lay.check(len(raw))
     side = side_bytes(raw, lay)
     nll_side = 0.0
@@ -75,16 +78,28 @@ def encode_image_frame(model, raw: bytes, lay: Layout, checks: bool = True, band
     n_bands = choose_bands(*v.shape) if bands is None else bands
     lay = replace(lay, bands=n_bands)
     lay.check(len(raw))
-    streams, nll_pix = [], 0.0
-    for b, (r0, r1) in enumerate(lay.band_bounds()):
-        if b:
-            enc = _encoder(checks)
+    bounds = lay.band_bounds()
+    workers = min(workers, n_bands)
+    stop = forked.shared_array((1,), np.uint8) if workers > 1 else np.zeros(1, np.uint8)
+
+    def band(b: int) -> tuple[bytes, float]:
+        """Band b's stream (band 0's opens with the side bytes already in `enc`), NLL bits."""
+        r0, r1 = bounds[b]
+        e, nll = (enc if b == 0 else _encoder(checks)), 0.0
         for syms, tab in model.teacher_tables(np.ascontiguousarray(v[r0:r1]), lay.deep):
-            enc.encode(np.ascontiguousarray(syms, np.int32), _FAMILY, tab)
-            nll_pix += _nll(syms, tab)
-        streams.append(np.asarray(enc.get_compressed(), "<u4").tobytes())
+            if stop[0]:
+                raise forked.Stopped
+            e.encode(np.ascontiguousarray(syms, np.int32), _FAMILY, tab)
+            nll += _nll(syms, tab)
+        return np.asarray(e.get_compressed(), "<u4").tobytes(), nll
+
+    if workers > 1 and BAND_PROCESSES and _fork_ready():
+        done = forked.in_processes(band, n_bands, workers, stop)
+    else:
+        done = [band(b) for b in range(n_bands)]
+    streams = [w for w, _ in done]
     head = lay.descriptor([len(w) // 4 for w in streams[:-1]])
-    return head + b"".join(streams), nll_side, nll_pix
+    return head + b"".join(streams), nll_side, sum(n for _, n in done)
 
 
 def _encoder(checks: bool):

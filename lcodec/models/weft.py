@@ -168,6 +168,13 @@ def close_pool() -> None:
         pool.shutdown(wait=True)
 
 
+def forget_pool() -> None:
+    """In a forked child: the parent's helper thread is not here (a task given to its pool
+    would wait forever); the next big chunk starts one of the child's own."""
+    global _POOL
+    _POOL = None
+
+
 @njit(cache=True, nogil=True)
 def _embed_rows(ctx, emb, out):
     """out[n] = concat(emb[ctx[n, 0]], ..., emb[ctx[n, W-1]]), as float32 (the gather without
