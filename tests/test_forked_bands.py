@@ -169,3 +169,24 @@ def test_a_fresh_process_decodes_bands_in_forked_workers():
     model = os.path.join(os.path.dirname(__file__), "golden", "tessel-tiny-structure.lcmodel")
     got = subprocess.run([sys.executable, "-c", _FRESH, model], capture_output=True, text=True, timeout=300)
     assert got.returncode == 0 and got.stdout.strip() == "2", got.stderr
+
+
+def test_a_dead_worker_is_not_called_damage(monkeypatch):
+    """Through decode_one: a band worker that died is raised as such (the CLI says it and
+    exits non-zero), not reported as a damaged frame."""
+    from lcodec.format import container as C
+    from lcodec.frames import decode_one, imageframe
+
+    def died(*args):
+        raise forked.WorkerDied("a band worker ended without its result (exit status -9); nothing was written")
+    monkeypatch.setattr(imageframe, "_fork_ready", lambda: True)
+    monkeypatch.setattr(forked, "in_processes", died)
+    from lcodec.inputs.layout import Layout, values_region
+    from lcodec.models import load_model
+    m = load_model(os.path.join(os.path.dirname(__file__), "golden", "tessel-tiny-structure.lcmodel"))
+    a = np.arange(48 * 40, dtype=np.uint8).reshape(48, 40, 1)
+    lay = Layout(0, 48, 40, 1, 1)
+    raw = values_region(a, lay)
+    payload, _, _ = imageframe.encode_image_frame(m, raw, lay, bands=2)
+    with pytest.raises(forked.WorkerDied):
+        decode_one(m, 0, C.METHOD_IMAGE, len(raw), 1, C.crc32c(raw), C.crc32c(payload), payload, True, 2)

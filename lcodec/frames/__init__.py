@@ -19,6 +19,7 @@ from ..format import container as C
 from ..inputs.layout import FLAG_RECORD, read_descriptor
 from .byteframe import LANE_BYTES, MAX_LANES, choose_lanes, code_bytes, decode_bytes, frame_lanes  # noqa: F401
 from .imageframe import ImageWork, code_image, decode_image_frame
+from .forked import WorkerDied
 
 
 def is_pixel_model(m) -> bool:
@@ -59,8 +60,8 @@ def decode_one(model, index: int, method: int, raw_len: int, lanes: int, raw_crc
             return None, str(e)
         except SubframeCheckFailed as e:
             return None, f"frame {index} damaged ({e})"
-        except (ModelError, KeyboardInterrupt, SystemExit, Terminated):
-            raise
+        except (ModelError, WorkerDied, KeyboardInterrupt, SystemExit, Terminated):
+            raise  # a band worker that died (killed, out of memory) is not damage
         except BaseException:
             _raise_pending()
             return None, f"frame {index} damaged (its coded words cannot be decoded)"
