@@ -5,7 +5,8 @@ the layout's plain descriptor followed by one range-coder stream: first the pref
 suffix bytes (coded with the built-in strata model, one lane), then the samples (coded
 with the pixel model in wavefront order). A large image is coded in horizontal bands
 (`layout.choose_bands`), each band as an image of its own in a stream of its own (the side
-bytes open the first), so that threads can decode the bands side by side.
+bytes open the first), so that workers can code and decode the bands side by side (forked
+processes, frames/forked.py; threads where forking is not safe).
 """
 from __future__ import annotations
 
