@@ -159,8 +159,11 @@ def _child(work, mine, stop, w) -> None:
     once with os._exit (no exit handlers, no flushed buffers: those are the parent's)."""
     code = 0
     try:
-        signal.signal(signal.SIGINT, signal.SIG_DFL)
-        signal.signal(signal.SIGTERM, signal.SIG_DFL)
+        try:  # a signal ends a child at once (the parent reaps it and reports)
+            signal.signal(signal.SIGINT, signal.SIG_DFL)
+            signal.signal(signal.SIGTERM, signal.SIG_DFL)
+        except ValueError:  # forked from a thread other than the main one: handlers stay
+            pass
         from ..models.weft import forget_pool
 
         forget_pool()
