@@ -589,7 +589,8 @@ def test_chunking_does_not_change_tables(monkeypatch):
 def test_adaptive_counts_stay_exact_at_the_limits():
     """Largest network tables (every entry 2**20) and counts at the halving limit: the
     mixed table is exact in float64 (below 2**53) and every entry positive."""
-    from lcodec.models.tessel import COUNT_LIMIT, N_CTX, _mix
+    from lcodec.models.tessel import N_CTX
+    from lcodec.models.tessel_stages import COUNT_LIMIT, _mix
     tab = np.full((3, 256), float(1 << 20))
     tab[1, 5] = 1.0
     counts = np.zeros((N_CTX, 256), np.int32)
@@ -604,7 +605,8 @@ def test_structure_stage_stays_exact_at_the_limits():
     writes), one entry 1, the largest prior K2 = 2**16, counts at the halving limit, evidence
     at both caps: every mixed entry an integer in 1..2**53, and the kept A and B tables match
     a plain-Python recomputation (Python integers as the reference)."""
-    from lcodec.models.tessel import COUNT_LIMIT, MIX_ONE, N_SCTX, _mix2, weight_table
+    from lcodec.models.tessel import N_SCTX
+    from lcodec.models.tessel_stages import COUNT_LIMIT, MIX_ONE, _mix2, weight_table
     cap = 12
     wtab = weight_table(cap)
     tab = np.full((3, 256), float((1 << 45) - 1))
@@ -637,7 +639,7 @@ def test_log_and_weight_tables_match_their_formulas():
     both built from integers alone, checked against Python's math.log2 / float powers (the
     floats are the reference here, never inside the coder)."""
     import math
-    from lcodec.models.tessel import LOG2_TAB, MIX_ONE, _ilog, weight_table
+    from lcodec.models.tessel_stages import LOG2_TAB, MIX_ONE, _ilog, weight_table
     for i in range(256):
         f = 256 * math.log2(1 + i / 256)
         assert LOG2_TAB[i] == math.floor(f) or abs(f - round(f)) < 1e-9
@@ -727,7 +729,7 @@ def test_law_tables_follow_the_two_sided_geometric_law():
     block masses and the low byte's shape in the centre, rising and falling blocks match
     P(r) ~ t**|r| with mean |r| = 2t / (1 - t**2) = 2**(L/8) / 16, to the tables' rounding."""
     import math
-    from lcodec.models.tessel import LAW_MIN_LEVEL, N_LEVELS, law_tables
+    from lcodec.models.tessel_stages import LAW_MIN_LEVEL, N_LEVELS, law_tables
     tab = law_tables()
     assert tab.shape == (4 * N_LEVELS, 256) and tab.dtype == np.int64 and tab.min() >= 1
     assert (abs(tab.sum(1) - (1 << 20)) <= 256).all()
@@ -756,8 +758,9 @@ def test_law_stage_stays_exact_at_the_limits():
     ends of the scale, evidence at both caps: integers in 1..2**53, equal to a plain-Python
     recomputation (Python integers as the reference), and `_law_evidence` moves the evidence
     by the code lengths under A and under the law row."""
-    from lcodec.models.tessel import (LOG2_TAB, MIX_ONE, N_CTX, N_LEVELS, _law_evidence, _mix_law, law_normed,
-                                      law_tables, weight_table)
+    from lcodec.models.tessel import N_CTX
+    from lcodec.models.tessel_stages import (LOG2_TAB, MIX_ONE, N_LEVELS, _law_evidence, _mix_law, law_normed,
+                                             law_tables, weight_table)
     cap = 12
     wtab, law = weight_table(cap), law_tables()
     lawq, lawsum = law_normed()

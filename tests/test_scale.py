@@ -83,7 +83,7 @@ def test_jobs2_equals_jobs1_for_one_large_multi_frame_file(big, tmp_path):
 
 def test_jobs2_equals_jobs1_with_a_learned_model_file(big, monkeypatch):
     # workers read the model file's bytes (weft's thread pool makes this process unsafe to fork)
-    monkeypatch.setattr(scale, "_may_fork", lambda: False)
+    monkeypatch.setattr(scale, "may_fork", lambda: False)
     data = big[:40_000]
     one = api.pack(data, model=WEFT, frame_size=8192, jobs=1)
     assert api.pack(data, model=WEFT, frame_size=8192, jobs=2) == one
@@ -94,7 +94,7 @@ FORKED = """
 import sys
 from lcodec import api
 from lcodec.archive import runners
-assert runners._may_fork(), "a fresh process should fork its workers"
+assert runners.may_fork(), "a fresh process should fork its workers"
 model, data = sys.argv[1], open(sys.argv[2], "rb").read()
 two = api.pack(data, model=model, frame_size=8192, jobs=2)  # forked workers: the parent's built model
 assert api.unpack(two, model=model, jobs=2) == data
@@ -118,7 +118,7 @@ def test_forking_needs_a_single_threaded_parent():
     t = threading.Thread(target=stop.wait)
     t.start()
     try:
-        assert not scale._may_fork()  # another thread could hold a lock the children would copy
+        assert not scale.may_fork()  # another thread could hold a lock the children would copy
     finally:
         stop.set()
         t.join()
@@ -163,7 +163,7 @@ def test_a_model_object_workers_cannot_rebuild_is_refused(monkeypatch):
     class Odd(Strata):  # not a built-in model by its type: a worker could not rebuild it
         pass
 
-    monkeypatch.setattr(scale, "_may_fork", lambda: False)
+    monkeypatch.setattr(scale, "may_fork", lambda: False)
     with pytest.raises(UsageError, match="cannot be rebuilt"):
         api.pack(b"x" * 1000, model=Odd(), jobs=2)
 

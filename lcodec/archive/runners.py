@@ -220,14 +220,8 @@ class InlineRunner(Runner):
         pass
 
 
-def _may_fork() -> bool:
-    """frames.forked.may_fork: no other thread runs here (looked up at each call, so tests
-    can patch this name)."""
-    return may_fork()
-
-
 class ProcessRunner(Runner):
-    """--jobs N: a pool of N worker processes. Forked when that is safe (_may_fork): the
+    """--jobs N: a pool of N worker processes. Forked when that is safe (may_fork): the
     workers then share this process's model, already built, page for page until one writes
     (a model file's tables are read-only), and start at once; a worker of a 64 MB model
     file otherwise reads, checks and builds it again, about a second each. Else forkserver,
@@ -238,7 +232,7 @@ class ProcessRunner(Runner):
 
         super().__init__(model)
         self.jobs, self.window = jobs, 2 * jobs
-        if _may_fork():
+        if may_fork():
             before_fork()
             ctx = multiprocessing.get_context("fork")
             spec = ModelSpec("forked", json.dumps(model.identity, sort_keys=True, separators=(",", ":")))

@@ -47,9 +47,8 @@ import numpy as np
 from numba import njit
 
 from .tessel_net import FusedNet
-from .tessel_stages import (COUNT_LIMIT, HI_OFFSET, LAW_MIN_LEVEL, LOG2_TAB, MIX_ONE, N_LEVELS,  # noqa: F401
-                            _evidence, _ilog, _law_count, _law_evidence, _law_rows, _mix, _mix2, _mix_law,
-                            _norm_row, _update, _update2, _weigh_row, law_normed, law_tables, weight_table)
+from .tessel_stages import (HI_OFFSET, _law_count, _law_evidence, _law_rows, _mix, _mix2, _mix_law, _update,
+                            _update2, law_normed, law_tables, weight_table)
 from .tessel_predict import _gap, _pv, _q16
 from .weft import BACKENDS
 from .strata import Strata
@@ -516,6 +515,11 @@ class Tessel:
             if b - last >= CHUNK or b == len(order):
                 ends.append(b)
                 last = b
+        # the stages' scratch, rows of one group (the largest), shared by every chunk
+        gm = int(np.diff(np.concatenate(([0], bounds, [len(order)]))).max())
+        m2 = gm if (K2.any() or self.blend or limit) else 0
+        mid, stage2 = np.empty((gm, 256), np.float64), np.empty((gm if limit else 0, 256), np.float64)
+        qa, tb, sums = np.empty((m2, 256), np.int64), np.empty((m2, 256), np.int64), np.empty((m2, 2), np.int64)
         i = 0
         for j in ends:
             o = order[i:j]
@@ -530,17 +534,11 @@ class Tessel:
             else:
                 tab[:] = self.role_tables("r8", ci)
             if K.any() or K2.any() or limit:
-                g = gid[i:j]
-                cut = np.flatnonzero(np.diff(g)) + 1
-                gm = int(np.diff(np.concatenate(([0], cut, [len(g)]))).max())  # the largest group
-                mid = np.empty((gm, 256), np.float64)
-                out = np.empty((gm, 256), np.float64) if limit else np.empty_like(tab)
-                m2 = gm if (K2.any() or self.blend or limit) else 0
-                qa, tb = np.empty((m2, 256), np.int64), np.empty((m2, 256), np.int64)
+                out = stage2 if limit else np.empty_like(tab)  # with the law stage, out is its input: scratch
                 out3 = np.empty_like(tab) if limit else out
                 _mix_chunk(tab, ctx[o].astype(np.int64), cs, gid[i:j], K[roles[o]], counts, tots, mid,
                            ctx2[o].astype(np.int64), K2[roles[o]], counts2, tots2, D, self.wtab, self.cap,
-                           self.decay, qa, tb, np.empty((m2, 2), np.int64), out, self.blend, D1,
+                           self.decay, qa, tb, sums, out, self.blend, D1,
                            limit, lcls[o], lhi[o], lrow[:len(o)], law, lawq, lawsum, A, Nc, D3, self.law_wtab,
                            self.law_cap, out3)
                 tab = out3
