@@ -398,8 +398,11 @@ def test_resume_refuses_a_changed_input(tree, big, tmp_path):
 
 
 def test_per_file_job_resumes_after_sigkill_without_recoding_finished_members(tree, big, tmp_path):
-    for i in range(3):
-        (tree / f"more-{i}.txt").write_bytes(big[i * 60_000:(i + 1) * 60_000])
+    # eight more members, so that work is left after the third archive is done (with three,
+    # about one CI run in four finished the whole job before the kill)
+    text = big + big[::-1]
+    for i in range(8):
+        (tree / f"more-{i}.txt").write_bytes(text[i * 60_000:(i + 1) * 60_000])
     out = tmp_path / "archives"
     journal = out / api.EACH_JOURNAL
 
