@@ -212,7 +212,7 @@ def same_kind(args, root):
             model = os.path.join(args.model_dir, f"same-{kind}.lcmodel")
         else:
             train_image([d["train"]], model, time_limit=args.time_limit, force=True, colour=args.colour,
-                        predictor=args.predictor)
+                        predictor=args.predictor, preset=args.preset)
         msize = os.path.getsize(model)
         rows = [IB.bench_file(f, model) for f in IB.image_files([d["test"]])]
         print(f"\n== same-kind {kind}: {d['test']} (model {msize:,} bytes)")
@@ -248,6 +248,8 @@ def main():
     ap.add_argument("--model-dir", default=None, help="with --same-kind: reuse same-KIND.lcmodel from here")
     ap.add_argument("--kinds", default=None, help="with --same-kind: only these kinds (comma-separated: "
                     "grey8, rgb8, medical16)")
+    ap.add_argument("--preset", default="small", help="with --same-kind: the image preset the models are trained with "
+                    "(train --preset)")
     ap.add_argument("--colour", default="rct-grad", choices=["shift", "rct", "rct-grad"],
                     help="with --same-kind: the colour mode the models are trained with (train --colour)")
     ap.add_argument("--predictor", default="gap", choices=["med", "gap"],

@@ -16,6 +16,7 @@ import pytest
 import lcodec
 from lcodec import api
 from lcodec.errors import DataError, ModelError
+from lcodec.format import container as C
 from lcodec.inputs.images import analyse, read_record, rebuild
 from lcodec.models import load_model
 from lcodec.models.tessel import EMB_ROWS, N_SLOTS, Tessel, coding_order
@@ -870,6 +871,29 @@ def test_train_image_cli(tmp_path):
     blob = lcodec.pack(data, model=str(out))
     assert lcodec.info(blob)["frames"][0]["method"] == "modelled/image"
     assert lcodec.unpack(blob, model=str(out)) == data
+    # a trained file is named by its SHA-256 alone: the identity's binary form, no file name
+    cont = C.read_container(blob)
+    assert cont.identity == {"model": "tessel", "sha256": load_model(str(out)).sha256}
+    assert b"m.lcmodel" not in blob
+
+
+def test_archives_name_a_tessel_file_only_when_its_metadata_asks(model_file, tmp_path):
+    """Model files from before 2026-12-05 (no `archives_name_file` key; the golden ones among
+    them) keep their file's name in every archive, so their archives re-encode to the same
+    bytes; a file that says false gets the 39-byte binary identity: 77 bytes less here."""
+    from lcodec.format import modelfile
+    m = random_tessel(structure=STRUCT)
+    short = str(tmp_path / "short.lcmodel")
+    modelfile.dump(short, {"name": "tessel", "params": m.params}, m.arrays, archives_name_file=False)
+    data = _pgm(_sample("camera", 20, 20))
+    named, bare = lcodec.pack(data, model=model_file), lcodec.pack(data, model=short)
+    assert C.read_container(named).identity["file"] == "rand.lcmodel"
+    assert C.read_container(bare).identity == {"model": "tessel", "sha256": load_model(short).sha256}
+    json_form = len('{"file":"rand.lcmodel","model":"tessel","sha256":""}') + 64  # 116 bytes
+    assert len(named) - len(bare) == json_form - (1 + 32 + len("tessel")) == 77
+    assert lcodec.unpack(bare, model=short) == data
+    with pytest.raises(ModelError, match="wrong model"):
+        lcodec.unpack(bare, model=model_file)
 
 
 def test_augmented_copies_and_budget():

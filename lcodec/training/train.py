@@ -312,6 +312,7 @@ def train(corpus: list[str], out: str, time_limit: float = 600.0, preset: str = 
 IMAGE_PRESETS = {
     # name: embed per slot, hidden, batch, learning rate (figures in docs/notes/model-weft.md)
     "small": dict(embed=8, hidden=128, batch=2048, lr=3e-3),
+    "large": dict(embed=12, hidden=256, batch=2048, lr=3e-3),  # about twice the network's decode work
     "tiny": dict(embed=2, hidden=16, batch=512, lr=5e-3),  # for tests
 }
 
@@ -555,6 +556,7 @@ def train_image(corpus: list[str], out: str, time_limit: float = 120.0, preset: 
         "training": {"seconds": round(time.perf_counter() - t_start, 1), "steps": step, "sets": summary,
                      "corpus": corpus_record(corpus, read_corpus(corpus), record_names)},
         "validation_bits_per_symbol": result, "learning_curve": curve,
+        "archives_name_file": False,  # archives name this file by its SHA-256 alone (models.Loaded.identity)
     }
     sha = modelfile.dump(out, {"name": "tessel", "params": params}, arrays, **meta)
     for r, x in result.items():
