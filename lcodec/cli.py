@@ -735,8 +735,7 @@ def explain(file, model, output, png_out, frame_size, view_bytes, force, quiet):
                    "braid-tree (braid plus a refinement of each byte's binary tree: about 4.5% smaller, about a quarter slower to "
                    "decode), braid-lean (smaller, faster), or the neural model weft: preset weft (hashed contexts), small, "
                    "tiny (need torch). "
-                   "Images: small (the default), large (a wider network: about twice the network's decode work) or tiny. "
-                   "Figures in README.md.")
+                   "Images: small (the default) or tiny. Figures in README.md.")
 @click.option("--seed", type=int, default=0, show_default=True, help="Seed of the validation split and the training.")
 @click.option("--max-bytes", type=int, default=None, help="Read at most this many bytes of the corpus (bytes only).")
 @click.option("--memory", "memory", default=None, metavar="SIZE",

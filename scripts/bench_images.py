@@ -249,7 +249,7 @@ def main():
     ap.add_argument("--kinds", default=None, help="with --same-kind: only these kinds (comma-separated: "
                     "grey8, rgb8, medical16)")
     ap.add_argument("--preset", default="small", help="with --same-kind: the image preset the models are trained with "
-                    "(train --preset)")
+                    "(train --preset; the IMAGE_PRESETS of lcodec/training/train.py)")
     ap.add_argument("--colour", default="rct-grad", choices=["shift", "rct", "rct-grad"],
                     help="with --same-kind: the colour mode the models are trained with (train --colour)")
     ap.add_argument("--predictor", default="gap", choices=["med", "gap"],

@@ -312,7 +312,6 @@ def train(corpus: list[str], out: str, time_limit: float = 600.0, preset: str = 
 IMAGE_PRESETS = {
     # name: embed per slot, hidden, batch, learning rate (figures in docs/notes/model-weft.md)
     "small": dict(embed=8, hidden=128, batch=2048, lr=3e-3),
-    "large": dict(embed=12, hidden=256, batch=2048, lr=3e-3),  # about twice the network's decode work
     "tiny": dict(embed=2, hidden=16, batch=512, lr=5e-3),  # for tests
 }
 
