@@ -370,6 +370,49 @@ def golden_tessel_gap():
                     "tessel-g1-npy16", skd.moon()[60:92, 100:140].astype(np.uint16) * 53 + 1000)
 
 
+def golden_tessel_light():
+    """The gap model file with a light 16-bit high byte, as `train --kind image` writes 16-bit
+    models since 2026-12-05: the high byte's network keeps 8 of its 16 hidden units (role
+    parameter hidden), the high byte has no adaptive counts and the law stage leaves it alone
+    (law high_byte 0); the file is named by its SHA-256 alone in archives. Containers made
+    with it: a 16-bit NPY (a crop of scikit-image's coins times 43, plus 2000, with a fixed
+    pseudo-random texture) and pydicom's CT_small.dcm."""
+    import io
+    import warnings
+
+    import numpy as np
+    import skimage.data as skd
+    from pydicom.data import get_testdata_file
+
+    from lcodec.format import modelfile
+
+    mpath = os.path.join(HERE, "tessel-tiny-light.lcmodel")
+    names = ["tessel-h1-npy16", "tessel-h1-dicom16"]
+    if all(os.path.exists(os.path.join(HERE, n + ".lcodec")) for n in names):
+        print("keep tessel-h1-*")
+        return
+    warnings.simplefilter("ignore")
+    if not os.path.exists(mpath):
+        meta, arrays, _ = modelfile.load(os.path.join(HERE, "tessel-tiny-gap.lcmodel"))
+        arch = meta.pop("architecture")
+        meta.pop("arrays")
+        p = arch["params"]
+        p["roles"]["r16h"]["hidden"] = 8
+        p["adapt"].pop("r16h")
+        p["structure"]["k"].pop("r16h")
+        p["law"]["high_byte"] = 0
+        arrays = {k: np.array(v) for k, v in arrays.items()}
+        arrays["r16h.w1"] = np.ascontiguousarray(arrays["r16h.w1"][:, :8])
+        arrays["r16h.b1"] = np.ascontiguousarray(arrays["r16h.b1"][:8])
+        arrays["r16h.w2"] = np.ascontiguousarray(arrays["r16h.w2"][:8])
+        modelfile.dump(mpath, arch, arrays, **dict(meta, archives_name_file=False))
+    a = skd.coins()[150:190, 200:236].astype(np.int32) * 43 + 2000 + np.random.default_rng(7).integers(-60, 60, (40, 36))
+    buf = io.BytesIO()
+    np.save(buf, a.astype("<u2"))
+    write_vector(names[0], buf.getvalue(), model=mpath)
+    write_vector(names[1], open(get_testdata_file("CT_small.dcm"), "rb").read(), model=mpath)
+
+
 def golden_heddle():
     """Two heddle model files made with the layer kit (needs torch, scikit-learn,
     scikit-image) and their containers: a tiny masked autoencoder over 8x8 digits (records;
@@ -446,6 +489,7 @@ def main():
     golden_tessel_replicated()
     golden_tessel_colour()
     golden_tessel_gap()
+    golden_tessel_light()
     golden_heddle()
     golden_v3_twins()
     golden_tessel_bands()

@@ -4,6 +4,7 @@ the pixel model, parallel pass == step pass across backends and thread settings,
 image archives, and the committed golden pixel model + containers."""
 import hashlib
 import io
+import json
 import os
 import subprocess
 import sys
@@ -37,30 +38,37 @@ STRUCT = {"k": 24, "cap": 12, "decay": 0, "blend": 1}  # the second stage (struc
 LAW = {"limit": 255, "cap": 12}  # the third stage of 16-bit samples (two-sided geometric law)
 
 
-def random_tessel(seed=0, E=4, H=24, roles=("r8", "r16h", "r16l"), shift=1, adapt=64, structure=None, law=None):
+def random_tessel(seed=0, E=4, H=24, roles=("r8", "r16h", "r16l"), shift=1, adapt=64, structure=None, law=None,
+                  light_high=0):
     """An untrained pixel model: random integer weights over output biases shaped like a
     two-sided geometric law around residual 0, so that it compresses images (enough to
     exercise every path, stored frames aside). `structure`: None (off) or STRUCT-like
-    settings with one prior strength k for every role."""
+    settings with one prior strength k for every role. light_high > 0: the 16-bit high
+    byte's network has that many hidden units and no adaptive stages (law high_byte 0),
+    as `train` writes 16-bit models."""
     rng = np.random.default_rng(seed)
     arrays, rp = {"lut": LUT}, {}
     s = np.arange(256)
     peak = {"r8": -np.minimum(s, 256 - s) * 3000, "r16h": -np.minimum(s, 256 - s) * 30000,
             "r16l": -np.abs(s - 128) * 600}
+    light = {r: bool(light_high) and r == "r16h" for r in roles}
     for r in roles:
+        Hr = light_high if light[r] else H
         arrays[r + ".emb"] = rng.integers(-127, 128, (EMB_ROWS, E)).astype(np.int8)
-        arrays[r + ".w1"] = rng.integers(-127, 128, (N_SLOTS * E, H)).astype(np.int8)
-        arrays[r + ".b1"] = rng.integers(-5000, 5000, H).astype(np.int32)
-        arrays[r + ".w2"] = rng.integers(-8, 9, (H, 256)).astype(np.int8)
+        arrays[r + ".w1"] = rng.integers(-127, 128, (N_SLOTS * E, Hr)).astype(np.int8)
+        arrays[r + ".b1"] = rng.integers(-5000, 5000, Hr).astype(np.int32)
+        arrays[r + ".w2"] = rng.integers(-8, 9, (Hr, 256)).astype(np.int8)
         arrays[r + ".b2"] = (peak[r] + rng.integers(-2000, 2000, 256)).astype(np.int32)
         rp[r] = {"m1": 1 << 10, "s1": 20, "mo": 1 << 12, "so": 20}
+        if light[r]:
+            rp[r]["hidden"] = Hr
     params = {"embed": E, "hidden": H, "chan_shift": shift, "roles": rp, "bytes": "o6m"}
     if adapt is not None:
-        params["adapt"] = {r: adapt for r in roles}
+        params["adapt"] = {r: adapt for r in roles if not light[r]}
     if structure is not None:
-        params["structure"] = dict(structure, k={r: structure["k"] for r in roles})
+        params["structure"] = dict(structure, k={r: structure["k"] for r in roles if not light[r]})
     if law is not None:
-        params["law"] = dict(law)
+        params["law"] = dict(law, high_byte=0) if light_high else dict(law)
     return Tessel(params, arrays)
 
 
@@ -508,11 +516,14 @@ def test_causal_property(kind, adapt):
                     assert not np.array_equal(t[first + 1:], base[first + 1:]), (r, c, ch)
 
 
-@pytest.mark.parametrize("adapt", [None, 1, 3000, "structure", "structure-k1", "structure-unblended", "law", "law-alone"])
+@pytest.mark.parametrize("adapt", [None, 1, 3000, "structure", "structure-k1", "structure-unblended", "law", "law-alone",
+                                   "light-high"])
 @pytest.mark.parametrize("kind", ["grey8", "rgb8", "grey16", "signed16", "rgb16"])
 def test_parallel_pass_equals_step_pass(kind, adapt):
     if adapt == "structure":
         m = random_tessel(structure=STRUCT)
+    elif adapt == "light-high":  # all three stages for the low byte; a 5-unit high byte without them
+        m = random_tessel(structure=STRUCT, law=LAW, light_high=5)
     elif adapt == "law":  # all three stages
         m = random_tessel(structure=STRUCT, law=LAW)
     elif adapt == "law-alone":  # the network and the law only; scales halved every 3 samples
@@ -931,7 +942,11 @@ def test_train_image_cli_16bit_law_stage(flag, tmp_path):
     r = subprocess.run(cmd, capture_output=True, text=True, env=dict(os.environ, PYTHONPATH=os.getcwd()))
     assert r.returncode == 0, r.stderr
     params = load_model(str(out)).inner.params
-    assert params.get("law") == (None if flag else {"limit": 255, "cap": 12})
+    assert params.get("law") == (None if flag else {"limit": 255, "cap": 12, "high_byte": 0})
+    # the high byte's light network, without adaptive stages (train.HIGH_HIDDEN)
+    assert params["roles"]["r16h"]["hidden"] == 16 and "hidden" not in params["roles"]["r16l"]
+    assert set(params["adapt"]) == set(params["structure"]["k"]) == {"r16l"}
+    assert load_model(str(out)).inner.arrays["r16h.w2"].shape == (16, 256)
     from lcodec.format import modelfile
     trained = modelfile.load(str(out))[0]["training"]["sets"]["16-bit"]  # one training image, one validation image
     assert (trained["augmented_copies"], trained["train_samples"]) == ((0, 40 * 48) if flag else (3, 4 * 40 * 48))
@@ -1025,6 +1040,56 @@ def _golden_image_round_trip(model, name, today=None):
     want = v3_twin(name if today is None else today)
     assert lcodec.pack(orig, model=model) == want
     return blob, orig
+
+
+GOLDEN_LIGHT = sorted(f[:-7] for f in os.listdir(GOLDEN) if f.startswith("tessel-h1-") and f.endswith(".lcodec"))
+
+
+def test_golden_light_high_byte_vectors_exist():
+    assert GOLDEN_LIGHT == ["tessel-h1-dicom16", "tessel-h1-npy16"]
+
+
+@pytest.mark.parametrize("name", GOLDEN_LIGHT)
+def test_golden_light_high_byte_containers_decode_exactly(name):
+    """The model file with a light 16-bit high byte (tessel-tiny-light.lcmodel, as `train`
+    writes 16-bit models since 2026-12-05: 8 hidden units, no adaptive counts, law
+    high_byte 0; named by its SHA-256 alone): its containers decode to the original bytes
+    with 1 and 2 threads, today's encoder writes the same bytes, and the archives' identity
+    is the binary form."""
+    model = os.path.join(GOLDEN, "tessel-tiny-light.lcmodel")
+    inner = load_model(model).inner
+    assert inner.role_params["r16h"]["hidden"] == 8 and inner.role_params["r16l"]["hidden"] == 16
+    assert inner.law_high == 0 and "r16h" not in inner.adapt and "r16h" not in inner.k2
+    blob = open(os.path.join(GOLDEN, name + ".lcodec"), "rb").read()
+    orig = open(os.path.join(GOLDEN, name + ".orig"), "rb").read()
+    assert lcodec.info(blob)["frames"][0]["method"] == "modelled/image"
+    assert set(C.read_container(blob).identity) == {"model", "sha256"}
+    assert lcodec.unpack(blob, model=model) == orig
+    assert b"".join(api.decode(blob, model=model, workers=2).frames) == orig
+    assert lcodec.pack(orig, model=model) == blob
+    if name.endswith("dicom16"):  # reference reader: pydicom
+        assert np.array_equal(pydicom.dcmread(io.BytesIO(orig)).pixel_array,
+                              pydicom.dcmread(_dicom("CT_small.dcm")).pixel_array)
+    else:  # reference reader: numpy
+        want = (skdata.coins()[150:190, 200:236].astype(np.int32) * 43 + 2000
+                + np.random.default_rng(7).integers(-60, 60, (40, 36)))
+        assert np.array_equal(np.load(io.BytesIO(orig)), want.astype("<u2"))
+
+
+def test_light_high_byte_params_refused():
+    """A role's own hidden width and the law's high_byte flag are checked like the rest."""
+    m = random_tessel(law=LAW, light_high=5)
+    for edit in (lambda p: p["roles"]["r16h"].update(hidden=6),  # does not match the arrays
+                 lambda p: p["roles"]["r16h"].update(hidden=0),
+                 lambda p: p["roles"]["r16h"].update(hidden=2000),
+                 lambda p: p["roles"]["r16h"].update(width=5),
+                 lambda p: p["law"].update(high_byte=2),
+                 lambda p: p["law"].update(high_byte=True),
+                 lambda p: p["law"].update(low_byte=0)):
+        params = json.loads(json.dumps(m.params))
+        edit(params)
+        with pytest.raises(ValueError):
+            Tessel(params, m.arrays)
 
 
 GOLDEN_LAW = sorted(f[:-7] for f in os.listdir(GOLDEN) if f.startswith("tessel-l1-") and f.endswith(".lcodec"))

@@ -188,14 +188,16 @@ def _hib(hi):
 
 @njit(cache=True, nogil=True)
 def _mix_chunk(tab, ctx, syms, gid, Ks, counts, tots, mid, ctx2, K2s, counts2, tots2, D, wtab, cap, decay,
-               qa, tb, sums, out, blend, D1, limit, lcls, lhi, lrow, law, lawq, lawsum, A, Nc, D3, wtab3, cap3, out3):
+               qa, tb, sums, out, blend, D1, limit, lcls, lhi, lrow, law, lawq, lawsum, A, Nc, D3, wtab3, cap3, out3,
+               law_high):
     """The encoder's side of the adaptive counts: group by group (one wavefront step and
     sub-symbol, as the decoder sees them), every table from the state before the group,
     then the group's symbols counted in lane order. Stage 1: the network mixed with the
     activity counts (K; with `blend`, weighed against the network alone like stage 2, evidence
     D1); stage 2: that mixed with the structure counts (K2); with `limit` > 0 (16-bit samples
     only), stage 3: that weighed against the law (evidence D3), whose scales learn from each
-    low-byte group (lhi >= 0: the high byte of the same sample) once it is coded."""
+    low-byte group (lhi >= 0: the high byte of the same sample) once it is coded; with
+    law_high == 0 the high bytes' groups skip stage 3."""
     n = tab.shape[0]
     i = 0
     while i < n:
@@ -222,7 +224,9 @@ def _mix_chunk(tab, ctx, syms, gid, Ks, counts, tots, mid, ctx2, K2s, counts2, t
             _update2(ctx2[i:j], syms[i:j], counts2, tots2, D, cap, decay, q, t, s)
         else:
             two[:] = one
-        if limit > 0:
+        if limit > 0 and lhi[i] < 0 and law_high == 0:  # a high byte the law stage leaves alone
+            fin[:] = two
+        elif limit > 0:
             _law_rows(lcls[i:j], lhi[i:j], A, Nc, lrow[i:j])
             _mix_law(two, ctx[i:j], lrow[i:j], lawq, lawsum, D3, wtab3, cap3, q, s, fin)
             _law_evidence(ctx[i:j], syms[i:j], D3, cap3, lrow[i:j], law, q, t, s)
@@ -318,8 +322,8 @@ def coding_order(rows: int, cols: int, C: int, P: int) -> np.ndarray:
     return order  # raster index = ((r*cols + c)*C + ch)*P + part = position in (r, c, sub) ravel
 
 
-def check_net(params: dict, arrays: dict, prefix: str) -> None:
-    E, H = params["embed"], params["hidden"]
+def check_net(params: dict, arrays: dict, prefix: str, hidden: int | None = None) -> None:
+    E, H = params["embed"], hidden or params["hidden"]
     want = {"emb": ((EMB_ROWS, E), np.int8), "w1": ((N_SLOTS * E, H), np.int8), "b1": ((H,), np.int32),
             "w2": ((H, 256), np.int8), "b2": ((256,), np.int32)}
     for name, (shape, dt) in want.items():
@@ -391,11 +395,16 @@ class Tessel:
         self.cap, self.decay = st["cap"], st["decay"]
         self.wtab = weight_table(self.cap)
         law = p.get("law", {"limit": 0, "cap": 1})  # absent: off (older files)
-        if (not isinstance(law, dict) or set(law) != {"limit", "cap"} or type(law["limit"]) is not int
-                or not 0 <= law["limit"] <= 1 << 16 or type(law["cap"]) is not int or not 1 <= law["cap"] <= 30):
+        if (not isinstance(law, dict) or not {"limit", "cap"} <= set(law) <= {"limit", "cap", "high_byte"}
+                or type(law["limit"]) is not int or not 0 <= law["limit"] <= 1 << 16
+                or type(law["cap"]) is not int or not 1 <= law["cap"] <= 30
+                or law.get("high_byte", 1) not in (0, 1) or type(law.get("high_byte", 1)) is not int):
             raise ValueError("law needs limit (samples per class before halving, 0 = off, at most 65536) "
-                             "and cap 1..30")
+                             "and cap 1..30 (and optionally high_byte 0 or 1)")
         self.law_limit, self.law_cap = law["limit"], law["cap"]
+        # whether the law stage weighs a 16-bit sample's high byte too (absent: yes, older
+        # files); `train` writes 0 since 2026-12-05: +0.05% bits, a sixth less decoding work
+        self.law_high = law.get("high_byte", 1)
         self.law_wtab = weight_table(self.law_cap)
         E, H = p["embed"], p["hidden"]
         if not all(type(x) is int and x >= 1 for x in (E, H)):
@@ -419,16 +428,20 @@ class Tessel:
             raise ValueError("lut values must be 1..2**24")
         self.role_params = {}
         for role, rp in roles.items():
-            if not isinstance(rp, dict) or set(rp) != {"m1", "s1", "mo", "so"} or not all(type(x) is int for x in rp.values()):
-                raise ValueError(f"role {role} needs integer m1, s1, mo, so")
+            if (not isinstance(rp, dict) or not {"m1", "s1", "mo", "so"} <= set(rp) <= {"m1", "s1", "mo", "so", "hidden"}
+                    or not all(type(x) is int for x in rp.values())):
+                raise ValueError(f"role {role} needs integer m1, s1, mo, so (and optionally hidden)")
+            Hr = rp.get("hidden", H)  # a role's own hidden width (absent: the model's)
+            if not 1 <= Hr or 127 * 127 * Hr >= 1 << 24:
+                raise ValueError(f"{role}.hidden must be positive and keep 127*127*hidden below 2**24")
             for k in ("m1", "mo"):
                 if not 0 < rp[k] < 1 << 31:
                     raise ValueError(f"{role}.{k} out of range")
             for k in ("s1", "so"):
                 if not 1 <= rp[k] <= 40:
                     raise ValueError(f"{role}.{k} out of range")
-            check_net(p, arrays, role + ".")
-            self.role_params[role] = dict(rp, window=N_SLOTS, embed=E, hidden=H)
+            check_net(p, arrays, role + ".", Hr)
+            self.role_params[role] = dict(rp, window=N_SLOTS, embed=E, hidden=Hr)
         self.params = p
         self.arrays = arrays
         self.shift = {"rct": COLOUR_RCT, "rct-grad": COLOUR_RCT_GRAD}.get(p.get("colour"), int(p["chan_shift"]))
@@ -540,7 +553,7 @@ class Tessel:
                            ctx2[o].astype(np.int64), K2[roles[o]], counts2, tots2, D, self.wtab, self.cap,
                            self.decay, qa, tb, sums, out, self.blend, D1,
                            limit, lcls[o], lhi[o], lrow[:len(o)], law, lawq, lawsum, A, Nc, D3, self.law_wtab,
-                           self.law_cap, out3)
+                           self.law_cap, out3, self.law_high)
                 tab = out3
             yield cs, tab
             i = j
@@ -588,7 +601,8 @@ class Tessel:
             if K2:
                 _mix2(tab, ctx2, K2, counts2, D, self.wtab, self.cap, qa[:m], tb[:m], sums[:m], mixed2[:m])
                 tab = mixed2[:m]
-            if limit:
+            weigh = limit and (his is not None or self.law_high)
+            if weigh:
                 _law_rows(cls[:m], no_hi[:m] if his is None else his, A, Nc, lrow[:m])
                 _mix_law(tab, ctx, lrow[:m], lawq, lawsum, D3, self.law_wtab, self.law_cap, qa3[:m], sums3[:m],
                          mixed3[:m])
@@ -602,7 +616,7 @@ class Tessel:
                 _update(ctx, syms, counts, tots)
             if K2:
                 _update2(ctx2, syms, counts2, tots2, D, self.cap, self.decay, qa[:m], tb[:m], sums[:m])
-            if limit:
+            if weigh:
                 _law_evidence(ctx, syms, D3, self.law_cap, lrow[:m], law, qa3[:m], tb3[:m], sums3[:m])
                 if his is not None:
                     _law_count(cls[:m], his, syms, A, Nc, limit)

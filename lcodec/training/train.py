@@ -321,6 +321,10 @@ STRUCTURE_K = 32  # prior strength of the structure counts (figures in docs/note
 AUGMENT_SAMPLES = 1 << 24  # mirrored, flipped and transposed copies join while the training samples stay below this
 STRUCTURE_CAP = 12  # evidence cap of the two-member weights, in bits
 LAW = {"limit": 255, "cap": 12}  # the law stage of 16-bit samples (figures in docs/notes/model-weft.md)
+# A 16-bit sample's high byte carries about 0.1 bit: since 2026-12-05 its network is this wide
+# and it skips the adaptive stages (README "Images" has the figures); 0 gives it the others' width
+# and every stage, as before
+HIGH_HIDDEN = 16
 ADAPT_GRID = (0, 256, 1024, 4096, 16384)
 
 
@@ -340,12 +344,13 @@ def augmented(images: list, budget: int = AUGMENT_SAMPLES) -> list:
     return out
 
 
-def choose_adapt(model, val_images: dict, echo=print) -> dict:
+def choose_adapt(model, val_images: dict, echo=print, light: dict | None = None) -> dict:
     """Prior strength K of the adaptive counts, per depth: the value of ADAPT_GRID with the
-    fewest bits on the validation images (whole images through the encoder's pass)."""
+    fewest bits on the validation images (whole images through the encoder's pass). Roles
+    marked in `light` have no counts."""
     out = {}
     for deep, imgs in val_images.items():
-        roles = ("r16h", "r16l") if deep else ("r8",)
+        roles = tuple(r for r in (("r16h", "r16l") if deep else ("r8",)) if not (light or {}).get(r))
         best = None
         for K in ADAPT_GRID:
             model.adapt = {r: K for r in roles}
@@ -383,11 +388,13 @@ def read_images(paths: list[str], echo=print) -> list[tuple[str, np.ndarray]]:
 def train_image(corpus: list[str], out: str, time_limit: float = 120.0, preset: str = "small",
                 seed: int = 0, echo=print, force: bool = False, chan_shift: int = 1, adapt_k=str(ADAPT_K),
                 structure_k: int = STRUCTURE_K, law: bool = True, augment: bool = True,
-                record_names: bool = False, colour: str = "rct-grad", predictor: str = "gap") -> dict:
+                record_names: bool = False, colour: str = "rct-grad", predictor: str = "gap",
+                high_hidden: int = HIGH_HIDDEN) -> dict:
     """Fit a tessel pixel model: one network per role present in the corpus (8-bit samples;
     16-bit high and low bytes), quantisation-aware, then export and measure it. With
     `augment`, the training images' mirrored, flipped and transposed copies join the
-    training set (`augmented`; never the validation images)."""
+    training set (`augmented`; never the validation images). high_hidden: a 16-bit high
+    byte's network width, which then also skips the adaptive stages (0: as the low byte's)."""
     try:
         import torch
     except ImportError:
@@ -406,6 +413,8 @@ def train_image(corpus: list[str], out: str, time_limit: float = 120.0, preset: 
         raise UsageError(f"unknown preset {preset!r} (have: {', '.join(IMAGE_PRESETS)})")
     if str(adapt_k) != "auto" and not (str(adapt_k).isdigit() and 0 <= int(adapt_k) <= 1 << 16):
         raise UsageError("--adapt-k must be 0..65536 or 'auto'")
+    if type(high_hidden) is not int or not 0 <= high_hidden <= 1024:
+        raise UsageError("high_hidden must be 0..1024")
     if type(structure_k) is not int or not 0 <= structure_k <= 1 << 16:
         raise UsageError("--structure-k must be 0..65536")
     if os.path.lexists(out) and not force:
@@ -459,7 +468,8 @@ def train_image(corpus: list[str], out: str, time_limit: float = 120.0, preset: 
              + (f" and {s['augmented_copies']} mirrored, flipped or transposed copies" if s["augmented_copies"] else "")
              + f"); validating on {s['validation_images']}; "
              f"time limit {time_limit:.0f} s")
-    nets = {r: _build(torch, cfg) for r in data}
+    light = {r: bool(high_hidden) and r == "r16h" for r in data}  # the high byte's light network
+    nets = {r: _build(torch, dict(cfg, hidden=high_hidden) if light[r] else cfg) for r in data}
     opts = {r: torch.optim.Adam(nets[r].parameters(), lr=cfg["lr"]) for r in data}
     val = {}
     for r, (ti, ts, vi, vs) in data.items():
@@ -520,18 +530,21 @@ def train_image(corpus: list[str], out: str, time_limit: float = 120.0, preset: 
         net.eval()
         p, a = export(net, cfg)
         params["roles"][r] = {k: p[k] for k in ("m1", "s1", "mo", "so")}
+        if light[r]:
+            params["roles"][r]["hidden"] = high_hidden
         for k in ("emb", "w1", "b1", "w2", "b2"):
             arrays[f"{r}.{k}"] = a[k]
         arrays["lut"] = a["lut"]
     if structure_k:  # the second stage (structure counts) and the blended first stage
-        params["structure"] = {"k": {r: structure_k for r in nets}, "cap": STRUCTURE_CAP, "decay": 0, "blend": 1}
+        params["structure"] = {"k": {r: structure_k for r in nets if not light[r]}, "cap": STRUCTURE_CAP, "decay": 0,
+                               "blend": 1}
     if "r16h" in nets and law:  # the third stage of 16-bit samples: a two-sided geometric law
-        params["law"] = dict(LAW)
+        params["law"] = dict(LAW, high_byte=0) if light["r16h"] else dict(LAW)
     model = Tessel(params, arrays)
     if str(adapt_k) == "auto":  # per depth, the grid value best on the validation images
-        params["adapt"] = choose_adapt(model, val_images, echo)
+        params["adapt"] = {r: k for r, k in choose_adapt(model, val_images, echo, light).items() if not light[r]}
     else:
-        params["adapt"] = {r: int(adapt_k) for r in nets}
+        params["adapt"] = {r: int(adapt_k) for r in nets if not light[r]}
     model = Tessel(params, arrays)
     result = {}
     for r in nets:
