@@ -403,7 +403,8 @@ class Tessel:
                              "and cap 1..30 (and optionally high_byte 0 or 1)")
         self.law_limit, self.law_cap = law["limit"], law["cap"]
         # whether the law stage weighs a 16-bit sample's high byte too (absent: yes, older
-        # files); `train` writes 0 since 2026-12-05: +0.05% bits, a sixth less decoding work
+        # files); `train` writes 0 since 2026-12-05: +0.05% bits on the same-kind 16-bit tiles,
+        # and the high byte skips the stage's two kernels (about 7% of a 16-bit decode)
         self.law_high = law.get("high_byte", 1)
         self.law_wtab = weight_table(self.law_cap)
         E, H = p["embed"], p["hidden"]

@@ -321,7 +321,8 @@ STRUCTURE_K = 32  # prior strength of the structure counts (figures in docs/note
 AUGMENT_SAMPLES = 1 << 24  # mirrored, flipped and transposed copies join while the training samples stay below this
 STRUCTURE_CAP = 12  # evidence cap of the two-member weights, in bits
 LAW = {"limit": 255, "cap": 12}  # the law stage of 16-bit samples (figures in docs/notes/model-weft.md)
-# A 16-bit sample's high byte carries about 0.1 bit: since 2026-12-05 its network is this wide
+# A 16-bit sample's high byte carries 0.04-0.12 bit (validation, docs/notes/model-tessel.md,
+# "Light high byte"): since 2026-12-05 its network is this wide
 # and it skips the adaptive stages (README "Images" has the figures); 0 gives it the others' width
 # and every stage, as before
 HIGH_HIDDEN = 16
