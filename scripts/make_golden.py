@@ -413,6 +413,29 @@ def golden_tessel_light():
     write_vector(names[1], open(get_testdata_file("CT_small.dcm"), "rb").read(), model=mpath)
 
 
+def golden_tessel_nets_only():
+    """The light model file with stages_min_gain 10000 (the stages would have to save every
+    bit), so that every image is coded with the networks alone (image flag FLAG_NETS_ONLY, as
+    the encoder chooses since 2026-12-05 when a model file's stages save too little): an
+    8-bit PGM crop of scikit-image's camera and a 16-bit NPY (a crop of its moon times 71,
+    plus 300)."""
+    import io
+
+    import numpy as np
+    import skimage.data as skd
+
+    mpath = os.path.join(HERE, "tessel-tiny-netsonly.lcmodel")
+    names = ["tessel-n1-pgm", "tessel-n1-npy16"]
+    if all(os.path.exists(os.path.join(HERE, n + ".lcodec")) for n in names):
+        print("keep tessel-n1-*")
+        return
+    derive_tessel("tessel-tiny-light.lcmodel", mpath, lambda params: params.update(stages_min_gain=10000))
+    write_vector(names[0], b"P5\n# bay-6 plate 1\n36 28\n255\n" + skd.camera()[140:168, 200:236].tobytes(), model=mpath)
+    buf = io.BytesIO()
+    np.save(buf, skd.moon()[300:330, 40:72].astype(np.uint16) * 71 + 300)
+    write_vector(names[1], buf.getvalue(), model=mpath)
+
+
 def golden_heddle():
     """Two heddle model files made with the layer kit (needs torch, scikit-learn,
     scikit-image) and their containers: a tiny masked autoencoder over 8x8 digits (records;
@@ -490,6 +513,7 @@ def main():
     golden_tessel_colour()
     golden_tessel_gap()
     golden_tessel_light()
+    golden_tessel_nets_only()
     golden_heddle()
     golden_v3_twins()
     golden_tessel_bands()

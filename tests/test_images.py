@@ -439,7 +439,7 @@ GOOD = b"\x01\x00\x01\x01\x01\x01\x00"  # version 1, offset 0, 1 x 1 x 1 sample 
 
 @pytest.mark.parametrize("payload", [b"", b"\x02" + GOOD[1:], GOOD[:4], b"\x01\x00\x00\x01\x01\x01\x00",
                                      b"\x01\x00\x01\x01\x05\x01\x00", b"\x01\x00\x01\x01\x01\x03\x00",
-                                     b"\x01\x00\x01\x02\x01\x01\x00", b"\x01\x00\x01\x01\x01\x01\x08",
+                                     b"\x01\x00\x01\x02\x01\x01\x00", b"\x01\x00\x01\x01\x01\x01\x10",
                                      b"\x01\x00\x01\x01\x01\x01\x01", b"\x01\x01\x01\x01\x01\x01\x00",
                                      GOOD + b"abc", b"\x01\x00\xff\xff\xff\xff\xff\xff\xff\xff\x7f\x01\x01\x01\x00"])
 def test_hostile_image_descriptors_are_refused(payload):
@@ -543,6 +543,62 @@ def test_parallel_pass_equals_step_pass(kind, adapt):
     else:
         a, lay_args = _sample("camera", 21, 10), (1, 0)
     check_step_equals_parallel(m, a, lay_args)
+
+
+@pytest.mark.parametrize("kind", ["grey8", "rgb8", "grey16", "signed16"])
+def test_networks_alone_when_the_stages_save_too_little(kind):
+    """A model file with stages_min_gain: an image whose stages save less than that share of
+    its samples' bits is coded with the networks alone (flag FLAG_NETS_ONLY); the decoder's
+    step tables then equal the encoder's networks-only tables bit for bit, and the archive
+    is what the same image gives with the stages switched off in the model's parameters.
+    With gain 0 the image is coded with the stages unless they make it larger."""
+    from lcodec.inputs.layout import FLAG_NETS_ONLY, Layout, read_descriptor, values_region
+    a, lay_args = {"grey8": (_sample("camera", 21, 30), (1, 0)), "rgb8": (_sample("astronaut", 13, 17), (1, 0)),
+                   "grey16": (_sample("moon", 19, 23).astype(np.uint16) * 199, (2, 0)),
+                   "signed16": (_sample("moon", 19, 23).astype(np.uint16) * 199, (2, 3))}[kind]
+    a = a[:, :, None] if a.ndim == 2 else a
+    lay = Layout(5, a.shape[0], a.shape[1], a.shape[2], *lay_args)
+    raw = b"head!" + values_region(a, lay) + b"tail"
+    base = random_tessel(structure=STRUCT, law=LAW, light_high=5)
+    always = Tessel(dict(base.params, stages_min_gain=10000), base.arrays)
+    never = Tessel(dict(base.params, stages_min_gain=0), base.arrays)
+    bare = Tessel({k: v for k, v in base.params.items() if k not in ("adapt", "structure", "law")}, base.arrays)
+    payload, _, nll = encode_image_frame(always, raw, lay)
+    got, _ = read_descriptor(payload, len(raw))
+    assert got.flags & FLAG_NETS_ONLY
+    rec = []
+    assert decode_image_frame(always, payload, len(raw), rec) == raw
+    v = region_values(raw, lay)
+    want = np.concatenate([t for _, t in always.teacher_tables(v, lay.deep, stages=False)])
+    assert np.array_equal(np.concatenate(rec), want)
+    assert np.array_equal(want, _tables(bare, v, lay.deep))  # the networks' tables alone
+    assert payload[got_end(payload, len(raw)):] == encode_image_frame(bare, raw, lay)[0][got_end(payload, len(raw)):]
+    # gain 0: the networks alone exactly when that makes the coded samples smaller (random
+    # networks: on some of these images it does); the choice compares the two codings' sizes
+    staged = encode_image_frame(base, raw, lay)[0]
+    kept, _, kept_nll = encode_image_frame(never, raw, lay)
+    alone = len(payload) < len(staged)
+    assert bool(read_descriptor(kept, len(raw))[0].flags & FLAG_NETS_ONLY) == alone
+    assert kept == (payload if alone else staged)
+    assert kept_nll == pytest.approx(nll if alone else encode_image_frame(base, raw, lay)[2])
+    assert decode_image_frame(never, kept, len(raw)) == raw
+    # with 2 forked band workers and 3 bands: the same choice, the same bytes
+    three = encode_image_frame(never, raw, lay, bands=3)[0]
+    assert encode_image_frame(never, raw, lay, bands=3, workers=2)[0] == three
+    assert decode_image_frame(never, three, len(raw), threads=2) == raw
+
+
+def got_end(payload, raw_len):
+    """Where an image payload's coded words start."""
+    from lcodec.inputs.layout import read_descriptor
+    return read_descriptor(payload, raw_len)[1]
+
+
+def test_stages_min_gain_refused():
+    m = random_tessel(law=LAW)
+    for bad in (-1, 10001, 2.5, True, "25"):
+        with pytest.raises(ValueError, match="stages_min_gain"):
+            Tessel(dict(m.params, stages_min_gain=bad), m.arrays)
 
 
 def check_step_equals_parallel(m, a, lay_args):
@@ -876,6 +932,7 @@ def test_train_image_cli(tmp_path):
     assert "and 6 mirrored, flipped or transposed copies" in r.stderr  # 2 training images, 3 copies each
     params = load_model(str(out)).inner.params  # the defaults: both per-image stages
     assert params["adapt"] == {"r8": 4096} and params["structure"] == {"k": {"r8": 32}, "cap": 12, "decay": 0, "blend": 1}
+    assert params["stages_min_gain"] == 25  # train.STAGES_MIN_GAIN: 0.25% of the samples' bits
     assert "law" not in params  # the law stage is for 16-bit samples only
     assert "colour" not in params and params["predictor"] == "gap"  # grey images: no colour mode; gap by default
     data = _pgm(_sample("page", 30, 30))
@@ -1074,6 +1131,33 @@ def test_golden_light_high_byte_containers_decode_exactly(name):
         want = (skdata.coins()[150:190, 200:236].astype(np.int32) * 43 + 2000
                 + np.random.default_rng(7).integers(-60, 60, (40, 36)))
         assert np.array_equal(np.load(io.BytesIO(orig)), want.astype("<u2"))
+
+
+GOLDEN_NETS_ONLY = sorted(f[:-7] for f in os.listdir(GOLDEN) if f.startswith("tessel-n1-") and f.endswith(".lcodec"))
+
+
+def test_golden_nets_only_vectors_exist():
+    assert GOLDEN_NETS_ONLY == ["tessel-n1-npy16", "tessel-n1-pgm"]
+
+
+@pytest.mark.parametrize("name", GOLDEN_NETS_ONLY)
+def test_golden_nets_only_containers_decode_exactly(name):
+    """Images coded with the networks alone (flag FLAG_NETS_ONLY; tessel-tiny-netsonly.lcmodel
+    has stages_min_gain 10000, so the encoder always drops the stages): they decode to the
+    original bytes with 1 and 2 threads, and today's encoder writes the same bytes."""
+    model = os.path.join(GOLDEN, "tessel-tiny-netsonly.lcmodel")
+    assert load_model(model).inner.stages_min_gain == 10000
+    blob = open(os.path.join(GOLDEN, name + ".lcodec"), "rb").read()
+    orig = open(os.path.join(GOLDEN, name + ".orig"), "rb").read()
+    frame = lcodec.info(blob)["frames"][0]
+    assert frame["method"] == "modelled/image" and frame["image"]["networks_only"] is True
+    assert lcodec.unpack(blob, model=model) == orig
+    assert b"".join(api.decode(blob, model=model, workers=2).frames) == orig
+    assert lcodec.pack(orig, model=model) == blob
+    if name.endswith("pgm"):  # reference reader: Pillow
+        assert np.array_equal(np.asarray(PIL.open(io.BytesIO(orig))), skdata.camera()[140:168, 200:236])
+    else:  # reference reader: numpy
+        assert np.array_equal(np.load(io.BytesIO(orig)), skdata.moon()[300:330, 40:72].astype(np.uint16) * 71 + 300)
 
 
 def test_light_high_byte_params_refused():

@@ -12,7 +12,7 @@ from ..format import container as C
 from ..frames import image_guarantee
 from ..fsio import safe_member_path
 from ..inputs.images import analyse
-from ..inputs.layout import read_descriptor
+from ..inputs.layout import FLAG_NETS_ONLY, read_descriptor
 from ..models import identity_text
 from .read import DEFAULT_CEILING, _archive_model, _check_workers, Sink, check_ceiling, decode_stream
 
@@ -147,6 +147,8 @@ def _frame_info(f: C.Frame) -> dict:
                 d["image"]["replicated"] = [lay.rep_rows, lay.rep_cols]
             if lay.bands > 1:  # coded rows in bands, one coder stream each (decoded side by side)
                 d["image"]["bands"] = lay.bands
+            if lay.flags & FLAG_NETS_ONLY:  # coded with the model's networks alone: its stages saved too little
+                d["image"]["networks_only"] = True
         except DataError as e:
             d["image"] = {"damaged": str(e)}
     return d

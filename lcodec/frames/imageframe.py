@@ -19,7 +19,7 @@ from ..coding import CheckedDecoder, CheckedEncoder
 from ..errors import ModelError
 from ..format import container as C
 from . import forked
-from ..inputs.layout import (Layout, choose_bands, read_descriptor, region_values, replication, side_bytes,
+from ..inputs.layout import (FLAG_NETS_ONLY, Layout, choose_bands, read_descriptor, region_values, replication, side_bytes,
                              values_region)
 
 _FAMILY = constriction.stream.model.Categorical(perfect=False)
@@ -63,14 +63,18 @@ def encode_image_frame(model, raw: bytes, lay: Layout, checks: bool = True, band
     same bytes; otherwise one after another here)."""
     lay.check(len(raw))
     side = side_bytes(raw, lay)
-    nll_side = 0.0
-    enc = _encoder(checks)
-    if side:
-        arr = np.frombuffer(side, np.uint8)
-        for syms, tab in model.teacher_chunks(arr, np.zeros(1, np.int64), np.array([len(arr)], np.int64)):
-            if len(syms):
-                enc.encode(np.ascontiguousarray(syms, np.int32), _FAMILY, np.ascontiguousarray(tab, np.float64))
-                nll_side += _nll(syms, tab)
+    arr = np.frombuffer(side, np.uint8)
+
+    def side_coded():
+        """A fresh encoder holding the side bytes, and their NLL bits."""
+        e, nll = _encoder(checks), 0.0
+        if side:
+            for syms, tab in model.teacher_chunks(arr, np.zeros(1, np.int64), np.array([len(arr)], np.int64)):
+                if len(syms):
+                    e.encode(np.ascontiguousarray(syms, np.int32), _FAMILY, np.ascontiguousarray(tab, np.float64))
+                    nll += _nll(syms, tab)
+        return e, nll
+
     v = region_values(raw, lay)
     fr, fc = replication(v)
     if (fr, fc) != (1, 1):  # code one sample of each block; the decoder repeats it
@@ -82,25 +86,45 @@ def encode_image_frame(model, raw: bytes, lay: Layout, checks: bool = True, band
     bounds = lay.band_bounds()
     workers = min(workers, n_bands)
     stop = forked.shared_array((1,), np.uint8) if workers > 1 else np.zeros(1, np.uint8)
+    # a model file with stages_min_gain: its stages must make the coded samples that many
+    # ten-thousandths smaller, else the image is coded with the networks alone. Both codings
+    # run in one pass (the networks' tables are the stages' input) and the sizes decide: an
+    # integer test, so the choice is the same on every machine.
+    gain = getattr(model, "stages_min_gain", None)
+    weigh = gain is not None and model.has_stages(lay.deep)
+    enc, nll_side = side_coded()
+    enc2 = side_coded()[0] if weigh else None
 
-    def band(b: int) -> tuple[bytes, float]:
-        """Band b's stream (band 0's opens with the side bytes already in `enc`), NLL bits."""
+    def band(b: int) -> tuple:
+        """Band b's stream (band 0's opens with the side bytes) and NLL bits of its samples;
+        when weighed, also the stream and NLL bits with the networks alone."""
         r0, r1 = bounds[b]
         e, nll = (enc if b == 0 else _encoder(checks)), 0.0
-        for syms, tab in model.teacher_tables(np.ascontiguousarray(v[r0:r1]), lay.deep):
+        e2, nll2 = ((enc2 if b == 0 else _encoder(checks)) if weigh else None), 0.0
+        for item in model.teacher_tables(np.ascontiguousarray(v[r0:r1]), lay.deep, with_bare=weigh):
             if stop[0]:
                 raise forked.Stopped
-            e.encode(np.ascontiguousarray(syms, np.int32), _FAMILY, tab)
-            nll += _nll(syms, tab)
-        return np.asarray(e.get_compressed(), "<u4").tobytes(), nll
+            syms = np.ascontiguousarray(item[0], np.int32)
+            e.encode(syms, _FAMILY, item[1])
+            nll += _nll(item[0], item[1])
+            if weigh:
+                e2.encode(syms, _FAMILY, np.ascontiguousarray(item[2], np.float64))
+                nll2 += _nll(item[0], item[2])
+        words = np.asarray(e.get_compressed(), "<u4").tobytes()
+        return (words, nll) + ((np.asarray(e2.get_compressed(), "<u4").tobytes(), nll2) if weigh else ())
 
     if workers > 1 and BAND_PROCESSES and _fork_ready():
         done = forked.in_processes(band, n_bands, workers, stop)
     else:
         done = [band(b) for b in range(n_bands)]
-    streams = [w for w, _ in done]
+    if weigh:
+        staged, bare = sum(len(d[0]) for d in done), sum(len(d[2]) for d in done)
+        if (bare - staged) * 10000 < gain * staged:
+            done = [(d[2], d[3]) for d in done]
+            lay = replace(lay, flags=lay.flags | FLAG_NETS_ONLY)
+    streams = [d[0] for d in done]
     head = lay.descriptor([len(w) // 4 for w in streams[:-1]])
-    return head + b"".join(streams), nll_side, sum(n for _, n in done)
+    return head + b"".join(streams), nll_side, sum(d[1] for d in done)
 
 
 def _encoder(checks: bool):
@@ -150,7 +174,8 @@ def decode_image_frame(model, payload, raw_len: int, record=None, checks: bool =
             if stop[0]:
                 raise forked.Stopped
             return dec.decode(_FAMILY, np.ascontiguousarray(tab, np.float64))
-        return model.step_decode(r1 - r0, cols, C, lay.deep, decode, record)
+        return model.step_decode(r1 - r0, cols, C, lay.deep, decode, record,
+                                 stages=not lay.flags & FLAG_NETS_ONLY)
 
     bounds = lay.band_bounds()
     if workers <= 1:

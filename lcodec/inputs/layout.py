@@ -17,6 +17,7 @@ from ..format.container import read_uvarint, uvarint
 from ..models.tessel_common import FLAG_BIG_ENDIAN, FLAG_SIGNED, MAX_SAMPLES, PAYLOAD_VERSION
 
 FLAG_RECORD = 4  # the content is a pixel record (pixel-exact); else the file's own bytes
+FLAG_NETS_ONLY = 8  # the samples were coded with the model's networks alone, without its per-image stages
 REPLICATED_VERSION = 2  # payload version of a frame whose samples are an exact block replication
 BANDED_VERSION = 3  # payload version of a frame whose samples are coded in bands (one stream each)
 MAX_REPEAT = 16  # the largest replication factor looked for (per axis)
@@ -41,7 +42,7 @@ class Layout:
     cols: int
     channels: int
     bps: int  # bytes per sample: 1 or 2
-    flags: int = 0  # FLAG_BIG_ENDIAN, FLAG_SIGNED (2-byte samples), FLAG_RECORD
+    flags: int = 0  # FLAG_BIG_ENDIAN, FLAG_SIGNED (2-byte samples), FLAG_RECORD, FLAG_NETS_ONLY
     rep_rows: int = 1  # every sample repeats over blocks of rep_rows x rep_cols (1, 1: none)
     rep_cols: int = 1
     bands: int = 1  # horizontal bands of the coded rows, each its own coder stream (1: one stream)
@@ -57,7 +58,7 @@ class Layout:
 
     def check(self, raw_len: int) -> None:
         ok = (self.rows >= 1 and self.cols >= 1 and 1 <= self.channels <= 4 and self.bps in (1, 2)
-              and 0 <= self.flags <= 7 and (self.bps == 2 or self.flags & 3 == 0)
+              and 0 <= self.flags <= 15 and (self.bps == 2 or self.flags & 3 == 0)
               and self.rows * self.cols * self.channels <= MAX_SAMPLES
               and 0 <= self.offset and self.offset + self.region_len <= raw_len
               and 1 <= self.rep_rows <= MAX_REPEAT and 1 <= self.rep_cols <= MAX_REPEAT

@@ -70,7 +70,8 @@ class Loaded:
         return self.inner.stepper(*a, **k)
 
     def __getattr__(self, name):  # image coding entry points of a pixel model (tessel)
-        if name in ("teacher_tables", "step_decode", "has_depth", "role_tables", "set_backend", "takes_image"):
+        if name in ("teacher_tables", "step_decode", "has_depth", "has_stages", "stages_min_gain", "role_tables",
+                    "set_backend", "takes_image"):
             return getattr(self.inner, name)
         raise AttributeError(name)
 

@@ -366,9 +366,14 @@ class Tessel:
     def __init__(self, params: dict, arrays: dict, backend: str = "numpy"):
         p = params
         if not isinstance(p, dict) or not {"embed", "hidden", "chan_shift", "roles", "bytes"} <= set(p) <= {
-                "embed", "hidden", "chan_shift", "roles", "bytes", "adapt", "structure", "law", "colour", "predictor"}:
+                "embed", "hidden", "chan_shift", "roles", "bytes", "adapt", "structure", "law", "colour", "predictor",
+                "stages_min_gain"}:
             raise ValueError("tessel needs embed, hidden, chan_shift, roles and bytes "
-                             "(and optionally adapt, structure, law, colour, predictor)")
+                             "(and optionally adapt, structure, law, colour, predictor, stages_min_gain)")
+        gain = p.get("stages_min_gain")  # absent: every image with the stages (older files)
+        if gain is not None and (type(gain) is not int or not 0 <= gain <= 10000):
+            raise ValueError("stages_min_gain must be an integer 0..10000 (ten-thousandths of the samples' bits)")
+        self.stages_min_gain = gain
         if p.get("colour", "shift") not in COLOUR_MODES:  # absent: "shift" (older files)
             raise ValueError(f"colour must be one of {', '.join(COLOUR_MODES)}")
         if p.get("predictor", "med") not in ("med", "gap"):  # absent: "med" (older files)
@@ -467,6 +472,11 @@ class Tessel:
         # the numpy backend's tables through tessel_net (the same integers, a faster first layer)
         self.nets = {r: FusedNet(k, Q, HI_SLOT) for r, k in self.kernels.items()} if backend == "numpy" else {}
 
+    def has_stages(self, deep: bool) -> bool:
+        """Whether images of this depth go through any per-image stage."""
+        roles = ("r16h", "r16l") if deep else ("r8",)
+        return any(self.adapt.get(r, 0) or self.k2.get(r, 0) for r in roles) or bool(deep and self.law_limit)
+
     def has_depth(self, deep: bool) -> bool:
         return ("r16h" in self.kernels) if deep else ("r8" in self.kernels)
 
@@ -488,18 +498,20 @@ class Tessel:
         """(embedding rows, symbols, roles) of every sub-symbol in raster order."""
         return raster_features(v, self.shift, gap=self.gap)
 
-    def teacher_tables(self, v: np.ndarray, deep: bool):
+    def teacher_tables(self, v: np.ndarray, deep: bool, stages: bool = True, with_bare: bool = False):
         """Yield (symbols, tables) in coding order, chunk by chunk (the encoder's pass).
         Chunks end on wavefront groups (one step's sub-symbol), where the adaptive counts
-        are updated."""
+        are updated. stages False: the networks' tables alone (an image frame with
+        FLAG_NETS_ONLY). with_bare: yield (symbols, tables, the networks' tables alone), the
+        third what `stages` False would give."""
         rows, cols, C = v.shape
         P = 2 if deep else 1
         vv = v.astype(np.uint16) if deep else v.astype(np.uint8)
         idx, syms, roles, ctx, ctx2 = raster_features(vv, self.shift, with_ctx=True, gap=self.gap)
         order = coding_order(rows, cols, C, P)
         names = ("r16h", "r16l") if deep else ("r8",)
-        K = np.array([self.adapt.get(r, 0) for r in ROLES], np.int64)
-        K2 = np.array([self.k2.get(r, 0) for r in ROLES], np.int64)
+        K = np.array([self.adapt.get(r, 0) if stages else 0 for r in ROLES], np.int64)
+        K2 = np.array([self.k2.get(r, 0) if stages else 0 for r in ROLES], np.int64)
         # group id of each coded symbol: (step, sub-symbol); raster index -> (r, c, sub)
         sub = order % (C * P)
         pix = order // (C * P)
@@ -513,7 +525,7 @@ class Tessel:
         D1 = np.zeros(N_CTX, np.int64)
         # the law stage (16-bit samples): each symbol's activity class, and for a low byte the
         # high byte of its sample (-1 for a high byte); scale sums and evidence per image
-        limit = self.law_limit if deep else 0
+        limit = self.law_limit if (deep and stages) else 0
         law = law_tables() if limit else np.zeros((1, 256), np.int64)
         lawq, lawsum = law_normed() if limit else (law, np.ones(1, np.int64))
         lcls = np.zeros(len(syms), np.int64)
@@ -531,7 +543,7 @@ class Tessel:
                 last = b
         # the stages' scratch, rows of one group (the largest), shared by every chunk
         gm = int(np.diff(np.concatenate(([0], bounds, [len(order)]))).max())
-        m2 = gm if (K2.any() or self.blend or limit) else 0
+        m2 = gm if (K2.any() or (self.blend and K.any()) or limit) else 0
         mid, stage2 = np.empty((gm, 256), np.float64), np.empty((gm if limit else 0, 256), np.float64)
         qa, tb, sums = np.empty((m2, 256), np.int64), np.empty((m2, 256), np.int64), np.empty((m2, 2), np.int64)
         i = 0
@@ -547,6 +559,7 @@ class Tessel:
                         tab[sel] = self.role_tables(role, ci[sel])
             else:
                 tab[:] = self.role_tables("r8", ci)
+            bare = tab  # the stages below write their tables elsewhere: this one stays the networks'
             if K.any() or K2.any() or limit:
                 out = stage2 if limit else np.empty_like(tab)  # with the law stage, out is its input: scratch
                 out3 = np.empty_like(tab) if limit else out
@@ -556,12 +569,15 @@ class Tessel:
                            limit, lcls[o], lhi[o], lrow[:len(o)], law, lawq, lawsum, A, Nc, D3, self.law_wtab,
                            self.law_cap, out3, self.law_high)
                 tab = out3
-            yield cs, tab
+            yield (cs, tab, bare) if with_bare else (cs, tab)
             i = j
 
-    def step_decode(self, rows: int, cols: int, C: int, deep: bool, decode, record=None) -> np.ndarray:
+    def step_decode(self, rows: int, cols: int, C: int, deep: bool, decode, record=None,
+                    stages: bool = True) -> np.ndarray:
         """The decoder's pass: wavefront steps; `decode(tables) -> symbols` is the entropy
-        decoder. Returns the samples (rows, cols, C)."""
+        decoder. Returns the samples (rows, cols, C). stages False: the networks' tables
+        alone (FLAG_NETS_ONLY)."""
+        adapt, k2 = (self.adapt, self.k2) if stages else ({}, {})
         v = np.zeros((rows, cols, C), np.int32)  # int32: samples and residuals are below 2**17
         e = np.zeros_like(v)
         cap = min(rows, cols // DELAY + 2)
@@ -580,7 +596,7 @@ class Tessel:
         mixed2 = np.empty((cap, 256), np.float64)
         qa1, tb1, sums1 = np.empty((cap, 256), np.int64), np.empty((cap, 256), np.int64), np.empty((cap, 2), np.int64)
         qa, tb, sums = np.empty((cap, 256), np.int64), np.empty((cap, 256), np.int64), np.empty((cap, 2), np.int64)
-        limit = self.law_limit if deep else 0
+        limit = self.law_limit if (deep and stages) else 0
         law = law_tables() if limit else None
         lawq, lawsum = law_normed() if limit else (None, None)
         A, Nc, D3 = np.zeros(N_CLASSES, np.int64), np.zeros(N_CLASSES, np.int64), np.zeros(N_CTX, np.int64)
@@ -592,7 +608,7 @@ class Tessel:
 
         def table(role, m, ctx, ctx2, his=None):
             tab = self.role_tables(role, idx[:m])
-            K, K2 = self.adapt.get(role, 0), self.k2.get(role, 0)
+            K, K2 = adapt.get(role, 0), k2.get(role, 0)
             if K and self.blend:
                 _mix2(tab, ctx, K, counts, D1, self.wtab, self.cap, qa1[:m], tb1[:m], sums1[:m], mixed[:m])
                 tab = mixed[:m]

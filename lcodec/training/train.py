@@ -326,6 +326,10 @@ LAW = {"limit": 255, "cap": 12}  # the law stage of 16-bit samples (figures in d
 # and it skips the adaptive stages (README "Images" has the figures); 0 gives it the others' width
 # and every stage, as before
 HIGH_HIDDEN = 16
+# Since 2026-12-05 the encoder codes an image with the networks alone (no per-image stages, about
+# a third less decoding work) unless the stages save at least this many ten-thousandths of its
+# samples' bits (model parameter stages_min_gain; docs/notes/2026-12-05-pixels-same-kind.md)
+STAGES_MIN_GAIN = 25
 ADAPT_GRID = (0, 256, 1024, 4096, 16384)
 
 
@@ -519,7 +523,8 @@ def train_image(corpus: list[str], out: str, time_limit: float = 120.0, preset: 
                 if bad >= 4:
                     echo("  validation stopped improving")
                 break
-    params = {"embed": cfg["embed"], "hidden": cfg["hidden"], "chan_shift": chan_shift, "roles": {}, "bytes": "o6m"}
+    params = {"embed": cfg["embed"], "hidden": cfg["hidden"], "chan_shift": chan_shift, "roles": {}, "bytes": "o6m",
+              "stages_min_gain": STAGES_MIN_GAIN}
     if colour != "shift" and any(v.shape[2] == 3 for _, v in imgs):  # absent means "shift" (older
         params["colour"] = colour  # files); recorded only where it changes something: RGB training images
     if predictor != "med":  # absent means "med"
