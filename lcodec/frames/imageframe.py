@@ -19,8 +19,8 @@ from ..coding import CheckedDecoder, CheckedEncoder
 from ..errors import ModelError
 from ..format import container as C
 from . import forked
-from ..inputs.layout import (FLAG_NETS_ONLY, Layout, choose_bands, read_descriptor, region_values, replication, side_bytes,
-                             values_region)
+from ..inputs.layout import (FLAG_NETS_ONLY, Layout, choose_bands, read_descriptor, region_values, replication,
+                             side_bytes, values_region)
 
 _FAMILY = constriction.stream.model.Categorical(perfect=False)
 

@@ -434,7 +434,8 @@ class Tessel:
             raise ValueError("lut values must be 1..2**24")
         self.role_params = {}
         for role, rp in roles.items():
-            if (not isinstance(rp, dict) or not {"m1", "s1", "mo", "so"} <= set(rp) <= {"m1", "s1", "mo", "so", "hidden"}
+            if (not isinstance(rp, dict) or not {"m1", "s1", "mo", "so"} <= set(rp) <= {"m1", "s1", "mo", "so",
+                                                                                          "hidden"}
                     or not all(type(x) is int for x in rp.values())):
                 raise ValueError(f"role {role} needs integer m1, s1, mo, so (and optionally hidden)")
             Hr = rp.get("hidden", H)  # a role's own hidden width (absent: the model's)
