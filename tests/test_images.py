@@ -573,6 +573,9 @@ def test_networks_alone_when_the_stages_save_too_little(kind):
     assert np.array_equal(np.concatenate(rec), want)
     assert np.array_equal(want, _tables(bare, v, lay.deep))  # the networks' tables alone
     assert payload[got_end(payload, len(raw)):] == encode_image_frame(bare, raw, lay)[0][got_end(payload, len(raw)):]
+    # a model file without the parameter never writes the flag: a flagged frame is damage to it
+    with pytest.raises(DataError, match="networks alone"):
+        decode_image_frame(base, payload, len(raw))
     # gain 0: the networks alone exactly when that makes the coded samples smaller (random
     # networks: on some of these images it does); the choice compares the two codings' sizes
     staged = encode_image_frame(base, raw, lay)[0]

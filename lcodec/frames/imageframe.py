@@ -16,7 +16,7 @@ import constriction
 import numpy as np
 
 from ..coding import CheckedDecoder, CheckedEncoder
-from ..errors import ModelError
+from ..errors import DataError, ModelError
 from ..format import container as C
 from . import forked
 from ..inputs.layout import (FLAG_NETS_ONLY, Layout, choose_bands, read_descriptor, region_values, replication,
@@ -90,7 +90,7 @@ def encode_image_frame(model, raw: bytes, lay: Layout, checks: bool = True, band
     # ten-thousandths smaller, else the image is coded with the networks alone. Both codings
     # run in one pass (the networks' tables are the stages' input) and the sizes decide: an
     # integer test, so the choice is the same on every machine.
-    gain = getattr(model, "stages_min_gain", None)
+    gain = getattr(model, "stages_min_gain", None)  # (pixel models of the layer kit have no stages)
     weigh = gain is not None and model.has_stages(lay.deep)
     enc, nll_side = side_coded()
     enc2 = side_coded()[0] if weigh else None
@@ -101,7 +101,9 @@ def encode_image_frame(model, raw: bytes, lay: Layout, checks: bool = True, band
         r0, r1 = bounds[b]
         e, nll = (enc if b == 0 else _encoder(checks)), 0.0
         e2, nll2 = ((enc2 if b == 0 else _encoder(checks)) if weigh else None), 0.0
-        for item in model.teacher_tables(np.ascontiguousarray(v[r0:r1]), lay.deep, with_bare=weigh):
+        rows = np.ascontiguousarray(v[r0:r1])
+        for item in (model.teacher_tables(rows, lay.deep, with_bare=True) if weigh
+                     else model.teacher_tables(rows, lay.deep)):
             if stop[0]:
                 raise forked.Stopped
             syms = np.ascontiguousarray(item[0], np.int32)
@@ -145,6 +147,8 @@ def decode_image_frame(model, payload, raw_len: int, record=None, checks: bool =
     lay, pos = read_descriptor(payload, raw_len)
     if not model.has_depth(lay.deep):
         raise ModelError(f"this model has no network for {8 * lay.bps}-bit samples")
+    if lay.flags & FLAG_NETS_ONLY and getattr(model, "stages_min_gain", None) is None:
+        raise DataError("image frame damaged (coded with the networks alone, which this model never does)")
     words = np.frombuffer(bytes(payload[pos:]), "<u4").astype(np.uint32)
     cuts = np.cumsum((0, *lay.band_words, len(words) - sum(lay.band_words)))
     decoders = [_decoder(words[a:b], checks) for a, b in zip(cuts[:-1], cuts[1:])]
@@ -174,8 +178,9 @@ def decode_image_frame(model, payload, raw_len: int, record=None, checks: bool =
             if stop[0]:
                 raise forked.Stopped
             return dec.decode(_FAMILY, np.ascontiguousarray(tab, np.float64))
-        return model.step_decode(r1 - r0, cols, C, lay.deep, decode, record,
-                                 stages=not lay.flags & FLAG_NETS_ONLY)
+        if lay.flags & FLAG_NETS_ONLY:
+            return model.step_decode(r1 - r0, cols, C, lay.deep, decode, record, stages=False)
+        return model.step_decode(r1 - r0, cols, C, lay.deep, decode, record)
 
     bounds = lay.band_bounds()
     if workers <= 1:
