@@ -372,7 +372,7 @@ class Tessel:
                              "(and optionally adapt, structure, law, colour, predictor, stages_min_gain)")
         gain = p.get("stages_min_gain")  # absent: every image with the stages (older files)
         if gain is not None and (type(gain) is not int or not 0 <= gain <= 10000):
-            raise ValueError("stages_min_gain must be an integer 0..10000 (ten-thousandths of the samples' bits)")
+            raise ValueError("stages_min_gain must be an integer 0..10000 (ten-thousandths of the coded samples)")
         self.stages_min_gain = gain
         if p.get("colour", "shift") not in COLOUR_MODES:  # absent: "shift" (older files)
             raise ValueError(f"colour must be one of {', '.join(COLOUR_MODES)}")

@@ -327,8 +327,8 @@ LAW = {"limit": 255, "cap": 12}  # the law stage of 16-bit samples (figures in d
 # and every stage, as before
 HIGH_HIDDEN = 16
 # Since 2026-12-05 the encoder codes an image with the networks alone (no per-image stages, about
-# a third less decoding work) unless the stages save at least this many ten-thousandths of its
-# samples' bits (model parameter stages_min_gain; docs/notes/2026-12-05-pixels-same-kind.md)
+# a third less decoding work) unless the stages make its coded samples at least this many
+# ten-thousandths smaller (model parameter stages_min_gain; docs/notes/2026-12-05-pixels-same-kind.md)
 STAGES_MIN_GAIN = 25
 ADAPT_GRID = (0, 256, 1024, 4096, 16384)
 
