@@ -291,9 +291,10 @@ def golden_tessel_replicated():
     write_vector("tessel-r2-rgb3x2", b"P6\n# bay-3 colour plate, zoomed 3x2\n40 36\n255\n" + rgb.tobytes(), model=mpath)
 
 
-def derive_tessel(src: str, dst: str, edit) -> None:
+def derive_tessel(src: str, dst: str, edit, edit_arrays=None, **meta_extra) -> None:
     """Write dst (unless it exists): the pixel model file tests/golden/SRC with its
-    parameters changed in place by edit(params), its arrays and other metadata kept."""
+    parameters changed in place by edit(params), its arrays by edit_arrays(arrays) (a dict of
+    writable copies; None: kept) and its other metadata kept, plus meta_extra."""
     from lcodec.format import modelfile
 
     if os.path.exists(dst):
@@ -302,7 +303,10 @@ def derive_tessel(src: str, dst: str, edit) -> None:
     arch = meta.pop("architecture")
     meta.pop("arrays")
     edit(arch["params"])
-    modelfile.dump(dst, arch, arrays, **meta)
+    if edit_arrays is not None:
+        arrays = {k: v.copy() for k, v in arrays.items()}
+        edit_arrays(arrays)
+    modelfile.dump(dst, arch, arrays, **meta, **meta_extra)
 
 
 def golden_tessel_law():
@@ -384,28 +388,25 @@ def golden_tessel_light():
     import skimage.data as skd
     from pydicom.data import get_testdata_file
 
-    from lcodec.format import modelfile
-
     mpath = os.path.join(HERE, "tessel-tiny-light.lcmodel")
     names = ["tessel-h1-npy16", "tessel-h1-dicom16"]
     if all(os.path.exists(os.path.join(HERE, n + ".lcodec")) for n in names):
         print("keep tessel-h1-*")
         return
     warnings.simplefilter("ignore")
-    if not os.path.exists(mpath):
-        meta, arrays, _ = modelfile.load(os.path.join(HERE, "tessel-tiny-gap.lcmodel"))
-        arch = meta.pop("architecture")
-        meta.pop("arrays")
-        p = arch["params"]
+
+    def light(p):
         p["roles"]["r16h"]["hidden"] = 8
         p["adapt"].pop("r16h")
         p["structure"]["k"].pop("r16h")
         p["law"]["high_byte"] = 0
-        arrays = {k: np.array(v) for k, v in arrays.items()}
+
+    def first_eight(arrays):
         arrays["r16h.w1"] = np.ascontiguousarray(arrays["r16h.w1"][:, :8])
         arrays["r16h.b1"] = np.ascontiguousarray(arrays["r16h.b1"][:8])
         arrays["r16h.w2"] = np.ascontiguousarray(arrays["r16h.w2"][:8])
-        modelfile.dump(mpath, arch, arrays, **dict(meta, archives_name_file=False))
+
+    derive_tessel("tessel-tiny-gap.lcmodel", mpath, light, first_eight, archives_name_file=False)
     a = skd.coins()[150:190, 200:236].astype(np.int32) * 43 + 2000 + np.random.default_rng(7).integers(-60, 60, (40, 36))
     buf = io.BytesIO()
     np.save(buf, a.astype("<u2"))
